@@ -1,0 +1,57 @@
+"""The one exception family of the library; the command line turns each into one line."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+
+class RescoreError(Exception):
+    """A problem the user can fix, located as precisely as we know.
+
+    Rendered as ``PATH:LINE: FIELD: message``, leaving out the parts that are unknown.
+    """
+
+    exit_code = 1
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        path: str | Path | None = None,
+        line: int | None = None,
+        field: str | None = None,
+    ) -> None:
+        super().__init__(message)
+        self.message = message
+        self.path = None if path is None else str(path)
+        self.line = line
+        self.field = field
+
+    def __str__(self) -> str:
+        parts: list[str] = []
+        if self.path is not None:
+            parts.append(self.path if self.line is None else f"{self.path}:{self.line}")
+        if self.field:
+            parts.append(self.field)
+        parts.append(self.message)
+        return ": ".join(parts)
+
+
+class InputError(RescoreError):
+    """Bad input data: a malformed file, a missing reference, an impossible value."""
+
+
+class ModelFileError(InputError):
+    """A language-model file that is truncated, altered, foreign or of an unknown version."""
+
+
+class UsageError(RescoreError):
+    """Bad command-line usage that the argument parser itself cannot see."""
+
+    exit_code = 2
+
+
+class GateError(RescoreError):
+    """A release gate was breached (``rescore report --max-wer/--max-regression``)."""
+
+    exit_code = 3

@@ -1,0 +1,145 @@
+"""The feature matrix of a set of N-best lists and the combined score that picks the 1-best.
+
+For each hypothesis:
+    total = acoustic_scale * acoustic + lm_weight * lm + insertion_penalty * words
+            + sum_k w_k * features[k]
+The hypotheses of all utterances are rows of one matrix; utterance ``u`` owns rows
+``offsets[u]:offsets[u + 1]``. Choosing the best hypothesis for a weight vector is a
+matrix-vector product and a segmented argmax, ties going to the earlier hypothesis.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+ACOUSTIC = "acoustic"
+LM = "lm"
+WORDS = "words"
+
+
+@dataclass(frozen=True)
+class Weights:
+    """The weights of the combined score (the contract's weights file, less provenance)."""
+
+    acoustic_scale: float = 1.0
+    lm_weight: float = 0.0
+    insertion_penalty: float = 0.0
+    features: Mapping[str, float] = field(default_factory=dict)
+
+    def vector(self, names: tuple[str, ...]) -> np.ndarray:
+        """The weight of each column named in ``names`` (a feature absent here weighs 0)."""
+        fixed = {ACOUSTIC: self.acoustic_scale, LM: self.lm_weight, WORDS: self.insertion_penalty}
+        return np.array(
+            [fixed[n] if n in fixed else float(self.features.get(n, 0.0)) for n in names],
+            dtype=np.float64,
+        )
+
+    @classmethod
+    def from_vector(cls, names: tuple[str, ...], vector: np.ndarray) -> Weights:
+        values = dict(zip(names, (float(v) for v in vector), strict=True))
+        return cls(
+            acoustic_scale=values.pop(ACOUSTIC, 1.0),
+            lm_weight=values.pop(LM, 0.0),
+            insertion_penalty=values.pop(WORDS, 0.0),
+            features=values,
+        )
+
+
+@dataclass(frozen=True)
+class FeatureMatrix:
+    """One row per hypothesis, one column per score; errors computed once against references.
+
+    ``errors[r]`` is the word edit distance of row ``r`` to its utterance's reference and
+    ``ref_words[u]`` the reference length of utterance ``u`` (both ``None`` without
+    references). Searches only ever sum ``errors``; they never re-align.
+    """
+
+    names: tuple[str, ...]
+    values: np.ndarray
+    offsets: np.ndarray
+    ids: tuple[str, ...]
+    errors: np.ndarray | None = None
+    ref_words: np.ndarray | None = None
+
+    @property
+    def n_utterances(self) -> int:
+        return len(self.offsets) - 1
+
+    @property
+    def n_hypotheses(self) -> int:
+        return int(self.values.shape[0])
+
+    def column(self, name: str) -> np.ndarray:
+        return self.values[:, self.names.index(name)]
+
+    @property
+    def utterance_of_row(self) -> np.ndarray:
+        return np.repeat(np.arange(self.n_utterances), np.diff(self.offsets))
+
+    def subset(self, utterances: np.ndarray) -> FeatureMatrix:
+        """The rows of the given utterances (indices in ascending or any order)."""
+        utterances = np.asarray(utterances, dtype=np.int64)
+        starts, stops = self.offsets[utterances], self.offsets[utterances + 1]
+        rows = np.concatenate([np.arange(a, b) for a, b in zip(starts, stops, strict=True)]) \
+            if len(utterances) else np.zeros(0, dtype=np.int64)
+        sizes = stops - starts
+        offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+        return FeatureMatrix(
+            names=self.names,
+            values=self.values[rows],
+            offsets=offsets,
+            ids=tuple(self.ids[u] for u in utterances),
+            errors=None if self.errors is None else self.errors[rows],
+            ref_words=None if self.ref_words is None else self.ref_words[utterances],
+        )
+
+    def truncate(self, depth: int) -> FeatureMatrix:
+        """Keep only the first ``depth`` hypotheses of every list."""
+        sizes = np.minimum(np.diff(self.offsets), depth)
+        local = np.arange(self.n_hypotheses) - np.repeat(self.offsets[:-1], np.diff(self.offsets))
+        rows = local < depth
+        offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+        return FeatureMatrix(
+            names=self.names,
+            values=self.values[rows],
+            offsets=offsets,
+            ids=self.ids,
+            errors=None if self.errors is None else self.errors[rows],
+            ref_words=self.ref_words,
+        )
+
+
+def segment_argmax(scores: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Global row index of the highest score in each segment; ties go to the earliest row.
+
+    Works on a 1-D score vector or on a 2-D array of shape (rows, points), giving one
+    choice per segment per point.
+    """
+    starts = offsets[:-1]
+    best = np.maximum.reduceat(scores, starts, axis=0)
+    sizes = np.diff(offsets)
+    spread = np.repeat(best, sizes, axis=0)
+    n = scores.shape[0]
+    rows = np.arange(n).reshape((n,) + (1,) * (scores.ndim - 1))
+    candidates = np.where(scores >= spread, rows, n)
+    return np.minimum.reduceat(candidates, starts, axis=0)
+
+
+def totals(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
+    return np.asarray(matrix.values @ weights.vector(matrix.names))
+
+
+def choose(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
+    """Index within its list of the chosen hypothesis of every utterance."""
+    rows = segment_argmax(totals(matrix, weights), matrix.offsets)
+    return np.asarray(rows - matrix.offsets[:-1])
+
+
+def oracle_rows(matrix: FeatureMatrix) -> np.ndarray:
+    """Global row of the fewest-error hypothesis of each utterance (earliest on ties)."""
+    if matrix.errors is None:
+        raise ValueError("oracle needs references")
+    return segment_argmax(-matrix.errors.astype(np.float64), matrix.offsets)

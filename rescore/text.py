@@ -1,0 +1,54 @@
+"""Text normalisation, applied identically to LM training text, hypotheses and references.
+
+The default, documented in the README:
+1. Unicode NFC;
+2. lowercase;
+3. the typographic apostrophe (U+2019) becomes ``'``;
+4. every punctuation character (Unicode category P*) becomes a space, except ``'`` and
+   ``-``, which survive only inside a word (``don't``, ``re-seed``; a leading or trailing
+   one is stripped);
+5. whitespace collapsed to single spaces, ends trimmed.
+Symbols (``%``, ``$``, ``°``) and digits are kept as they are.
+"""
+
+from __future__ import annotations
+
+import string
+import unicodedata
+
+NORMALISATION = "nfc-lower-strip-punct-v1"
+
+_KEEP_INSIDE = "'-"
+_ASCII_TABLE = str.maketrans({c: " " for c in string.punctuation if c not in _KEEP_INSIDE})
+
+
+def _strip_unicode_punct(text: str) -> str:
+    out = []
+    for ch in text:
+        if ch in _KEEP_INSIDE:
+            out.append(ch)
+        elif unicodedata.category(ch).startswith("P"):
+            out.append(" ")
+        else:
+            out.append(ch)
+    return "".join(out)
+
+
+def tokens(text: str) -> list[str]:
+    """The normalised words of ``text``."""
+    if text.isascii():
+        text = text.lower().translate(_ASCII_TABLE)
+    else:
+        text = unicodedata.normalize("NFC", text).lower().replace("\u2019", "'")
+        text = _strip_unicode_punct(text)
+    words = []
+    for word in text.split():
+        word = word.strip(_KEEP_INSIDE)
+        if word:
+            words.append(word)
+    return words
+
+
+def normalise(text: str) -> str:
+    """The normalised form of ``text`` as one string of space-separated words."""
+    return " ".join(tokens(text))

@@ -1,0 +1,114 @@
+"""What every command shares: the error handler, JSON output, tables and messages.
+
+This package is the only place that prints, reads argv or exits. Library calls return
+data; the functions here format it.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import signal
+import sys
+from collections.abc import Callable, Sequence
+from typing import Any, ParamSpec, TypeVar
+
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from rescore.errors import RescoreError
+
+P = ParamSpec("P")
+R = TypeVar("R")
+
+stdout = Console(soft_wrap=True)
+stderr = Console(stderr=True, soft_wrap=True)
+
+
+class _State:
+    debug = False
+    quiet = False
+    verbose = False
+
+
+state = _State()
+
+
+class Terminated(KeyboardInterrupt):
+    """Raised by the SIGTERM handler so that every ``finally`` and atomic write unwinds."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    raise Terminated()
+
+
+def install_signal_handlers() -> None:
+    signal.signal(signal.SIGTERM, _on_sigterm)
+
+
+def fail(message: str, code: int = 1) -> typer.Exit:
+    """Print one ``error:`` line on stderr and return the Exit to raise."""
+    print(f"error: {message}", file=sys.stderr, flush=True)
+    return typer.Exit(code)
+
+
+def guarded(fn: Callable[P, R]) -> Callable[P, R]:
+    """Turn library errors into one stderr line and the contract's exit code."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: P.args, **kwargs: P.kwargs) -> R:
+        try:
+            return fn(*args, **kwargs)
+        except typer.Exit:
+            raise
+        except RescoreError as exc:
+            if state.debug:
+                raise
+            raise fail(str(exc), exc.exit_code) from None
+        except KeyboardInterrupt as exc:
+            if state.debug:
+                raise
+            what = "terminated" if isinstance(exc, Terminated) else "interrupted"
+            raise fail(f"{what}; no output was written", 130) from None
+        except MemoryError:
+            raise fail("out of memory; try a smaller batch or fewer workers") from None
+        except Exception as exc:
+            if state.debug:
+                raise
+            raise fail(
+                f"internal error ({type(exc).__name__}: {exc}); rerun with --debug and report it"
+            ) from None
+
+    return wrapper
+
+
+def emit_json(data: Any) -> None:
+    print(json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False))
+
+
+def info(message: str) -> None:
+    """A progress or summary line on stderr, silent with --quiet."""
+    if not state.quiet:
+        stderr.print(message, highlight=False)
+
+
+def table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[object]]) -> None:
+    t = Table(title=title, title_justify="left", show_edge=False, pad_edge=False)
+    for i, name in enumerate(columns):
+        t.add_column(name, justify="left" if i == 0 else "right")
+    for row in rows:
+        t.add_row(*(fmt(v) for v in row))
+    stdout.print(t)
+
+
+def fmt(value: object) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, float):
+        return f"{value:.4f}"
+    return str(value)
+
+
+def pct(value: float | None) -> str:
+    return "-" if value is None else f"{100 * value:.2f}%"

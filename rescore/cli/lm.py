@@ -1,0 +1,110 @@
+"""``rescore lm build | perplexity | convert``: one small function per verb."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.errors import UsageError
+from rescore.ioutil import iter_text_lines
+from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
+from rescore.text import tokens
+
+
+def _cutoffs(text: str | None) -> list[int] | None:
+    if text is None:
+        return None
+    try:
+        return [int(part) for part in text.split(",")]
+    except ValueError:
+        raise UsageError(
+            f"--cutoffs must be comma-separated whole numbers, one per order from 2, got {text!r}"
+        ) from None
+
+
+def _vocab_words(path: Path | None) -> list[str] | None:
+    if path is None:
+        return None
+    return [w for _, line in iter_text_lines(path) for w in tokens(line)]
+
+
+_Text = Annotated[list[Path], typer.Argument(help="Training text: one sentence a line (.gz ok).")]
+_Out = Annotated[Path, typer.Option("--output", "-o", help="Model file (.arpa/.arpa.gz: ARPA).")]
+_Order = Annotated[int, typer.Option("--order", "-n", help="n-gram order, 1 to 6.")]
+_Method = Annotated[str, typer.Option("--method", "-m", help="mkn, kn, wb, abs, addk or mle.")]
+_Vocab = Annotated[Path | None, typer.Option("--vocab", help="Vocabulary file: the words to keep.")]
+_MaxVocab = Annotated[int | None, typer.Option("--max-vocab", help="Keep the K most frequent.")]
+_MinCount = Annotated[int, typer.Option("--min-count", help="Keep words seen at least C times.")]
+_Closed = Annotated[bool, typer.Option("--closed-vocab", help="Leave unknown words out.")]
+_K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
+_Cutoffs = Annotated[str | None, typer.Option("--cutoffs", help="Least count per order from 2.")]
+_Prune = Annotated[float | None, typer.Option("--prune", help="Entropy-pruning threshold.")]
+
+
+@guarded
+def build(
+    text: _Text,
+    output: _Out,
+    order: _Order = 3,
+    method: _Method = "mkn",
+    vocab: _Vocab = None,
+    max_vocab: _MaxVocab = None,
+    min_count: _MinCount = 1,
+    closed_vocab: _Closed = False,
+    k: _K = 1.0,
+    cutoffs: _Cutoffs = None,
+    prune: _Prune = None,
+) -> None:
+    """Train an n-gram language model."""
+    model = NGramModel(
+        order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
+        min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
+    )
+    model.fit(read_corpus(text))
+    save_model(model, output)
+    counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
+    info(f"wrote {output}: {model.method} order {model.order_}, "
+         f"{len(model.vocab_)} tokens in the vocabulary; {counts}")
+    for level, why in model.metadata_.get("fallbacks", {}).items():
+        info(f"order {level}: {why}")
+
+
+@guarded
+def perplexity_cmd(
+    model_path: Annotated[Path, typer.Argument(metavar="MODEL", help="Native or ARPA model.")],
+    text: Annotated[Path, typer.Argument(help="Text to evaluate: one sentence a line.")],
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+) -> None:
+    """Perplexity, log10 probability, token and OOV counts of a text."""
+    model = load_model(model_path)
+    result = perplexity(model, read_corpus(text))
+    if as_json:
+        emit_json(result.to_dict())
+        return
+    table(None, ["measure", "value"], [
+        ("perplexity", result.perplexity),
+        ("log10 probability", result.log10_prob),
+        ("sentences", result.sentences),
+        ("tokens", result.tokens),
+        ("out-of-vocabulary words", result.oov),
+        ("OOV rate", pct(result.oov_rate)),
+    ])
+
+
+@guarded
+def convert(
+    source: Annotated[Path, typer.Argument(metavar="IN", help="Model to read.")],
+    target: Annotated[Path, typer.Argument(metavar="OUT", help="Model to write (by file ending).")],
+) -> None:
+    """Convert a model between ARPA text and the native file."""
+    save_model(load_model(source), target)
+    info(f"wrote {target}")
+
+
+def register(app: typer.Typer, lm_app: typer.Typer) -> None:
+    lm_app.command("build")(build)
+    lm_app.command("perplexity")(perplexity_cmd)
+    lm_app.command("convert")(convert)

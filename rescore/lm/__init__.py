@@ -1,0 +1,52 @@
+"""n-gram language models: building, scoring, perplexity, ARPA and native files."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from rescore.lm.evaluate import PerplexityResult, perplexity, read_corpus
+from rescore.lm.model import NGramModel
+from rescore.lm.smoothing import METHODS
+
+ARPA_SUFFIXES = (".arpa", ".arpa.gz")
+
+
+def is_arpa_name(path: str | Path) -> bool:
+    return str(path).lower().endswith(ARPA_SUFFIXES)
+
+
+def save_model(model: NGramModel, path: str | Path) -> None:
+    """Write ``model`` atomically: ARPA text for a ``.arpa``/``.arpa.gz`` name, else native."""
+    if is_arpa_name(path):
+        from rescore.lm import arpa
+
+        arpa.write(model.tables_, path)
+    else:
+        from rescore.lm import store
+
+        digest = store.save(model._fitted(), model.metadata_, path)
+        model._checksum = digest
+
+
+def load_model(path: str | Path) -> NGramModel:
+    """Read a model written by :func:`save_model` or any valid ARPA file, by its name."""
+    if is_arpa_name(path):
+        from rescore.lm import arpa
+
+        tables, meta = arpa.read(path)
+        return NGramModel.from_tables(tables, meta)
+    from rescore.lm import store
+
+    tables, meta, digest = store.load(path)
+    return NGramModel.from_tables(tables, meta, digest)
+
+
+__all__ = [
+    "METHODS",
+    "NGramModel",
+    "PerplexityResult",
+    "load_model",
+    "perplexity",
+    "read_corpus",
+    "save_model",
+]

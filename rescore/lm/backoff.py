@@ -1,0 +1,253 @@
+"""From counts to a normalised back-off model: smoothing, cutoffs, entropy pruning.
+
+The smoothed model is interpolated; it is turned into back-off form exactly: each listed
+n-gram stores its interpolated probability and each context the weight ``gamma(h)`` that
+the interpolation gives its lower order. Count cutoffs move a dropped n-gram's own share
+into ``gamma(h)``, which keeps every distribution normalised. Entropy-based pruning
+(Stolcke 1998) then removes n-grams whose removal raises perplexity by less than a
+relative threshold and recomputes the back-off weights of the contexts that lost any.
+An n-gram that is the context or the suffix of a kept longer n-gram is always kept, so
+the tables stay closed under both.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.lm import hashindex
+from rescore.lm.counts import OrderCounts
+from rescore.lm.smoothing import OrderStats, Smoother
+from rescore.lm.tables import BackoffTables
+from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
+
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+B = npt.NDArray[np.bool_]
+
+
+@dataclass
+class _Work:
+    """Per-order arrays while estimating; index k-1 describes order k."""
+
+    suffix: list[I64]
+    first: list[I64]
+    prefix: list[I64]
+    raw: list[F64]
+    prob: list[F64] = field(default_factory=list)
+    gamma: list[F64] = field(default_factory=list)  # gamma[k-1]: over order-k n-grams
+    keep: list[B] = field(default_factory=list)
+
+
+def _keys(suffix: I64, first: I64, v: int) -> npt.NDArray[np.uint64]:
+    return suffix.astype(np.uint64) * np.uint64(v) + first.astype(np.uint64)
+
+
+def _prefixes(counts: list[OrderCounts], v: int) -> list[I64]:
+    """For each n-gram the id of its context (its first k-1 words) among the (k-1)-grams."""
+    prefix = [np.zeros(v, dtype=np.int64)]
+    slots = [np.zeros(0, np.int32)] + [hashindex.build_slots(_keys(c.suffix, c.first, v))
+                                       for c in counts[1:]]
+    for k in range(2, len(counts) + 1):
+        c = counts[k - 1]
+        if k == 2:
+            prefix.append(c.first.copy())
+            continue
+        # the context of w1..wk is w1 + (context of its suffix w2..wk)
+        q = _keys(prefix[k - 2][c.suffix], c.first, v)
+        lower = counts[k - 2]
+        got = hashindex.lookup(slots[k - 2], _keys(lower.suffix, lower.first, v), q)
+        prefix.append(got)
+    return prefix
+
+
+def _used_counts(work: _Work, smoother: Smoother, k: int, order: int) -> F64:
+    raw = work.raw[k - 1]
+    if k == order or not smoother.continuation:
+        used = raw.copy()
+    else:
+        # continuation counts, not raw counts, below the top order ...
+        cont = np.bincount(work.suffix[k], minlength=len(raw)).astype(np.float64)
+        # ... except for n-grams that begin with <s>, which have no left extension
+        used = np.where(work.first[k - 1] == BOS_ID, raw, cont)
+    if k == 1:
+        used[BOS_ID] = 0.0
+    return used
+
+
+def estimate(
+    counts: list[OrderCounts],
+    smoother: Smoother,
+    vocab: Vocabulary,
+    *,
+    closed_vocab: bool,
+    cutoffs: Sequence[int] | None,
+    prune: float | None,
+) -> tuple[BackoffTables, dict[str, Any]]:
+    order = len(counts)
+    v = len(vocab)
+    work = _Work(
+        suffix=[c.suffix for c in counts],
+        first=[c.first for c in counts],
+        prefix=_prefixes(counts, v),
+        raw=[c.count.astype(np.float64) for c in counts],
+    )
+    predictable = np.ones(v, dtype=bool)
+    predictable[BOS_ID] = False
+    if closed_vocab:
+        predictable[UNK_ID] = False
+    n_pred = int(predictable.sum())
+    cut = [1, *(cutoffs or [1] * (order - 1))]
+    meta: dict[str, Any] = {"discounts": {}, "fallbacks": {}}
+    alphas: list[F64] = []
+    gamma0 = 1.0
+    for k in range(1, order + 1):
+        used = _used_counts(work, smoother, k, order)
+        prefix = work.prefix[k - 1]
+        n_ctx = 1 if k == 1 else len(counts[k - 2])
+        if k == 1:
+            full = np.full(v, order == 1)
+        else:
+            full = np.full(len(used), k == order) | (work.first[k - 1] == BOS_ID)
+        stats = OrderStats(k, used, prefix, n_ctx, full, n_pred)
+        est = smoother.estimate(stats)
+        if est.discounts:
+            meta["discounts"][str(k)] = [round(d, 12) for d in est.discounts]
+        if est.fallback:
+            meta["fallbacks"][str(k)] = est.fallback
+        dropped = work.raw[k - 1] < cut[k - 1]
+        numer = np.where(dropped, 0.0, est.numer)
+        denom = stats.per_context(used) + est.extra
+        lost = stats.per_context(est.numer - numer)  # the share of n-grams below a cutoff
+        mass = est.extra + stats.per_context(used - est.numer) + lost
+        safe = np.where(denom > 0, denom, 1.0)
+        alphas.append(np.where(denom[prefix] > 0, numer / safe[prefix], 0.0))
+        gamma = np.where(denom > 0, mass / safe, 1.0)
+        if k == 1:
+            gamma0 = float(gamma[0])
+        else:
+            work.gamma.append(gamma)
+    work.gamma.append(np.ones(len(counts[-1])))  # the top order backs off to nothing
+
+    p1 = alphas[0] + gamma0 / n_pred
+    p1[~predictable] = 0.0
+    work.prob.append(p1)
+    for k in range(2, order + 1):
+        ctx_gamma = work.gamma[k - 2][work.prefix[k - 1]]
+        work.prob.append(alphas[k - 1] + ctx_gamma * work.prob[k - 2][work.suffix[k - 1]])
+
+    _mark_kept(work, cut)
+    if prune is not None and prune > 0:
+        _entropy_prune(work, prune)
+    tables = _compact(work, vocab)
+    meta["uniform_tokens"] = n_pred
+    return tables, meta
+
+
+def _protect(work: _Work, k: int) -> B:
+    """Order-k n-grams that a kept (k+1)-gram needs as its context or its suffix."""
+    need = np.zeros(len(work.raw[k - 1]), dtype=bool)
+    if k < len(work.raw):
+        kept = work.keep[k]
+        need[work.suffix[k][kept]] = True
+        need[work.prefix[k][kept]] = True
+    return need
+
+
+def _mark_kept(work: _Work, cut: list[int]) -> None:
+    order = len(work.raw)
+    work.keep = [np.ones(0, bool)] * order
+    for k in range(order, 0, -1):
+        if k == 1:
+            work.keep[0] = np.ones(len(work.raw[0]), dtype=bool)
+        else:
+            work.keep[k - 1] = (work.raw[k - 1] >= cut[k - 1]) | _protect(work, k)
+
+
+def _marginals(work: _Work) -> list[F64]:
+    """log P(h) of each n-gram as a history: the product of its chain of probabilities."""
+    with np.errstate(divide="ignore"):
+        first = np.log(work.prob[0])
+    first[BOS_ID] = 0.0  # a history that begins a sentence begins with certainty
+    out = [first]
+    for k in range(2, len(work.raw) + 1):
+        with np.errstate(divide="ignore"):
+            own = np.log(work.prob[k - 1])
+        out.append(out[k - 2][work.prefix[k - 1]] + own)
+    return out
+
+
+def _entropy_prune(work: _Work, threshold: float) -> None:
+    """Stolcke (1998): drop n-grams whose removal raises perplexity by less than threshold."""
+    order = len(work.raw)
+    marg = _marginals(work)
+    changed: list[B] = [np.zeros(len(g), dtype=bool) for g in work.gamma]
+    for k in range(order, 1, -1):
+        keep = work.keep[k - 1]
+        prefix, suffix = work.prefix[k - 1], work.suffix[k - 1]
+        p = work.prob[k - 1]
+        pb = work.prob[k - 2][suffix]
+        n_ctx = len(work.raw[k - 2])
+        listed = np.bincount(prefix, weights=np.where(keep, p, 0.0), minlength=n_ctx)
+        listed_b = np.bincount(prefix, weights=np.where(keep, pb, 0.0), minlength=n_ctx)
+        left = np.maximum(1.0 - listed, 0.0)[prefix]  # unlisted mass under h
+        left_b = np.maximum(1.0 - listed_b, 0.0)[prefix]
+        alpha = work.gamma[k - 2][prefix]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            alpha_new = (left + p) / (left_b + pb)
+            own = p * (np.log(pb) + np.log(alpha_new) - np.log(p))
+            rest = np.where(left > 0, (np.log(alpha_new) - np.log(alpha)) * left, 0.0)
+            delta = -np.exp(marg[k - 2][prefix]) * (own + rest)
+            relative = np.expm1(np.where(np.isfinite(delta), delta, np.inf))
+        candidate = keep & ~_protect(work, k)
+        drop = candidate & (relative < threshold)
+        work.keep[k - 1] = keep & ~drop
+        changed[k - 2][prefix[drop]] = True
+    for k in range(2, order + 1):
+        _reweigh(work, k, changed[k - 2])
+
+
+def _reweigh(work: _Work, k: int, contexts: B) -> None:
+    """Back-off weights of ``contexts`` after some of their n-grams were removed."""
+    if not contexts.any():
+        return
+    keep = work.keep[k - 1]
+    prefix = work.prefix[k - 1]
+    p = np.where(keep, work.prob[k - 1], 0.0)
+    pb = np.where(keep, work.prob[k - 2][work.suffix[k - 1]], 0.0)
+    n_ctx = len(work.raw[k - 2])
+    left = np.maximum(1.0 - np.bincount(prefix, weights=p, minlength=n_ctx), 0.0)
+    left_b = np.maximum(1.0 - np.bincount(prefix, weights=pb, minlength=n_ctx), 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        new = np.where(left_b > 0, left / left_b, 1.0)
+    work.gamma[k - 2] = np.where(contexts, new, work.gamma[k - 2])
+
+
+def _compact(work: _Work, vocab: Vocabulary) -> BackoffTables:
+    order = len(work.raw)
+    v = len(vocab)
+    logp: list[F64] = []
+    bow: list[F64] = []
+    keys: list[npt.NDArray[np.uint64]] = []
+    slots: list[npt.NDArray[np.int32]] = []
+    new_id: I64 = np.arange(v, dtype=np.int64)
+    for k in range(1, order + 1):
+        keep = work.keep[k - 1]
+        with np.errstate(divide="ignore"):
+            logp.append(np.log(work.prob[k - 1][keep]))
+            if k < order:
+                bow.append(np.log(work.gamma[k - 1][keep]))
+        if k == 1:
+            keys.append(np.zeros(0, dtype=np.uint64))
+            slots.append(np.zeros(0, dtype=np.int32))
+            continue
+        suffix = new_id[work.suffix[k - 1][keep]]
+        kk = _keys(suffix, work.first[k - 1][keep], v)
+        keys.append(kk)
+        slots.append(hashindex.build_slots(kk))
+        new_id = np.cumsum(keep) - 1
+    return BackoffTables(vocab, logp, bow, keys, slots)

@@ -1,0 +1,73 @@
+"""A vectorised open-addressing hash index from unique uint64 keys to their positions.
+
+Linear probing over a power-of-two table at most half full; both building and looking up
+run as numpy operations over whole batches, one probe step per loop round, so the Python
+loop runs as many times as the longest probe sequence (a few dozen at most), never once
+per key.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+
+U64 = npt.NDArray[np.uint64]
+I64 = npt.NDArray[np.int64]
+I32 = npt.NDArray[np.int32]
+
+# Fibonacci hashing: multiply by 2**64 / golden ratio, keep the high bits.
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+EMPTY = -1
+
+
+def table_bits(n_keys: int) -> int:
+    """Bits of a table that holds ``n_keys`` at a load factor of at most one half."""
+    return max(4, int(2 * max(n_keys, 1) - 1).bit_length())
+
+
+def _home(keys: U64, bits: int) -> I64:
+    with np.errstate(over="ignore"):
+        mixed = keys * _GOLDEN
+    return (mixed >> np.uint64(64 - bits)).astype(np.int64)
+
+
+def build_slots(keys: U64) -> I32:
+    """The slot array for ``keys`` (which must be unique): slot -> key position, or -1."""
+    bits = table_bits(len(keys))
+    mask = (1 << bits) - 1
+    slots = np.full(1 << bits, EMPTY, dtype=np.int32)
+    pending = np.arange(len(keys), dtype=np.int64)
+    where = _home(keys, bits)
+    while pending.size:
+        free = slots[where] == EMPTY
+        cand = pending[free]
+        cand_slot = where[free]
+        slots[cand_slot] = cand  # among keys racing for one slot, one write wins
+        won = slots[cand_slot] == cand
+        lost = np.concatenate([pending[~free], cand[~won]])
+        lost_slot = np.concatenate([where[~free], cand_slot[~won]])
+        pending = lost
+        where = (lost_slot + 1) & mask
+    return slots
+
+
+def lookup(slots: I32, keys: U64, queries: U64) -> I64:
+    """Position of each query in ``keys``, or -1 where absent."""
+    bits = len(slots).bit_length() - 1
+    mask = len(slots) - 1
+    result = np.full(len(queries), -1, dtype=np.int64)
+    active = np.arange(len(queries), dtype=np.int64)
+    where = _home(queries, bits)
+    q = queries
+    while active.size:
+        at = slots[where].astype(np.int64)
+        empty = at < 0
+        hit = np.zeros(len(at), dtype=bool)
+        filled = ~empty
+        hit[filled] = keys[at[filled]] == q[filled]
+        result[active[hit]] = at[hit]
+        more = filled & ~hit
+        active = active[more]
+        q = q[more]
+        where = (where[more] + 1) & mask
+    return result

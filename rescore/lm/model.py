@@ -1,0 +1,217 @@
+"""``NGramModel``: the estimator (settings in the constructor, ``fit`` learns) and scoring."""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.errors import UsageError
+from rescore.lm.backoff import estimate
+from rescore.lm.counts import count_ngrams, window_floor
+from rescore.lm.smoothing import METHODS, make_smoother
+from rescore.lm.tables import BackoffTables
+from rescore.lm.vocab import (
+    BOS_ID,
+    UNK_ID,
+    Stream,
+    Vocabulary,
+    choose_words,
+    encode,
+    first_pass,
+    remap,
+    stream_from_lengths,
+)
+
+F64 = npt.NDArray[np.float64]
+MAX_ORDER = 6
+
+
+class NGramModel:
+    """An n-gram language model over normalised words.
+
+    ``method`` is one of mkn (default), kn, wb, abs, addk, mle; ``k`` is the add-k constant;
+    ``vocab`` fixes the vocabulary, else it is every training word seen ``min_count`` times,
+    at most ``max_vocab`` of them by frequency. Words outside the vocabulary are ``<unk>``
+    (an open vocabulary), or with ``closed_vocab`` are left out of every count and score.
+    ``cutoffs[j]`` is the least raw count an n-gram of order ``j + 2`` needs to be kept;
+    ``prune`` is a relative-perplexity threshold for entropy-based pruning.
+    """
+
+    def __init__(
+        self,
+        order: int = 3,
+        method: str = "mkn",
+        *,
+        k: float = 1.0,
+        vocab: Iterable[str] | None = None,
+        max_vocab: int | None = None,
+        min_count: int = 1,
+        closed_vocab: bool = False,
+        cutoffs: Sequence[int] | None = None,
+        prune: float | None = None,
+    ) -> None:
+        self.order = order
+        self.method = method
+        self.k = k
+        self.vocab = None if vocab is None else list(vocab)
+        self.max_vocab = max_vocab
+        self.min_count = min_count
+        self.closed_vocab = closed_vocab
+        self.cutoffs = None if cutoffs is None else list(cutoffs)
+        self.prune = prune
+        self._checksum: str | None = None
+
+    # --- settings -------------------------------------------------------------------------
+
+    def _check_settings(self) -> None:
+        if not 1 <= self.order <= MAX_ORDER:
+            raise UsageError(f"order must be between 1 and {MAX_ORDER}, got {self.order}")
+        make_smoother(self.method, self.k)
+        if self.cutoffs is not None:
+            if len(self.cutoffs) != self.order - 1:
+                raise UsageError(
+                    f"cutoffs need one count per order 2..{self.order}, "
+                    f"got {len(self.cutoffs)} for a {self.order}-gram model"
+                )
+            if any(c < 1 for c in self.cutoffs):
+                raise UsageError(f"cutoffs must be at least 1, got {self.cutoffs}")
+        if self.prune is not None and not (self.prune >= 0 and np.isfinite(self.prune)):
+            raise UsageError(f"prune threshold must be a non-negative number, got {self.prune}")
+
+    # --- fitting --------------------------------------------------------------------------
+
+    def fit(self, sentences: Iterable[Sequence[str]]) -> NGramModel:
+        """Learn from token lists (already normalised; ``<s>`` and ``</s>`` are added here)."""
+        self._check_settings()
+        words, counts, body, lengths = first_pass(sentences)
+        vocab = Vocabulary.from_words(
+            choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
+                         min_count=self.min_count)
+        )
+        stream = stream_from_lengths(remap(words, vocab)[body], lengths)
+        floor = window_floor(stream, self.closed_vocab)
+        ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab))
+        tables, meta = estimate(
+            ngram_counts, make_smoother(self.method, self.k), vocab,
+            closed_vocab=self.closed_vocab, cutoffs=self.cutoffs, prune=self.prune,
+        )
+        self._set_fitted(tables, {
+            **meta,
+            "training_sentences": len(lengths),
+            "training_words": len(body),
+            "training_oov": int(np.count_nonzero(stream.tokens == UNK_ID)),
+        })
+        return self
+
+    def _set_fitted(self, tables: BackoffTables, extra: dict[str, Any]) -> None:
+        self.tables_ = tables
+        self.vocab_ = tables.vocab
+        self.order_ = tables.order
+        self.n_ngrams_ = tables.n_ngrams()
+        self.metadata_: dict[str, Any] = {
+            "method": self.method,
+            "order": tables.order,
+            "k": self.k if self.method == "addk" else None,
+            "closed_vocab": self.closed_vocab,
+            "vocab_size": len(tables.vocab),
+            "ngrams": self.n_ngrams_,
+            "cutoffs": self.cutoffs,
+            "prune": self.prune,
+            **extra,
+        }
+        self._checksum = None
+
+    @classmethod
+    def from_tables(
+        cls, tables: BackoffTables, metadata: dict[str, Any], checksum: str | None = None
+    ) -> NGramModel:
+        """A fitted model around ready-made tables (a loaded file)."""
+        method = str(metadata.get("method", "arpa"))
+        model = cls(order=tables.order, method=method if method in METHODS else "mkn",
+                    closed_vocab=bool(metadata.get("closed_vocab", False)))
+        model.method = method
+        k = metadata.get("k")
+        model.k = float(k) if isinstance(k, (int, float)) else 1.0
+        model.cutoffs = metadata.get("cutoffs")
+        model.prune = metadata.get("prune")
+        rest = {key: val for key, val in metadata.items()
+                if key not in {"method", "order", "k", "closed_vocab", "vocab_size", "ngrams",
+                               "cutoffs", "prune"}}
+        model._set_fitted(tables, rest)
+        model._checksum = checksum
+        return model
+
+    def _fitted(self) -> BackoffTables:
+        tables: BackoffTables | None = getattr(self, "tables_", None)
+        if tables is None:
+            raise UsageError("the model is not fitted; call fit() or load_model() first")
+        return tables
+
+    @property
+    def metadata(self) -> dict[str, Any]:
+        self._fitted()
+        return dict(self.metadata_)
+
+    @property
+    def checksum(self) -> str:
+        """sha256 of the model's content, equal to the one its native file carries."""
+        if self._checksum is None:
+            from rescore.lm.store import content_parts
+
+            digest = hashlib.sha256()
+            for part in content_parts(self._fitted(), self.metadata_):
+                digest.update(part)
+            self._checksum = digest.hexdigest()
+        return self._checksum
+
+    # --- scoring --------------------------------------------------------------------------
+
+    def _score(self, sentences: Sequence[Sequence[str]]) -> tuple[F64, Stream, int]:
+        """Per-position log-probabilities (NaN where not scored), the stream, OOV count."""
+        tables = self._fitted()
+        stream, oov = encode(tables.vocab, sentences)
+        floor = stream.starts[stream.sentence_of]
+        logp = tables.score_stream(stream.tokens, floor)
+        skip = stream.tokens == BOS_ID
+        if self.closed_vocab:
+            skip |= stream.tokens == UNK_ID
+        logp[skip] = np.nan
+        return logp, stream, oov
+
+    def logprob(self, sentences: Sequence[Sequence[str]]) -> F64:
+        """Natural-log probability of each whole sentence, ``</s>`` included; shape (n,)."""
+        logp, stream, _ = self._score(sentences)
+        scored = ~np.isnan(logp)
+        sums = np.bincount(stream.sentence_of[scored], weights=logp[scored],
+                           minlength=len(sentences))
+        return sums.astype(np.float64)
+
+    def token_logprobs(self, sentences: Sequence[Sequence[str]]) -> list[F64]:
+        """Per sentence, the natural-log probability of each word and of ``</s>``.
+
+        With a closed vocabulary an out-of-vocabulary word's entry is NaN (not scored).
+        """
+        logp, stream, _ = self._score(sentences)
+        keep = stream.tokens != BOS_ID
+        bounds = np.cumsum([len(s) + 1 for s in sentences])[:-1]
+        return list(np.split(logp[keep], bounds))
+
+    def logprob_ngrams(self, ngrams: Sequence[Sequence[str]]) -> F64:
+        """log P(last word | the words before it) for each n-gram, by the back-off rule.
+
+        ``<s>`` may open the history; a history longer than order - 1 is cut on the left.
+        """
+        tables = self._fitted()
+        index = tables.vocab.index
+        width = max((len(g) for g in ngrams), default=1)
+        mat = np.full((len(ngrams), width), -1, dtype=np.int64)
+        for row, gram in enumerate(ngrams):
+            mat[row, width - len(gram):] = [index.get(w, UNK_ID) for w in gram]
+        return tables.score_ngrams(mat)
+
+    def __repr__(self) -> str:
+        return f"NGramModel(order={self.order}, method={self.method!r})"

@@ -1,0 +1,184 @@
+"""Smoothing methods, one class each behind one interface.
+
+Every method is written in interpolated form. For an n-gram ``h w`` seen with count
+``c(h w)`` (the counts that order uses), a method gives the numerator ``d(h w)`` of its own
+share and an extra denominator mass ``e(h)`` per context, so that
+
+    P(w | h) = d(h w) / (c(h) + e(h)) + gamma(h) * P(w | h')
+    gamma(h) = (e(h) + sum_w (c(h w) - d(h w))) / (c(h) + e(h))
+
+with ``c(h)`` the sum of the counts following ``h`` and ``h'`` the context without its first
+word. Below the unigrams sits the uniform distribution over every token the model can
+predict. ``gamma`` is a sum of non-negative terms, never a difference, so it is exactly
+zero for maximum likelihood and never negative.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.errors import UsageError
+
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+B = npt.NDArray[np.bool_]
+
+
+@dataclass(frozen=True)
+class OrderStats:
+    """What a method sees of one order."""
+
+    order: int
+    counts: F64  # per n-gram: raw counts, or continuation counts for KN lower orders
+    prefix: I64  # per n-gram: the id of its context (all zero for unigrams)
+    n_contexts: int
+    full: B  # per n-gram: the context is a whole history (top order, or begins with <s>)
+    n_predictable: int  # words, </s> and (open vocabulary) <unk>
+
+    def per_context(self, values: F64) -> F64:
+        sums = np.bincount(self.prefix, weights=values, minlength=self.n_contexts)
+        return sums.astype(np.float64)
+
+
+@dataclass(frozen=True)
+class Estimate:
+    numer: F64
+    extra: F64
+    discounts: tuple[float, ...] = ()
+    fallback: str | None = None
+
+
+def counts_of_counts(counts: F64, upto: int = 4) -> list[int]:
+    """n_1 .. n_upto: how many n-grams occur exactly r times."""
+    c = counts[counts > 0].astype(np.int64)
+    hist = np.bincount(np.minimum(c, upto + 1), minlength=upto + 2)
+    return [int(hist[r]) for r in range(1, upto + 1)]
+
+
+def single_discount(n: list[int]) -> tuple[float, str | None]:
+    """D = n1 / (n1 + 2 n2), or 0.5 when n1 or n2 is zero."""
+    n1, n2 = n[0], n[1]
+    if n1 == 0 or n2 == 0:
+        return 0.5, f"n1={n1}, n2={n2}: discount set to 0.5"
+    return n1 / (n1 + 2 * n2), None
+
+
+def modified_discounts(n: list[int]) -> tuple[tuple[float, float, float], str | None]:
+    """Chen and Goodman's D1, D2, D3+, or one discount for all when they are degenerate."""
+    n1, n2, n3, n4 = n
+    if min(n) > 0:
+        y = n1 / (n1 + 2 * n2)
+        d = (1 - 2 * y * n2 / n1, 2 - 3 * y * n3 / n2, 3 - 4 * y * n4 / n3)
+        if 0 < d[0] <= 1 and 0 < d[1] <= 2 and 0 < d[2] <= 3:
+            return d, None
+        reason = f"discounts {d[0]:.4g}, {d[1]:.4g}, {d[2]:.4g} out of range"
+    else:
+        reason = f"counts of counts n1..n4 = {n1}, {n2}, {n3}, {n4}"
+    one, why = single_discount(n)
+    reason += "; one discount used" + (f" ({why})" if why else "")
+    return (one, one, one), reason
+
+
+class Smoother(ABC):
+    """One smoothing method; ``estimate`` is called once per order, lowest first."""
+
+    name: ClassVar[str]
+    continuation: ClassVar[bool] = False  # lower orders use continuation counts
+
+    def __init__(self, k: float = 1.0) -> None:
+        self.k = k
+
+    @abstractmethod
+    def estimate(self, stats: OrderStats) -> Estimate: ...
+
+
+class MaximumLikelihood(Smoother):
+    """Relative frequencies; an unseen context falls back to the next shorter one."""
+
+    name = "mle"
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        return Estimate(stats.counts.copy(), np.zeros(stats.n_contexts))
+
+
+class AddK(Smoother):
+    """Lidstone: (c + k) / (c(h) + k V) for whole histories; shorter ones pass through."""
+
+    name = "addk"
+
+    def __init__(self, k: float = 1.0) -> None:
+        if not (k > 0 and np.isfinite(k)):
+            raise UsageError(f"k must be a positive number, got {k}")
+        super().__init__(k)
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        # A shortened context is only reached by backing off from an unseen whole history,
+        # whose Lidstone estimate is uniform: pass it straight down to the uniform level.
+        numer = np.where(stats.full, stats.counts, 0.0)
+        full_ctx = stats.per_context(stats.full.astype(np.float64)) > 0
+        if stats.order == 1:
+            full_ctx = np.array([bool(stats.full[0])])
+        extra = np.where(full_ctx, self.k * stats.n_predictable, 0.0)
+        return Estimate(numer, extra)
+
+
+class WittenBell(Smoother):
+    """Interpolated Witten-Bell: the lower order gets weight T(h) / (c(h) + T(h))."""
+
+    name = "wb"
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        types = stats.per_context((stats.counts > 0).astype(np.float64))
+        return Estimate(stats.counts.copy(), types)
+
+
+class AbsoluteDiscount(Smoother):
+    """Interpolated absolute discounting, one discount per order from raw counts."""
+
+    name = "abs"
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        d, why = single_discount(counts_of_counts(stats.counts))
+        numer = np.maximum(stats.counts - d, 0.0)
+        return Estimate(numer, np.zeros(stats.n_contexts), (d,), why)
+
+
+class KneserNey(AbsoluteDiscount):
+    """Interpolated Kneser-Ney: one discount per order, continuation counts below the top."""
+
+    name = "kn"
+    continuation = True
+
+
+class ModifiedKneserNey(Smoother):
+    """Interpolated modified Kneser-Ney (Chen and Goodman 1998): three discounts per order."""
+
+    name = "mkn"
+    continuation = True
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        (d1, d2, d3), why = modified_discounts(counts_of_counts(stats.counts))
+        c = stats.counts
+        disc = np.select([c <= 0, c < 1.5, c < 2.5], [0.0, d1, d2], d3)
+        return Estimate(np.maximum(c - disc, 0.0), np.zeros(stats.n_contexts), (d1, d2, d3), why)
+
+
+METHODS: dict[str, type[Smoother]] = {
+    cls.name: cls
+    for cls in (ModifiedKneserNey, KneserNey, WittenBell, AbsoluteDiscount, AddK, MaximumLikelihood)
+}
+
+
+def make_smoother(method: str, k: float = 1.0) -> Smoother:
+    try:
+        cls = METHODS[method]
+    except KeyError:
+        raise UsageError(
+            f"unknown method {method!r}; expected one of {', '.join(METHODS)}"
+        ) from None
+    return cls(k)

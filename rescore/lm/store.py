@@ -1,0 +1,151 @@
+"""The native model file: one self-checking binary container, no pickle.
+
+Layout: an 8-byte magic, the format version (uint32), reserved (uint32), the header length
+(uint64), a JSON header (metadata and a directory of arrays: name, dtype, shape, offset),
+zero padding, the raw little-endian arrays each aligned to 64 bytes, and finally the sha256
+of every byte before it and an 8-byte end mark. Loading reads the file in one call,
+verifies length, marks, version and digest, then views the arrays in place (read-only).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import struct
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rescore.errors import ModelFileError
+from rescore.ioutil import atomic_output
+from rescore.lm.tables import BackoffTables
+from rescore.lm.vocab import SPECIALS, Vocabulary
+
+MAGIC = b"RSCRLM\x00\n"
+END = b"RSCREND\n"
+FORMAT_VERSION = 1
+ALIGN = 64
+_PREAMBLE = struct.Struct("<8sIIQ")
+_DTYPES = {"<f8", "<u8", "<i4", "|u1"}
+
+
+def _arrays(tables: BackoffTables) -> list[tuple[str, np.ndarray[Any, Any]]]:
+    vocab = "\n".join(tables.vocab.words).encode("utf-8")
+    out: list[tuple[str, np.ndarray[Any, Any]]] = [("vocab", np.frombuffer(vocab, np.uint8))]
+    for k in range(1, tables.order + 1):
+        out.append((f"logp{k}", tables.logp[k - 1]))
+        if k < tables.order:
+            out.append((f"bow{k}", tables.bow[k - 1]))
+        if k > 1:
+            out.append((f"keys{k}", tables.keys[k - 1]))
+            out.append((f"slots{k}", tables.slots[k - 1]))
+    return [(n, np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("<"))) for n, a in out]
+
+
+def _pad(n: int) -> int:
+    return (-n) % ALIGN
+
+
+def content_parts(tables: BackoffTables, metadata: dict[str, Any]) -> Iterator[bytes | memoryview]:
+    """The file's bytes before its digest, in order, without copying the arrays."""
+    arrays = _arrays(tables)
+    directory = []
+    offset = 0
+    for name, arr in arrays:
+        directory.append({"name": name, "dtype": arr.dtype.str, "shape": list(arr.shape),
+                          "offset": offset})
+        offset += arr.nbytes + _pad(arr.nbytes)
+    header = json.dumps({"order": tables.order, "metadata": metadata, "arrays": directory},
+                        sort_keys=True, separators=(",", ":"), allow_nan=False).encode("utf-8")
+    preamble = _PREAMBLE.pack(MAGIC, FORMAT_VERSION, 0, len(header))
+    yield preamble
+    yield header
+    yield b"\0" * _pad(len(preamble) + len(header))
+    for _, arr in arrays:
+        yield arr.reshape(-1).view(np.uint8).data
+        yield b"\0" * _pad(arr.nbytes)
+
+
+def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path) -> str:
+    """Write the model atomically; return its sha256."""
+    digest = hashlib.sha256()
+    with atomic_output(path, "wb") as fh:
+        for part in content_parts(tables, metadata):
+            digest.update(part)
+            fh.write(part)  # type: ignore[arg-type]
+        fh.write(digest.digest() + END)  # type: ignore[arg-type]
+    return digest.hexdigest()
+
+
+def _bad(path: str | Path, what: str) -> ModelFileError:
+    return ModelFileError(f"not a valid rescore model file: {what}", path=str(path))
+
+
+def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
+    """Read, verify and view a native model file: tables, metadata and sha256."""
+    try:
+        data = Path(path).read_bytes()
+    except FileNotFoundError:
+        raise ModelFileError("file not found", path=str(path)) from None
+    except IsADirectoryError:
+        raise ModelFileError("is a folder, expected a model file", path=str(path)) from None
+    except PermissionError:
+        raise ModelFileError("permission denied", path=str(path)) from None
+    if len(data) < _PREAMBLE.size + 40 or data[:8] != MAGIC:
+        raise _bad(path, "unknown file type (no rescore model mark)")
+    _, version, _, header_len = _PREAMBLE.unpack_from(data)
+    if version != FORMAT_VERSION:
+        raise _bad(path, f"format version {version}, this program reads {FORMAT_VERSION}")
+    if data[-8:] != END:
+        raise _bad(path, "truncated (no end mark)")
+    body = memoryview(data)[:-40]
+    if hashlib.sha256(body).digest() != data[-40:-8]:
+        raise _bad(path, "checksum mismatch (the file is damaged or was altered)")
+    try:
+        header = json.loads(bytes(body[_PREAMBLE.size:_PREAMBLE.size + header_len]))
+        start = _PREAMBLE.size + header_len
+        start += _pad(start)
+        arrays: dict[str, np.ndarray[Any, Any]] = {}
+        for entry in header["arrays"]:
+            dtype = np.dtype(entry["dtype"])
+            if dtype.str not in _DTYPES:
+                raise ValueError(f"array dtype {dtype.str}")
+            count = int(np.prod(entry["shape"], dtype=np.int64))
+            arrays[entry["name"]] = np.frombuffer(
+                body, dtype=dtype, count=count, offset=start + int(entry["offset"])
+            ).reshape(entry["shape"])
+        tables = _tables(int(header["order"]), arrays)
+        metadata = header["metadata"]
+        if not isinstance(metadata, dict):
+            raise ValueError("metadata is not an object")
+    except (ValueError, KeyError, TypeError, IndexError) as exc:
+        raise _bad(path, f"inconsistent contents ({exc})") from None
+    return tables, metadata, hashlib.sha256(body).hexdigest()
+
+
+def _tables(order: int, arrays: dict[str, np.ndarray[Any, Any]]) -> BackoffTables:
+    words = bytes(arrays["vocab"]).decode("utf-8").split("\n")
+    if tuple(words[:3]) != SPECIALS or len(set(words)) != len(words):
+        raise ValueError("vocabulary")
+    vocab = Vocabulary.from_words(words[3:])
+    logp = [arrays[f"logp{k}"] for k in range(1, order + 1)]
+    bow = [arrays[f"bow{k}"] for k in range(1, order)]
+    empty_u = np.zeros(0, np.uint64)
+    empty_i = np.zeros(0, np.int32)
+    keys = [empty_u] + [arrays[f"keys{k}"] for k in range(2, order + 1)]
+    slots = [empty_i] + [arrays[f"slots{k}"] for k in range(2, order + 1)]
+    if len(logp[0]) != len(vocab):
+        raise ValueError("unigram table size")
+    for k in range(1, order + 1):
+        n = len(logp[k - 1])
+        if k < order and len(bow[k - 1]) != n:
+            raise ValueError(f"order {k} back-off weights")
+        if k > 1:
+            if len(keys[k - 1]) != n or len(slots[k - 1]) & (len(slots[k - 1]) - 1):
+                raise ValueError(f"order {k} keys or slots")
+            s = slots[k - 1]
+            if len(s) < n or (len(s) and (int(s.max()) >= n or int(s.min()) < -1)):
+                raise ValueError(f"order {k} hash slots")
+    return BackoffTables(vocab, logp, bow, keys, slots)

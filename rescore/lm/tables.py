@@ -1,0 +1,139 @@
+"""The fitted model in back-off form and its vectorised look-ups.
+
+Per order ``k >= 2``: the sorted keys ``suffix * V + first`` of its n-grams (see counts.py),
+their natural-log probabilities, back-off weights (below the top order) and a hash slot
+array. Unigrams are dense over the vocabulary. A probability is
+
+    log P(w | h) = log P_L(longest listed n-gram ending in w) + sum of log bow(h_j), L <= j < m
+
+where ``h_j`` is the last ``j`` words of the history and ``m`` the order in use at that
+position; an unlisted context has weight 1. Every listed n-gram's suffix is listed too, so
+the n-grams ending at a position are found by extending one word to the left at a time,
+and the contexts of position ``i`` are the n-grams ending at ``i - 1``: ``N - 1`` hash
+look-ups per token, each one batched over the whole input.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.lm import hashindex
+from rescore.lm.vocab import Vocabulary
+
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+I32 = npt.NDArray[np.int32]
+U64 = npt.NDArray[np.uint64]
+
+
+@dataclass(frozen=True)
+class BackoffTables:
+    """``logp[k-1]``, ``bow[k-1]``, ``keys[k-1]``, ``slots[k-1]`` describe order ``k``."""
+
+    vocab: Vocabulary
+    logp: list[F64]
+    bow: list[F64]  # orders 1 .. N-1
+    keys: list[U64]  # keys[0] is empty: unigram ids are word ids
+    slots: list[I32]
+
+    @property
+    def order(self) -> int:
+        return len(self.logp)
+
+    @property
+    def vsize(self) -> int:
+        return len(self.vocab)
+
+    def n_ngrams(self) -> list[int]:
+        return [len(p) for p in self.logp]
+
+    def find(self, k: int, queries: U64) -> I64:
+        """Index among the order-``k`` n-grams of each key, or -1."""
+        return hashindex.lookup(self.slots[k - 1], self.keys[k - 1], queries)
+
+    def key(self, ids: I64, first: I64 | npt.NDArray[np.int32]) -> U64:
+        return ids.astype(np.uint64) * np.uint64(self.vsize) + first.astype(np.uint64)
+
+    def suffix_first(self, k: int) -> tuple[I64, I64]:
+        keys = self.keys[k - 1]
+        v = np.uint64(self.vsize)
+        return (keys // v).astype(np.int64), (keys % v).astype(np.int64)
+
+    def words_of(self, k: int) -> I64:
+        """The n-grams of order ``k`` as a (count, k) matrix of word ids, first word first."""
+        if k == 1:
+            return np.arange(self.vsize, dtype=np.int64)[:, None]
+        out = np.empty((len(self.logp[k - 1]), k), dtype=np.int64)
+        at = np.arange(len(self.logp[k - 1]), dtype=np.int64)
+        for j in range(k, 1, -1):
+            suffix, first = self.suffix_first(j)
+            out[:, k - j] = first[at]
+            at = suffix[at]
+        out[:, k - 1] = at
+        return out
+
+    # --- scoring -------------------------------------------------------------------------
+
+    def _extend(self, k: int, below: I64, left: I64) -> I64:
+        """Ids of the order-``k`` n-grams ``left + (n-gram below)``; -1 where either is absent."""
+        ok = (below >= 0) & (left >= 0)
+        out = np.full(len(below), -1, dtype=np.int64)
+        at = np.flatnonzero(ok)
+        if at.size:
+            out[at] = self.find(k, self.key(below[at], left[at]))
+        return out
+
+    def _combine(self, grams: list[I64], contexts: list[I64], m: I64) -> F64:
+        """Back-off sum given n-gram ids ending at w and at the end of the history."""
+        longest = np.ones(len(m), dtype=np.int64)
+        for k in range(2, len(grams) + 1):
+            longest[grams[k - 1] >= 0] = k
+        result = np.empty(len(m), dtype=np.float64)
+        for k in range(1, len(grams) + 1):
+            at = np.flatnonzero(longest == k)
+            result[at] = self.logp[k - 1][grams[k - 1][at]]
+        for j in range(1, len(contexts) + 1):
+            ctx = contexts[j - 1]
+            at = np.flatnonzero((longest <= j) & (j < m) & (ctx >= 0))
+            result[at] += self.bow[j - 1][ctx[at]]
+        return result
+
+    def score_stream(self, tokens: I32, floor: I64) -> F64:
+        """Natural-log probability of each position given its history back to ``floor``."""
+        n = len(tokens)
+        order = self.order
+        pos = np.arange(n, dtype=np.int64)
+        toks = tokens.astype(np.int64)
+        grams = [toks]
+        for k in range(2, order + 1):
+            left = np.full(n, -1, dtype=np.int64)
+            ok = pos - (k - 1) >= floor
+            left[ok] = toks[pos[ok] - (k - 1)]
+            grams.append(self._extend(k, grams[-1], left))
+        contexts = []
+        for j in range(1, order):
+            ctx = np.full(n, -1, dtype=np.int64)
+            ctx[1:] = grams[j - 1][:-1]
+            contexts.append(ctx)
+        m = np.minimum(order, pos - floor + 1)
+        return self._combine(grams, contexts, m)
+
+    def score_ngrams(self, ngrams: I64) -> F64:
+        """log P(last | the others) for each row; -1 on the left pads a shorter history."""
+        width = ngrams.shape[1]
+        order = min(self.order, width)
+        ngrams = ngrams[:, width - order:]
+        grams = [ngrams[:, -1].astype(np.int64)]
+        for k in range(2, order + 1):
+            grams.append(self._extend(k, grams[-1], ngrams[:, order - k]))
+        contexts: list[I64] = []
+        if order > 1:
+            contexts.append(ngrams[:, order - 2].astype(np.int64))
+            for j in range(2, order):
+                contexts.append(self._extend(j, contexts[-1], ngrams[:, order - 1 - j]))
+        valid = np.cumprod((ngrams >= 0)[:, ::-1], axis=1)
+        m = valid.sum(axis=1).astype(np.int64)
+        return self._combine(grams, contexts, m)

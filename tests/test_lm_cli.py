@@ -1,0 +1,102 @@
+"""``rescore lm`` through typer's CliRunner: exit codes, stdout JSON, one-line errors."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from rescore.cli import app
+
+runner = CliRunner()
+
+LOGBOOK = "Pump two on.\nPump three off\n\nVent bay three open to forty percent\n"
+
+
+@pytest.fixture
+def text(tmp_path: Path) -> Path:
+    path = tmp_path / "logbook.txt"
+    path.write_text(LOGBOOK)
+    return path
+
+
+def _run(*args: str) -> tuple[int, str, str]:
+    result = runner.invoke(app, list(args))
+    return result.exit_code, result.stdout, result.stderr
+
+
+@pytest.mark.parametrize("method", ["mkn", "kn", "wb", "abs", "addk", "mle"])
+def test_build_then_perplexity_json(text: Path, tmp_path: Path, method: str) -> None:
+    model = tmp_path / "m.lm"
+    code, _, err = _run("lm", "build", str(text), "--order", "3", "--method", method,
+                        "-o", str(model))
+    assert code == 0, err
+    code, out, err = _run("lm", "perplexity", str(model), str(text), "--json")
+    assert code == 0, err
+    data = json.loads(out)
+    assert {"perplexity", "log10_prob", "sentences", "tokens", "oov"} <= set(data)
+    # contract: tokens count each </s> and never <s>: 3 + 3 + 7 words, 3 sentences
+    assert data["sentences"] == 3 and data["tokens"] == 16 and data["oov"] == 0
+    assert data["perplexity"] == pytest.approx(10 ** (-data["log10_prob"] / data["tokens"]))
+
+
+def test_perplexity_table_shows_oov_rate(text: Path, tmp_path: Path) -> None:
+    model = tmp_path / "m.lm"
+    assert _run("lm", "build", str(text), "-o", str(model))[0] == 0
+    probe = tmp_path / "probe.txt"
+    probe.write_text("pump four on\n")
+    code, out, _ = _run("lm", "perplexity", str(model), str(probe))
+    assert code == 0
+    assert "OOV rate" in out and "33.33%" in out  # one word in three
+
+
+def test_unknown_method_is_one_line_usage_error(text: Path, tmp_path: Path) -> None:
+    code, _, err = _run("lm", "build", str(text), "-m", "kneser", "-o", str(tmp_path / "m"))
+    assert code == 2
+    assert err == "error: unknown method 'kneser'; expected one of mkn, kn, wb, abs, addk, mle\n"
+    assert not (tmp_path / "m").exists()
+
+
+def test_missing_text_is_input_error(tmp_path: Path) -> None:
+    code, _, err = _run("lm", "build", str(tmp_path / "none.txt"), "-o", str(tmp_path / "m"))
+    assert code == 1
+    assert err.count("\n") == 1 and "none.txt: file not found" in err
+
+
+def test_bad_utf8_names_the_line(tmp_path: Path) -> None:
+    bad = tmp_path / "bad.txt"
+    bad.write_bytes(b"pump on\nvent \xff open\n")
+    code, _, err = _run("lm", "build", str(bad), "-o", str(tmp_path / "m"))
+    assert code == 1 and err.startswith(f"error: {bad}:2: invalid UTF-8")
+
+
+def test_damaged_model_is_one_line_error(text: Path, tmp_path: Path) -> None:
+    model = tmp_path / "m.lm"
+    assert _run("lm", "build", str(text), "-o", str(model))[0] == 0
+    model.write_bytes(model.read_bytes()[:-5])
+    code, _, err = _run("lm", "perplexity", str(model), str(text))
+    assert code == 1 and err.count("\n") == 1 and "not a valid rescore model file" in err
+
+
+def test_bad_cutoffs_and_options(text: Path, tmp_path: Path) -> None:
+    out = str(tmp_path / "m")
+    assert _run("lm", "build", str(text), "--cutoffs", "1,x", "-o", out)[0] == 2
+    assert _run("lm", "build", str(text), "--cutoffs", "1", "-n", "3", "-o", out)[0] == 2
+    assert _run("lm", "build", str(text), "--order", "9", "-o", out)[0] == 2
+    assert _run("lm", "build", str(text), "--cutoffs", "1,2", "--prune", "1e-6",
+                "-o", out)[0] == 0
+
+
+def test_vocab_file_and_closed_vocab(text: Path, tmp_path: Path) -> None:
+    vocab = tmp_path / "vocab.txt"
+    vocab.write_text("pump\ntwo\non\n")
+    model = tmp_path / "m.lm"
+    code, _, err = _run("lm", "build", str(text), "--vocab", str(vocab), "--closed-vocab",
+                        "-o", str(model))
+    assert code == 0, err
+    code, out, _ = _run("lm", "perplexity", str(model), str(text), "--json")
+    data = json.loads(out)
+    # 13 words, 9 outside {pump, two, on} (2 + 7); closed: they leave the count
+    assert data["oov"] == 9 and data["tokens"] == 13 + 3 - 9

@@ -1,0 +1,156 @@
+"""The fast engine against its definitions: normalisation and the slow reference model."""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from lm_reference import ReferenceModel
+
+from rescore.errors import UsageError
+from rescore.lm import METHODS, NGramModel
+from rescore.lm.counts import count_ngrams, window_floor
+from rescore.lm.vocab import Vocabulary, encode
+
+NORM_TOL = 1e-9  # the issue's tolerance for sums of probabilities and reference matches
+ALL_METHODS = list(METHODS)
+
+corpora = st.lists(
+    st.lists(st.sampled_from("abcde"), min_size=0, max_size=7), min_size=1, max_size=8
+)
+
+
+def _context_sums(model: NGramModel, histories: set[tuple[str, ...]]) -> list[float]:
+    predictable = [w for w in model.vocab_.words if w != "<s>"]
+    if model.closed_vocab:
+        predictable.remove("<unk>")
+    sums = []
+    for h in histories:
+        lp = model.logprob_ngrams([[*h, w] for w in predictable])
+        sums.append(float(np.exp(lp).sum()))
+    return sums
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(sents=corpora, order=st.integers(1, 5))
+def test_every_context_sums_to_one(method: str, sents: list[list[str]], order: int) -> None:
+    # definition of a conditional distribution: over the vocabulary plus </s>
+    model = NGramModel(order, method).fit(sents)
+    ref = ReferenceModel(sents, order, method)
+    for total in _context_sums(model, ref.histories()):
+        assert abs(total - 1.0) < NORM_TOL
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(sents=corpora, order=st.integers(1, 5), k=st.sampled_from([0.1, 0.5, 1.0]))
+def test_matches_dict_reference(method: str, sents: list[list[str]], order: int, k: float) -> None:
+    # the plain reference in tests/lm_reference.py writes each formula out directly
+    model = NGramModel(order, method, k=k).fit(sents)
+    ref = ReferenceModel(sents, order, method, k=k)
+    words = [w for w in model.vocab_.words if w != "<s>"] + ["zzz-unseen"]
+    for h in sorted(ref.histories()):
+        got = model.logprob_ngrams([[*h, w] for w in words])
+        want = [ref.prob(w, h) for w in words]
+        np.testing.assert_allclose(np.exp(got), want, rtol=0, atol=NORM_TOL)
+    probe = [*sents, ["a", "zzz-unseen", "b"], []]
+    want_s = [ref.sentence_logprob(s) for s in probe]
+    np.testing.assert_allclose(model.logprob(probe), want_s, rtol=1e-9, atol=NORM_TOL)
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+def test_sentence_probabilities_of_tiny_vocabulary_approach_one(method: str) -> None:
+    # a proper sentence model: P(all sentences up to length L) -> 1 as L grows
+    sents = [["a"], ["a", "b"], ["b", "a", "a"], ["b"]]
+    model = NGramModel(2, method, closed_vocab=True).fit(sents)
+    totals = []
+    layer: list[list[str]] = [[]]
+    acc = 0.0
+    for _length in range(0, 12):
+        acc += float(np.exp(model.logprob(layer)).sum())
+        totals.append(acc)
+        layer = [[*s, w] for s in layer for w in "ab"]
+    assert all(b >= a - 1e-15 for a, b in itertools.pairwise(totals))
+    assert totals[-1] > 0.9 and totals[-1] <= 1.0 + NORM_TOL
+
+
+@pytest.mark.parametrize("order", [2, 3, 4])
+def test_packed_and_per_order_counting_agree(order: int) -> None:
+    rng = np.random.default_rng(7)
+    words = [f"w{i}" for i in range(30)]
+    sents = [[words[j] for j in rng.integers(0, 30, rng.integers(0, 9))] for _ in range(200)]
+    vocab = Vocabulary.from_words(words)
+    stream, _ = encode(vocab, sents)
+    floor = window_floor(stream, False)
+    a = count_ngrams(stream.tokens, floor, order, len(vocab), packed=True)
+    b = count_ngrams(stream.tokens, floor, order, len(vocab), packed=False)
+    for x, y in zip(a, b, strict=True):
+        np.testing.assert_array_equal(x.suffix, y.suffix)
+        np.testing.assert_array_equal(x.first, y.first)
+        np.testing.assert_array_equal(x.count, y.count)
+
+
+def test_counts_match_collections_counter() -> None:
+    # every window of the padded sentence, counted one by one
+    from collections import Counter
+
+    sents = [["a", "b", "a"], ["b"], [], ["a", "a", "a", "a"]]
+    vocab = Vocabulary.from_words("ab")
+    stream, _ = encode(vocab, sents)
+    tables = count_ngrams(stream.tokens, window_floor(stream, False), 3, len(vocab))
+    expected: Counter[tuple[str, ...]] = Counter()
+    for s in sents:
+        p = ["<s>", *s, "</s>"]
+        for i in range(len(p)):
+            for n in (1, 2, 3):
+                if i - n + 1 >= 0:
+                    expected[tuple(p[i - n + 1:i + 1])] += 1
+    got: Counter[tuple[str, ...]] = Counter()
+    ids: list[list[tuple[str, ...]]] = [[(w,) for w in vocab.words]]
+    for n in (2, 3):
+        t = tables[n - 1]
+        grams = [(vocab.words[f], *ids[n - 2][s]) for s, f in zip(t.suffix, t.first, strict=True)]
+        ids.append(grams)
+        got.update(dict(zip(grams, t.count.tolist(), strict=True)))
+    got.update({(w,): int(c) for w, c in zip(vocab.words, tables[0].count, strict=True) if c})
+    assert got == expected
+
+
+def test_closed_vocabulary_leaves_oov_out() -> None:
+    sents = [["a", "b"], ["b", "a"]]
+    model = NGramModel(2, "wb", closed_vocab=True).fit(sents)
+    ref = ReferenceModel(sents, 2, "wb", closed=True)
+    probe = [["a", "q", "b"]]
+    # the OOV word is skipped, and the word after it is scored from a history it breaks
+    assert model.logprob(probe)[0] == pytest.approx(ref.sentence_logprob(probe[0]), abs=1e-12)
+    assert "<unk>" in model.vocab_.words
+    assert model.logprob_ngrams([["a", "<unk>"]])[0] == -math.inf
+
+
+def test_unknown_method_message() -> None:
+    # wording fixed by the project's style guide
+    with pytest.raises(UsageError, match=r"^unknown method 'kneser'; expected one of "
+                                         r"mkn, kn, wb, abs, addk, mle$"):
+        NGramModel(3, "kneser").fit([["a"]])
+
+
+def test_vocabulary_options() -> None:
+    sents = [["a", "a", "b", "c"], ["a", "b"]]
+    assert NGramModel(2, min_count=2).fit(sents).vocab_.words[3:] == ("a", "b")
+    assert NGramModel(2, max_vocab=1).fit(sents).vocab_.words[3:] == ("a",)
+    fixed = NGramModel(2, vocab=["c", "z"]).fit(sents)
+    assert fixed.vocab_.words[3:] == ("c", "z")
+    assert fixed.metadata["training_oov"] == 5  # three "a" and two "b"
+
+
+def test_token_logprobs_sum_to_sentence_logprob() -> None:
+    sents = [["a", "b"], ["b", "a", "c"]]
+    model = NGramModel(3).fit(sents)
+    per_token = model.token_logprobs(sents)
+    assert [len(t) for t in per_token] == [3, 4]  # words plus </s>
+    np.testing.assert_allclose([t.sum() for t in per_token], model.logprob(sents))

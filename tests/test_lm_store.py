@@ -1,0 +1,72 @@
+"""The native model file: round trip, and every kind of damage refused."""
+
+from __future__ import annotations
+
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from rescore.errors import ModelFileError
+from rescore.lm import NGramModel, load_model, save_model
+
+SENTS = [["pump", "two", "on"], ["pump", "three", "off"], ["vent", "bay", "three", "open"]]
+
+
+@pytest.fixture
+def saved(tmp_path: Path) -> tuple[NGramModel, Path]:
+    model = NGramModel(3, "mkn").fit(SENTS)
+    path = tmp_path / "greenhouse.lm"
+    save_model(model, path)
+    return model, path
+
+
+def test_round_trip_gives_identical_scores(saved: tuple[NGramModel, Path]) -> None:
+    model, path = saved
+    loaded = load_model(path)
+    probe = [*SENTS, ["pump", "bay", "unseen"]]
+    np.testing.assert_array_equal(loaded.logprob(probe), model.logprob(probe))
+    assert loaded.checksum == model.checksum
+    assert loaded.metadata["discounts"] == model.metadata["discounts"]
+    assert loaded.order_ == 3 and loaded.vocab_.words == model.vocab_.words
+
+
+def test_checksum_is_content_not_name(saved: tuple[NGramModel, Path], tmp_path: Path) -> None:
+    model, _ = saved
+    again = NGramModel(3, "mkn").fit(SENTS)
+    other = NGramModel(3, "wb").fit(SENTS)
+    assert again.checksum == model.checksum != other.checksum
+
+
+@pytest.mark.parametrize("where", [0.01, 0.3, 0.6, 0.99])
+def test_flipped_byte_is_refused(saved: tuple[NGramModel, Path], where: float) -> None:
+    _, path = saved
+    data = bytearray(path.read_bytes())
+    data[int(where * (len(data) - 1))] ^= 0x40
+    path.write_bytes(bytes(data))
+    with pytest.raises(ModelFileError, match="not a valid rescore model file"):
+        load_model(path)
+
+
+@pytest.mark.parametrize("keep", [0, 10, 100, -1])
+def test_truncation_is_refused(saved: tuple[NGramModel, Path], keep: int) -> None:
+    _, path = saved
+    data = path.read_bytes()
+    path.write_bytes(data[:keep])
+    with pytest.raises(ModelFileError):
+        load_model(path)
+
+
+def test_foreign_npz_is_refused(tmp_path: Path) -> None:
+    path = tmp_path / "other.npz"
+    np.savez(path, logp1=np.zeros(3))
+    assert zipfile.is_zipfile(path)
+    with pytest.raises(ModelFileError, match="unknown file type"):
+        load_model(path)
+
+
+def test_missing_file_names_it(tmp_path: Path) -> None:
+    with pytest.raises(ModelFileError, match="file not found") as info:
+        load_model(tmp_path / "nope.lm")
+    assert "nope.lm" in str(info.value)

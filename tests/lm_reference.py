@@ -124,7 +124,11 @@ class ReferenceModel:
         if self.method == "addk":
             if not full:
                 return lower
-            return (nxt.get(w, 0) + self.k) / (total + self.k * len(self.predictable))
+            denom = total + self.k * len(self.predictable)
+            # n-grams below a cutoff give their count to the uniform share
+            dropped_c = sum(c for v, c in nxt.items() if self.raw[m][(*h, v)] < self.cut[m])
+            own = nxt.get(w, 0) if self.raw[m][(*h, w)] >= self.cut[m] else 0
+            return own / denom + (self.k * len(self.predictable) + dropped_c) / denom * lower
         alpha_kept = 0.0
         dropped = 0.0
         for v, c in nxt.items():

@@ -154,3 +154,47 @@ def test_token_logprobs_sum_to_sentence_logprob() -> None:
     per_token = model.token_logprobs(sents)
     assert [len(t) for t in per_token] == [3, 4]  # words plus </s>
     np.testing.assert_allclose([t.sum() for t in per_token], model.logprob(sents))
+
+
+@pytest.mark.parametrize("method", ALL_METHODS)
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(sents=corpora, order=st.integers(2, 4), data=st.data())
+def test_cutoffs_match_reference(
+    method: str, sents: list[list[str]], order: int, data: st.DataObject
+) -> None:
+    # a dropped n-gram's own share moves to its context's lower-order weight
+    cutoffs = data.draw(st.lists(st.integers(1, 3), min_size=order - 1, max_size=order - 1))
+    model = NGramModel(order, method, cutoffs=cutoffs).fit(sents)
+    ref = ReferenceModel(sents, order, method, cutoffs=cutoffs)
+    words = [w for w in model.vocab_.words if w != "<s>"]
+    for h in sorted(ref.histories()):
+        got = np.exp(model.logprob_ngrams([[*h, w] for w in words]))
+        np.testing.assert_allclose(got, [ref.prob(w, h) for w in words], atol=NORM_TOL)
+        assert abs(got.sum() - 1.0) < NORM_TOL
+
+
+@pytest.mark.parametrize("method", ["mkn", "kn", "wb", "abs"])
+@pytest.mark.parametrize("threshold", [1e-4, 1e-2, 0.5])
+def test_entropy_pruning_stays_normalised(method: str, threshold: float) -> None:
+    rng = np.random.default_rng(3)
+    sents = [["abcdef"[j] for j in rng.integers(0, 6, rng.integers(1, 9))] for _ in range(60)]
+    full = NGramModel(3, method).fit(sents)
+    pruned = NGramModel(3, method, prune=threshold).fit(sents)
+    assert sum(pruned.n_ngrams_[1:]) < sum(full.n_ngrams_[1:])
+    ref = ReferenceModel(sents, 3, method)
+    for total in _context_sums(pruned, ref.histories()):
+        assert abs(total - 1.0) < NORM_TOL
+    # a kept n-gram keeps its probability (Stolcke's pruning changes only back-off weights)
+    words = pruned.vocab_.words
+    for k in (2, 3):
+        kept = [[words[i] for i in row] for row in pruned.tables_.words_of(k).tolist()]
+        if kept:
+            np.testing.assert_allclose(pruned.logprob_ngrams(kept), full.logprob_ngrams(kept),
+                                       atol=1e-12)
+
+
+def test_pruning_larger_threshold_prunes_more() -> None:
+    rng = np.random.default_rng(5)
+    sents = [["abcdefgh"[j] for j in rng.integers(0, 8, rng.integers(1, 9))] for _ in range(80)]
+    sizes = [sum(NGramModel(3, prune=t).fit(sents).n_ngrams_[1:]) for t in (1e-6, 1e-3, 1e-1)]
+    assert sizes[0] >= sizes[1] >= sizes[2] and sizes[0] > sizes[2]

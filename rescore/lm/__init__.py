@@ -20,7 +20,7 @@ def save_model(model: NGramModel, path: str | Path) -> None:
     if is_arpa_name(path):
         from rescore.lm import arpa
 
-        arpa.write(model.tables_, path)
+        arpa.write(model._fitted(), path, closed_vocab=model.closed_vocab)
     else:
         from rescore.lm import store
 

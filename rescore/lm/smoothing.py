@@ -138,12 +138,24 @@ class WittenBell(Smoother):
 
 
 class AbsoluteDiscount(Smoother):
-    """Interpolated absolute discounting, one discount per order from raw counts."""
+    """Interpolated absolute discounting, one discount per order from raw counts.
+
+    ``discount`` fixes D for every order instead of estimating it from the counts.
+    """
 
     name = "abs"
 
+    def __init__(self, k: float = 1.0, discount: float | None = None) -> None:
+        if discount is not None and not 0 < discount <= 1:
+            raise UsageError(f"a fixed discount must be in (0, 1], got {discount}")
+        super().__init__(k)
+        self.discount = discount
+
     def estimate(self, stats: OrderStats) -> Estimate:
-        d, why = single_discount(counts_of_counts(stats.counts))
+        if self.discount is not None:
+            d, why = self.discount, None
+        else:
+            d, why = single_discount(counts_of_counts(stats.counts))
         numer = np.maximum(stats.counts - d, 0.0)
         return Estimate(numer, np.zeros(stats.n_contexts), (d,), why)
 

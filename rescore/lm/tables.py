@@ -75,6 +75,14 @@ class BackoffTables:
         out[:, k - 1] = at
         return out
 
+    def ids_of(self, ngrams: I64) -> I64:
+        """The id of each row's n-gram among those of its order (-1 where not listed)."""
+        width = ngrams.shape[1]
+        ids = ngrams[:, -1].astype(np.int64) if width else np.zeros(0, np.int64)
+        for k in range(2, width + 1):
+            ids = self._extend(k, ids, ngrams[:, width - k])
+        return ids
+
     # --- scoring -------------------------------------------------------------------------
 
     def _extend(self, k: int, below: I64, left: I64) -> I64:

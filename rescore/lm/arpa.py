@@ -1,0 +1,246 @@
+"""ARPA back-off text files (log10), read and written.
+
+Conventions written: a ``\\data\\`` block of ``ngram k=count`` lines, then one section per
+order of ``log10prob<TAB>w1 .. wk[<TAB>log10bow]``, the highest order without back-off
+column, and ``\\end\\``. ``<s>`` is listed with probability -99 (it is never predicted), and
+-99 stands for a zero probability or weight both ways. A model without ``<unk>`` among its
+unigrams is a closed-vocabulary model. Reading accepts any valid file: an n-gram whose
+suffix is not listed gets that suffix added with the probability the back-off rule gives
+it, so look-ups behave exactly as the file says.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.errors import ModelFileError
+from rescore.ioutil import atomic_output, iter_text_lines
+from rescore.lm import hashindex
+from rescore.lm.tables import BackoffTables
+from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
+
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+LOG10E = 1.0 / math.log(10.0)
+ZERO = -99.0  # log10 of "never"
+MAX_ORDER = 6
+_NGRAM_LINE = re.compile(r"^ngram\s+(\d+)\s*=\s*(\d+)$")
+_SECTION = re.compile(r"^\\(\d+)-grams:$")
+
+
+def _fmt(values: F64) -> list[str]:
+    log10 = values * LOG10E
+    return [f"{x:.10g}" if x > ZERO else f"{ZERO:g}" for x in log10.tolist()]
+
+
+def write(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> None:
+    """Write ``tables`` as an ARPA file (gzip for a ``.gz`` name), atomically.
+
+    A closed-vocabulary model leaves ``<unk>`` out, which is how a reader recognises it.
+    """
+    order = tables.order
+    words = tables.vocab.words
+    unigram_rows = [i for i in range(len(words)) if not (closed_vocab and i == UNK_ID)]
+    counts = [len(unigram_rows)] + [len(tables.logp[k - 1]) for k in range(2, order + 1)]
+    with atomic_output(path, "w") as fh:
+        out: Any = fh
+        out.write("\n\\data\\\n")
+        for k, n in enumerate(counts, start=1):
+            out.write(f"ngram {k}={n}\n")
+        for k in range(1, order + 1):
+            out.write(f"\n\\{k}-grams:\n")
+            if k == 1:
+                idx = np.array(unigram_rows, dtype=np.int64)
+                grams = [words[i] for i in unigram_rows]
+            else:
+                idx = np.arange(counts[k - 1], dtype=np.int64)
+                mat = tables.words_of(k)
+                grams = [" ".join(words[j] for j in row) for row in mat.tolist()]
+            probs = _fmt(tables.logp[k - 1][idx])
+            if k < order:
+                bows = _fmt(tables.bow[k - 1][idx])
+                out.write("".join(f"{p}\t{g}\t{b}\n" for p, g, b in zip(probs, grams, bows,
+                                                                         strict=True)))
+            else:
+                out.write("".join(f"{p}\t{g}\n" for p, g in zip(probs, grams, strict=True)))
+        out.write("\n\\end\\\n")
+
+
+def _error(path: str | Path, line: int | None, field: str | None, what: str) -> ModelFileError:
+    return ModelFileError(what, path=str(path), line=line, field=field)
+
+
+def _number(text: str, path: str | Path, line: int, field: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise _error(path, line, field, f"not a number: {text!r}") from None
+    if math.isnan(value) or value > 0:
+        raise _error(path, line, field, f"a log10 value must be a number <= 0, got {text!r}")
+    return value
+
+
+def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], float, float]]]]:
+    """Declared counts and, per order, the entries (words, log10 prob, log10 bow)."""
+    declared: list[int] = []
+    sections: list[list[tuple[list[str], float, float]]] = []
+    state = "start"
+    current = 0
+    last_line = 0
+    for number, raw in iter_text_lines(path):
+        last_line = number
+        line = raw.strip()
+        if state == "start":
+            if line == "\\data\\":
+                state = "data"
+            continue
+        if not line:
+            continue
+        if line == "\\end\\":
+            state = "end"
+            break
+        section = _SECTION.match(line)
+        if state == "data" and (m := _NGRAM_LINE.match(line)):
+            k, n = int(m.group(1)), int(m.group(2))
+            if k != len(declared) + 1 or k > MAX_ORDER:
+                raise _error(path, number, "counts header",
+                             f"expected 'ngram {len(declared) + 1}=COUNT', got {line!r}")
+            declared.append(n)
+            continue
+        if section:
+            k = int(section.group(1))
+            if not declared:
+                raise _error(path, number, "counts header", "no 'ngram k=count' lines")
+            if k != current + 1 or k > len(declared):
+                raise _error(path, number, "section",
+                             f"expected \\{current + 1}-grams:, got {line!r}")
+            if current and len(sections[-1]) != declared[current - 1]:
+                raise _error(path, number, "counts header",
+                             f"{len(sections[-1])} {current}-grams listed, "
+                             f"header says {declared[current - 1]}")
+            current = k
+            sections.append([])
+            state = "grams"
+            continue
+        if state != "grams":
+            raise _error(path, number, "counts header", f"unexpected line {line!r}")
+        fields = line.split()
+        top = current == len(declared)
+        if len(fields) not in ((current + 1,) if top else (current + 1, current + 2)):
+            want = f"{current + 1}" if top else f"{current + 1} or {current + 2}"
+            raise _error(path, number, f"{current}-gram",
+                         f"expected {want} fields, got {len(fields)}")
+        prob = _number(fields[0], path, number, "probability")
+        bow = _number(fields[current + 1], path, number, "back-off weight") \
+            if len(fields) == current + 2 else 0.0
+        sections[-1].append((fields[1:current + 1], prob, bow))
+    if state == "start":
+        raise _error(path, None, None, "not an ARPA file: no \\data\\ line")
+    if state != "end":
+        raise _error(path, last_line, None, "missing \\end\\ (the file is truncated?)")
+    if len(sections) != len(declared):
+        raise _error(path, last_line, "section", f"{len(declared)} orders declared, "
+                                                 f"{len(sections)} sections found")
+    if sections and len(sections[-1]) != declared[-1]:
+        raise _error(path, last_line, "counts header",
+                     f"{len(sections[-1])} {current}-grams listed, header says {declared[-1]}")
+    return declared, sections
+
+
+def _ln(values: list[float]) -> F64:
+    arr = np.array(values, dtype=np.float64)
+    return np.where(arr <= ZERO, -math.inf, arr / LOG10E)
+
+
+def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
+    """Read any valid ARPA file into back-off tables; also report its conventions."""
+    _, sections = _parse(path)
+    unigram_words = [g[0][0] for g in sections[0]]
+    vocab = Vocabulary.from_words(w for w in unigram_words if w not in SPECIALS)
+    v = len(vocab)
+    index = vocab.index
+    logp1 = np.full(v, -math.inf)
+    bow1 = np.zeros(v)
+    seen = np.zeros(v, dtype=bool)
+    for line, (words, prob, bow) in enumerate(sections[0]):
+        i = index[words[0]]
+        if seen[i]:
+            raise _error(path, None, "1-grams", f"{words[0]!r} is listed twice (entry {line + 1})")
+        logp1[i] = prob / LOG10E if prob > ZERO else -math.inf
+        bow1[i] = bow / LOG10E if bow > ZERO else -math.inf
+        seen[i] = True
+    logp1[BOS_ID] = -math.inf  # <s> is never predicted, whatever the file says
+    mats: list[I64] = [np.arange(v, dtype=np.int64)[:, None]]
+    probs: list[F64] = [logp1]
+    bows: list[F64] = [bow1]
+    for k in range(2, len(sections) + 1):
+        rows = sections[k - 1]
+        try:
+            mat = np.array([[index[w] for w in g[0]] for g in rows], dtype=np.int64)
+        except KeyError as exc:
+            raise _error(path, None, f"{k}-grams", f"word {exc.args[0]!r} is not a unigram") \
+                from None
+        mats.append(mat.reshape(len(rows), k))
+        probs.append(_ln([g[1] for g in rows]))
+        bows.append(_ln([g[2] for g in rows]))
+    _close_suffixes(mats, probs, bows)
+    try:
+        tables = _build(vocab, mats, probs, bows)
+    except ValueError as exc:
+        raise _error(path, None, None, str(exc)) from None
+    closed = not seen[UNK_ID]
+    meta: dict[str, Any] = {"method": "arpa", "closed_vocab": bool(closed),
+                            "bos_listed": BOS in unigram_words}
+    return tables, meta
+
+
+def _close_suffixes(mats: list[I64], probs: list[F64], bows: list[F64]) -> None:
+    """Add each listed n-gram's missing suffix, probability NaN until ``_build`` fills it."""
+    for k in range(len(mats), 2, -1):
+        lower, suffixes = mats[k - 2], mats[k - 1][:, 1:]
+        if not len(suffixes):
+            continue
+        both = np.concatenate([lower, suffixes])
+        uniq, inv = np.unique(both, axis=0, return_inverse=True)
+        inv = inv.reshape(-1)
+        missing = np.setdiff1d(inv[len(lower):], inv[:len(lower)])
+        if missing.size:
+            mats[k - 2] = np.concatenate([lower, uniq[missing]])
+            probs[k - 2] = np.concatenate([probs[k - 2], np.full(missing.size, np.nan)])
+            bows[k - 2] = np.concatenate([bows[k - 2], np.zeros(missing.size)])
+
+
+def _build(vocab: Vocabulary, mats: list[I64], probs: list[F64], bows: list[F64]) -> BackoffTables:
+    order = len(mats)
+    logp: list[F64] = [probs[0]]
+    bow: list[F64] = [bows[0]] if order > 1 else []
+    keys = [np.zeros(0, dtype=np.uint64)]
+    slots = [np.zeros(0, dtype=np.int32)]
+    for k in range(2, order + 1):
+        partial = BackoffTables(vocab, logp, bow[: k - 2], keys, slots)
+        mat = mats[k - 1]
+        suffix = partial.ids_of(mat[:, 1:])
+        key = partial.key(suffix, mat[:, 0])
+        perm = np.argsort(key, kind="stable")
+        key, mat = key[perm], mat[perm]
+        if len(key) > 1 and np.any(key[1:] == key[:-1]):
+            raise ValueError(f"an n-gram of order {k} is listed twice")
+        p, b = probs[k - 1][perm], bows[k - 1][perm]
+        gap = np.isnan(p)
+        if gap.any():
+            # the back-off rule's value: bow(context) + log P(w | shorter context)
+            ctx = partial.ids_of(mat[gap, :-1])
+            ctx_bow = np.where(ctx >= 0, bow[k - 2][np.maximum(ctx, 0)], 0.0)
+            p[gap] = ctx_bow + partial.score_ngrams(mat[gap, 1:])
+        logp.append(p)
+        if k < order:
+            bow.append(b)
+        keys.append(key)
+        slots.append(hashindex.build_slots(key))
+    return BackoffTables(vocab, logp, bow, keys, slots)

@@ -82,9 +82,11 @@ def open_binary(path: str | Path) -> IO[bytes]:
         raise InputError("is a folder, expected a file", path=str(p)) from None
     except PermissionError:
         raise InputError("permission denied", path=str(p)) from None
-    head = fh.peek(2)[:2] if hasattr(fh, "peek") else b""
+    head = fh.read(2)
+    fh.seek(0)
     if head == GZIP_MAGIC:
-        return gzip.GzipFile(fileobj=fh, mode="rb")  # type: ignore[return-value]
+        fh.close()
+        return gzip.open(p, "rb")
     return fh
 
 

@@ -37,7 +37,9 @@ def atomic_output(
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise InputError("output folder does not exist", path=str(folder))
-    fd, tmp_name = tempfile.mkstemp(prefix=TMP_PREFIX + target.name + ".", dir=folder)
+    _remove_stale_temporaries(folder, target.name)
+    fd, tmp_name = tempfile.mkstemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.",
+                                    dir=folder)
     raw = os.fdopen(fd, "wb")
     gz: gzip.GzipFile | None = None
     try:
@@ -64,6 +66,27 @@ def atomic_output(
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp_name)
         raise
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_stale_temporaries(folder: Path, name: str) -> None:
+    """Delete temporaries of ``name`` left by a killed run (their writer's pid is gone)."""
+    prefix = f"{TMP_PREFIX}{name}."
+    for leftover in folder.glob(f"{TMP_PREFIX}*"):
+        rest = leftover.name[len(prefix):] if leftover.name.startswith(prefix) else ""
+        pid_text = rest.split(".", 1)[0]
+        if pid_text.isdigit() and not _pid_alive(int(pid_text)):
+            with contextlib.suppress(OSError):
+                leftover.unlink()
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:

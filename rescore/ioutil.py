@@ -8,6 +8,7 @@ import hashlib
 import io
 import os
 import tempfile
+import zlib
 from collections.abc import Iterator
 from pathlib import Path
 from typing import IO, Literal
@@ -125,7 +126,7 @@ def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iter
         while True:
             try:
                 raw = fh.readline() if max_line_bytes is None else fh.readline(max_line_bytes + 2)
-            except (OSError, EOFError, gzip.BadGzipFile) as exc:
+            except (OSError, EOFError, zlib.error) as exc:
                 raise InputError(f"cannot read compressed data ({exc})", path=path, line=number + 1) from None
             if not raw:
                 return

@@ -114,20 +114,32 @@ def open_binary(path: str | Path) -> IO[bytes]:
     return fh
 
 
-def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iterator[tuple[int, str]]:
+def iter_text_lines(
+    path: str | Path,
+    max_line_bytes: int | None = None,
+    *,
+    start: int = 0,
+    end: int | None = None,
+    first_line: int = 1,
+) -> Iterator[tuple[int, str]]:
     """Yield ``(line_number, text)`` for each line, decoded as strict UTF-8.
 
     Bad bytes and over-long lines raise :class:`InputError` naming the line and the byte
     offset; a damaged gzip stream is reported the same way. The line ending is removed.
+    ``start``/``end`` (byte offsets at line starts, uncompressed files only) read one shard,
+    numbering its lines from ``first_line``.
     """
-    offset = 0
-    number = 0
+    offset = start
+    number = first_line - 1
     with open_binary(path) as fh:
-        while True:
+        if start:
+            fh.seek(start)
+        while end is None or offset < end:
             try:
                 raw = fh.readline() if max_line_bytes is None else fh.readline(max_line_bytes + 2)
             except (OSError, EOFError, zlib.error) as exc:
-                raise InputError(f"cannot read compressed data ({exc})", path=path, line=number + 1) from None
+                raise InputError(f"cannot read compressed data ({exc})", path=path,
+                                 line=number + 1) from None
             if not raw:
                 return
             number += 1
@@ -145,6 +157,44 @@ def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iter
                 ) from None
             offset += len(raw)
             yield number, text.rstrip("\r\n")
+
+
+def is_gzip_file(path: str | Path) -> bool:
+    with open(path, "rb") as fh:
+        return fh.read(2) == GZIP_MAGIC
+
+
+def line_shards(path: str | Path, parts: int, min_bytes: int = 1 << 20
+                ) -> list[tuple[int, int, int]]:
+    """Split an uncompressed file into ``(start, end, first_line)`` byte ranges at line starts.
+
+    At most ``parts`` shards, each of at least ``min_bytes`` (but the last), found by
+    counting newlines in blocks, so it costs one sequential read.
+    """
+    size = os.path.getsize(path)
+    target = max(min_bytes, -(-size // max(parts, 1)))
+    shards: list[tuple[int, int, int]] = []
+    start, first_line, lines, pos = 0, 1, 0, 0
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(1 << 20)
+            if not block:
+                break
+            base = pos
+            pos += len(block)
+            search_from = 0
+            while pos - start >= target:
+                cut = block.find(b"\n", max(search_from, start + target - 1 - base))
+                if cut < 0:
+                    break
+                lines += block.count(b"\n", search_from, cut + 1)
+                search_from = cut + 1
+                shards.append((start, base + cut + 1, first_line))
+                start, first_line = base + cut + 1, lines + 1
+            lines += block.count(b"\n", search_from)
+    if start < size or not shards:
+        shards.append((start, size, first_line))
+    return shards
 
 
 def sha256_file(path: str | Path) -> str:

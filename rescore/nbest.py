@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Iterator, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -132,6 +132,86 @@ def read_refs(path: str | Path) -> dict[str, str]:
     return refs
 
 
+@dataclass
+class RecordParser:
+    """Validates one line into an utterance: the per-record rules, with no memory of others.
+
+    Workers of a parallel run each hold one; what needs the whole file (duplicate ids,
+    consistent references, reference coverage) is the :class:`IdLedger`'s job.
+    """
+
+    path: str
+    convention: ScoreConvention = ScoreConvention()
+    refs: Mapping[str, str] | None = None
+    require_references: bool = False
+    limits: ReadLimits = ReadLimits()
+
+    def parse(self, number: int, line: str) -> Utterance:
+        path = self.path
+        if line.lstrip().startswith('{"nbest_header"'):
+            raise InputError("the header may only be the first line", path=path, line=number,
+                             field="nbest_header")
+        try:
+            utt = _UTTERANCE.validate_json(line)
+        except ValidationError as exc:
+            field, msg = validation_message(exc)
+            raise InputError(msg, path=path, line=number, field=field) from None
+        _check_record(path, number, utt, self.limits)
+        if self.refs is not None:
+            key = utt["id"]
+            if key not in self.refs:
+                raise InputError(f"no reference for id {key!r} in the references file",
+                                 path=path, line=number, field="id")
+            utt["reference"] = self.refs[key]
+        if self.require_references and "reference" not in utt:
+            raise InputError("reference needed (in the file or with --refs)",
+                             path=path, line=number, field="reference")
+        if self.convention.factor != 1.0:
+            _convert(utt, self.convention.factor)
+        return utt
+
+
+@dataclass
+class IdLedger:
+    """The whole-file rules: unique ids, references on all or none, refs file covered."""
+
+    path: str
+    refs: Mapping[str, str] | None = None
+    seen: dict[str, int] = field(default_factory=dict)
+    has_refs: bool | None = None
+
+    def admit(self, number: int, key: str, has_reference: bool) -> None:
+        first = self.seen.setdefault(key, number)
+        if first != number:
+            raise InputError(f"duplicate id {key!r} (first on line {first})",
+                             path=self.path, line=number, field="id")
+        if self.has_refs is None:
+            self.has_refs = has_reference
+        elif has_reference != self.has_refs:
+            which = "has no reference although earlier utterances have" if self.has_refs \
+                else "has a reference although earlier utterances have none"
+            raise InputError(which, path=self.path, line=number, field="reference")
+
+    def finish(self) -> None:
+        if self.refs is not None and len(self.refs) != len(self.seen):
+            missing = sorted(set(self.refs) - set(self.seen))
+            shown = ", ".join(missing[:5]) + (" ..." if len(missing) > 5 else "")
+            raise InputError(f"{len(self.refs)} references for {len(self.seen)} utterances; "
+                             f"ids not in the N-best file: {shown}", path=self.path)
+
+
+def read_convention(
+    path: str | Path, *, log_base: float | None = None, costs: bool | None = None,
+    limits: ReadLimits = ReadLimits(),
+) -> tuple[ScoreConvention, int]:
+    """The file's score convention and the line number of its header (0 when it has none)."""
+    for number, line in iter_text_lines(path, limits.max_line_bytes):
+        if line.strip():
+            convention, is_header = _header(path, number, line, log_base, costs)
+            return convention, number if is_header else 0
+    return _header(path, 0, "", log_base, costs)[0], 0
+
+
 def iter_nbest(
     path: str | Path,
     *,
@@ -147,53 +227,17 @@ def iter_nbest(
     file's ids. ``log_base`` and ``costs`` override the header. Acoustic and feature scores
     come out as natural-log likelihoods (higher is better).
     """
-    seen: dict[str, int] = {}
-    has_refs: bool | None = None
-    convention: ScoreConvention | None = None
+    convention, header_line = read_convention(path, log_base=log_base, costs=costs,
+                                              limits=limits)
+    parser = RecordParser(str(path), convention, refs, require_references, limits)
+    ledger = IdLedger(str(path), refs)
     for number, line in iter_text_lines(path, limits.max_line_bytes):
-        if not line.strip():
+        if number == header_line or not line.strip():
             continue
-        if convention is None:
-            convention, is_header = _header(path, number, line, log_base, costs)
-            if is_header:
-                continue
-        elif '"nbest_header"' in line[:40] and line.lstrip().startswith('{"nbest_header"'):
-            raise InputError("the header may only be the first line", path=path, line=number,
-                             field="nbest_header")
-        try:
-            utt = _UTTERANCE.validate_json(line)
-        except ValidationError as exc:
-            field, msg = validation_message(exc)
-            raise InputError(msg, path=path, line=number, field=field) from None
-        _check_record(path, number, utt, limits)
-        key = utt["id"]
-        if key in seen:
-            raise InputError(f"duplicate id {key!r} (first on line {seen[key]})",
-                             path=path, line=number, field="id")
-        seen[key] = number
-        if refs is not None:
-            if key not in refs:
-                raise InputError(f"no reference for id {key!r} in the references file",
-                                 path=path, line=number, field="id")
-            utt["reference"] = refs[key]
-        present = "reference" in utt
-        if has_refs is None:
-            has_refs = present
-        elif present != has_refs:
-            which = "has no reference although earlier utterances have" if has_refs else \
-                "has a reference although earlier utterances have none"
-            raise InputError(which, path=path, line=number, field="reference")
-        if require_references and not present:
-            raise InputError("reference needed (in the file or with --refs)",
-                             path=path, line=number, field="reference")
-        if convention.factor != 1.0:
-            _convert(utt, convention.factor)
+        utt = parser.parse(number, line)
+        ledger.admit(number, utt["id"], "reference" in utt)
         yield number, utt
-    if refs is not None and len(refs) != len(seen):
-        missing = sorted(set(refs) - set(seen))
-        shown = ", ".join(missing[:5]) + (" ..." if len(missing) > 5 else "")
-        raise InputError(f"{len(refs)} references for {len(seen)} utterances; "
-                         f"ids not in the N-best file: {shown}", path=path)
+    ledger.finish()
 
 
 def read_nbest(path: str | Path, **options: Any) -> Iterator[Utterance]:

@@ -62,3 +62,25 @@ def test_over_long_line_is_refused(tmp_path: Path) -> None:
     with pytest.raises(InputError, match="line longer than the limit of 50 bytes") as info:
         list(iter_text_lines(path, max_line_bytes=50))
     assert info.value.line == 2
+
+
+def test_line_shards_cover_the_file_at_line_starts(tmp_path: Path) -> None:
+    # plain check: concatenating the shards' lines gives every line once, numbered right
+    path = tmp_path / "lines.txt"
+    lines = [f"line {i} " + "x" * (i % 37) for i in range(5000)]
+    path.write_text("\n".join(lines) + "\n")
+    from rescore.ioutil import line_shards
+
+    shards = line_shards(path, parts=7, min_bytes=1000)
+    assert len(shards) == 7
+    got = [pair for a, b, first in shards
+           for pair in iter_text_lines(path, start=a, end=b, first_line=first)]
+    assert got == list(enumerate(lines, start=1))
+
+
+def test_line_shards_of_a_small_file_is_one_shard(tmp_path: Path) -> None:
+    from rescore.ioutil import line_shards
+
+    path = tmp_path / "small.txt"
+    path.write_text("a\nb\n")
+    assert line_shards(path, parts=4) == [(0, 4, 1)]

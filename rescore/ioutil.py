@@ -7,11 +7,12 @@ import gzip
 import hashlib
 import io
 import os
+import shutil
 import tempfile
 import zlib
 from collections.abc import Iterator
 from pathlib import Path
-from typing import IO, Literal
+from typing import IO, Any, Literal, cast, overload
 
 from rescore.errors import InputError
 
@@ -23,10 +24,27 @@ def is_gzip_name(path: str | Path) -> bool:
     return str(path).endswith(".gz")
 
 
-@contextlib.contextmanager
+@overload
+def atomic_output(
+    path: str | Path, mode: Literal["w"] = "w"
+) -> contextlib.AbstractContextManager[IO[str]]: ...
+
+
+@overload
+def atomic_output(
+    path: str | Path, mode: Literal["wb"]
+) -> contextlib.AbstractContextManager[IO[bytes]]: ...
+
+
 def atomic_output(
     path: str | Path, mode: Literal["w", "wb"] = "w"
-) -> Iterator[IO[str] | IO[bytes]]:
+) -> contextlib.AbstractContextManager[IO[str]] | contextlib.AbstractContextManager[IO[bytes]]:
+    """See :func:`_atomic_output`."""
+    return _atomic_output(path, mode)
+
+
+@contextlib.contextmanager
+def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
     """Yield a file that appears at ``path`` only once the block completes without error.
 
     The data goes to a temporary file in the same folder, which is flushed, synced and
@@ -87,12 +105,15 @@ def _remove_stale_temporaries(folder: Path, name: str) -> None:
         pid_text = rest.split(".", 1)[0]
         if pid_text.isdigit() and not _pid_alive(int(pid_text)):
             with contextlib.suppress(OSError):
-                leftover.unlink()
+                if leftover.is_dir():
+                    shutil.rmtree(leftover)
+                else:
+                    leftover.unlink()
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:
-    with atomic_output(path, "w") as fh:
-        fh.write(text)  # type: ignore[arg-type]
+    with atomic_output(path) as fh:
+        fh.write(text)
 
 
 def open_binary(path: str | Path) -> IO[bytes]:
@@ -110,7 +131,7 @@ def open_binary(path: str | Path) -> IO[bytes]:
     fh.seek(0)
     if head == GZIP_MAGIC:
         fh.close()
-        return gzip.open(p, "rb")
+        return cast(IO[bytes], gzip.open(p, "rb"))
     return fh
 
 
@@ -150,8 +171,9 @@ def iter_text_lines(
             try:
                 text = raw.decode("utf-8")
             except UnicodeDecodeError as exc:
+                bad = raw[exc.start]
                 raise InputError(
-                    f"invalid UTF-8 byte 0x{raw[exc.start]:02x} at byte offset {offset + exc.start}",
+                    f"invalid UTF-8 byte 0x{bad:02x} at byte offset {offset + exc.start}",
                     path=path,
                     line=number,
                 ) from None

@@ -13,11 +13,10 @@ import math
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Annotated, Any
-
-from typing_extensions import NotRequired, TypedDict
+from typing import Annotated, Any, NotRequired
 
 from pydantic import ConfigDict, Field, TypeAdapter, ValidationError, with_config
+from typing_extensions import TypedDict
 
 from rescore.errors import InputError
 from rescore.ioutil import atomic_output, iter_text_lines
@@ -69,6 +68,9 @@ class ReadLimits:
     max_words: int = 2_000
 
 
+DEFAULT_LIMITS = ReadLimits()
+
+
 @dataclass(frozen=True)
 class ScoreConvention:
     """How the file's scores are expressed; converted to natural-log likelihoods on read."""
@@ -80,6 +82,9 @@ class ScoreConvention:
     def factor(self) -> float:
         scale = 1.0 if self.log_base is None else math.log(self.log_base)
         return -scale if self.scores_are_costs else scale
+
+
+NATURAL_LOG = ScoreConvention()
 
 
 def _loc(loc: tuple[int | str, ...]) -> str:
@@ -141,10 +146,10 @@ class RecordParser:
     """
 
     path: str
-    convention: ScoreConvention = ScoreConvention()
+    convention: ScoreConvention = NATURAL_LOG
     refs: Mapping[str, str] | None = None
     require_references: bool = False
-    limits: ReadLimits = ReadLimits()
+    limits: ReadLimits = DEFAULT_LIMITS
 
     def parse(self, number: int, line: str) -> Utterance:
         path = self.path
@@ -202,7 +207,7 @@ class IdLedger:
 
 def read_convention(
     path: str | Path, *, log_base: float | None = None, costs: bool | None = None,
-    limits: ReadLimits = ReadLimits(),
+    limits: ReadLimits = DEFAULT_LIMITS,
 ) -> tuple[ScoreConvention, int]:
     """The file's score convention and the line number of its header (0 when it has none)."""
     for number, line in iter_text_lines(path, limits.max_line_bytes):
@@ -219,7 +224,7 @@ def iter_nbest(
     log_base: float | None = None,
     costs: bool | None = None,
     require_references: bool = False,
-    limits: ReadLimits = ReadLimits(),
+    limits: ReadLimits = DEFAULT_LIMITS,
 ) -> Iterator[tuple[int, Utterance]]:
     """Yield ``(line_number, utterance)`` for every record, validated and converted.
 
@@ -276,7 +281,8 @@ def _check_record(path: str | Path, number: int, utt: Utterance, limits: ReadLim
         raise InputError(f"index {best} but only {len(hyps)} hypotheses",
                          path=path, line=number, field="best")
     for i, hyp in enumerate(hyps):
-        if hyp["text"].count(" ") >= limits.max_words and len(hyp["text"].split()) > limits.max_words:
+        text = hyp["text"]
+        if text.count(" ") >= limits.max_words and len(text.split()) > limits.max_words:
             raise InputError(f"more than the limit of {limits.max_words} words",
                              path=path, line=number, field=f"hypotheses[{i}].text")
 
@@ -303,6 +309,6 @@ def write_nbest(path: str | Path, utterances: Iterable[Utterance]) -> int:
     count = 0
     with atomic_output(path) as fh:
         for utt in utterances:
-            fh.write(dumps(utt) + "\n")  # type: ignore[arg-type]
+            fh.write(dumps(utt) + "\n")
             count += 1
     return count

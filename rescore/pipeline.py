@@ -19,7 +19,16 @@ import numpy as np
 from rescore import __version__
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import atomic_output, sha256_file
-from rescore.nbest import Utterance, iter_nbest, one_best, read_refs
+from rescore.nbest import (
+    DEFAULT_LIMITS,
+    ReadLimits,
+    Utterance,
+    dumps,
+    iter_nbest,
+    one_best,
+    read_convention,
+    read_refs,
+)
 from rescore.scoring import (
     LM,
     FeatureMatrix,
@@ -72,8 +81,9 @@ def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
     return {name: m.model for name, m in models.items()}
 
 
-def _batches(items: Iterator[tuple[int, Utterance]], size: int
-             ) -> Iterator[list[tuple[int, Utterance]]]:
+def batches(items: Iterator[tuple[int, Utterance]], size: int
+            ) -> Iterator[list[tuple[int, Utterance]]]:
+    """Consecutive lists of at most ``size`` records."""
     while True:
         batch = list(itertools.islice(items, size))
         if not batch:
@@ -117,7 +127,7 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
     n_utt = n_hyp = 0
     errors_1 = errors_o = words = 0
     with_refs: bool | None = None
-    for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
+    for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
                           batch_size):
         if with_refs is None:
             with_refs = "reference" in batch[0][1]
@@ -132,7 +142,9 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
             words += int(m.ref_words.sum())
     if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
-    rate = (lambda e: e / words if words else None) if with_refs else (lambda e: None)
+    def rate(errors: int) -> float | None:
+        return errors / words if with_refs and words else None
+
     return CheckResult(n_utt, n_hyp, max(depths), dict(depths), rate(errors_1), rate(errors_o))
 
 
@@ -145,34 +157,56 @@ class ApplyResult:
 def apply_file(
     path: Path, out: Path, *, models: Mapping[str, NamedModel], weights: Weights,
     text_path: Path | None = None, refs: Mapping[str, str] | None = None,
-    log_base: float | None = None, costs: bool | None = None, batch_size: int = 2000,
+    refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
+    batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
+    limits: ReadLimits = DEFAULT_LIMITS,
 ) -> ApplyResult:
-    """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete."""
+    """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete.
+
+    With ``workers > 1`` or a ``cluster`` the file is split into shards processed in
+    parallel (see :mod:`rescore.parallel`); the output is the same byte for byte.
+    """
     features = _check_weighted(weights, models)
+    if workers > 1 or cluster is not None:
+        from rescore.parallel import apply_sharded
+
+        if refs is not None and refs_path is None:
+            raise UsageError("parallel runs take references as a file path (refs_path)")
+        convention, header_line = read_convention(path, log_base=log_base, costs=costs,
+                                                  limits=limits)
+        total, changed = apply_sharded(
+            path, out, models=[(m.name, str(m.path)) for m in models.values()],
+            weights=weights, features=features, text_path=text_path, refs_path=refs_path,
+            convention=convention, header_line=header_line, limits=limits,
+            batch_size=batch_size, workers=workers, cluster=cluster)
+        return ApplyResult(total, changed)
+    if refs_path is not None and refs is None:
+        refs = read_refs(refs_path)
     lms = _models(models)
-    read = changed = 0
+    read = changed = written = 0
     with contextlib.ExitStack() as stack:
-        fh: IO[str] = stack.enter_context(atomic_output(out))  # type: ignore[arg-type]
+        fh = stack.enter_context(atomic_output(out))
         tsv: IO[str] | None = None
         if text_path is not None:
-            tsv = stack.enter_context(atomic_output(text_path))  # type: ignore[arg-type]
-        for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
-                              batch_size):
+            tsv = stack.enter_context(atomic_output(text_path))
+        for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+                                        limits=limits), batch_size):
             scored = rescore_batch(batch, path=str(path), lms=lms, features=features,
                                    weights=weights)
-            for utt in scored:
-                fh.write(_dumps(utt) + "\n")
-                if tsv is not None:
-                    tsv.write(f"{utt['id']}\t{one_best(utt)['text']}\n")
-            changed += sum(1 for utt in scored if utt["best"] != 0)
+            changed += write_scored(scored, fh, tsv)
             read += len(batch)
+            written += len(scored)
+        if read != written:  # every utterance read is accounted for in the output
+            raise RuntimeError(f"read {read} utterances but wrote {written}")
     return ApplyResult(read, changed)
 
 
-def _dumps(utt: Utterance) -> str:
-    from rescore.nbest import dumps
-
-    return dumps(utt)
+def write_scored(scored: Sequence[Utterance], fh: IO[str], tsv: IO[str] | None) -> int:
+    """Write rescored records (and their 1-best text); returns how many changed 1-best."""
+    fh.write("".join(dumps(utt) + "\n" for utt in scored))
+    if tsv is not None:
+        tsv.write("".join(f"{utt['id']}\t{one_best(utt)['text']}\n" for utt in scored))
+    return sum(1 for utt in scored if utt.get("best", 0) != 0)
 
 
 def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
@@ -261,7 +295,7 @@ def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Seque
                 costs: bool | None = None) -> FeatureMatrix:
     """The whole tuning set as one compact matrix (records are not kept)."""
     parts: list[FeatureMatrix] = []
-    for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+    for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                      require_references=True), 2000):
         parts.append(build_matrix(batch, path=str(path), lms=_models(models),
                                   features=features, with_errors=True).matrix)
@@ -274,17 +308,15 @@ def concat_matrices(parts: Sequence[FeatureMatrix]) -> FeatureMatrix:
     sizes = np.concatenate([np.diff(p.offsets) for p in parts])
     offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
     np.cumsum(sizes, out=offsets[1:])
-    errors = [p.errors for p in parts]
-    ref_words = [p.ref_words for p in parts]
+    errors = [p.errors for p in parts if p.errors is not None]
+    ref_words = [p.ref_words for p in parts if p.ref_words is not None]
     return FeatureMatrix(
         names=parts[0].names,
         values=np.concatenate([p.values for p in parts]),
         offsets=offsets,
         ids=tuple(itertools.chain.from_iterable(p.ids for p in parts)),
-        errors=None if any(e is None for e in errors)
-        else np.concatenate(errors),  # type: ignore[arg-type]
-        ref_words=None if any(r is None for r in ref_words)
-        else np.concatenate(ref_words),  # type: ignore[arg-type]
+        errors=np.concatenate(errors) if len(errors) == len(parts) else None,
+        ref_words=np.concatenate(ref_words) if len(ref_words) == len(parts) else None,
     )
 
 

@@ -15,7 +15,7 @@ from rescore.ioutil import TMP_PREFIX, atomic_output, iter_text_lines
 def test_output_appears_only_when_complete(tmp_path: Path) -> None:
     out = tmp_path / "out.txt"
     with atomic_output(out) as fh:
-        fh.write("partial")  # type: ignore[arg-type]
+        fh.write("partial")
         assert not out.exists()
     assert out.read_text() == "partial"
 
@@ -24,7 +24,7 @@ def test_error_inside_leaves_no_output_and_no_temporary(tmp_path: Path) -> None:
     out = tmp_path / "out.txt"
     out.write_text("previous")
     with pytest.raises(KeyboardInterrupt), atomic_output(out) as fh:
-        fh.write("half")  # type: ignore[arg-type]
+        fh.write("half")
         raise KeyboardInterrupt
     assert out.read_text() == "previous"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out.txt"]
@@ -34,7 +34,7 @@ def test_gzip_output_is_reproducible(tmp_path: Path) -> None:
     # gzip header timestamp fixed at zero (RFC 1952 MTIME = 0: no time stamp available)
     for name in ("a.txt.gz", "b.txt.gz"):
         with atomic_output(tmp_path / name) as fh:
-            fh.write("row two\n")  # type: ignore[arg-type]
+            fh.write("row two\n")
     a, b = (tmp_path / "a.txt.gz").read_bytes(), (tmp_path / "b.txt.gz").read_bytes()
     assert a == b and gzip.decompress(a) == b"row two\n"
 
@@ -46,7 +46,7 @@ def test_stale_temporary_of_a_dead_writer_is_removed(tmp_path: Path) -> None:
     stale.write_text("x")
     alive.write_text("y")
     with atomic_output(tmp_path / "out.txt") as fh:
-        fh.write("z")  # type: ignore[arg-type]
+        fh.write("z")
     assert not stale.exists() and alive.exists()
 
 

@@ -72,13 +72,18 @@ def apply(
         "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     batch_size: BatchOpt = 2000,
+    workers: Annotated[int, typer.Option(
+        "--workers", min=1, help="Worker processes on this machine.")] = 1,
+    cluster: Annotated[str | None, typer.Option(
+        "--cluster", help="Dask scheduler address (tcp://HOST:PORT), or 'local' to start a "
+        "local cluster of --workers processes.")] = None,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     w = pipeline.read_weights(weights)
     result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
-                                 refs=_refs(refs), log_base=log_base, costs=costs,
-                                 batch_size=batch_size)
+                                 refs_path=refs, log_base=log_base, costs=costs,
+                                 batch_size=batch_size, workers=workers, cluster=cluster)
     info(f"rescored {result.utterances} utterances ({result.changed} changed 1-best) -> {out}")
 
 

@@ -181,6 +181,21 @@ def iter_text_lines(
             yield number, text.rstrip("\r\n")
 
 
+def count_lines(path: str | Path) -> int | None:
+    """Newlines in an uncompressed file (one fast sequential read); None for gzip or when
+    the file cannot be read (the reader then reports why)."""
+    count = 0
+    try:
+        if is_gzip_file(path):
+            return None
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                count += block.count(b"\n")
+    except OSError:
+        return None
+    return count
+
+
 def is_gzip_file(path: str | Path) -> bool:
     with open(path, "rb") as fh:
         return fh.read(2) == GZIP_MAGIC

@@ -193,6 +193,7 @@ def apply_sharded(
     features: Sequence[str], text_path: Path | None, refs_path: Path | None,
     convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
     workers: int, cluster: str | None, require_references: bool = False,
+    progress: Callable[[int], None] | None = None,
 ) -> tuple[int, int]:
     """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best)."""
     folder = out.parent if str(out.parent) else Path(".")
@@ -226,6 +227,8 @@ def apply_sharded(
                 ledger.admit(number, key, has_ref)
             total += len(result.keys)
             changed += result.changed
+            if progress is not None:
+                progress(len(result.keys))
         ledger.finish()
         _join([Path(t.out) for t in tasks], out)
         if text_path is not None:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import contextlib
 import itertools
 from collections import Counter
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
@@ -159,7 +159,7 @@ def apply_file(
     text_path: Path | None = None, refs: Mapping[str, str] | None = None,
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
     batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
-    limits: ReadLimits = DEFAULT_LIMITS,
+    limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
 ) -> ApplyResult:
     """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete.
 
@@ -178,7 +178,7 @@ def apply_file(
             path, out, models=[(m.name, str(m.path)) for m in models.values()],
             weights=weights, features=features, text_path=text_path, refs_path=refs_path,
             convention=convention, header_line=header_line, limits=limits,
-            batch_size=batch_size, workers=workers, cluster=cluster)
+            batch_size=batch_size, workers=workers, cluster=cluster, progress=progress)
         return ApplyResult(total, changed)
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
@@ -196,6 +196,8 @@ def apply_file(
             changed += write_scored(scored, fh, tsv)
             read += len(batch)
             written += len(scored)
+            if progress is not None:
+                progress(len(batch))
         if read != written:  # every utterance read is accounted for in the output
             raise RuntimeError(f"read {read} utterances but wrote {written}")
     return ApplyResult(read, changed)

@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
 from rescore import pipeline
-from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, table
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -19,6 +20,7 @@ from rescore.cli.options import (
     RefsOpt,
 )
 from rescore.errors import UsageError
+from rescore.ioutil import count_lines
 from rescore.nbest import read_refs
 
 
@@ -81,9 +83,11 @@ def apply(
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     w = pipeline.read_weights(weights)
-    result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
-                                 refs_path=refs, log_base=log_base, costs=costs,
-                                 batch_size=batch_size, workers=workers, cluster=cluster)
+    with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
+        result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
+                                     refs_path=refs, log_base=log_base, costs=costs,
+                                     batch_size=batch_size, workers=workers, cluster=cluster,
+                                     progress=step)
     info(f"rescored {result.utterances} utterances ({result.changed} changed 1-best) -> {out}")
 
 

@@ -27,6 +27,10 @@ class RescoreError(Exception):
         self.line = line
         self.field = field
 
+    def __reduce__(self) -> tuple[object, ...]:
+        # keep path, line and field when an error crosses a process boundary
+        return (_rebuild, (type(self), self.message, self.path, self.line, self.field))
+
     def __str__(self) -> str:
         parts: list[str] = []
         if self.path is not None:
@@ -35,6 +39,11 @@ class RescoreError(Exception):
             parts.append(self.field)
         parts.append(self.message)
         return ": ".join(parts)
+
+
+def _rebuild(cls: type[RescoreError], message: str, path: str | None, line: int | None,
+             field: str | None) -> RescoreError:
+    return cls(message, path=path, line=line, field=field)
 
 
 class InputError(RescoreError):

@@ -7,10 +7,12 @@ import gzip
 import hashlib
 import io
 import os
+import shutil
 import tempfile
+import zlib
 from collections.abc import Iterator
 from pathlib import Path
-from typing import IO, Literal
+from typing import IO, Any, Literal, cast, overload
 
 from rescore.errors import InputError
 
@@ -22,10 +24,27 @@ def is_gzip_name(path: str | Path) -> bool:
     return str(path).endswith(".gz")
 
 
-@contextlib.contextmanager
+@overload
+def atomic_output(
+    path: str | Path, mode: Literal["w"] = "w"
+) -> contextlib.AbstractContextManager[IO[str]]: ...
+
+
+@overload
+def atomic_output(
+    path: str | Path, mode: Literal["wb"]
+) -> contextlib.AbstractContextManager[IO[bytes]]: ...
+
+
 def atomic_output(
     path: str | Path, mode: Literal["w", "wb"] = "w"
-) -> Iterator[IO[str] | IO[bytes]]:
+) -> contextlib.AbstractContextManager[IO[str]] | contextlib.AbstractContextManager[IO[bytes]]:
+    """See :func:`_atomic_output`."""
+    return _atomic_output(path, mode)
+
+
+@contextlib.contextmanager
+def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
     """Yield a file that appears at ``path`` only once the block completes without error.
 
     The data goes to a temporary file in the same folder, which is flushed, synced and
@@ -37,7 +56,9 @@ def atomic_output(
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise InputError("output folder does not exist", path=str(folder))
-    fd, tmp_name = tempfile.mkstemp(prefix=TMP_PREFIX + target.name + ".", dir=folder)
+    _remove_stale_temporaries(folder, target.name)
+    fd, tmp_name = tempfile.mkstemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.",
+                                    dir=folder)
     raw = os.fdopen(fd, "wb")
     gz: gzip.GzipFile | None = None
     try:
@@ -66,9 +87,33 @@ def atomic_output(
         raise
 
 
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_stale_temporaries(folder: Path, name: str) -> None:
+    """Delete temporaries of ``name`` left by a killed run (their writer's pid is gone)."""
+    prefix = f"{TMP_PREFIX}{name}."
+    for leftover in folder.glob(f"{TMP_PREFIX}*"):
+        rest = leftover.name[len(prefix):] if leftover.name.startswith(prefix) else ""
+        pid_text = rest.split(".", 1)[0]
+        if pid_text.isdigit() and not _pid_alive(int(pid_text)):
+            with contextlib.suppress(OSError):
+                if leftover.is_dir():
+                    shutil.rmtree(leftover)
+                else:
+                    leftover.unlink()
+
+
 def write_text_atomic(path: str | Path, text: str) -> None:
-    with atomic_output(path, "w") as fh:
-        fh.write(text)  # type: ignore[arg-type]
+    with atomic_output(path) as fh:
+        fh.write(text)
 
 
 def open_binary(path: str | Path) -> IO[bytes]:
@@ -82,26 +127,40 @@ def open_binary(path: str | Path) -> IO[bytes]:
         raise InputError("is a folder, expected a file", path=str(p)) from None
     except PermissionError:
         raise InputError("permission denied", path=str(p)) from None
-    head = fh.peek(2)[:2] if hasattr(fh, "peek") else b""
+    head = fh.read(2)
+    fh.seek(0)
     if head == GZIP_MAGIC:
-        return gzip.GzipFile(fileobj=fh, mode="rb")  # type: ignore[return-value]
+        fh.close()
+        return cast(IO[bytes], gzip.open(p, "rb"))
     return fh
 
 
-def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iterator[tuple[int, str]]:
+def iter_text_lines(
+    path: str | Path,
+    max_line_bytes: int | None = None,
+    *,
+    start: int = 0,
+    end: int | None = None,
+    first_line: int = 1,
+) -> Iterator[tuple[int, str]]:
     """Yield ``(line_number, text)`` for each line, decoded as strict UTF-8.
 
     Bad bytes and over-long lines raise :class:`InputError` naming the line and the byte
     offset; a damaged gzip stream is reported the same way. The line ending is removed.
+    ``start``/``end`` (byte offsets at line starts, uncompressed files only) read one shard,
+    numbering its lines from ``first_line``.
     """
-    offset = 0
-    number = 0
+    offset = start
+    number = first_line - 1
     with open_binary(path) as fh:
-        while True:
+        if start:
+            fh.seek(start)
+        while end is None or offset < end:
             try:
                 raw = fh.readline() if max_line_bytes is None else fh.readline(max_line_bytes + 2)
-            except (OSError, EOFError, gzip.BadGzipFile) as exc:
-                raise InputError(f"cannot read compressed data ({exc})", path=path, line=number + 1) from None
+            except (OSError, EOFError, zlib.error) as exc:
+                raise InputError(f"cannot read compressed data ({exc})", path=path,
+                                 line=number + 1) from None
             if not raw:
                 return
             number += 1
@@ -112,13 +171,67 @@ def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iter
             try:
                 text = raw.decode("utf-8")
             except UnicodeDecodeError as exc:
+                bad = raw[exc.start]
                 raise InputError(
-                    f"invalid UTF-8 byte 0x{raw[exc.start]:02x} at byte offset {offset + exc.start}",
+                    f"invalid UTF-8 byte 0x{bad:02x} at byte offset {offset + exc.start}",
                     path=path,
                     line=number,
                 ) from None
             offset += len(raw)
             yield number, text.rstrip("\r\n")
+
+
+def count_lines(path: str | Path) -> int | None:
+    """Newlines in an uncompressed file (one fast sequential read); None for gzip or when
+    the file cannot be read (the reader then reports why)."""
+    count = 0
+    try:
+        if is_gzip_file(path):
+            return None
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                count += block.count(b"\n")
+    except OSError:
+        return None
+    return count
+
+
+def is_gzip_file(path: str | Path) -> bool:
+    with open(path, "rb") as fh:
+        return fh.read(2) == GZIP_MAGIC
+
+
+def line_shards(path: str | Path, parts: int, min_bytes: int = 1 << 20
+                ) -> list[tuple[int, int, int]]:
+    """Split an uncompressed file into ``(start, end, first_line)`` byte ranges at line starts.
+
+    At most ``parts`` shards, each of at least ``min_bytes`` (but the last), found by
+    counting newlines in blocks, so it costs one sequential read.
+    """
+    size = os.path.getsize(path)
+    target = max(min_bytes, -(-size // max(parts, 1)))
+    shards: list[tuple[int, int, int]] = []
+    start, first_line, lines, pos = 0, 1, 0, 0
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(1 << 20)
+            if not block:
+                break
+            base = pos
+            pos += len(block)
+            search_from = 0
+            while pos - start >= target:
+                cut = block.find(b"\n", max(search_from, start + target - 1 - base))
+                if cut < 0:
+                    break
+                lines += block.count(b"\n", search_from, cut + 1)
+                search_from = cut + 1
+                shards.append((start, base + cut + 1, first_line))
+                start, first_line = base + cut + 1, lines + 1
+            lines += block.count(b"\n", search_from)
+    if start < size or not shards:
+        shards.append((start, size, first_line))
+    return shards
 
 
 def sha256_file(path: str | Path) -> str:

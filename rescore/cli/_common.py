@@ -6,11 +6,12 @@ data; the functions here format it.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import signal
 import sys
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from typing import Any, ParamSpec, TypeVar
 
 import typer
@@ -81,6 +82,41 @@ def guarded(fn: Callable[P, R]) -> Callable[P, R]:
             ) from None
 
     return wrapper
+
+
+def _noop(amount: float = 1) -> None:
+    pass
+
+
+@contextlib.contextmanager
+def progress(description: str, total: float | None = None) -> Iterator[Callable[[float], None]]:
+    """A progress bar on stderr with rate and time left; silent with --quiet or when stdout
+    is not a terminal. Yields the function that advances it."""
+    if state.quiet or not sys.stdout.isatty():
+        yield _noop
+        return
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        SpinnerColumn,
+        TaskProgressColumn,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
+
+    columns = [SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
+               MofNCompleteColumn(), TaskProgressColumn(),
+               TextColumn("{task.speed:.0f}/s" if total else ""), TimeElapsedColumn(),
+               TimeRemainingColumn()]
+    with Progress(*columns, console=stderr, transient=True) as bar:
+        task = bar.add_task(description, total=total)
+
+        def advance(amount: float = 1) -> None:
+            bar.advance(task, amount)
+
+        yield advance
 
 
 def emit_json(data: Any) -> None:

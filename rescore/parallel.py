@@ -1,0 +1,247 @@
+"""Rescoring in parallel: byte-range shards of the input, processed by worker processes on
+this machine (``--workers N``) or by a Dask cluster (``--cluster ADDRESS|local``).
+
+Each task reads its own shard of the input file, loads the models from their files (once
+per worker process; the native format is memory-mapped, never pickled across), writes its
+own output shard, and returns the ids it saw. The main process checks the whole-file rules
+(unique ids, references on all or none, the refs file covered) and joins the shards in
+input order into the output, atomically. The output is byte-identical to a
+single-process run.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import Future, ProcessPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+from typing import IO, Any
+
+from rescore.errors import InputError, UsageError
+from rescore.ioutil import (
+    TMP_PREFIX,
+    atomic_output,
+    is_gzip_file,
+    iter_text_lines,
+    line_shards,
+    open_binary,
+)
+from rescore.nbest import IdLedger, ReadLimits, RecordParser, ScoreConvention, read_refs
+from rescore.scoring import Weights
+
+
+@dataclass(frozen=True)
+class ShardTask:
+    """Everything a worker needs, as plain picklable values (paths, not models)."""
+
+    path: str
+    start: int
+    end: int
+    first_line: int
+    skip_line: int
+    out: str
+    tsv: str | None
+    convention: ScoreConvention
+    limits: ReadLimits
+    refs_path: str | None
+    require_references: bool
+    models: tuple[tuple[str, str], ...]
+    weights: Weights
+    features: tuple[str, ...]
+    batch_size: int
+    display_path: str
+
+
+@dataclass(frozen=True)
+class ShardResult:
+    keys: list[tuple[int, str, bool]]
+    changed: int
+
+
+_MODEL_CACHE: dict[tuple[tuple[str, str], ...], dict[str, Any]] = {}
+_REFS_CACHE: dict[str, dict[str, str]] = {}
+
+
+def _models(specs: tuple[tuple[str, str], ...]) -> dict[str, Any]:
+    if not specs:
+        return {}
+    if specs not in _MODEL_CACHE:
+        from rescore.lm import load_model
+
+        _MODEL_CACHE[specs] = {name: load_model(path) for name, path in specs}
+    return _MODEL_CACHE[specs]
+
+
+def _refs(path: str | None) -> dict[str, str] | None:
+    if path is None:
+        return None
+    if path not in _REFS_CACHE:
+        _REFS_CACHE[path] = read_refs(path)
+    return _REFS_CACHE[path]
+
+
+def run_shard(task: ShardTask) -> ShardResult:
+    """Rescore one shard into its own output file (runs inside a worker)."""
+    from rescore.pipeline import batches, rescore_batch, write_scored
+
+    parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
+                          task.require_references, task.limits)
+    lms = _models(task.models)
+    keys: list[tuple[int, str, bool]] = []
+    changed = 0
+
+    def records() -> Iterator[tuple[int, Any]]:
+        for number, line in iter_text_lines(task.path, task.limits.max_line_bytes,
+                                            start=task.start, end=task.end,
+                                            first_line=task.first_line):
+            if number == task.skip_line or not line.strip():
+                continue
+            try:
+                utt = parser.parse(number, line)
+            except InputError as exc:
+                exc.path = task.display_path
+                raise
+            keys.append((number, utt["id"], "reference" in utt))
+            yield number, utt
+
+    with contextlib.ExitStack() as stack:
+        fh = stack.enter_context(atomic_output(task.out))
+        tsv: IO[str] | None = None
+        if task.tsv is not None:
+            tsv = stack.enter_context(atomic_output(task.tsv))
+        for batch in batches(records(), task.batch_size):
+            scored = rescore_batch(batch, path=task.display_path, lms=lms,
+                                   features=task.features, weights=task.weights)
+            changed += write_scored(scored, fh, tsv)
+    return ShardResult(keys, changed)
+
+
+class _Runner:
+    """A pool of worker processes or a Dask client, behind one `map` in input order."""
+
+    def __init__(self, workers: int, cluster: str | None) -> None:
+        self._stack = contextlib.ExitStack()
+        self._client: Any = None
+        self._pool: ProcessPoolExecutor | None = None
+        if cluster is not None:
+            self._client = self._stack.enter_context(_dask_client(cluster, workers))
+        else:
+            self._pool = self._stack.enter_context(ProcessPoolExecutor(max_workers=workers))
+
+    def map(self, fn: Callable[[ShardTask], ShardResult], tasks: Sequence[ShardTask]
+            ) -> Iterator[ShardResult]:
+        if self._client is not None:
+            futures = self._client.map(fn, tasks, pure=False)
+            try:
+                for future in futures:
+                    yield future.result()
+            finally:
+                self._client.cancel(futures)
+            return
+        assert self._pool is not None
+        submitted: list[Future[ShardResult]] = [self._pool.submit(fn, t) for t in tasks]
+        try:
+            for f in submitted:
+                yield f.result()
+        finally:
+            for f in submitted:
+                f.cancel()
+
+    def close(self) -> None:
+        self._stack.close()
+
+
+@contextlib.contextmanager
+def _dask_client(address: str, workers: int) -> Iterator[Any]:
+    try:
+        import distributed
+    except ImportError:
+        raise UsageError("--cluster needs dask.distributed: pip install 'rescore[cluster]'") \
+            from None
+    import dask
+
+    Client: Any = distributed.Client
+    LocalCluster: Any = distributed.LocalCluster
+    with dask.config.set({"distributed.worker.daemon": False,
+                          "logging.distributed": "error"}):
+        if address == "local":
+            cluster = LocalCluster(n_workers=max(workers, 1), threads_per_worker=1,
+                                   processes=True, host="127.0.0.1", dashboard_address=None)
+            client = Client(cluster)
+            try:
+                yield client
+            finally:
+                client.close()
+                cluster.close()
+        else:
+            try:
+                client = Client(address, timeout="20s")
+            except OSError as exc:
+                raise UsageError(f"--cluster {address}: cannot connect ({exc})") from None
+            try:
+                yield client
+            finally:
+                client.close()
+
+
+def apply_sharded(
+    path: Path, out: Path, *, models: Sequence[tuple[str, str]], weights: Weights,
+    features: Sequence[str], text_path: Path | None, refs_path: Path | None,
+    convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
+    workers: int, cluster: str | None, require_references: bool = False,
+    progress: Callable[[int], None] | None = None,
+) -> tuple[int, int]:
+    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best)."""
+    folder = out.parent if str(out.parent) else Path(".")
+    scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{out.name}.{os.getpid()}.shards.",
+                                    dir=folder))
+    runner: _Runner | None = None
+    try:
+        source = path
+        if is_gzip_file(path):
+            # gzip cannot be split by byte range: inflate once into the scratch folder
+            source = scratch / "input.jsonl"
+            with open_binary(path) as src, open(source, "wb") as dst:
+                shutil.copyfileobj(src, dst, 1 << 20)
+        parts = max(1, workers) * 4
+        shards = line_shards(source, parts)
+        tasks = [ShardTask(
+            path=str(source), start=a, end=b, first_line=first, skip_line=header_line,
+            out=str(scratch / f"{i:05d}.jsonl"),
+            tsv=None if text_path is None else str(scratch / f"{i:05d}.tsv"),
+            convention=convention, limits=limits,
+            refs_path=None if refs_path is None else str(refs_path),
+            require_references=require_references, models=tuple(models), weights=weights,
+            features=tuple(features), batch_size=batch_size, display_path=str(path),
+        ) for i, (a, b, first) in enumerate(shards)]
+        refs = None if refs_path is None else read_refs(refs_path)
+        ledger = IdLedger(str(path), refs)
+        runner = _Runner(workers, cluster)
+        total = changed = 0
+        for result in runner.map(run_shard, tasks):
+            for number, key, has_ref in result.keys:
+                ledger.admit(number, key, has_ref)
+            total += len(result.keys)
+            changed += result.changed
+            if progress is not None:
+                progress(len(result.keys))
+        ledger.finish()
+        _join([Path(t.out) for t in tasks], out)
+        if text_path is not None:
+            _join([Path(t.tsv) for t in tasks if t.tsv is not None], text_path)
+        return total, changed
+    finally:
+        if runner is not None:
+            runner.close()
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _join(parts: Sequence[Path], out: Path) -> None:
+    with atomic_output(out, "wb") as dst:
+        for part in parts:
+            with open(part, "rb") as src:
+                shutil.copyfileobj(src, dst, 1 << 20)

@@ -74,8 +74,8 @@ def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path) -> s
     with atomic_output(path, "wb") as fh:
         for part in content_parts(tables, metadata):
             digest.update(part)
-            fh.write(part)  # type: ignore[arg-type]
-        fh.write(digest.digest() + END)  # type: ignore[arg-type]
+            fh.write(part)
+        fh.write(digest.digest() + END)
     return digest.hexdigest()
 
 

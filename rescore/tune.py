@@ -325,6 +325,12 @@ def _grid_errors(matrix: FeatureMatrix, errors: np.ndarray, fixed: np.ndarray, l
 
 def _padded_errors(g_a: np.ndarray, g_w: np.ndarray, g_e: np.ndarray, g_off: np.ndarray,
                    slots: int, pen: np.ndarray) -> np.ndarray:
+    """Errors at each penalty, the groups of every utterance laid out in ``slots`` columns.
+
+    A group that another beats (or ties while coming earlier) at both ends of the penalty
+    range loses everywhere between, the totals being linear in the penalty; such groups are
+    dropped, and utterances are evaluated in blocks of equal survivor counts.
+    """
     n_utt = len(g_off) - 1
     local = np.arange(len(g_a)) - np.repeat(g_off[:-1], np.diff(g_off))
     utt = np.repeat(np.arange(n_utt), np.diff(g_off))
@@ -332,16 +338,40 @@ def _padded_errors(g_a: np.ndarray, g_w: np.ndarray, g_e: np.ndarray, g_off: np.
     w_pad = np.zeros((n_utt, slots))
     e_pad = np.zeros((n_utt, slots), dtype=np.int64)
     a_pad[utt, local], w_pad[utt, local], e_pad[utt, local] = g_a, g_w, g_e
+    low, high = a_pad + pen[0] * w_pad, a_pad + pen[-1] * w_pad
+    ge = (low[:, :, None] >= low[:, None, :]) & (high[:, :, None] >= high[:, None, :])
+    gt = (low[:, :, None] > low[:, None, :]) & (high[:, :, None] > high[:, None, :])
+    earlier = np.triu(np.ones((slots, slots), dtype=bool), 1)  # [t, s]: slot t comes first
+    alive = ~((ge & earlier) | gt).any(axis=1)
+    count = alive.sum(axis=1)
+    # surviving slots first, in their original (row) order
+    keep = np.argsort(~alive, axis=1, kind="stable")
+    out = np.zeros(len(pen), dtype=np.int64)
+    for width in np.unique(count):
+        rows = np.flatnonzero(count == width)
+        cols = keep[rows, :width]
+        e_b = np.take_along_axis(e_pad[rows], cols, axis=1)
+        if width == 1:
+            out += int(e_b.sum())
+            continue
+        a_b = np.take_along_axis(a_pad[rows], cols, axis=1)
+        w_b = np.take_along_axis(w_pad[rows], cols, axis=1)
+        out += _block_errors(a_b, w_b, e_b, pen)
+    return out
+
+
+def _block_errors(a: np.ndarray, w: np.ndarray, e: np.ndarray, pen: np.ndarray) -> np.ndarray:
+    n_utt, width = a.shape
     out = np.empty(len(pen), dtype=np.int64)
-    step = max(1, _BLOCK // max(1, n_utt * slots))
-    buf = np.empty((n_utt, min(step, len(pen)), slots))
+    step = max(1, _BLOCK // max(1, n_utt * width))
+    buf = np.empty((n_utt, min(step, len(pen)), width))
     for j in range(0, len(pen), step):
         p = pen[j:j + step]
         b = buf[:, :len(p)]
-        np.multiply(p[None, :, None], w_pad[:, None, :], out=b)
-        b += a_pad[:, None, :]
+        np.multiply(p[None, :, None], w[:, None, :], out=b)
+        b += a[:, None, :]
         pick = b.argmax(axis=2)
-        out[j:j + len(p)] = np.take_along_axis(e_pad, pick, axis=1).sum(axis=0)
+        out[j:j + len(p)] = np.take_along_axis(e, pick, axis=1).sum(axis=0)
     return out
 
 
@@ -454,29 +484,54 @@ class ErrorCurve:
         return np.asarray(self.errors[np.searchsorted(self.breaks, step, side="right")])
 
 
-def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray,
-                    errors: np.ndarray) -> ErrorCurve:
-    """Exact corpus errors along totals ``a + step * b``, all utterances at once.
+def _sort_lines(a: np.ndarray, b: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Rows ordered by (utterance, slope, falling intercept, row)."""
+    n, sizes = len(a), np.diff(offsets)
+    depth = int(sizes.max())
+    if len(sizes) * depth > 2 * n:  # ragged lists: one global sort
+        utt = np.repeat(np.arange(len(sizes)), sizes)
+        return np.lexsort((np.arange(n), -a, b, utt))
+    # lists of similar length: sort each padded row on its own, much cheaper
+    local = np.arange(n) - np.repeat(offsets[:-1], sizes)
+    utt = np.repeat(np.arange(len(sizes)), sizes)
+    keys_b = np.full((len(sizes), depth), np.inf)
+    keys_a = np.full((len(sizes), depth), np.inf)
+    keys_b[utt, local], keys_a[utt, local] = b, -a
+    cols = np.broadcast_to(np.arange(depth), keys_b.shape)
+    order = np.lexsort((cols, keys_a, keys_b), axis=1)
+    rows = order + offsets[:-1, None]
+    return rows[order < sizes[:, None]]
 
-    Each utterance follows the upper envelope of its lines: starting from the flattest line
-    (highest, then earliest, among equals) at step -> -inf, the next line is the one that
-    crosses the current one first among the steeper ones (the steepest of those crossing
-    at the same step). One round advances every unfinished utterance by one line.
+
+def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: np.ndarray,
+                    lo: float = -np.inf, hi: float = np.inf) -> ErrorCurve:
+    """Exact corpus errors along totals ``a + step * b`` for steps in (lo, hi).
+
+    Each utterance follows the upper envelope of its lines: starting from the line on top
+    just above ``lo`` (the flattest, highest, earliest line when ``lo`` is -inf), the next
+    line is the one that crosses the current one first among the steeper ones (the
+    steepest of those crossing at the same step). One round advances every unfinished
+    utterance by one line, until its next crossing lies at or beyond ``hi``.
     """
-    n = len(a)
-    utt = np.repeat(np.arange(len(offsets) - 1), np.diff(offsets))
-    order = np.lexsort((np.arange(n), -a, b, utt))
+    n_utt = len(offsets) - 1
+    order = _sort_lines(a, b, offsets)
+    utt = np.repeat(np.arange(n_utt), np.diff(offsets))
     su, sa, sb, se = utt[order], a[order], b[order], errors[order]
     # of parallel lines only the highest (earliest among equals) can be on top
-    keep = np.ones(n, dtype=bool)
+    keep = np.ones(len(su), dtype=bool)
     keep[1:] = (su[1:] != su[:-1]) | (sb[1:] != sb[:-1])
     su, sa, sb, se = su[keep], sa[keep], sb[keep], se[keep]
-    n_utt = len(offsets) - 1
     start = np.searchsorted(su, np.arange(n_utt))
     stop = np.append(start[1:], len(su))
+    if np.isfinite(lo):
+        # on top just above lo: the highest at lo, the steepest of equals there
+        value = sa + lo * sb
+        top = np.maximum.reduceat(value, start)
+        pos = np.arange(len(su))
+        start = np.maximum.reduceat(np.where(value >= top[su], pos, -1), start)
     base_errors = int(se[start].sum())
     cur = start.copy()
-    where = np.full(n_utt, -np.inf)
+    where = np.full(n_utt, lo)
     act = np.flatnonzero(stop - start > 1)
     steps: list[np.ndarray] = []
     deltas: list[np.ndarray] = []
@@ -490,6 +545,8 @@ def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray,
         low = np.minimum.reduceat(cross, first)
         nxt = np.maximum.reduceat(np.where(cross <= low[owner], pos, -1), first)
         at = np.maximum(low, where[act])
+        go = at < hi
+        act, nxt, at = act[go], nxt[go], at[go]
         delta = se[nxt] - se[cur[act]]
         moved = delta != 0
         steps.append(at[moved])
@@ -567,9 +624,10 @@ def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
     for _ in range(_MAX_SWEEPS):
         improved = False
         for pos, k in enumerate(idx):
+            low, high = lo[pos] - w[k], hi[pos] - w[k]
             curve = _envelope_curve(matrix.values @ w, matrix.values[:, k], matrix.offsets,
-                                    errors)
-            step, found = _best_step(curve, lo[pos] - w[k], hi[pos] - w[k])
+                                    errors, low, high)
+            step, found = _best_step(curve, low, high)
             if found > current:
                 continue
             trial = w.copy()

@@ -396,11 +396,16 @@ def plateau_centre(errors: np.ndarray) -> tuple[int, int]:
     steps, is chosen (on a distance tie, the first in row-major order). A centre of a wide
     plateau is less sensitive to the dev set than its edge.
     """
-    best = errors == errors.min()
-    seen = np.zeros_like(best)
+    regions = _regions(errors == errors.min())
+    return _centre(max(regions, key=len))  # max keeps the first of equal sizes
+
+
+def _regions(mask: np.ndarray) -> list[list[tuple[int, int]]]:
+    """4-neighbour connected regions of ``mask``, each in row-major order, in order met."""
+    seen = np.zeros_like(mask)
     regions: list[list[tuple[int, int]]] = []
-    rows, cols = best.shape
-    for i, j in zip(*np.nonzero(best), strict=True):
+    rows, cols = mask.shape
+    for i, j in zip(*np.nonzero(mask), strict=True):
         if seen[i, j]:
             continue
         seen[i, j] = True
@@ -409,16 +414,32 @@ def plateau_centre(errors: np.ndarray) -> tuple[int, int]:
             a, b = stack.pop()
             region.append((a, b))
             for c, d in ((a - 1, b), (a + 1, b), (a, b - 1), (a, b + 1)):
-                if 0 <= c < rows and 0 <= d < cols and best[c, d] and not seen[c, d]:
+                if 0 <= c < rows and 0 <= d < cols and mask[c, d] and not seen[c, d]:
                     seen[c, d] = True
                     stack.append((c, d))
         regions.append(sorted(region))
-    largest = max(regions, key=len)  # max keeps the first of equal sizes
-    cells = np.array(largest, dtype=np.float64)
-    centre = cells.mean(axis=0)
-    dist = ((cells - centre) ** 2).sum(axis=1)
-    k = int(np.argmin(dist))  # first of equal distances, cells being in row-major order
-    return largest[k]
+    return regions
+
+
+def _centre(region: list[tuple[int, int]]) -> tuple[int, int]:
+    cells = np.array(region, dtype=np.float64)
+    dist = ((cells - cells.mean(axis=0)) ** 2).sum(axis=1)
+    return region[int(np.argmin(dist))]  # first of equal distances (row-major order)
+
+
+def low_points(errors: np.ndarray, count: int = 6, levels: int = 3) -> list[tuple[int, int]]:
+    """Centres of the grid's lowest regions: the plateau centre first, then the regions of
+    the ``levels`` lowest error values, fewest errors first and larger first, ``count`` in all.
+    """
+    out = [plateau_centre(errors)]
+    for value in np.unique(errors)[:levels]:
+        for region in sorted(_regions(errors == value), key=len, reverse=True):
+            cell = _centre(region)
+            if cell not in out:
+                out.append(cell)
+            if len(out) >= count:
+                return out
+    return out
 
 
 def grid_search(
@@ -616,27 +637,59 @@ def _bounds_for(names: Sequence[str], bounds: Mapping[str, tuple[float, float]] 
     return np.array(lo), np.array(hi)
 
 
+def _step_range(w: np.ndarray, d: np.ndarray, idx: np.ndarray, lo: np.ndarray,
+                hi: np.ndarray) -> tuple[float, float]:
+    """The steps along ``d`` that keep every tuned weight inside its bounds."""
+    low, high = -np.inf, np.inf
+    for pos, k in enumerate(idx):
+        if d[k] != 0.0:
+            a, b = (lo[pos] - w[k]) / d[k], (hi[pos] - w[k]) / d[k]
+            low, high = max(low, min(a, b)), min(high, max(a, b))
+    return float(low), float(high)
+
+
+def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.ndarray,
+               idx: np.ndarray, lo: np.ndarray, hi: np.ndarray, current: int
+               ) -> tuple[np.ndarray, int]:
+    """Move to the middle of the best interval along ``d`` if it is no worse than now."""
+    low, high = _step_range(w, d, idx, lo, hi)
+    if not low < high:
+        return w, current
+    curve = _envelope_curve(matrix.values @ w, matrix.values @ d, matrix.offsets, errors,
+                            low, high)
+    step, found = _best_step(curve, low, high)
+    if found > current:
+        return w, current
+    trial = w + step * d
+    trial[idx] = np.clip(trial[idx], lo, hi)
+    actual = _errors_of_vector(matrix, errors, trial)
+    # the check guards against rounding at near-ties
+    return (trial, actual) if actual <= current else (w, current)
+
+
 def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
-                       idx: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, int]:
-    """Exact line search along each tuned coordinate in turn until a sweep gains nothing."""
+                       idx: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                       rng: np.random.Generator) -> tuple[np.ndarray, int]:
+    """Exact line searches along each tuned coordinate, then as many random directions,
+    sweep after sweep until a sweep gains nothing."""
     w = w.copy()
     current = _errors_of_vector(matrix, errors, w)
+    width = len(matrix.names)
     for _ in range(_MAX_SWEEPS):
-        improved = False
-        for pos, k in enumerate(idx):
-            low, high = lo[pos] - w[k], hi[pos] - w[k]
-            curve = _envelope_curve(matrix.values @ w, matrix.values[:, k], matrix.offsets,
-                                    errors, low, high)
-            step, found = _best_step(curve, low, high)
-            if found > current:
-                continue
-            trial = w.copy()
-            trial[k] = w[k] + step
-            actual = _errors_of_vector(matrix, errors, trial)
-            if actual <= current:  # the check guards against rounding at near-ties
-                improved = improved or actual < current
-                w, current = trial, actual
-        if not improved:
+        before = current
+        directions = []
+        for k in idx:
+            d = np.zeros(width)
+            d[k] = 1.0
+            directions.append(d)
+        if len(idx) > 1:
+            for _ in idx:
+                d = np.zeros(width)
+                d[idx] = rng.normal(size=len(idx))
+                directions.append(d)
+        for d in directions:
+            w, current = _line_move(matrix, errors, w, d, idx, lo, hi, current)
+        if current >= before:
             break
     return w, current
 
@@ -654,18 +707,25 @@ def exact_search(
     seed: int = 0,
     restarts: int = 5,
     bounds: Mapping[str, tuple[float, float]] | None = None,
+    also_from: Sequence[Weights] = (),
 ) -> TuneResult:
     """Coordinate-wise exact line search over the weights named in ``tune`` (Och, 2003).
 
-    Along one coordinate every hypothesis's total is a line in the step; each utterance's
+    Along one direction every hypothesis's total is a line in the step; each utterance's
     choice follows the upper envelope of its lines, so its errors are piecewise constant;
-    merging all breakpoints gives the exact corpus error curve, and the search moves to the
-    middle of the best interval within ``bounds`` (default 0..100 for ``lm`` and
-    ``acoustic``, -100..100 for any other weight). Coordinates are swept until a sweep
-    gains nothing, then ``restarts`` more runs start from seeded random points (each tuned
-    weight drawn uniformly within max(1, |w|) of the best point so far, inside the bounds);
-    the fewest-error run wins, the earliest on ties. Weights not in ``tune`` (by default
-    the acoustic scale, 1) stay as in ``start``. The result is never worse than ``start``.
+    merging all breakpoints gives the exact corpus error curve. The search moves to the
+    middle of the best interval within ``bounds`` when it is no worse than the current
+    point (among equal intervals: the one holding the current point, else the widest).
+    Default bounds: 0..100 for ``lm`` and ``acoustic``, -100..100 for any other weight.
+
+    Each sweep searches along every tuned coordinate, then along as many seeded random
+    directions (common practice: they reach narrow diagonal valleys that axis moves miss);
+    sweeps repeat until one gains nothing. Runs start from ``start``, then from each of
+    ``also_from``, then ``restarts`` more from seeded random points (each tuned weight drawn
+    uniformly within max(1, |w|) of the best point so far, inside the bounds). The
+    fewest-error run wins, the earliest on ties, so the result is never worse than
+    ``start`` (once moved inside the bounds). Weights not in ``tune`` (by default the
+    acoustic scale, 1) stay as in ``start``.
     """
     errors, _ = _check_matrix(matrix)
     tuned = tuple(dict.fromkeys(tune))
@@ -674,21 +734,26 @@ def exact_search(
     names = tuple(dict.fromkeys((*matrix.names, *start.features)))
     idx = np.array([_column_index(matrix, t) for t in tuned])
     lo, hi = _bounds_for(tuned, bounds)
-    w0 = start.vector(matrix.names)
-    w0[idx] = np.clip(w0[idx], lo, hi)
-    best, best_errors = _coordinate_ascent(matrix, errors, w0, idx, lo, hi)
     rng = np.random.default_rng(seed)
+    best, best_errors = np.zeros(0), np.iinfo(np.int64).max
+    for origin in (start, *also_from):
+        w0 = start.vector(matrix.names)
+        w0[idx] = np.clip(origin.vector(matrix.names)[idx], lo, hi)
+        w, e = _coordinate_ascent(matrix, errors, w0, idx, lo, hi, rng)
+        if e < best_errors:
+            best, best_errors = w, e
     for _ in range(restarts):
         spread = np.maximum(1.0, np.abs(best[idx]))
         trial = best.copy()
         trial[idx] = np.clip(best[idx] + rng.uniform(-1.0, 1.0, len(idx)) * spread, lo, hi)
-        w, e = _coordinate_ascent(matrix, errors, trial, idx, lo, hi)
+        w, e = _coordinate_ascent(matrix, errors, trial, idx, lo, hi, rng)
         if e < best_errors:
             best, best_errors = w, e
     updates = {matrix.names[k]: float(best[k]) for k in idx}
     weights = _set(start, names, updates)
-    settings = {"restarts": restarts, "seed": seed,
-                "bounds": {t: [float(a), float(b)] for t, a, b in zip(tuned, lo, hi, strict=True)}}
+    settings = {"restarts": restarts, "seed": seed, "starts": 1 + len(also_from),
+                "bounds": {t: [float(a), float(b)]
+                           for t, a, b in zip(tuned, lo, hi, strict=True)}}
     return _result(matrix, weights, "exact", tuned, None, settings)
 
 
@@ -701,8 +766,18 @@ def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
     grid = grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid, lm_column=lm_column)
     if method == "grid":
         return grid
-    # start from the best two-weight grid point, so tuning a feature never loses on dev
-    found = exact_search(matrix, tune=(*grid.tuned, *features), start=grid.weights, seed=seed)
+    # start from the best two-weight grid point, so tuning a feature never loses on dev;
+    # the centres of the grid's other low regions are further starts (a narrow valley
+    # between grid points can hold fewer errors than the best point of the grid)
+    assert grid.surface is not None
+    others = []
+    for i, j in low_points(grid.surface.errors)[1:]:
+        updates = {WORDS: float(grid.surface.penalty[j])}
+        if lm_column is not None:
+            updates[lm_column] = float(grid.surface.lm[i])
+        others.append(_set(grid.weights, matrix.names, updates))
+    found = exact_search(matrix, tune=(*grid.tuned, *features), start=grid.weights, seed=seed,
+                         also_from=others)
     settings = {**found.settings, "start": "grid", "lm_grid": grid.settings["lm_grid"],
                 "penalty_grid": grid.settings["penalty_grid"]}
     return replace(found, settings=settings)

@@ -521,7 +521,7 @@ def _sort_lines(a: np.ndarray, b: np.ndarray, offsets: np.ndarray) -> np.ndarray
     cols = np.broadcast_to(np.arange(depth), keys_b.shape)
     order = np.lexsort((cols, keys_a, keys_b), axis=1)
     rows = order + offsets[:-1, None]
-    return rows[order < sizes[:, None]]
+    return np.asarray(rows[order < sizes[:, None]])
 
 
 def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: np.ndarray,

@@ -3,6 +3,7 @@ the recognizer sample's published weights, cross-validation, depth table, weight
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 from pathlib import Path
@@ -323,7 +324,7 @@ def test_depth_rows_are_consistent() -> None:
     # one hypothesis per list: one-best, tuned and oracle are the same thing
     assert first.one_best_wer == first.tuned_wer == first.oracle_wer == result.baseline_wer
     oracles = [row.oracle_wer for row in result.depth]
-    assert all(a >= b for a, b in zip(oracles, oracles[1:], strict=False))
+    assert all(a >= b for a, b in itertools.pairwise(oracles))
     assert result.depth[-1].oracle_wer == result.oracle_wer
     assert result.depth[-1].tuned_wer == result.dev_wer
     assert all(row.one_best_wer == result.baseline_wer for row in result.depth)

@@ -17,6 +17,16 @@ from typing import IO, Any, Literal, cast, overload
 from rescore.errors import InputError
 
 GZIP_MAGIC = b"\x1f\x8b"
+
+
+def _umask() -> int:
+    current = os.umask(0)
+    os.umask(current)
+    return current
+
+
+# mkstemp makes files private (0600); outputs get the mode an ordinary open() would give
+FILE_MODE = 0o666 & ~_umask()
 TMP_PREFIX = ".rescore-tmp-"
 
 
@@ -76,6 +86,7 @@ def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
         if gz is not None:
             gz.close()
         raw.flush()
+        os.fchmod(raw.fileno(), FILE_MODE)
         os.fsync(raw.fileno())
         raw.close()
         os.replace(tmp_name, target)

@@ -81,3 +81,69 @@ def test_check_real_recognizer_sample_matches_its_readme(sample_dir: Path) -> No
         data = json.loads(run(["check", sample_dir / name, "--json"]).stdout)
         assert data["one_best_wer"] == pytest.approx(one_best, abs=5e-4)
         assert data["oracle_wer"] == pytest.approx(oracle, abs=5e-4)
+
+
+def test_apply_with_recognizer_weights_reproduces_its_choice(sample_dir: Path,
+                                                             tmp_path: Path) -> None:
+    # The sample README: LM weight 9.5 on first_pass_lm, filler_penalty weight 1 and a
+    # word insertion penalty of -0.6296 nats reproduce the recognizer's first choice.
+    weights = tmp_path / "recognizer.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
+                                   "insertion_penalty": -0.6296,
+                                   "features": {"first_pass_lm": 9.5, "filler_penalty": 1.0}}))
+    for name in ("warehouse_flite.jsonl", "warehouse_espeak.jsonl"):
+        out, tsv = tmp_path / f"{name}.out", tmp_path / f"{name}.tsv"
+        result = run(["apply", sample_dir / name, "--weights", weights, "-o", out,
+                      "--text", tsv])
+        assert result.exit_code == 0, result.stderr
+        records = [json.loads(line) for line in out.read_text().splitlines()]
+        assert len(records) == 30 and all(r["best"] == 0 for r in records)
+        assert all({"words", "total"} <= set(h) and "lm" not in h
+                   for r in records for h in r["hypotheses"])
+        first = [f"{r['id']}\t{r['hypotheses'][0]['text']}" for r in records]
+        assert tsv.read_text().splitlines() == first
+
+
+def test_apply_lm_weight_without_model_is_usage_error(tmp_path: Path) -> None:
+    weights = tmp_path / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.5,
+                                   "insertion_penalty": 0.0, "features": {}}))
+    out = tmp_path / "out.jsonl"
+    result = run(["apply", TWO, "--weights", weights, "-o", out])
+    assert result.exit_code == 2
+    assert "LM weight to lm but no such --lm was given" in result.stderr
+    assert not out.exists()
+
+
+def test_apply_malformed_input_leaves_no_output(tmp_path: Path) -> None:
+    weights = tmp_path / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
+                                   "insertion_penalty": 0.0, "features": {}}))
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text(TWO.read_text() + '{"id": "x", "hypotheses": [{"text": "a"}]}\n')
+    out = tmp_path / "out.jsonl"
+    result = run(["apply", bad, "--weights", weights, "-o", out, "--text", tmp_path / "t.tsv"])
+    assert result.exit_code == 1
+    assert result.stderr.startswith(f"error: {bad}:4: hypotheses[0].acoustic: ")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.jsonl", "w.json"]
+
+
+def test_tune_then_apply_on_the_demo_scenario(tmp_path: Path) -> None:
+    # tuned weights must beat the recognizer's own first choice on dev (the point of tuning)
+    demo = FIXTURES / "demo"
+    model = tmp_path / "logbook.lm"
+    assert run(["lm", "build", demo / "train.txt", "--order", "3", "-o", model]).exit_code == 0
+    weights = tmp_path / "w.json"
+    result = run(["tune", demo / "dev.jsonl", "--lm", model, "-o", weights, "--json",
+                  "--folds", "3"])
+    assert result.exit_code == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert {"lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
+            "baseline_wer", "oracle_wer", "search"} <= set(data)
+    assert data["oracle_wer"] <= data["dev_wer"] < data["baseline_wer"]
+    out = tmp_path / "test.out.jsonl"
+    assert run(["apply", demo / "test.jsonl", "--lm", model, "--weights", weights,
+                "-o", out]).exit_code == 0
+    after = json.loads(run(["wer", out, "--json"]).stdout)["wer"]
+    before = json.loads(run(["wer", demo / "test.jsonl", "--json"]).stdout)["wer"]
+    assert after < before

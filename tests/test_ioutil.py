@@ -84,3 +84,13 @@ def test_line_shards_of_a_small_file_is_one_shard(tmp_path: Path) -> None:
     path = tmp_path / "small.txt"
     path.write_text("a\nb\n")
     assert line_shards(path, parts=4) == [(0, 4, 1)]
+
+
+def test_output_has_ordinary_file_mode(tmp_path: Path) -> None:
+    # POSIX: open() creates files with mode 0666 masked by the umask
+    out = tmp_path / "out.txt"
+    with atomic_output(out) as fh:
+        fh.write("x")
+    mask = os.umask(0)
+    os.umask(mask)
+    assert out.stat().st_mode & 0o777 == 0o666 & ~mask

@@ -8,6 +8,7 @@ import hashlib
 import io
 import os
 import tempfile
+import zlib
 from collections.abc import Iterator
 from pathlib import Path
 from typing import IO, Literal
@@ -37,7 +38,9 @@ def atomic_output(
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise InputError("output folder does not exist", path=str(folder))
-    fd, tmp_name = tempfile.mkstemp(prefix=TMP_PREFIX + target.name + ".", dir=folder)
+    _remove_stale_temporaries(folder, target.name)
+    fd, tmp_name = tempfile.mkstemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.",
+                                    dir=folder)
     raw = os.fdopen(fd, "wb")
     gz: gzip.GzipFile | None = None
     try:
@@ -66,6 +69,27 @@ def atomic_output(
         raise
 
 
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_stale_temporaries(folder: Path, name: str) -> None:
+    """Delete temporaries of ``name`` left by a killed run (their writer's pid is gone)."""
+    prefix = f"{TMP_PREFIX}{name}."
+    for leftover in folder.glob(f"{TMP_PREFIX}*"):
+        rest = leftover.name[len(prefix):] if leftover.name.startswith(prefix) else ""
+        pid_text = rest.split(".", 1)[0]
+        if pid_text.isdigit() and not _pid_alive(int(pid_text)):
+            with contextlib.suppress(OSError):
+                leftover.unlink()
+
+
 def write_text_atomic(path: str | Path, text: str) -> None:
     with atomic_output(path, "w") as fh:
         fh.write(text)  # type: ignore[arg-type]
@@ -82,9 +106,11 @@ def open_binary(path: str | Path) -> IO[bytes]:
         raise InputError("is a folder, expected a file", path=str(p)) from None
     except PermissionError:
         raise InputError("permission denied", path=str(p)) from None
-    head = fh.peek(2)[:2] if hasattr(fh, "peek") else b""
+    head = fh.read(2)
+    fh.seek(0)
     if head == GZIP_MAGIC:
-        return gzip.GzipFile(fileobj=fh, mode="rb")  # type: ignore[return-value]
+        fh.close()
+        return gzip.open(p, "rb")
     return fh
 
 
@@ -100,7 +126,7 @@ def iter_text_lines(path: str | Path, max_line_bytes: int | None = None) -> Iter
         while True:
             try:
                 raw = fh.readline() if max_line_bytes is None else fh.readline(max_line_bytes + 2)
-            except (OSError, EOFError, gzip.BadGzipFile) as exc:
+            except (OSError, EOFError, zlib.error) as exc:
                 raise InputError(f"cannot read compressed data ({exc})", path=path, line=number + 1) from None
             if not raw:
                 return

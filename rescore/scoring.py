@@ -10,10 +10,16 @@ matrix-vector product and a segmented argmax, ties going to the earlier hypothes
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
+
+from rescore.errors import InputError
+from rescore.nbest import Utterance
+from rescore.text import tokens
+from rescore.wer import word_errors
 
 ACOUSTIC = "acoustic"
 LM = "lm"
@@ -143,3 +149,76 @@ def oracle_rows(matrix: FeatureMatrix) -> np.ndarray:
     if matrix.errors is None:
         raise ValueError("oracle needs references")
     return segment_argmax(-matrix.errors.astype(np.float64), matrix.offsets)
+
+
+class LanguageModel(Protocol):
+    """What scoring needs of a model: natural-log sentence probabilities, with ``</s>``."""
+
+    def logprob(self, sentences: Sequence[Sequence[str]]) -> np.ndarray: ...
+
+
+def lm_column(name: str) -> str:
+    """Column name of a language model: ``lm`` for the main one, ``lm:NAME`` for others."""
+    return LM if name == LM else f"{LM}:{name}"
+
+
+@dataclass(frozen=True)
+class Batch:
+    """Utterances with their tokenised hypotheses and the matrix built from them."""
+
+    matrix: FeatureMatrix
+    tokens: list[list[str]]
+
+
+def build_matrix(
+    items: Sequence[tuple[int, Utterance]],
+    *,
+    path: str,
+    lms: Mapping[str, LanguageModel] | None = None,
+    features: Sequence[str] = (),
+    with_errors: bool = False,
+) -> Batch:
+    """The feature matrix of ``items`` (``(line, utterance)`` pairs from the reader).
+
+    Columns: acoustic, one per language model, words, then each named feature. A named
+    feature missing from a hypothesis is an error naming its line and field.
+    """
+    lms = lms or {}
+    names = (ACOUSTIC, *(lm_column(n) for n in lms), WORDS, *features)
+    sizes = np.fromiter((len(u["hypotheses"]) for _, u in items), dtype=np.int64, count=len(items))
+    offsets = np.zeros(len(items) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    n = int(offsets[-1])
+    values = np.empty((n, len(names)), dtype=np.float64)
+    toks: list[list[str]] = []
+    errors = np.zeros(n, dtype=np.int64) if with_errors else None
+    ref_words = np.zeros(len(items), dtype=np.int64) if with_errors else None
+    first_feature = 1 + len(lms) + 1
+    row = 0
+    for u, (line, utt) in enumerate(items):
+        ref = tokens(utt["reference"]) if with_errors and "reference" in utt else None
+        if with_errors and ref is None:
+            raise InputError("reference needed", path=path, line=line, field="reference")
+        if ref is not None and ref_words is not None:
+            ref_words[u] = len(ref)
+        for h, hyp in enumerate(utt["hypotheses"]):
+            words = tokens(hyp["text"])
+            toks.append(words)
+            values[row, 0] = hyp["acoustic"]
+            values[row, first_feature - 1] = len(words)
+            if features:
+                feats = hyp.get("features", {})
+                for j, name in enumerate(features):
+                    if name not in feats:
+                        raise InputError(f"feature {name!r} is weighted but missing here",
+                                         path=path, line=line, field=f"hypotheses[{h}].features")
+                    values[row, first_feature + j] = feats[name]
+            if errors is not None and ref is not None:
+                errors[row] = word_errors(ref, words)
+            row += 1
+    for j, model in enumerate(lms.values()):
+        values[:, 1 + j] = model.logprob(toks) if n else 0.0
+    matrix = FeatureMatrix(names=names, values=values, offsets=offsets,
+                           ids=tuple(u["id"] for _, u in items), errors=errors,
+                           ref_words=ref_words)
+    return Batch(matrix=matrix, tokens=toks)

@@ -8,18 +8,21 @@ The default, documented in the README:
    ``-``, which survive only inside a word (``don't``, ``re-seed``; a leading or trailing
    one is stripped);
 5. whitespace collapsed to single spaces, ends trimmed.
-Symbols (``%``, ``$``, ``°``) and digits are kept as they are.
+Symbols (category S*: ``$``, ``+``, ``°``) and digits are kept; ``%`` and ``#`` are
+punctuation (Po) and go.
 """
 
 from __future__ import annotations
 
-import string
 import unicodedata
 
 NORMALISATION = "nfc-lower-strip-punct-v1"
 
 _KEEP_INSIDE = "'-"
-_ASCII_TABLE = str.maketrans({c: " " for c in string.punctuation if c not in _KEEP_INSIDE})
+_ASCII_TABLE = str.maketrans({
+    chr(c): " " for c in range(128)
+    if unicodedata.category(chr(c)).startswith("P") and chr(c) not in _KEEP_INSIDE
+})
 
 
 def _strip_unicode_punct(text: str) -> str:

@@ -1,9 +1,189 @@
-"""Foundation commands: check, tune, apply, wer, demo, lm build, lm perplexity."""
+"""Foundation commands: check, tune, apply, wer and demo."""
 
 from __future__ import annotations
 
+from pathlib import Path
+from typing import Annotated
+
 import typer
+
+from rescore import pipeline
+from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.cli.options import (
+    BatchOpt,
+    CostsOpt,
+    JsonOpt,
+    LogBaseOpt,
+    NbestArg,
+    OutOpt,
+    RefsOpt,
+)
+from rescore.errors import UsageError
+from rescore.nbest import read_refs
+
+
+def _refs(path: Path | None) -> dict[str, str] | None:
+    return None if path is None else read_refs(path)
+
+
+def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) -> list[list[object]]:
+    rows: list[list[object]] = []
+    for label, r in label_results:
+        if r is None:
+            continue
+        rows.append([label, pct(float(r["wer"])), r["substitutions"], r["deletions"],
+                     r["insertions"], r["hits"], r["reference_words"]])
+    return rows
+
+
+WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
+
+
+@guarded
+def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
+          costs: CostsOpt = None, as_json: JsonOpt = False) -> None:
+    """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
+    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+    if as_json:
+        emit_json(result.to_dict())
+        return
+    table(f"{nbest}", ["", "value"], [
+        ["utterances", result.utterances],
+        ["hypotheses", result.hypotheses],
+        ["max depth", result.max_depth],
+        ["mean depth", result.hypotheses / max(result.utterances, 1)],
+        ["1-best WER", pct(result.one_best_wer)],
+        ["oracle WER", pct(result.oracle_wer)],
+    ])
+    table("list depth", ["hypotheses", "utterances"],
+          [[d, c] for d, c in sorted(result.depths.items())])
+
+
+@guarded
+def apply(
+    nbest: NbestArg,
+    weights: Annotated[Path, typer.Option("--weights", help="Weights file from 'rescore tune'.",
+                                          show_default=False)],
+    out: OutOpt,
+    lm: Annotated[list[str] | None, typer.Option(
+        "--lm", help="Language model (MODEL, or NAME=MODEL for several). Optional when only "
+        "file features are weighted.")] = None,
+    text: Annotated[Path | None, typer.Option(
+        "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
+    refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
+    batch_size: BatchOpt = 2000,
+) -> None:
+    """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
+    models = pipeline.load_lms(lm or [])
+    w = pipeline.read_weights(weights)
+    result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
+                                 refs=_refs(refs), log_base=log_base, costs=costs,
+                                 batch_size=batch_size)
+    info(f"rescored {result.utterances} utterances ({result.changed} changed 1-best) -> {out}")
+
+
+@guarded
+def wer(
+    nbest: Annotated[Path | None, typer.Argument(help="N-best file (its 1-best is scored).",
+                                                 show_default=False)] = None,
+    refs: RefsOpt = None,
+    hyps: Annotated[Path | None, typer.Option(
+        "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
+    log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
+) -> None:
+    """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
+    if (nbest is None) == (hyps is None):
+        raise UsageError("give either an N-best file or --refs FILE --hyps FILE")
+    if hyps is not None:
+        if refs is None:
+            raise UsageError("--hyps needs --refs")
+        result = pipeline.wer_transcripts(refs, hyps)
+    else:
+        assert nbest is not None
+        result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+    if as_json:
+        emit_json(result.to_dict())
+        return
+    table(None, WER_COLUMNS, _wer_rows([("1-best", result.to_dict())]))
+
+
+@guarded
+def tune(
+    nbest: NbestArg,
+    out: OutOpt,
+    lm: Annotated[list[str] | None, typer.Option(
+        "--lm", help="Language model (MODEL, or NAME=MODEL for several).")] = None,
+    search: Annotated[str | None, typer.Option(
+        "--search", help="grid or exact (default: grid for two weights, exact for more).")] = None,
+    feature: Annotated[list[str] | None, typer.Option(
+        "--feature", help="Also tune the weight of this N-best feature (repeatable).")] = None,
+    grid_lm: Annotated[str | None, typer.Option(
+        "--grid-lm", help="LM weight grid A:B:N (default 0:30:61).")] = None,
+    grid_penalty: Annotated[str | None, typer.Option(
+        "--grid-penalty", help="Insertion penalty grid A:B:N (default -20:20:81).")] = None,
+    folds: Annotated[int, typer.Option("--folds", min=0,
+                                       help="Cross-validation folds (0 or 1: none).")] = 5,
+    seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,
+    analysis: Annotated[Path | None, typer.Option(
+        "--analysis", help="Write the error surface, depth curve and cross-validation "
+        "here (JSON, for 'rescore report --tuning').")] = None,
+    refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
+    models = pipeline.load_lms(lm or [])
+    outcome = pipeline.tune_file(
+        nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
+        grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
+        log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
+    )
+    data = outcome.to_dict()
+    if as_json:
+        emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
+            k: v for k, v in data.items() if k in ("cv_wer", "cv_warning")})
+    else:
+        table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
+            ["LM weight", data["lm_weight"]],
+            ["insertion penalty", data["insertion_penalty"]],
+            *[[f"feature {k}", v] for k, v in data["features"].items()],
+            ["baseline WER", pct(data["baseline_wer"])],
+            ["dev WER (tuned)", pct(data["dev_wer"])],
+            ["cross-validated WER", pct(data.get("cv_wer"))],
+            ["oracle WER", pct(data["oracle_wer"])],
+        ])
+    if data.get("cv_warning"):
+        info(f"warning: {data['cv_warning']}")
+    info(f"weights -> {out}")
+
+
+@guarded
+def demo(
+    out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
+    = Path("demo-out"),
+    data: Annotated[Path | None, typer.Option(
+        "--data", help="Scenario data folder (default: the bundled fixtures/demo).")] = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
+    from rescore import demo as demo_lib
+
+    result = demo_lib.run_demo(out, data_dir=data, progress=info)
+    if as_json:
+        emit_json(result.summary)
+        return
+    s = result.summary
+    table("Larkspur Growhouse test set: before and after rescoring", WER_COLUMNS,
+          _wer_rows([("before (recognizer 1-best)", result.before),
+                     ("after (rescored)", result.after),
+                     ("oracle (best in list)", result.oracle)]))
+    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
+         f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
+    info(f"outputs in {out}/ (summary.json, models, weights, rescored files, report)")
 
 
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:
-    """Attach this module's commands (filled in by the foundation work)."""
+    app.command()(check)
+    app.command()(tune)
+    app.command()(apply)
+    app.command()(wer)
+    app.command()(demo)

@@ -1,0 +1,22 @@
+"""Option declarations shared by several commands, so each reads the same everywhere."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+NbestArg = Annotated[Path, typer.Argument(help="N-best file (.jsonl or .jsonl.gz).",
+                                          show_default=False)]
+RefsOpt = Annotated[Path | None, typer.Option(
+    "--refs", help="References as 'id<TAB>text' lines (replace those in the file).")]
+LogBaseOpt = Annotated[float | None, typer.Option(
+    "--log-base", help="Scores in the file are logarithms to this base (overrides the header).")]
+CostsOpt = Annotated[bool | None, typer.Option(
+    "--costs/--no-costs", help="Scores in the file are costs, lower is better "
+    "(overrides the header).", show_default=False)]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON object on stdout.")]
+OutOpt = Annotated[Path, typer.Option("-o", "--out", help="Output file.", show_default=False)]
+BatchOpt = Annotated[int, typer.Option("--batch-size", min=1,
+                                       help="Utterances held in memory at once.")]

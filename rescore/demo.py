@@ -1,0 +1,114 @@
+"""The bundled scenario end to end: the Larkspur Growhouse crew's spoken logbook.
+
+Build a domain LM from the logbook text, tune LM weight and insertion penalty on the dev
+N-best set, rescore the test set, and write the before/after figures and release report.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from rescore import pipeline
+from rescore.errors import InputError
+from rescore.ioutil import sha256_file, write_text_atomic
+from rescore.nbest import iter_nbest, one_best
+from rescore.scoring import oracle_rows
+from rescore.text import tokens
+from rescore.wer import corpus_wer
+
+BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+FILES = ("train.txt", "dev.txt", "dev.jsonl", "test.jsonl")
+
+
+@dataclass(frozen=True)
+class DemoResult:
+    summary: dict[str, Any]
+    before: dict[str, float | int]
+    after: dict[str, float | int]
+    oracle: dict[str, float | int]
+    perplexity: dict[str, Any]
+    outputs: list[Path]
+
+
+def _silent(message: str) -> None:
+    pass
+
+
+def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
+             progress: Callable[[str], None] = _silent) -> DemoResult:
+    from rescore.lm import NGramModel, perplexity, read_corpus, save_model
+
+    data = BUNDLED if data_dir is None else Path(data_dir)
+    for name in FILES:
+        if not (data / name).is_file():
+            raise InputError(f"demo data file {name} is missing (pass --data DIR, or run "
+                             "'make demo-data')", path=data / name)
+    out.mkdir(parents=True, exist_ok=True)
+
+    progress(f"building a {order}-gram LM from {data / 'train.txt'}")
+    model = NGramModel(order=order).fit(read_corpus([data / "train.txt"]))
+    model_path = out / "logbook.lm"
+    save_model(model, model_path)
+    ppl = perplexity(model, list(read_corpus([data / "dev.txt"]))).to_dict()
+    progress(f"perplexity on dev text: {ppl['perplexity']:.2f}")
+
+    models = pipeline.load_lms([str(model_path)])
+    weights_path = out / "weights.json"
+    analysis_path = out / "tuning.json"
+    progress("tuning LM weight and insertion penalty on dev.jsonl")
+    tuned = pipeline.tune_file(
+        data / "dev.jsonl", models=models, search="grid", features=[], grid_lm=None,
+        grid_penalty=None, folds=5, seed=0, refs=None, log_base=None, costs=None,
+        weights_path=weights_path, analysis_path=analysis_path,
+    ).to_dict()
+
+    progress("rescoring test.jsonl")
+    rescored = out / "test.rescored.jsonl"
+    pipeline.apply_file(data / "test.jsonl", rescored, models=models,
+                        weights=pipeline.read_weights(weights_path),
+                        text_path=out / "test.best.tsv")
+
+    before, after, oracle = _test_wers(data / "test.jsonl", rescored, models)
+    outputs = [model_path, weights_path, analysis_path, rescored, out / "test.best.tsv"]
+    outputs += _report(data / "test.jsonl", rescored, out / "report", analysis_path,
+                       pipeline.provenance(data=[data / "test.jsonl"], models=models,
+                                           extra={"weights_sha256": sha256_file(weights_path)}))
+    summary = {
+        "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
+        "lm_weight": tuned["lm_weight"], "insertion_penalty": tuned["insertion_penalty"],
+        "utterances": before["utterances"],
+        "dev_perplexity": ppl["perplexity"],
+    }
+    write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
+    outputs.append(out / "summary.json")
+    return DemoResult(summary, before, after, oracle, ppl, outputs)
+
+
+def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel]
+               ) -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
+    refs, first, chosen = [], [], []
+    for (_, orig), (_, new) in zip(iter_nbest(test, require_references=True),
+                                   iter_nbest(rescored, require_references=True), strict=True):
+        refs.append(tokens(orig["reference"]))
+        first.append(tokens(orig["hypotheses"][0]["text"]))
+        chosen.append(tokens(one_best(new)["text"]))
+    # the oracle row of each list, from edit distances computed once in the matrix
+    rows = oracle_rows(pipeline.load_matrix(test, models={}, features=[]))
+    texts = [h["text"] for _, u in iter_nbest(test) for h in u["hypotheses"]]
+    oracle = corpus_wer(refs, [tokens(texts[r]) for r in rows])
+    return corpus_wer(refs, first).to_dict(), corpus_wer(refs, chosen).to_dict(), oracle.to_dict()
+
+
+def _report(before: Path, after: Path, folder: Path, tuning: Path,
+            provenance: dict[str, Any]) -> list[Path]:
+    try:
+        from rescore.report import build_report, load_system, write_report
+    except ImportError:
+        return []
+    report = build_report(load_system(before), load_system(after), provenance=provenance,
+                          tuning=json.loads(tuning.read_text()))
+    return write_report(report, folder)

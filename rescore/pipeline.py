@@ -1,0 +1,318 @@
+"""File-level steps behind the commands: read, score, choose, write, summarise.
+
+Each function streams its N-best input in bounded batches where the step allows it and
+returns a small result; none of them prints.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import itertools
+from collections import Counter
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+
+from rescore import __version__
+from rescore.errors import InputError, UsageError
+from rescore.ioutil import atomic_output, sha256_file
+from rescore.nbest import Utterance, iter_nbest, one_best, read_refs
+from rescore.scoring import (
+    LM,
+    FeatureMatrix,
+    LanguageModel,
+    Weights,
+    build_matrix,
+    lm_column,
+    oracle_rows,
+    segment_argmax,
+)
+from rescore.text import NORMALISATION, tokens
+from rescore.wer import WerResult, corpus_wer
+
+TUNE_JSON_KEYS = ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
+                  "baseline_wer", "oracle_wer", "search")
+
+
+@dataclass(frozen=True)
+class NamedModel:
+    name: str
+    path: Path
+    model: LanguageModel
+    sha256: str
+
+
+def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
+    """Models from ``--lm`` values: ``MODEL`` (the main LM) or ``NAME=MODEL``."""
+    from rescore.lm import load_model
+
+    out: dict[str, NamedModel] = {}
+    for spec in specs:
+        name, eq, path = spec.partition("=")
+        if not eq:
+            name, path = LM, spec
+        if not name or not path:
+            raise UsageError(f"--lm {spec!r}: expected MODEL or NAME=MODEL")
+        if name in out:
+            raise UsageError(f"--lm: the name {name!r} is given twice")
+        out[name] = NamedModel(name, Path(path), load_model(path), sha256_file(path))
+    return out
+
+
+def read_weights(path: str | Path) -> Weights:
+    from rescore.tune import read_weights as _read
+
+    return _read(path)
+
+
+def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
+    return {name: m.model for name, m in models.items()}
+
+
+def _batches(items: Iterator[tuple[int, Utterance]], size: int
+             ) -> Iterator[list[tuple[int, Utterance]]]:
+    while True:
+        batch = list(itertools.islice(items, size))
+        if not batch:
+            return
+        yield batch
+
+
+def _check_weighted(weights: Weights, models: Mapping[str, NamedModel]) -> list[str]:
+    """File features the weights use; an LM weight without a model is an error."""
+    features = [k for k, v in weights.features.items() if v != 0.0 and not k.startswith("lm:")]
+    needed = {LM} if weights.lm_weight != 0.0 else set()
+    needed |= {k[3:] for k, v in weights.features.items() if v != 0.0 and k.startswith("lm:")}
+    missing = sorted(needed - set(models))
+    if missing:
+        raise UsageError(f"the weights give LM weight to {', '.join(missing)} but no such --lm "
+                         "was given")
+    return features
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    utterances: int
+    hypotheses: int
+    max_depth: int
+    depths: dict[int, int]
+    one_best_wer: float | None
+    oracle_wer: float | None
+    one_best: WerResult | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"utterances": self.utterances, "hypotheses": self.hypotheses,
+                "max_depth": self.max_depth, "one_best_wer": self.one_best_wer,
+                "oracle_wer": self.oracle_wer,
+                "depths": {str(k): v for k, v in sorted(self.depths.items())}}
+
+
+def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
+               log_base: float | None = None, costs: bool | None = None,
+               batch_size: int = 2000) -> CheckResult:
+    depths: Counter[int] = Counter()
+    n_utt = n_hyp = 0
+    errors_1 = errors_o = words = 0
+    with_refs: bool | None = None
+    for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
+                          batch_size):
+        if with_refs is None:
+            with_refs = "reference" in batch[0][1]
+        m = build_matrix(batch, path=str(path), with_errors=with_refs).matrix
+        depths.update(np.diff(m.offsets).tolist())
+        n_utt += m.n_utterances
+        n_hyp += m.n_hypotheses
+        if with_refs and m.errors is not None and m.ref_words is not None:
+            firsts = m.offsets[:-1] + np.array([u.get("best", 0) for _, u in batch])
+            errors_1 += int(m.errors[firsts].sum())
+            errors_o += int(m.errors[oracle_rows(m)].sum())
+            words += int(m.ref_words.sum())
+    if n_utt == 0:
+        raise InputError("no utterances in the file", path=path)
+    rate = (lambda e: e / words if words else None) if with_refs else (lambda e: None)
+    return CheckResult(n_utt, n_hyp, max(depths), dict(depths), rate(errors_1), rate(errors_o))
+
+
+@dataclass(frozen=True)
+class ApplyResult:
+    utterances: int
+    changed: int
+
+
+def apply_file(
+    path: Path, out: Path, *, models: Mapping[str, NamedModel], weights: Weights,
+    text_path: Path | None = None, refs: Mapping[str, str] | None = None,
+    log_base: float | None = None, costs: bool | None = None, batch_size: int = 2000,
+) -> ApplyResult:
+    """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete."""
+    features = _check_weighted(weights, models)
+    lms = _models(models)
+    read = changed = 0
+    with contextlib.ExitStack() as stack:
+        fh: IO[str] = stack.enter_context(atomic_output(out))  # type: ignore[arg-type]
+        tsv: IO[str] | None = None
+        if text_path is not None:
+            tsv = stack.enter_context(atomic_output(text_path))  # type: ignore[arg-type]
+        for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
+                              batch_size):
+            scored = rescore_batch(batch, path=str(path), lms=lms, features=features,
+                                   weights=weights)
+            for utt in scored:
+                fh.write(_dumps(utt) + "\n")
+                if tsv is not None:
+                    tsv.write(f"{utt['id']}\t{one_best(utt)['text']}\n")
+            changed += sum(1 for utt in scored if utt["best"] != 0)
+            read += len(batch)
+    return ApplyResult(read, changed)
+
+
+def _dumps(utt: Utterance) -> str:
+    from rescore.nbest import dumps
+
+    return dumps(utt)
+
+
+def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
+                  lms: Mapping[str, LanguageModel], features: Sequence[str],
+                  weights: Weights) -> list[Utterance]:
+    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in."""
+    m = build_matrix(batch, path=path, lms=lms, features=features).matrix
+    vector = _weight_vector(weights, m)
+    total = m.values @ vector
+    best = segment_argmax(total, m.offsets) - m.offsets[:-1]
+    main_lm = m.names.index(LM) if LM in m.names else None
+    words = m.values[:, m.names.index("words")]
+    out: list[Utterance] = []
+    row = 0
+    for u, (_, utt) in enumerate(batch):
+        for hyp in utt["hypotheses"]:
+            if main_lm is not None:
+                hyp["lm"] = float(m.values[row, main_lm])
+            hyp["words"] = int(words[row])
+            hyp["total"] = float(total[row])
+            row += 1
+        utt["best"] = int(best[u])
+        out.append(utt)
+    return out
+
+
+def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
+    return weights.vector(m.names)
+
+
+def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
+             log_base: float | None = None, costs: bool | None = None) -> WerResult:
+    ref_words: list[list[str]] = []
+    hyp_words: list[list[str]] = []
+    for _, utt in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+                             require_references=True):
+        ref_words.append(tokens(utt["reference"]))
+        hyp_words.append(tokens(one_best(utt)["text"]))
+    if not ref_words:
+        raise InputError("no utterances in the file", path=path)
+    return corpus_wer(ref_words, hyp_words)
+
+
+def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
+    refs = read_refs(refs_path)
+    hyps = read_refs(hyps_path)
+    missing = sorted(set(refs) - set(hyps))
+    extra = sorted(set(hyps) - set(refs))
+    if missing or extra:
+        detail = (f"missing ids: {', '.join(missing[:5])}" if missing
+                  else f"ids without a reference: {', '.join(extra[:5])}")
+        raise InputError(f"{len(refs)} references for {len(hyps)} transcripts; {detail}",
+                         path=hyps_path)
+    if not refs:
+        raise InputError("no references in the file", path=refs_path)
+    ids = list(refs)
+    return corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+
+
+@dataclass(frozen=True)
+class TuneOutcome:
+    result: Any
+    provenance: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        data: dict[str, Any] = self.result.to_dict()
+        return data
+
+
+def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
+               extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    out: dict[str, Any] = {
+        "package": "rescore",
+        "version": __version__,
+        "normalisation": NORMALISATION,
+        "data_sha256": {str(p): sha256_file(p) for p in data},
+        "models": {name: {"path": str(m.path), "sha256": m.sha256} for name, m in models.items()},
+    }
+    if extra:
+        out.update(extra)
+    return out
+
+
+def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
+                refs: Mapping[str, str] | None = None, log_base: float | None = None,
+                costs: bool | None = None) -> FeatureMatrix:
+    """The whole tuning set as one compact matrix (records are not kept)."""
+    parts: list[FeatureMatrix] = []
+    for batch in _batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+                                     require_references=True), 2000):
+        parts.append(build_matrix(batch, path=str(path), lms=_models(models),
+                                  features=features, with_errors=True).matrix)
+    if not parts:
+        raise InputError("no utterances in the file", path=path)
+    return concat_matrices(parts)
+
+
+def concat_matrices(parts: Sequence[FeatureMatrix]) -> FeatureMatrix:
+    sizes = np.concatenate([np.diff(p.offsets) for p in parts])
+    offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    errors = [p.errors for p in parts]
+    ref_words = [p.ref_words for p in parts]
+    return FeatureMatrix(
+        names=parts[0].names,
+        values=np.concatenate([p.values for p in parts]),
+        offsets=offsets,
+        ids=tuple(itertools.chain.from_iterable(p.ids for p in parts)),
+        errors=None if any(e is None for e in errors)
+        else np.concatenate(errors),  # type: ignore[arg-type]
+        ref_words=None if any(r is None for r in ref_words)
+        else np.concatenate(ref_words),  # type: ignore[arg-type]
+    )
+
+
+def tune_file(
+    path: Path, *, models: Mapping[str, NamedModel], search: str | None,
+    features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
+    seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
+    weights_path: Path, analysis_path: Path | None,
+) -> TuneOutcome:
+    from rescore import tune as tuning
+
+    extra_lms = [lm_column(n) for n in models if n != LM]
+    matrix = load_matrix(path, models=models, features=features, refs=refs,
+                         log_base=log_base, costs=costs)
+    result = tuning.tune(
+        matrix, search=search, features=[*extra_lms, *features],
+        lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
+        penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
+        folds=folds, seed=seed, lm_column=LM if LM in models else None,
+    )
+    prov = provenance(data=[path], models=models,
+                      extra={"search": result.search, "seed": seed, "folds": folds})
+    tuning.write_weights(weights_path, result.weights, prov)
+    if analysis_path is not None:
+        import json
+
+        from rescore.ioutil import write_text_atomic
+
+        write_text_atomic(analysis_path, json.dumps(result.to_dict() | {"provenance": prov},
+                                                    indent=2) + "\n")
+    return TuneOutcome(result, prov)

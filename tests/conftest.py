@@ -1,0 +1,36 @@
+"""Shared test helpers: the command runner and the recognizer sample beside the project."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from pathlib import Path
+
+import pytest
+from click.testing import Result
+from hypothesis import settings
+from typer.testing import CliRunner
+
+from rescore.cli import app
+
+ROOT = Path(__file__).resolve().parent.parent
+FIXTURES = ROOT / "fixtures"
+# Real recognizer N-best lists live in the shared folder beside the project; tests read them
+# from there and never copy them in.
+SAMPLE = ROOT.parent / "shared" / "data" / "recognizer-sample"
+
+settings.register_profile("default", deadline=None, print_blob=True)
+settings.register_profile("fuzz", deadline=None, max_examples=int(
+    os.environ.get("RESCORE_FUZZ_EXAMPLES", "20000")))
+settings.load_profile("fuzz" if os.environ.get("RESCORE_FUZZ_EXAMPLES") else "default")
+
+
+def run(args: Sequence[str | os.PathLike[str]]) -> Result:
+    return CliRunner().invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+@pytest.fixture
+def sample_dir() -> Path:
+    if not SAMPLE.is_dir():
+        pytest.skip(f"recognizer sample not found at {SAMPLE}")
+    return SAMPLE

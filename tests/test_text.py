@@ -1,0 +1,59 @@
+"""Normalisation: the contract's documented default, applied identically everywhere."""
+
+from __future__ import annotations
+
+import unicodedata
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from rescore.text import normalise, tokens
+
+
+@pytest.mark.parametrize(
+    ("raw", "expected"),
+    [
+        # lowercase, punctuation stripped, whitespace collapsed (contract default)
+        ("Vent  bay THREE, opened.", "vent bay three opened"),
+        # word-internal apostrophes and hyphens survive; edge ones do not
+        ("don't re-seed 'row' -two-", "don't re-seed row two"),
+        # typographic apostrophe folds to the ASCII one
+        ("Priya\u2019s shift", "priya's shift"),
+        # symbols (Unicode S*) and digits are kept; "%" is category Po, so it goes
+        ("EC 1.8 at 40% for $3 + tax", "ec 1 8 at 40 for $3 + tax"),
+        ("", ""),
+        ("  ...  ", ""),
+    ],
+)
+def test_normalise_examples(raw: str, expected: str) -> None:
+    assert normalise(raw) == expected
+
+
+def test_normalise_nfc_composes_accents() -> None:
+    # "e" + combining acute (NFD) and the precomposed letter are one word after NFC
+    # (Unicode Standard Annex 15, canonical composition).
+    decomposed = "cafe\u0301"
+    assert tokens(decomposed) == tokens("caf\u00e9") == ["caf\u00e9"]
+
+
+def test_normalise_non_latin_scripts_kept() -> None:
+    # Greek and Devanagari letters are not punctuation (Unicode categories L*/M*); the
+    # Devanagari danda (U+0964, category Po) is.
+    assert tokens("Αντλία ΤΡΙΑ") == ["αντλία", "τρια"]
+    assert tokens("पंप बंद\u0964") == ["पंप", "बंद"]
+
+
+@given(st.text())
+def test_normalise_is_idempotent(raw: str) -> None:
+    once = normalise(raw)
+    assert normalise(once) == once
+    assert once == unicodedata.normalize("NFC", once)
+    assert "  " not in once and once == once.strip()
+
+
+@given(st.text(alphabet=st.characters(max_codepoint=127)))
+def test_ascii_fast_path_matches_unicode_rule(raw: str) -> None:
+    # The same text with one non-ASCII letter appended takes the general path; both paths
+    # must agree on the ASCII part (rule: Unicode category P* except ' and -).
+    assert tokens(raw + " \u00e9") == [*tokens(raw), "\u00e9"]

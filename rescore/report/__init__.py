@@ -11,6 +11,7 @@ from pathlib import Path
 
 from rescore.ioutil import write_text_atomic
 from rescore.report.json import render_json
+from rescore.report.load import is_nbest_file, load_system
 from rescore.report.markdown import render_markdown
 from rescore.report.model import (
     DEFAULT_RESAMPLES,
@@ -61,6 +62,8 @@ __all__ = [
     "Tuning",
     "build_report",
     "gate_failures",
+    "is_nbest_file",
+    "load_system",
     "render_all",
     "tuning_from_dict",
     "with_gate",

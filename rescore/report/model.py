@@ -227,13 +227,19 @@ def build_report(
     after_pairs: Sequence[Pair],
     *,
     provenance: Mapping[str, Any] | None = None,
-    tuning: Tuning | None = None,
+    tuning: Tuning | Mapping[str, Any] | None = None,
     resamples: int = DEFAULT_RESAMPLES,
     seed: int = DEFAULT_SEED,
     confidence: float = DEFAULT_CONFIDENCE,
     min_run: int = DEFAULT_MIN_RUN,
 ) -> Report:
-    """Compare two systems on the same utterances: WER, CER, tests and breakdowns."""
+    """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
+
+    ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
+    and ``depth`` are shown when present).
+    """
+    if tuning is not None and not isinstance(tuning, Tuning):
+        tuning = tuning_from_dict(tuning)
     matched = _match(before_pairs, after_pairs)
     refs = [b.reference for b, _ in matched]
     hyp_b = [b.hypothesis for b, _ in matched]

@@ -52,12 +52,20 @@ def report(
 ) -> None:
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
     from rescore.nbest import read_refs
-    from rescore.report import build_report, gate_failures, load_system, with_gate, write_report
+    from rescore.report import (
+        build_report,
+        gate_failures,
+        load_system,
+        tuning_from_dict,
+        with_gate,
+        write_report,
+    )
 
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
-    tuning_data = None if tuning is None else _read_tuning(tuning)
+    tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
+                                                               path=str(tuning))
     files = [p for p in (before, after, refs, tuning) if p is not None]
     provenance = {"data_sha256": {str(p): sha256_file(p) for p in files}}
     result = build_report(before_pairs, after_pairs, provenance=provenance,
@@ -79,10 +87,12 @@ def report(
             ("p (matched pairs / sign / Wilcoxon)", "", "",
              f"{d.mapsswe_p:.4f} / {d.sign_test_p:.4f} / {d.wilcoxon_p:.4f}"),
         ])
-    info("wrote " + ", ".join(str(p) for p in written))
     reasons = gate_failures(result, max_wer=max_wer, max_regression=max_regression)
     if reasons:
-        raise GateError("release gate failed: " + "; ".join(reasons))
+        # the one line of a failed gate also says where the report is
+        raise GateError("release gate failed: " + "; ".join(reasons)
+                        + f" (report written to {out})")
+    info("wrote " + ", ".join(str(p) for p in written))
 
 
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:

@@ -20,6 +20,11 @@ from rescore.significance import (
 )
 from rescore.wer import align
 
+
+def w(text: str) -> list[str]:
+    """Words of a space-separated string."""
+    return text.split()
+
 P_TOL = 1e-9
 
 
@@ -44,9 +49,9 @@ def test_segments_are_bounded_by_words_both_systems_get_right() -> None:
     # after:  a b c d Y f g h   -> error at e
     # both right: a, c d, f, h; runs of >= 2 with no insertions between: "c d" only, so the
     # segments are [a b] (before 1, after 0) and [e f g h] (before 1, after 1)
-    ref = "a b c d e f g h".split()
-    before = align(ref, "a x c d e f z h".split())
-    after = align(ref, "a b c d y f g h".split())
+    ref = w("a b c d e f g h")
+    before = align(ref, w("a x c d e f z h"))
+    after = align(ref, w("a b c d y f g h"))
     assert segment_errors(before, after, min_run=2) == [(1, 0), (1, 1)]
     # with single-word anchors every both-right word bounds a segment
     assert segment_errors(before, after, min_run=1) == [(1, 0), (0, 1), (1, 0)]
@@ -54,16 +59,16 @@ def test_segments_are_bounded_by_words_both_systems_get_right() -> None:
 
 def test_insertion_between_anchor_words_forms_its_own_segment() -> None:
     # derived by hand: "on" inserted by after between "b" and "c" breaks the run a b | c d
-    ref = "a b c d".split()
+    ref = w("a b c d")
     before = align(ref, ref)
-    after = align(ref, "a b on c d".split())
+    after = align(ref, w("a b on c d"))
     assert segment_errors(before, after, min_run=2) == [(0, 1)]
 
 
 def test_identical_systems_have_no_evidence() -> None:
     # definition: every segment difference is zero, so W = 0 and p = 1
-    ref = "vent bay three opened".split()
-    al = [align(ref, "went bay three opened".split())] * 3
+    ref = w("vent bay three opened")
+    al = [align(ref, w("went bay three opened"))] * 3
     r = matched_pairs(al, al)
     assert r.segments == 3 and r.p_value == 1.0
 

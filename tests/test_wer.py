@@ -17,6 +17,11 @@ from rescore.wer import (
     utterance_counts,
 )
 
+
+def w(text: str) -> list[str]:
+    """Words of a space-separated string."""
+    return text.split()
+
 TOL = 1e-12
 VOCAB = ["bay", "row", "pump", "vent", "lamp", "four", "for", "ph", "ec", "on"]
 words = st.lists(st.sampled_from(VOCAB), max_size=12)
@@ -67,8 +72,8 @@ def test_textbook_example_counts() -> None:
     # recognition chapter: 13 reference words aligned with 6 substitutions, 1 deletion and
     # 3 insertions, WER 10/13. The words below are our own; the alignment is reconstructed
     # to have exactly those counts.
-    ref = "lamp row four dimmed at nine after the crew checked bay two pumps".split()
-    hyp = "uh lamb row for dimmed nine half a crew check it bay too pumps okay".split()
+    ref = w("lamp row four dimmed at nine after the crew checked bay two pumps")
+    hyp = w("uh lamb row for dimmed nine half a crew check it bay too pumps okay")
     assert len(ref) == 13
     al = align(ref, hyp)
     assert (al.substitutions, al.deletions, al.insertions) == (6, 1, 3)
@@ -79,7 +84,7 @@ def test_textbook_example_counts() -> None:
 def test_alignment_ops_mark_each_word() -> None:
     # derived by hand: cost 3 (substitute "bay" by "day", delete "pump", insert "on"); any
     # alignment that does not keep "three", "row" and "vent" as hits costs at least 4
-    al = align("bay three pump row vent".split(), "day three row vent on".split())
+    al = align(w("bay three pump row vent"), w("day three row vent on"))
     assert [(op.kind, op.ref, op.hyp) for op in al.ops] == [
         ("substitute", "bay", "day"), ("equal", "three", "three"), ("delete", "pump", None),
         ("equal", "row", "row"), ("equal", "vent", "vent"), ("insert", None, "on")]

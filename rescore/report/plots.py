@@ -109,5 +109,5 @@ def depth_curve(tuning: Tuning) -> str:
         ax.set_xlabel("N-best depth k")
         ax.set_ylabel("WER (%)")
         ax.grid(alpha=0.3)
-        ax.legend(frameon=False)
+        ax.legend(frameon=False, loc="best", fontsize=9)
         return _svg(fig, "WER by N-best depth")

@@ -82,8 +82,9 @@ def paired_bootstrap(
 ) -> BootstrapResult:
     """Resample utterances (the same draw for both systems) and recompute corpus WER.
 
-    Each resample draws ``n`` utterance indices with replacement; the three per-utterance
-    arrays are gathered with one index matrix per chunk of resamples and summed by row.
+    Each resample draws ``n`` utterance indices with replacement (one index matrix per
+    chunk of resamples); the draws are counted per utterance and the three per-utterance
+    arrays summed with one matrix product per chunk.
     """
     stacked = np.stack([
         _as_int_array(before_errors, "before_errors"),
@@ -104,10 +105,15 @@ def paired_bootstrap(
     rng = np.random.default_rng(seed)
     rows = max(1, min(resamples, _CHUNK_ELEMENTS // n))
     sums = np.empty((3, resamples), dtype=np.int64)
+    values = stacked.T.astype(np.float64)
     for start in range(0, resamples, rows):
         m = min(rows, resamples - start)
         idx = rng.integers(0, n, size=(m, n))
-        sums[:, start:start + m] = stacked[:, idx].sum(axis=2)
+        # how often each utterance was drawn in each resample, then one matrix product;
+        # the float sums are exact integers (far below 2**53) and are rounded back
+        offsets = (idx + (np.arange(m, dtype=np.int64) * n)[:, None]).ravel()
+        counts = np.bincount(offsets, minlength=m * n).reshape(m, n).astype(np.float64)
+        sums[:, start:start + m] = np.rint(counts @ values).T.astype(np.int64)
     # a resample drawn only from empty references (vanishingly rare) is counted per one word
     # rather than divided by zero
     words = np.maximum(sums[2], 1).astype(np.float64)

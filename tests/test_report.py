@@ -34,8 +34,8 @@ CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
 WER_KEYS = {"wer", "substitutions", "deletions", "insertions", "hits", "reference_words",
             "utterances"}
 HOSTILE_ID = 'bay<script>window.__pwned=1</script>"onload=alert(1)'
-# non-ASCII text keeps '<', '>' and '=' through normalisation (they are symbols, not
-# punctuation), so a hostile transcript reaches the writers intact
+# '<', '>' and '=' are symbols, not punctuation, so they survive normalisation and a hostile
+# transcript reaches the writers
 HOSTILE_TEXT = 'pH é <script>window.__pwned=2</script> "onload=alert(2)'
 
 

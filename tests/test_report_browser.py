@@ -41,7 +41,7 @@ TIMEOUT = 30.0
 _LAUNCHER = ("import os, sys; r, w = int(sys.argv[1]), int(sys.argv[2]); os.dup2(r, 3); "
              "os.dup2(w, 4); os.close(r); os.close(w); os.execv(sys.argv[3], sys.argv[3:])")
 HOSTILE_ID = 'row7<script>window.__pwned=1</script>"onload=window.__pwned=3'
-# non-ASCII keeps '<', '>' and '=' through normalisation (symbols, not punctuation)
+# '<', '>' and '=' survive normalisation (symbols, not punctuation)
 HOSTILE_TEXT = 'ph é <script>window.__pwned=2</script> "onload=window.__pwned=4 <img src=x>'
 
 

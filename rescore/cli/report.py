@@ -60,6 +60,7 @@ def report(
         with_gate,
         write_report,
     )
+    from rescore.report.text import p_value
 
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
@@ -85,7 +86,7 @@ def report(
              f"[{100 * d.ci_low:+.2f}%, {100 * d.ci_high:+.2f}%]"),
             ("probability of improvement", "", "", f"{d.probability_of_improvement:.4f}"),
             ("p (matched pairs / sign / Wilcoxon)", "", "",
-             f"{d.mapsswe_p:.4f} / {d.sign_test_p:.4f} / {d.wilcoxon_p:.4f}"),
+             " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
         ])
     reasons = gate_failures(result, max_wer=max_wer, max_regression=max_regression)
     if reasons:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
+from typing import Any, Literal
 
 import jiwer
 import numpy as np
@@ -45,11 +46,13 @@ class UtteranceCounts:
 
     @property
     def errors(self) -> np.ndarray:
-        return self.substitutions + self.deletions + self.insertions
+        total: np.ndarray = self.substitutions + self.deletions + self.insertions
+        return total
 
     @property
     def reference_words(self) -> np.ndarray:
-        return self.substitutions + self.deletions + self.hits
+        total: np.ndarray = self.substitutions + self.deletions + self.hits
+        return total
 
 
 def align_counts(ref: Sequence[str], hyp: Sequence[str]) -> tuple[int, int, int, int]:
@@ -96,3 +99,147 @@ def summarise(counts: UtteranceCounts) -> WerResult:
 def corpus_wer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> WerResult:
     """Corpus WER of word lists paired by position."""
     return summarise(utterance_counts(refs, hyps))
+
+
+# --- word-level alignments and character error rate -------------------------------------
+
+OpKind = Literal["equal", "substitute", "delete", "insert"]
+
+
+@dataclass(frozen=True)
+class WordOp:
+    """One step of an alignment: ``ref`` is None for an insertion, ``hyp`` for a deletion."""
+
+    kind: OpKind
+    ref: str | None
+    hyp: str | None
+
+
+@dataclass(frozen=True)
+class Alignment:
+    """A minimum-edit alignment of one hypothesis against its reference, word by word."""
+
+    ops: tuple[WordOp, ...]
+
+    def _count(self, kind: OpKind) -> int:
+        return sum(1 for op in self.ops if op.kind == kind)
+
+    @property
+    def hits(self) -> int:
+        return self._count("equal")
+
+    @property
+    def substitutions(self) -> int:
+        return self._count("substitute")
+
+    @property
+    def deletions(self) -> int:
+        return self._count("delete")
+
+    @property
+    def insertions(self) -> int:
+        return self._count("insert")
+
+    @property
+    def errors(self) -> int:
+        return len(self.ops) - self.hits
+
+    @property
+    def reference(self) -> list[str]:
+        return [op.ref for op in self.ops if op.ref is not None]
+
+    @property
+    def hypothesis(self) -> list[str]:
+        return [op.hyp for op in self.ops if op.hyp is not None]
+
+    def counts(self) -> tuple[int, int, int, int]:
+        """(substitutions, deletions, insertions, hits), the order of :func:`align_counts`."""
+        return self.substitutions, self.deletions, self.insertions, self.hits
+
+
+def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[Any]) -> Alignment:
+    ops: list[WordOp] = []
+    for c in chunks:
+        r0, r1, h0, h1 = c.ref_start_idx, c.ref_end_idx, c.hyp_start_idx, c.hyp_end_idx
+        if c.type in ("equal", "substitute"):
+            kind: OpKind = c.type
+            ops.extend(WordOp(kind, ref[r0 + k], hyp[h0 + k]) for k in range(r1 - r0))
+        elif c.type == "delete":
+            ops.extend(WordOp("delete", ref[k], None) for k in range(r0, r1))
+        else:
+            ops.extend(WordOp("insert", None, hyp[k]) for k in range(h0, h1))
+    return Alignment(tuple(ops))
+
+
+def align_many(
+    refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]
+) -> list[Alignment]:
+    """Word alignments of hypotheses against references paired by position (one jiwer call)."""
+    if len(refs) != len(hyps):
+        raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
+    out: list[Alignment | None] = [None] * len(refs)
+    batch: list[int] = []
+    for i, (ref, hyp) in enumerate(zip(refs, hyps, strict=True)):
+        if not ref or not hyp:
+            # jiwer refuses empty references; both trivial cases have one alignment only
+            out[i] = Alignment(tuple([WordOp("delete", w, None) for w in ref]
+                                     + [WordOp("insert", None, w) for w in hyp]))
+        else:
+            batch.append(i)
+    if batch:
+        result = jiwer.process_words([" ".join(refs[i]) for i in batch],
+                                     [" ".join(hyps[i]) for i in batch])
+        for i, chunks in zip(batch, result.alignments, strict=True):
+            out[i] = _ops_from_chunks(refs[i], hyps[i], chunks)
+    return [a for a in out if a is not None]
+
+
+def align(ref: Sequence[str], hyp: Sequence[str]) -> Alignment:
+    """The word alignment of one hypothesis against its reference."""
+    return align_many([ref], [hyp])[0]
+
+
+def counts_from_alignments(alignments: Sequence[Alignment]) -> UtteranceCounts:
+    """Per-utterance counts taken from alignments already computed."""
+    table = np.array([a.counts() for a in alignments], dtype=np.int64).reshape(-1, 4).T
+    return UtteranceCounts(table[0], table[1], table[2], table[3])
+
+
+@dataclass(frozen=True)
+class CerResult:
+    """Corpus character error rate over the normalised text, spaces between words included."""
+
+    cer: float
+    substitutions: int
+    deletions: int
+    insertions: int
+    hits: int
+    reference_chars: int
+
+    def to_dict(self) -> dict[str, float | int]:
+        return asdict(self)
+
+
+def corpus_cer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> CerResult:
+    """Character errors of ``" ".join(words)`` on both sides, summed over the corpus."""
+    if len(refs) != len(hyps):
+        raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
+    s = d = i = h = 0
+    pairs = [(" ".join(r), " ".join(y)) for r, y in zip(refs, hyps, strict=True)]
+    full = [(r, y) for r, y in pairs if r and y]
+    for r, y in pairs:
+        if not r:
+            i += len(y)
+        elif not y:
+            d += len(r)
+    if full:
+        out = jiwer.process_characters([r for r, _ in full], [y for _, y in full])
+        s += int(out.substitutions)
+        d += int(out.deletions)
+        i += int(out.insertions)
+        h += int(out.hits)
+    n = s + d + h
+    return CerResult(
+        cer=(s + d + i) / n if n else (0.0 if i == 0 else float("inf")),
+        substitutions=s, deletions=d, insertions=i, hits=h, reference_chars=n,
+    )

@@ -39,11 +39,11 @@ def _root(
 def _register() -> None:
     # Each module adds its commands to the app it is given; imported here, not at the top,
     # so that the composition stays in this one function.
-    from rescore.cli import commands, lm
+    from rescore.cli import commands, lm, report
 
     commands.register(app, lm_app)
     lm.register(app, lm_app)
-
+    report.register(app, lm_app)
 
 _register()
 

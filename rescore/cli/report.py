@@ -1,0 +1,100 @@
+"""``rescore report``: the release report of two systems on the same utterances, and its gate."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+
+from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
+from rescore.errors import GateError, InputError
+from rescore.ioutil import iter_text_lines, sha256_file
+
+SystemOpt = Annotated[Path, typer.Option(
+    help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
+
+
+def _read_tuning(path: Path) -> dict[str, Any]:
+    text = "\n".join(line for _, line in iter_text_lines(path))
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{exc.msg} (column {exc.colno})", path=path, line=exc.lineno,
+                         field="json") from None
+    if not isinstance(data, dict):
+        raise InputError("expected a JSON object", path=path)
+    return data
+
+
+@guarded
+def report(
+    before: SystemOpt,
+    after: SystemOpt,
+    out: Annotated[Path, typer.Option("-o", "--out", help="Output folder.",
+                                      show_default=False)],
+    refs: RefsOpt = None,
+    resamples: Annotated[int, typer.Option("--resamples", min=1,
+                                           help="Bootstrap resamples.")] = 10_000,
+    seed: Annotated[int, typer.Option("--seed", help="Bootstrap seed.")] = 0,
+    tuning: Annotated[Path | None, typer.Option(
+        "--tuning", help="Tuning output (JSON with an error surface and depth curve).")] = None,
+    max_wer: Annotated[float | None, typer.Option(
+        "--max-wer", help="Gate: fail (exit 3) when the after WER is above this.")] = None,
+    max_regression: Annotated[float | None, typer.Option(
+        "--max-regression",
+        help="Gate: fail (exit 3) when after - before WER is above this (absolute).")] = None,
+    log_base: LogBaseOpt = None,
+    costs: CostsOpt = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
+    from rescore.nbest import read_refs
+    from rescore.report import (
+        build_report,
+        gate_failures,
+        load_system,
+        tuning_from_dict,
+        with_gate,
+        write_report,
+    )
+    from rescore.report.text import p_value
+
+    ref_map = None if refs is None else read_refs(refs)
+    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
+    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
+    tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
+                                                               path=str(tuning))
+    files = [p for p in (before, after, refs, tuning) if p is not None]
+    provenance = {"data_sha256": {str(p): sha256_file(p) for p in files}}
+    result = build_report(before_pairs, after_pairs, provenance=provenance,
+                          tuning=tuning_data, resamples=resamples, seed=seed)
+    result = with_gate(result, max_wer=max_wer, max_regression=max_regression)
+    written = write_report(result, out)
+    data = result.to_dict()
+    if as_json:
+        emit_json({k: data[k] for k in ("before", "after", "difference", "provenance")}
+                  | ({"gate": data["gate"]} if "gate" in data else {}))
+    else:
+        d = result.difference
+        table(None, ["", "before", "after", "change"], [
+            ("WER", pct(result.before.wer), pct(result.after.wer),
+             f"{100 * d.absolute:+.2f}%"),
+            ("interval of the change", "", "",
+             f"[{100 * d.ci_low:+.2f}%, {100 * d.ci_high:+.2f}%]"),
+            ("probability of improvement", "", "", f"{d.probability_of_improvement:.4f}"),
+            ("p (matched pairs / sign / Wilcoxon)", "", "",
+             " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
+        ])
+    reasons = gate_failures(result, max_wer=max_wer, max_regression=max_regression)
+    if reasons:
+        # the one line of a failed gate also says where the report is
+        raise GateError("release gate failed: " + "; ".join(reasons)
+                        + f" (report written to {out})")
+    info("wrote " + ", ".join(str(p) for p in written))
+
+
+def register(app: typer.Typer, lm_app: typer.Typer) -> None:
+    app.command()(report)

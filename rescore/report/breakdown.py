@@ -1,0 +1,143 @@
+"""Where the errors are: frequent confusions, changed utterances, WER by metadata value."""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+from rescore.wer import Alignment
+
+if TYPE_CHECKING:
+    from rescore.report.model import UtteranceRow
+
+TOP = 15
+CHANGED = 10
+MAX_GROUPS = 50
+
+
+@dataclass(frozen=True)
+class Confusions:
+    """Most frequent errors of one system, each list sorted by count then words."""
+
+    substitutions: tuple[tuple[str, str, int], ...]
+    insertions: tuple[tuple[str, int], ...]
+    deletions: tuple[tuple[str, int], ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "substitutions": [{"reference": r, "hypothesis": h, "count": c}
+                              for r, h, c in self.substitutions],
+            "insertions": [{"word": w, "count": c} for w, c in self.insertions],
+            "deletions": [{"word": w, "count": c} for w, c in self.deletions],
+        }
+
+
+@dataclass(frozen=True)
+class GroupRow:
+    value: str
+    utterances: int
+    reference_words: int
+    before_errors: int
+    after_errors: int
+
+    @property
+    def before_wer(self) -> float | None:
+        return self.before_errors / self.reference_words if self.reference_words else None
+
+    @property
+    def after_wer(self) -> float | None:
+        return self.after_errors / self.reference_words if self.reference_words else None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"value": self.value, "utterances": self.utterances,
+                "reference_words": self.reference_words,
+                "before_errors": self.before_errors, "after_errors": self.after_errors,
+                "before_wer": self.before_wer, "after_wer": self.after_wer}
+
+
+@dataclass(frozen=True)
+class Breakdown:
+    before: Confusions
+    after: Confusions
+    improved: tuple[str, ...]
+    worsened: tuple[str, ...]
+    by_meta: Mapping[str, tuple[GroupRow, ...]]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "before": self.before.to_dict(),
+            "after": self.after.to_dict(),
+            "most_improved": list(self.improved),
+            "most_worsened": list(self.worsened),
+            "by_meta": {k: [r.to_dict() for r in rows] for k, rows in self.by_meta.items()},
+        }
+
+
+def _ranked(counter: Counter[Any], top: int) -> list[tuple[Any, int]]:
+    return sorted(counter.items(), key=lambda kv: (-kv[1], kv[0]))[:top]
+
+
+def confusions(alignments: Sequence[Alignment], top: int = TOP) -> Confusions:
+    subs: Counter[tuple[str, str]] = Counter()
+    ins: Counter[str] = Counter()
+    dels: Counter[str] = Counter()
+    for al in alignments:
+        for op in al.ops:
+            if op.kind == "substitute" and op.ref is not None and op.hyp is not None:
+                subs[(op.ref, op.hyp)] += 1
+            elif op.kind == "insert" and op.hyp is not None:
+                ins[op.hyp] += 1
+            elif op.kind == "delete" and op.ref is not None:
+                dels[op.ref] += 1
+    return Confusions(
+        tuple((r, h, c) for (r, h), c in _ranked(subs, top)),
+        tuple(_ranked(ins, top)),
+        tuple(_ranked(dels, top)),
+    )
+
+
+def _groupable(value: Any) -> bool:
+    return isinstance(value, str | int | float | bool)
+
+
+def by_meta(rows: Sequence[UtteranceRow], max_groups: int = MAX_GROUPS
+            ) -> dict[str, tuple[GroupRow, ...]]:
+    """WER per value of each metadata key whose values are scalars in few enough groups.
+
+    A key is shown when every utterance that has it holds a scalar and it takes between 2
+    and ``max_groups`` values; utterances without the key form the group "(none)".
+    """
+    keys = sorted({k for r in rows for k in r.meta})
+    out: dict[str, tuple[GroupRow, ...]] = {}
+    for key in keys:
+        values = [r.meta.get(key) for r in rows]
+        if not all(v is None or _groupable(v) for v in values):
+            continue
+        labels = ["(none)" if v is None else str(v) for v in values]
+        distinct = sorted(set(labels))
+        if not 2 <= len(distinct) <= max_groups:
+            continue
+        acc: dict[str, list[int]] = {lab: [0, 0, 0, 0] for lab in distinct}
+        for lab, r in zip(labels, rows, strict=True):
+            a = acc[lab]
+            a[0] += 1
+            a[1] += r.reference_words
+            a[2] += r.before_errors
+            a[3] += r.after_errors
+        out[key] = tuple(GroupRow(lab, *acc[lab]) for lab in distinct)
+    return out
+
+
+def build_breakdown(rows: Sequence[UtteranceRow], top: int = TOP,
+                    changed: int = CHANGED) -> Breakdown:
+    improved = sorted((r for r in rows if r.change < 0), key=lambda r: (r.change, r.id))
+    worsened = sorted((r for r in rows if r.change > 0), key=lambda r: (-r.change, r.id))
+    return Breakdown(
+        before=confusions([r.before for r in rows], top),
+        after=confusions([r.after for r in rows], top),
+        improved=tuple(r.id for r in improved[:changed]),
+        worsened=tuple(r.id for r in worsened[:changed]),
+        by_meta=by_meta(rows),
+    )

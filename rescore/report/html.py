@@ -1,0 +1,293 @@
+"""The report as one self-contained HTML page: no network, no external assets.
+
+Every id, transcript and metadata value is escaped; a Content-Security-Policy admits only
+the page's own inline script (by hash) and inline styles, so even an escaping slip could
+not run foreign code or fetch anything.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import json
+from collections.abc import Iterable, Sequence
+from html import escape
+
+from rescore.report import plots
+from rescore.report import text as t
+from rescore.report.breakdown import Confusions
+from rescore.report.model import Report, UtteranceRow
+from rescore.wer import Alignment
+
+_CSS = """
+:root { --ok:#2f7d4f; --bad:#b3261e; --muted:#5f6670; --line:#d9dde3; }
+* { box-sizing: border-box; }
+body { font: 14px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, sans-serif;
+       margin: 0; color: #1d2127; background: #f6f7f9; }
+header, main, footer { max-width: 1100px; margin: 0 auto; padding: 0 24px; }
+header { padding-top: 20px; }
+h1 { font-size: 22px; margin: 0 0 4px; }
+h2 { font-size: 17px; margin: 28px 0 10px; border-bottom: 1px solid var(--line);
+     padding-bottom: 4px; }
+h3 { font-size: 14px; margin: 14px 0 6px; }
+.sub-title { color: var(--muted); margin: 0 0 12px; }
+.card { background: #fff; border: 1px solid var(--line); border-radius: 8px; padding: 14px;
+        margin-bottom: 14px; }
+.row { display: flex; gap: 14px; flex-wrap: wrap; align-items: flex-start; }
+.row > .card { flex: 1 1 320px; }
+table { border-collapse: collapse; width: 100%; }
+th, td { text-align: left; padding: 4px 8px; border-bottom: 1px solid var(--line);
+         vertical-align: top; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
+table.headline td.num { font-size: 15px; font-weight: 600; }
+.better { color: var(--ok); } .worse { color: var(--bad); }
+.gate { padding: 10px 14px; border-radius: 8px; margin-bottom: 14px; font-weight: 600; }
+.gate.pass { background: #e3f3e8; color: var(--ok); }
+.gate.fail { background: #fbe5e3; color: var(--bad); }
+figure { margin: 0; } figure svg { max-width: 100%; height: auto; }
+ul.notes { margin: 0; padding-left: 18px; color: var(--muted); }
+.controls { display: flex; gap: 10px; align-items: center; margin-bottom: 8px; }
+.controls input { flex: 1; padding: 6px 8px; border: 1px solid var(--line); border-radius: 6px; }
+.controls select { padding: 6px; }
+ol.utts { list-style: none; padding: 0; margin: 0; }
+li.utt { background: #fff; border: 1px solid var(--line); border-radius: 6px;
+         padding: 8px 10px; margin-bottom: 6px; }
+li.utt[hidden] { display: none; }
+.uid { font-family: ui-monospace, monospace; font-weight: 600; }
+.change { float: right; font-variant-numeric: tabular-nums; }
+table.words td { border: 0; padding: 1px 6px; }
+table.words td:first-child { color: var(--muted); width: 70px; }
+.w-sub { background: #fde7c7; border-bottom: 2px solid #e69a28; }
+ins { background: #dceefe; text-decoration: none; border-bottom: 2px solid #3b82c4; }
+del { background: #fbe0de; color: var(--bad); }
+.legend span { margin-right: 10px; }
+footer { color: var(--muted); padding-bottom: 30px; }
+.caution { background: #fff7e0; border: 1px solid #eed58c; color: #5c4700;
+           border-radius: 8px; padding: 12px 14px; margin: 24px 0 14px; }
+code { font-family: ui-monospace, monospace; font-size: 12px; word-break: break-all; }
+"""
+
+_SCRIPT = """
+(function () {
+  var box = document.getElementById('utt-filter');
+  var pick = document.getElementById('utt-show');
+  var shown = document.getElementById('utt-count');
+  var items = Array.prototype.slice.call(document.querySelectorAll('li.utt'));
+  function keep(li, want) {
+    var c = Number(li.getAttribute('data-change'));
+    if (want === 'changed') { return c !== 0; }
+    if (want === 'improved') { return c < 0; }
+    if (want === 'worsened') { return c > 0; }
+    if (want === 'unchanged') { return c === 0; }
+    return true;
+  }
+  function update() {
+    var q = box.value.toLowerCase();
+    var want = pick.value;
+    var n = 0;
+    items.forEach(function (li) {
+      var ok = keep(li, want) && (!q || li.textContent.toLowerCase().indexOf(q) >= 0);
+      li.hidden = !ok;
+      if (ok) { n += 1; }
+    });
+    shown.textContent = n + ' of ' + items.length + ' shown';
+  }
+  box.addEventListener('input', update);
+  pick.addEventListener('change', update);
+  update();
+})();
+"""
+
+
+def _e(value: object) -> str:
+    return escape(str(value), quote=True)
+
+
+def _csp() -> str:
+    digest = base64.b64encode(hashlib.sha256(_SCRIPT.encode("utf-8")).digest()).decode()
+    return (f"default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
+            f"script-src 'sha256-{digest}'; base-uri 'none'; form-action 'none'")
+
+
+def _table(head: Sequence[str], rows: Iterable[Sequence[object]], numeric_from: int = 1,
+           cls: str = "") -> str:
+    rows = list(rows)
+    if not rows:
+        return '<p class="sub-title">(none)</p>'
+    th = "".join(f'<th class="num">{_e(h)}</th>' if i >= numeric_from else f"<th>{_e(h)}</th>"
+                 for i, h in enumerate(head))
+    body = []
+    for row in rows:
+        cells = "".join(f'<td class="num">{_e(v)}</td>' if i >= numeric_from else
+                        f"<td>{_e(v)}</td>" for i, v in enumerate(row))
+        body.append(f"<tr>{cells}</tr>")
+    klass = f' class="{cls}"' if cls else ""
+    return f"<table{klass}><thead><tr>{th}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def _headline(report: Report) -> str:
+    rows = []
+    for label, shown, key, value in t.headline(report):
+        tone = ""
+        if key == "difference.absolute" and value != 0:
+            tone = " better" if value < 0 else " worse"
+        data = escape(json.dumps(value, allow_nan=False), quote=True)
+        rows.append(f'<tr><th>{_e(label)}</th><td class="num{tone}" data-key="{_e(key)}" '
+                    f'data-value="{data}">{_e(shown)}</td></tr>')
+    return f'<table class="headline"><tbody>{"".join(rows)}</tbody></table>'
+
+
+def _gate(report: Report) -> str:
+    if report.gate is None:
+        return ""
+    if report.gate["passed"]:
+        return '<div class="gate pass" id="gate">Release gate passed</div>'
+    reasons = "; ".join(report.gate["reasons"])
+    return f'<div class="gate fail" id="gate">Release gate failed: {_e(reasons)}</div>'
+
+
+def _confusions(name: str, c: Confusions) -> str:
+    return (f'<div class="card"><h3>{_e(name)}</h3>'
+            "<h3>Substitutions</h3>"
+            + _table(["reference", "hypothesis", "count"], c.substitutions, 2)
+            + "<h3>Insertions</h3>" + _table(["word", "count"], c.insertions)
+            + "<h3>Deletions</h3>" + _table(["word", "count"], c.deletions) + "</div>")
+
+
+def marked_words(alignment: Alignment) -> str:
+    """The hypothesis with its differences from the reference marked word by word."""
+    parts = []
+    for op in alignment.ops:
+        if op.kind == "equal":
+            parts.append(_e(op.hyp))
+        elif op.kind == "substitute":
+            parts.append(f'<span class="w-sub" title="reference: {_e(op.ref)}">{_e(op.hyp)}'
+                         "</span>")
+        elif op.kind == "insert":
+            parts.append(f'<ins title="inserted">{_e(op.hyp)}</ins>')
+        else:
+            parts.append(f'<del title="deleted">{_e(op.ref)}</del>')
+    return " ".join(parts) if parts else '<span class="sub-title">(no words)</span>'
+
+
+def _utterance(index: int, u: UtteranceRow) -> str:
+    tone = " better" if u.change < 0 else (" worse" if u.change > 0 else "")
+    meta = ", ".join(f"{k}={v}" for k, v in sorted(u.meta.items(), key=lambda kv: kv[0]))
+    ref = " ".join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
+    return (
+        f'<li class="utt" id="u{index}" data-change="{u.change}">'
+        f'<span class="change{tone}">errors {u.before_errors} &rarr; {u.after_errors}</span>'
+        f'<span class="uid">{_e(u.id)}</span>'
+        + (f' <span class="sub-title">{_e(meta)}</span>' if meta else "")
+        + '<table class="words"><tbody>'
+        f"<tr><td>reference</td><td>{ref}</td></tr>"
+        f"<tr><td>before</td><td>{marked_words(u.before)}</td></tr>"
+        f"<tr><td>after</td><td>{marked_words(u.after)}</td></tr>"
+        "</tbody></table></li>"
+    )
+
+
+def _tuning(report: Report) -> str:
+    tuning = report.tuning
+    if tuning is None or (tuning.surface is None and not tuning.depth):
+        return ""
+    cards = []
+    if tuning.surface is not None:
+        cards.append('<div class="card"><h3>Error surface on the tuning set</h3><figure>'
+                     + plots.surface_heatmap(tuning.surface, tuning) + "</figure></div>")
+    if tuning.depth:
+        cards.append('<div class="card"><h3>WER by N-best depth</h3><figure>'
+                     + plots.depth_curve(tuning) + "</figure>"
+                     + _table(["k", "1-best", "rescored", "oracle"],
+                              [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
+                                t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
+    return f'<h2>Tuning</h2><div class="row">{"".join(cards)}</div>'
+
+
+def _changed(report: Report) -> str:
+    by_id = {u.id: u for u in report.utterances}
+    cards = []
+    for title, ids in (("Most improved", report.breakdown.improved),
+                       ("Most worsened", report.breakdown.worsened)):
+        cards.append(f'<div class="card"><h3>{title}</h3>'
+                     + _table(["id", "before", "after"],
+                              [(i, by_id[i].before_errors, by_id[i].after_errors) for i in ids])
+                     + "</div>")
+    return f'<div class="row">{"".join(cards)}</div>'
+
+
+def _by_meta(report: Report) -> str:
+    out = []
+    for key, groups in report.breakdown.by_meta.items():
+        out.append(f'<div class="card"><h3>WER by {_e(key)}</h3>'
+                   + _table([key, "utterances", "ref words", "WER before", "WER after"],
+                            [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
+                              t.pct(g.after_wer)) for g in groups]) + "</div>")
+    return f'<div class="row">{"".join(out)}</div>' if out else ""
+
+
+def render_html(report: Report) -> str:
+    counts = _table(
+        ["system", "WER", "substitutions", "deletions", "insertions", "hits",
+         "reference words", "CER"],
+        [(name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
+          w.reference_words, t.pct(c.cer))
+         for name, w, c in (("before", report.before, report.before_cer),
+                            ("after", report.after, report.after_cer))])
+    confusions = (_confusions("before", report.breakdown.before)
+                  + _confusions("after", report.breakdown.after))
+    notes = "".join(f"<li>{_e(n)}</li>" for n in t.method_notes(report))
+    utterances = "".join(_utterance(i, u) for i, u in enumerate(report.utterances))
+    provenance = _table(["item", "value"], t.provenance_rows(report), numeric_from=9)
+    return f"""<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta http-equiv="Content-Security-Policy" content="{_e(_csp())}">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<meta name="referrer" content="no-referrer">
+<title>{_e(t.TITLE)}</title>
+<style>{_CSS}</style>
+</head>
+<body>
+<header>
+<h1>{_e(t.TITLE)}</h1>
+<p class="sub-title">{report.before.utterances} utterances, {report.before.reference_words}
+reference words; normalisation {_e(report.provenance.get("normalisation", ""))}</p>
+</header>
+<main>
+{_gate(report)}
+<div class="row">
+<div class="card">{_headline(report)}</div>
+<div class="card"><figure>{plots.wer_intervals(report)}</figure></div>
+</div>
+<div class="card">{counts}</div>
+<div class="card"><ul class="notes">{notes}</ul></div>
+{_tuning(report)}
+<h2>Breakdown</h2>
+<div class="row">{confusions}</div>
+{_changed(report)}
+{_by_meta(report)}
+<h2>Utterances</h2>
+<div class="controls">
+<input id="utt-filter" type="search" placeholder="filter by id or words" aria-label="filter">
+<select id="utt-show" aria-label="show">
+<option value="all">all</option><option value="changed">changed</option>
+<option value="improved">improved</option><option value="worsened">worsened</option>
+<option value="unchanged">unchanged</option>
+</select>
+<span id="utt-count" class="sub-title"></span>
+</div>
+<p class="legend sub-title"><span class="w-sub">substituted</span><ins>inserted</ins>
+<del>deleted</del> (hover a substitution for the reference word)</p>
+<ol class="utts">{utterances}</ol>
+</main>
+<footer>
+<div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
+<h3>Provenance</h3>
+{provenance}
+</footer>
+<script>{_SCRIPT}</script>
+</body>
+</html>
+"""

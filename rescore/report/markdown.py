@@ -1,0 +1,78 @@
+"""The report as Markdown: headline table, breakdowns, gate, caution, provenance."""
+
+from __future__ import annotations
+
+import html
+from collections.abc import Sequence
+
+from rescore.report import text as t
+from rescore.report.breakdown import Confusions
+from rescore.report.model import Report
+
+
+def _cell(value: object) -> str:
+    # transcripts and ids are data: no Markdown or HTML of theirs may take effect
+    s = html.escape(str(value), quote=False)
+    return s.replace("|", "\\|").replace("\n", " ").replace("`", "\\`").replace("*", "\\*")
+
+
+def _table(head: Sequence[str], rows: Sequence[Sequence[object]]) -> list[str]:
+    if not rows:
+        return ["(none)", ""]
+    out = ["| " + " | ".join(head) + " |",
+           "|" + "|".join(" --- " if i == 0 else " ---: " for i in range(len(head))) + "|"]
+    out += ["| " + " | ".join(_cell(v) for v in row) + " |" for row in rows]
+    return [*out, ""]
+
+
+def _confusions(name: str, c: Confusions) -> list[str]:
+    out = [f"### Most frequent errors, {name}", ""]
+    out += ["Substitutions:", ""]
+    out += _table(["reference", "hypothesis", "count"], c.substitutions)
+    out += ["Insertions:", ""]
+    out += _table(["word", "count"], c.insertions)
+    out += ["Deletions:", ""]
+    out += _table(["word", "count"], c.deletions)
+    return out
+
+
+def render_markdown(report: Report) -> str:
+    out = [f"# {t.TITLE}", ""]
+    out += _table(["measure", "value"],
+                  [(label, shown) for label, shown, _, _ in t.headline(report)])
+    if report.gate is not None:
+        verdict = "passed" if report.gate["passed"] else "FAILED: " + "; ".join(
+            report.gate["reasons"])
+        out += [f"**Release gate:** {_cell(verdict)}", ""]
+    out += ["## Counts", ""]
+    rows = []
+    for name, w, c in (("before", report.before, report.before_cer),
+                       ("after", report.after, report.after_cer)):
+        rows.append((name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
+                     w.reference_words, t.pct(c.cer)))
+    out += _table(["system", "WER", "sub", "del", "ins", "hits", "ref words", "CER"], rows)
+    out += ["## Method", ""] + [f"- {_cell(n)}" for n in t.method_notes(report)] + [""]
+    out += ["## Breakdown", ""]
+    out += _confusions("before", report.breakdown.before)
+    out += _confusions("after", report.breakdown.after)
+    by_id = {u.id: u for u in report.utterances}
+    for title, ids in (("Most improved utterances", report.breakdown.improved),
+                       ("Most worsened utterances", report.breakdown.worsened)):
+        out += [f"### {title}", ""]
+        out += _table(["id", "errors before", "errors after", "after"],
+                      [(i, by_id[i].before_errors, by_id[i].after_errors,
+                        " ".join(by_id[i].after.hypothesis)) for i in ids])
+    for key, groups in report.breakdown.by_meta.items():
+        out += [f"### WER by {_cell(key)}", ""]
+        out += _table([_cell(key), "utterances", "ref words", "WER before", "WER after"],
+                      [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
+                        t.pct(g.after_wer)) for g in groups])
+    if report.tuning is not None and report.tuning.depth:
+        out += ["## WER by N-best depth", ""]
+        out += _table(["k", "1-best", "rescored", "oracle"],
+                      [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
+                       for r in report.tuning.depth])
+    out += ["## Provenance", ""]
+    out += _table(["item", "value"], t.provenance_rows(report))
+    out += ["---", "", f"**Caution.** {t.CAUTION}", ""]
+    return "\n".join(out)

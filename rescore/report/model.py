@@ -1,0 +1,347 @@
+"""The data of a release report: per-utterance pairs in, one frozen :class:`Report` out.
+
+Everything here is plain data computed from two systems' transcripts of the same
+utterances; the writers (json, markdown, html) only format it.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+
+from rescore import __version__
+from rescore.errors import InputError
+from rescore.report.breakdown import Breakdown, build_breakdown
+from rescore.significance import (
+    BootstrapResult,
+    MatchedPairsResult,
+    SignTestResult,
+    WilcoxonResult,
+    matched_pairs,
+    paired_bootstrap,
+    sign_test,
+    wilcoxon_signed_rank,
+)
+from rescore.text import NORMALISATION, tokens
+from rescore.wer import (
+    Alignment,
+    CerResult,
+    WerResult,
+    align_many,
+    corpus_cer,
+    counts_from_alignments,
+    summarise,
+)
+
+DEFAULT_RESAMPLES = 10_000
+DEFAULT_SEED = 0
+DEFAULT_CONFIDENCE = 0.95
+DEFAULT_MIN_RUN = 2
+
+
+@dataclass(frozen=True)
+class Pair:
+    """One utterance of one system: normalised reference and hypothesis words."""
+
+    id: str
+    reference: tuple[str, ...]
+    hypothesis: tuple[str, ...]
+    meta: Mapping[str, Any] = field(default_factory=dict)
+
+    @classmethod
+    def from_text(cls, id: str, reference: str, hypothesis: str,
+                  meta: Mapping[str, Any] | None = None) -> Pair:
+        """Normalise both sides with :func:`rescore.text.tokens`."""
+        return cls(id, tuple(tokens(reference)), tuple(tokens(hypothesis)), dict(meta or {}))
+
+
+@dataclass(frozen=True)
+class Surface:
+    """Tuning errors on a grid: ``errors[i][j]`` at ``lm_values[i]``, ``penalty_values[j]``."""
+
+    lm_values: tuple[float, ...]
+    penalty_values: tuple[float, ...]
+    errors: tuple[tuple[float, ...], ...]
+
+
+@dataclass(frozen=True)
+class DepthRow:
+    k: int
+    one_best_wer: float | None
+    tuned_wer: float | None
+    oracle_wer: float | None
+
+
+@dataclass(frozen=True)
+class Tuning:
+    """What the report shows of a tuning run; any part may be absent."""
+
+    surface: Surface | None = None
+    depth: tuple[DepthRow, ...] = ()
+    lm_weight: float | None = None
+    insertion_penalty: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        if self.surface is not None:
+            out["surface"] = {"lm_values": list(self.surface.lm_values),
+                              "penalty_values": list(self.surface.penalty_values),
+                              "errors": [list(r) for r in self.surface.errors]}
+        if self.depth:
+            out["depth"] = [vars(r).copy() for r in self.depth]
+        if self.lm_weight is not None:
+            out["lm_weight"] = self.lm_weight
+        if self.insertion_penalty is not None:
+            out["insertion_penalty"] = self.insertion_penalty
+        return out
+
+
+@dataclass(frozen=True)
+class Difference:
+    """The contract's ``difference`` object: after minus before, with its evidence."""
+
+    absolute: float
+    relative: float | None
+    ci_low: float
+    ci_high: float
+    probability_of_improvement: float
+    mapsswe_p: float
+    sign_test_p: float
+    wilcoxon_p: float
+
+    def to_dict(self) -> dict[str, float | None]:
+        return dict(vars(self))
+
+
+@dataclass(frozen=True)
+class UtteranceRow:
+    id: str
+    reference_words: int
+    before: Alignment
+    after: Alignment
+    meta: Mapping[str, Any]
+
+    @property
+    def before_errors(self) -> int:
+        return self.before.errors
+
+    @property
+    def after_errors(self) -> int:
+        return self.after.errors
+
+    @property
+    def change(self) -> int:
+        return self.after.errors - self.before.errors
+
+
+@dataclass(frozen=True)
+class Report:
+    before: WerResult
+    after: WerResult
+    before_cer: CerResult
+    after_cer: CerResult
+    difference: Difference
+    bootstrap: BootstrapResult
+    matched_pairs: MatchedPairsResult
+    sign: SignTestResult
+    wilcoxon: WilcoxonResult
+    breakdown: Breakdown
+    utterances: tuple[UtteranceRow, ...]
+    provenance: Mapping[str, Any]
+    tuning: Tuning | None = None
+    gate: Mapping[str, Any] | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "before": self.before.to_dict(),
+            "after": self.after.to_dict(),
+            "difference": self.difference.to_dict(),
+            "character": {"before": self.before_cer.to_dict(),
+                          "after": self.after_cer.to_dict()},
+            "tests": {
+                "bootstrap": self.bootstrap.to_dict(),
+                "matched_pairs": self.matched_pairs.to_dict(),
+                "sign": self.sign.to_dict(),
+                "wilcoxon": self.wilcoxon.to_dict(),
+            },
+            "breakdown": self.breakdown.to_dict(),
+            "utterances": [
+                {"id": u.id, "reference_words": u.reference_words,
+                 "before_errors": u.before_errors, "after_errors": u.after_errors,
+                 "reference": " ".join(u.before.reference),
+                 "before": " ".join(u.before.hypothesis),
+                 "after": " ".join(u.after.hypothesis)}
+                for u in self.utterances
+            ],
+        }
+        if self.tuning is not None:
+            out["tuning"] = self.tuning.to_dict()
+        if self.gate is not None:
+            out["gate"] = dict(self.gate)
+        out["provenance"] = dict(self.provenance)
+        return out
+
+
+def _match(before: Sequence[Pair], after: Sequence[Pair]) -> list[tuple[Pair, Pair]]:
+    """Pair up the two systems by id, in the before system's order."""
+    for name, pairs in (("before", before), ("after", after)):
+        seen: set[str] = set()
+        for p in pairs:
+            if p.id in seen:
+                raise InputError(f"utterance id {p.id!r} appears twice", field=name)
+            seen.add(p.id)
+    by_id = {p.id: p for p in after}
+    before_ids = {p.id for p in before}
+    missing_after = [p.id for p in before if p.id not in by_id]
+    missing_before = [p.id for p in after if p.id not in before_ids]
+    if missing_after or missing_before:
+        parts = []
+        if missing_after:
+            parts.append(f"missing from after: {_list_ids(missing_after)}")
+        if missing_before:
+            parts.append(f"missing from before: {_list_ids(missing_before)}")
+        raise InputError(f"{len(before)} utterances before, {len(after)} after; "
+                         + "; ".join(parts))
+    out = []
+    for b in before:
+        a = by_id[b.id]
+        if a.reference != b.reference:
+            raise InputError(f"utterance {b.id!r} has different references before and after")
+        out.append((b, a))
+    if not out:
+        raise InputError("no utterances to compare")
+    return out
+
+
+def _list_ids(ids: Sequence[str], limit: int = 10) -> str:
+    shown = ", ".join(ids[:limit])
+    return shown if len(ids) <= limit else f"{shown} and {len(ids) - limit} more"
+
+
+def build_report(
+    before_pairs: Sequence[Pair],
+    after_pairs: Sequence[Pair],
+    *,
+    provenance: Mapping[str, Any] | None = None,
+    tuning: Tuning | Mapping[str, Any] | None = None,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = DEFAULT_SEED,
+    confidence: float = DEFAULT_CONFIDENCE,
+    min_run: int = DEFAULT_MIN_RUN,
+) -> Report:
+    """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
+
+    ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
+    and ``depth`` are shown when present).
+    """
+    if tuning is not None and not isinstance(tuning, Tuning):
+        tuning = tuning_from_dict(tuning)
+    matched = _match(before_pairs, after_pairs)
+    refs = [b.reference for b, _ in matched]
+    hyp_b = [b.hypothesis for b, _ in matched]
+    hyp_a = [a.hypothesis for _, a in matched]
+    al_b = align_many(refs, hyp_b)
+    al_a = align_many(refs, hyp_a)
+    counts_b = counts_from_alignments(al_b)
+    counts_a = counts_from_alignments(al_a)
+    wer_b, wer_a = summarise(counts_b), summarise(counts_a)
+    boot = paired_bootstrap(counts_b.errors, counts_a.errors, counts_b.reference_words,
+                            resamples=resamples, seed=seed, confidence=confidence)
+    mp = matched_pairs(al_b, al_a, min_run=min_run)
+    diffs = counts_a.errors - counts_b.errors
+    sign = sign_test(diffs)
+    wil = wilcoxon_signed_rank(diffs)
+    absolute = wer_a.wer - wer_b.wer
+    difference = Difference(
+        absolute=absolute,
+        relative=absolute / wer_b.wer if wer_b.wer > 0 and math.isfinite(wer_b.wer) else None,
+        ci_low=boot.difference_ci[0],
+        ci_high=boot.difference_ci[1],
+        probability_of_improvement=boot.probability_of_improvement,
+        mapsswe_p=mp.p_value,
+        sign_test_p=sign.p_value,
+        wilcoxon_p=wil.p_value,
+    )
+    rows = tuple(
+        UtteranceRow(b.id, len(b.reference), x, y, dict(b.meta) or dict(a.meta))
+        for (b, a), x, y in zip(matched, al_b, al_a, strict=True)
+    )
+    prov: dict[str, Any] = {
+        "package": "rescore",
+        "version": __version__,
+        "normalisation": NORMALISATION,
+        "bootstrap": {"resamples": resamples, "seed": seed, "confidence": confidence,
+                      "generator": f"numpy {np.__version__} default_rng (PCG64)"},
+        "matched_pairs": {"min_run": min_run},
+        "wilcoxon": {"zeros": "dropped", "ties": "mid-ranks", "exact_limit": 50},
+    }
+    prov.update(provenance or {})
+    return Report(
+        before=wer_b, after=wer_a,
+        before_cer=corpus_cer(refs, hyp_b), after_cer=corpus_cer(refs, hyp_a),
+        difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
+        breakdown=build_breakdown(rows),
+        utterances=rows, provenance=prov, tuning=tuning,
+    )
+
+
+def gate_failures(report: Report, *, max_wer: float | None = None,
+                  max_regression: float | None = None) -> list[str]:
+    """Why the release gates fail (empty when they pass or none is set)."""
+    reasons = []
+    if max_wer is not None and report.after.wer > max_wer:
+        reasons.append(f"after WER {report.after.wer:.4f} is above --max-wer {max_wer:g}")
+    if max_regression is not None and report.difference.absolute > max_regression:
+        reasons.append(f"WER change {report.difference.absolute:+.4f} is above "
+                       f"--max-regression {max_regression:g}")
+    return reasons
+
+
+def with_gate(report: Report, *, max_wer: float | None, max_regression: float | None) -> Report:
+    """The report with its gate settings and verdict recorded (unchanged when none is set)."""
+    if max_wer is None and max_regression is None:
+        return report
+    reasons = gate_failures(report, max_wer=max_wer, max_regression=max_regression)
+    gate = {"max_wer": max_wer, "max_regression": max_regression,
+            "passed": not reasons, "reasons": reasons}
+    return replace(report, gate=gate)
+
+
+def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tuning:
+    """Read the parts of a tuning result the report shows; absent parts are skipped."""
+    surface = None
+    raw = data.get("surface")
+    if isinstance(raw, Mapping):
+        try:
+            lm = tuple(float(v) for v in raw["lm_values"])
+            pen = tuple(float(v) for v in raw["penalty_values"])
+            errors = tuple(tuple(float(v) for v in row) for row in raw["errors"])
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"cannot read the error surface ({exc})", path=path,
+                             field="surface") from None
+        if len(errors) != len(lm) or any(len(r) != len(pen) for r in errors):
+            raise InputError(
+                f"errors should be {len(lm)} rows of {len(pen)} values (one row per LM weight)",
+                path=path, field="surface.errors")
+        surface = Surface(lm, pen, errors)
+    depth: list[DepthRow] = []
+    rows = data.get("depth")
+    if isinstance(rows, Sequence):
+        for i, row in enumerate(rows):
+            try:
+                depth.append(DepthRow(int(row["k"]), *(
+                    None if row.get(key) is None else float(row[key])
+                    for key in ("one_best_wer", "tuned_wer", "oracle_wer"))))
+            except (KeyError, TypeError, ValueError, AttributeError) as exc:
+                raise InputError(f"cannot read a depth row ({exc})", path=path,
+                                 field=f"depth[{i}]") from None
+
+    def number(key: str) -> float | None:
+        v = data.get(key)
+        return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
+
+    return Tuning(surface, tuple(depth), number("lm_weight"), number("insertion_penalty"))

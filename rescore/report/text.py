@@ -1,0 +1,90 @@
+"""Wording and number formats shared by the Markdown and HTML writers."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+from rescore.report.model import Report
+
+TITLE = "Release report: WER before and after rescoring"
+
+CAUTION = (
+    "A WER measured on one test set guarantees nothing on another: a different speaker, "
+    "microphone, room, vocabulary or way of speaking can change it in either direction. "
+    "Transcripts that feed medical, legal or safety decisions need validation on the "
+    "deployment's own data, under that field's rules and by licensed practitioners, before "
+    "anyone relies on them."
+)
+
+
+def pct(value: float | None, digits: int = 2) -> str:
+    return "-" if value is None else f"{100 * value:.{digits}f}%"
+
+
+def signed_pct(value: float | None, digits: int = 2) -> str:
+    return "-" if value is None else f"{100 * value:+.{digits}f}%"
+
+
+def p_value(value: float) -> str:
+    return "< 0.0001" if value < 1e-4 else f"{value:.4f}"
+
+
+def interval(lo: float, hi: float) -> str:
+    return f"[{signed_pct(lo)}, {signed_pct(hi)}]"
+
+
+def plain_interval(lo: float, hi: float) -> str:
+    return f"[{pct(lo)}, {pct(hi)}]"
+
+
+def headline(report: Report) -> list[tuple[str, str, str, Any]]:
+    """(label, display text, report.json key, exact value) rows of the headline table."""
+    d, b = report.difference, report.bootstrap
+    level = f"{100 * b.confidence:g}%"
+    return [
+        ("WER before", pct(report.before.wer), "before.wer", report.before.wer),
+        ("WER after", pct(report.after.wer), "after.wer", report.after.wer),
+        ("Absolute change (after - before)", signed_pct(d.absolute), "difference.absolute",
+         d.absolute),
+        ("Relative change", signed_pct(d.relative, 1), "difference.relative", d.relative),
+        (f"{level} interval of the change", interval(d.ci_low, d.ci_high),
+         "difference.ci_low,difference.ci_high", [d.ci_low, d.ci_high]),
+        (f"{level} interval of WER before", plain_interval(*b.before_ci),
+         "tests.bootstrap.before_ci", list(b.before_ci)),
+        (f"{level} interval of WER after", plain_interval(*b.after_ci),
+         "tests.bootstrap.after_ci", list(b.after_ci)),
+        ("Probability of improvement", f"{d.probability_of_improvement:.4f}",
+         "difference.probability_of_improvement", d.probability_of_improvement),
+        ("Matched-pairs segment test p", p_value(d.mapsswe_p), "difference.mapsswe_p",
+         d.mapsswe_p),
+        ("Sign test p", p_value(d.sign_test_p), "difference.sign_test_p", d.sign_test_p),
+        ("Wilcoxon signed-rank p", p_value(d.wilcoxon_p), "difference.wilcoxon_p",
+         d.wilcoxon_p),
+    ]
+
+
+def method_notes(report: Report) -> list[str]:
+    b, m, s, w = report.bootstrap, report.matched_pairs, report.sign, report.wilcoxon
+    return [
+        f"Paired bootstrap over {report.before.utterances} utterances: {b.resamples} "
+        f"resamples, seed {b.seed}, percentile intervals; probability of improvement is the "
+        "share of resamples in which the after system has the lower WER.",
+        f"Matched-pairs segment test over {m.segments} segments bounded by runs of at least "
+        f"{m.min_run} words both systems got right: mean difference {m.mean:+.4f}, "
+        f"W = {m.z:.4f}.",
+        f"Sign test: {s.improved} utterances improved, {s.worsened} worsened, {s.ties} "
+        "unchanged (unchanged ones left out, exact binomial).",
+        f"Wilcoxon signed-rank on per-utterance error changes: {w.n} non-zero, "
+        f"{w.zeros} zero (left out), {w.method} p-value.",
+        f"Text normalisation on both sides: {report.provenance.get('normalisation')}.",
+    ]
+
+
+def provenance_rows(report: Report) -> list[tuple[str, str]]:
+    rows = []
+    for key, value in report.provenance.items():
+        text = value if isinstance(value, str) else json.dumps(value, sort_keys=True,
+                                                                ensure_ascii=False)
+        rows.append((key, text))
+    return rows

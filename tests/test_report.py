@@ -1,0 +1,192 @@
+"""The report library: contract keys, determinism, escaping, breakdowns, atomic writing."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import pytest
+
+from rescore.errors import InputError
+from rescore.report import (
+    FILES,
+    Pair,
+    build_report,
+    gate_failures,
+    render_all,
+    tuning_from_dict,
+    with_gate,
+    write_report,
+)
+from rescore.report.html import marked_words
+from rescore.text import NORMALISATION
+from rescore.wer import align
+
+
+def w(text: str) -> list[str]:
+    """Words of a space-separated string."""
+    return text.split()
+
+TOL = 1e-12
+CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
+                       "probability_of_improvement", "mapsswe_p", "sign_test_p", "wilcoxon_p"}
+WER_KEYS = {"wer", "substitutions", "deletions", "insertions", "hits", "reference_words",
+            "utterances"}
+HOSTILE_ID = 'bay<script>window.__pwned=1</script>"onload=alert(1)'
+# '<', '>' and '=' are symbols, not punctuation, so they survive normalisation and a hostile
+# transcript reaches the writers
+HOSTILE_TEXT = 'pH é <script>window.__pwned=2</script> "onload=alert(2)'
+
+
+def systems() -> tuple[list[Pair], list[Pair]]:
+    refs = ["vent bay three opened to forty percent", "lamp bank four dimmed",
+            "pump two primed at six", "ec reading one point eight"]
+    before = ["went bay three opened to forty percent", "lamp bank for dimmed",
+              "pump to primed at six", "ec reading one point eight"]
+    after = ["vent bay three opened to forty percent", "lamp bank four dimmed",
+             "pump to primed at six six", "ec reading one point eight"]
+    meta = [{"speaker": "s01"}, {"speaker": "s02"}, {"speaker": "s01"}, {"speaker": "s02"}]
+    ids = [f"lark-{i:04d}" for i in range(1, 5)]
+    rows = list(zip(ids, refs, before, after, meta, strict=True))
+    return ([Pair.from_text(i, r, b, m) for i, r, b, _, m in rows],
+            [Pair.from_text(i, r, a, m) for i, r, _, a, m in rows])
+
+
+def test_contract_keys_and_numbers() -> None:
+    before, after = systems()
+    report = build_report(before, after, provenance={"data_sha256": {"x": "0"}},
+                          resamples=500, seed=1)
+    data = json.loads(render_all(report)["report.json"])
+    assert set(data["before"]) == WER_KEYS and set(data["after"]) == WER_KEYS
+    assert set(data["difference"]) >= CONTRACT_DIFFERENCE
+    # derived by hand: 21 reference words (7 + 4 + 5 + 5); before has 3 substitutions
+    # (went, for, to), after 1 substitution (to) and 1 insertion (six)
+    assert data["before"]["wer"] == pytest.approx(3 / 21, abs=TOL)
+    assert data["after"]["wer"] == pytest.approx(2 / 21, abs=TOL)
+    d = data["difference"]
+    assert d["absolute"] == pytest.approx(data["after"]["wer"] - data["before"]["wer"], abs=TOL)
+    assert d["relative"] == pytest.approx(-1 / 3, abs=TOL)
+    assert [d["ci_low"], d["ci_high"]] == data["tests"]["bootstrap"]["difference_ci"]
+    prov = data["provenance"]
+    assert prov["normalisation"] == NORMALISATION
+    assert prov["bootstrap"]["seed"] == 1 and prov["bootstrap"]["resamples"] == 500
+    assert prov["data_sha256"] == {"x": "0"}
+    assert "version" in prov
+
+
+def test_same_inputs_give_byte_identical_files(tmp_path: Path) -> None:
+    # the release review must be able to regenerate the exact files
+    before, after = systems()
+    tuning = {"surface": {"lm_values": [0, 1], "penalty_values": [-1, 0, 1],
+                          "errors": [[5, 4, 6], [3, 2, 4]]}}
+    for name in ("a", "b"):
+        write_report(build_report(before, after, provenance={}, tuning=tuning,
+                                  resamples=300, seed=3), tmp_path / name)
+    for f in FILES:
+        assert (tmp_path / "a" / f).read_bytes() == (tmp_path / "b" / f).read_bytes()
+
+
+def test_mismatched_ids_name_the_missing_ones() -> None:
+    before, after = systems()
+    with pytest.raises(InputError, match="4 utterances before, 3 after; missing from after: "
+                                         "lark-0004"):
+        build_report(before, after[:3], provenance={})
+
+
+def test_different_references_are_refused() -> None:
+    before, after = systems()
+    after[0] = Pair.from_text("lark-0001", "vent bay two", "vent bay two")
+    with pytest.raises(InputError, match="different references"):
+        build_report(before, after, provenance={})
+
+
+def test_breakdown_counts_and_meta_groups() -> None:
+    before, after = systems()
+    b = build_report(before, after, provenance={}, resamples=200).breakdown
+    # derived by hand from the transcripts in systems()
+    assert set(b.before.substitutions) == {("vent", "went", 1), ("four", "for", 1),
+                                           ("two", "to", 1)}
+    assert b.after.insertions == (("six", 1),)
+    assert b.improved == ("lark-0001", "lark-0002")
+    assert b.worsened == ("lark-0003",)
+    speakers = {g.value: (g.before_errors, g.after_errors) for g in b.by_meta["speaker"]}
+    assert speakers == {"s01": (2, 2), "s02": (1, 0)}
+
+
+def test_hostile_text_is_escaped_everywhere() -> None:
+    before, after = systems()
+    before.append(Pair.from_text(HOSTILE_ID, "pH é ok", HOSTILE_TEXT))
+    after.append(Pair.from_text(HOSTILE_ID, "pH é ok", HOSTILE_TEXT))
+    files = render_all(build_report(before, after, provenance={}, resamples=200))
+    page, md = files["report.html"], files["report.md"]
+    assert "<script>window.__pwned" not in page
+    assert "&lt;script&gt;window.__pwned=1&lt;/script&gt;&quot;onload=alert(1)" in page
+    assert page.count("<script>") == 1  # the page's own filter script only
+    assert "<script>" not in md and "&lt;script&gt;" in md
+    assert json.loads(files["report.json"])["utterances"][-1]["id"] == HOSTILE_ID
+
+
+def test_html_is_self_contained() -> None:
+    before, after = systems()
+    page = render_all(build_report(before, after, provenance={}, resamples=200))["report.html"]
+    # SVG's xmlns names a namespace and fetches nothing; nothing else may point outside
+    stripped = page.replace('xmlns="http://www.w3.org/2000/svg"', "").replace(
+        'xmlns:xlink="http://www.w3.org/1999/xlink"', "")
+    for marker in ("http://", "https://", "src=", "@import", "//"):
+        assert marker not in stripped, marker
+    # url() only for the SVG's own clip paths
+    assert re.findall(r"url\((?!#)", stripped) == []
+    assert "default-src &#x27;none&#x27;" in page  # the CSP, attribute-escaped
+
+
+def test_caution_in_markdown_and_html() -> None:
+    before, after = systems()
+    files = render_all(build_report(before, after, provenance={}, resamples=200))
+    for name in ("report.md", "report.html"):
+        assert "guarantees nothing on another" in files[name]
+        assert "licensed practitioners" in files[name]
+
+
+def test_marked_words_show_each_difference() -> None:
+    # one substitution, one deletion, one insertion, each marked with its own element
+    html = marked_words(align(w("bay three pump row vent"), w("day three row vent on")))
+    assert '<span class="w-sub" title="reference: bay">day</span>' in html
+    assert '<del title="deleted">pump</del>' in html
+    assert '<ins title="inserted">on</ins>' in html
+
+
+def test_nothing_written_when_rendering_fails(tmp_path: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    before, after = systems()
+    report = build_report(before, after, provenance={}, resamples=200)
+
+    def boom(_: object) -> str:
+        raise RuntimeError("plot failed")
+
+    monkeypatch.setattr("rescore.report.html.render_html", boom)
+    with pytest.raises(RuntimeError):
+        write_report(report, tmp_path / "out")
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+def test_gates() -> None:
+    before, after = systems()
+    report = build_report(before, after, provenance={}, resamples=200)
+    assert gate_failures(report, max_wer=0.2, max_regression=0.0) == []
+    assert gate_failures(report, max_wer=0.05)[0].startswith("after WER 0.0952 is above")
+    # swapped, the change is a regression of +1/21
+    worse = build_report(after, before, provenance={}, resamples=200)
+    assert "above --max-regression 0.01" in gate_failures(worse, max_regression=0.01)[0]
+    gated = with_gate(worse, max_wer=None, max_regression=0.01)
+    assert gated.gate is not None and gated.gate["passed"] is False
+
+
+def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
+    assert tuning_from_dict({"lm_weight": 0.8}).surface is None
+    depth = tuning_from_dict({"depth": [{"k": 1, "one_best_wer": 0.2, "tuned_wer": 0.2,
+                                         "oracle_wer": 0.2}, {"k": 5, "tuned_wer": 0.1}]}).depth
+    assert depth[1].oracle_wer is None and depth[1].tuned_wer == 0.1
+    with pytest.raises(InputError, match=r"surface\.errors"):
+        tuning_from_dict({"surface": {"lm_values": [0, 1], "penalty_values": [0],
+                                      "errors": [[1, 2]]}})

@@ -1,0 +1,169 @@
+"""``rescore report`` through typer's CliRunner: files, JSON, errors, gate, reproducibility."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from click.testing import Result
+from typer.testing import CliRunner
+
+from rescore.cli import app
+from rescore.ioutil import sha256_file
+from rescore.report import FILES
+
+TOL = 1e-12
+REFS = {
+    "lark-0001": "vent bay three opened to forty percent",
+    "lark-0002": "lamp bank four dimmed",
+    "lark-0003": "pump two primed at six",
+}
+BEFORE = {"lark-0001": "went bay three opened to forty percent",
+          "lark-0002": "lamp bank for dimmed", "lark-0003": "pump two primed at six"}
+AFTER = {"lark-0001": "vent bay three opened to forty percent",
+         "lark-0002": "lamp bank four dimmed", "lark-0003": "pump two primed at six"}
+
+
+def invoke(args: list[str | Path]) -> Result:
+    return CliRunner().invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+def write_tsv(path: Path, rows: dict[str, str]) -> Path:
+    path.write_text("".join(f"{k}\t{v}\n" for k, v in rows.items()), encoding="utf-8")
+    return path
+
+
+def write_nbest(path: Path, best: int | None) -> Path:
+    """Two hypotheses per utterance: the before text first, the after text second."""
+    lines = []
+    for k, ref in REFS.items():
+        rec: dict[str, object] = {
+            "id": k, "reference": ref,
+            "hypotheses": [{"text": BEFORE[k], "acoustic": -10.0},
+                           {"text": AFTER[k], "acoustic": -11.0}],
+            "meta": {"speaker": "s01" if k != "lark-0002" else "s02"}}
+        if best is not None:
+            rec["best"] = best
+        lines.append(json.dumps(rec))
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+@pytest.fixture
+def nbest_pair(tmp_path: Path) -> tuple[Path, Path]:
+    return write_nbest(tmp_path / "test.jsonl", None), write_nbest(tmp_path / "out.jsonl", 1)
+
+
+def test_report_from_nbest_files(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    before, after = nbest_pair
+    out = tmp_path / "rep"
+    res = invoke(["report", "--before", before, "--after", after, "-o", out,
+                  "--resamples", "300", "--seed", "7", "--json"])
+    assert res.exit_code == 0, res.output
+    printed = json.loads(res.stdout)
+    saved = json.loads((out / "report.json").read_text())
+    assert printed["difference"] == saved["difference"]
+    for name in FILES:
+        assert (out / name).is_file()
+    # derived by hand: 16 reference words; the 1-best of test.jsonl (no "best": the first
+    # hypothesis) has 2 substitutions, the rescored file's best has none
+    assert saved["before"]["wer"] == pytest.approx(2 / 16, abs=TOL)
+    assert saved["after"]["wer"] == 0.0
+    assert saved["difference"]["absolute"] == pytest.approx(-2 / 16, abs=TOL)
+    prov = saved["provenance"]
+    assert prov["data_sha256"] == {str(before): sha256_file(before),
+                                   str(after): sha256_file(after)}
+    assert prov["bootstrap"]["seed"] == 7 and prov["bootstrap"]["resamples"] == 300
+    assert [g["value"] for g in saved["breakdown"]["by_meta"]["speaker"]] == ["s01", "s02"]
+
+
+def test_report_from_transcripts_with_refs(tmp_path: Path) -> None:
+    refs = write_tsv(tmp_path / "refs.tsv", REFS)
+    before = write_tsv(tmp_path / "before.tsv", BEFORE)
+    after = write_tsv(tmp_path / "after.tsv", AFTER)
+    res = invoke(["report", "--before", before, "--after", after, "--refs", refs,
+                  "-o", tmp_path / "rep", "--resamples", "200"])
+    assert res.exit_code == 0, res.output
+    saved = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert saved["before"]["substitutions"] == 2 and saved["after"]["wer"] == 0.0
+    assert str(refs) in saved["provenance"]["data_sha256"]
+
+
+def test_missing_transcript_is_one_error_line(tmp_path: Path) -> None:
+    refs = write_tsv(tmp_path / "refs.tsv", REFS)
+    before = write_tsv(tmp_path / "before.tsv", BEFORE)
+    short = dict(AFTER)
+    del short["lark-0003"]
+    after = write_tsv(tmp_path / "after.tsv", short)
+    res = invoke(["report", "--before", before, "--after", after, "--refs", refs,
+                  "-o", tmp_path / "rep"])
+    assert res.exit_code == 1
+    assert res.stderr.strip() == (f"error: {after}: 3 references for 2 utterances; "
+                                  "missing ids: lark-0003")
+    assert not (tmp_path / "rep").exists()
+
+
+def test_transcript_without_refs_is_refused(tmp_path: Path) -> None:
+    before = write_tsv(tmp_path / "before.tsv", BEFORE)
+    res = invoke(["report", "--before", before, "--after", before, "-o", tmp_path / "rep"])
+    assert res.exit_code == 1
+    assert "needs references (--refs FILE)" in res.stderr
+    assert len(res.stderr.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize(("option", "value", "reason"), [
+    ("--max-wer", "0.01", "after WER 0.1250 is above --max-wer 0.01"),
+    ("--max-regression", "0.05", "WER change +0.1250 is above --max-regression 0.05"),
+])
+def test_gate_fails_after_writing(tmp_path: Path, nbest_pair: tuple[Path, Path],
+                                  option: str, value: str, reason: str) -> None:
+    # before and after swapped: the "after" system is the worse one, WER 2/16 = 0.125
+    good, bad = nbest_pair[1], nbest_pair[0]
+    out = tmp_path / "rep"
+    res = invoke(["report", "--before", good, "--after", bad, "-o", out,
+                  "--resamples", "200", option, value])
+    assert res.exit_code == 3
+    assert res.stderr.strip().splitlines() == [
+        f"error: release gate failed: {reason} (report written to {out})"]
+    saved = json.loads((out / "report.json").read_text())
+    assert saved["gate"]["passed"] is False and saved["gate"]["reasons"] == [reason]
+    assert "Release gate failed" in (out / "report.html").read_text()
+
+
+def test_gate_passes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200",
+                  "--max-wer", "0.05", "--max-regression", "0"])
+    assert res.exit_code == 0, res.output
+    assert json.loads((tmp_path / "rep" / "report.json").read_text())["gate"]["passed"]
+
+
+def test_same_inputs_same_bytes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    tuning = tmp_path / "tuning.json"
+    tuning.write_text(json.dumps({
+        "surface": {"lm_values": [0.0, 0.5, 1.0], "penalty_values": [-1.0, 0.0],
+                    "errors": [[9, 8], [7, 5], [6, 7]]},
+        "depth": [{"k": 1, "one_best_wer": 0.2, "tuned_wer": 0.2, "oracle_wer": 0.2},
+                  {"k": 2, "one_best_wer": 0.2, "tuned_wer": 0.1, "oracle_wer": 0.05}],
+        "lm_weight": 0.5, "insertion_penalty": 0.0, "search": "grid"}))
+    for name in ("a", "b"):
+        res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                      "-o", tmp_path / name, "--resamples", "200", "--tuning", tuning])
+        assert res.exit_code == 0, res.output
+    for f in FILES:
+        assert (tmp_path / "a" / f).read_bytes() == (tmp_path / "b" / f).read_bytes()
+    page = (tmp_path / "a" / "report.html").read_text()
+    assert 'aria-label="tuning error surface"' in page
+    assert 'aria-label="WER by N-best depth"' in page
+
+
+def test_bad_tuning_file(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    tuning = tmp_path / "tuning.json"
+    tuning.write_text('{"surface": {"lm_values": [0, 1], "penalty_values": [0], '
+                      '"errors": [[1]]}}')
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--tuning", tuning])
+    assert res.exit_code == 1
+    assert res.stderr.startswith(f"error: {tuning}: surface.errors: errors should be 2 rows")
+    assert not (tmp_path / "rep").exists()

@@ -1,0 +1,221 @@
+"""Significance tests against published formulas, SciPy, brute force and simulation."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+import scipy.stats
+
+from rescore.significance import (
+    binomial_two_sided,
+    matched_pairs,
+    matched_pairs_statistic,
+    mid_ranks,
+    paired_bootstrap,
+    segment_errors,
+    sign_test,
+    wilcoxon_signed_rank,
+)
+from rescore.wer import align
+
+
+def w(text: str) -> list[str]:
+    """Words of a space-separated string."""
+    return text.split()
+
+P_TOL = 1e-9
+
+
+# --- matched pairs -------------------------------------------------------------------------
+
+def test_matched_pairs_worked_example() -> None:
+    # source: Gillick and Cox (1989) statistic W = mean / (sd / sqrt(n)) with the sample
+    # variance: Z = (2, -1, -1, 1) has mean 0.25, variance 2.25 (sum of squared deviations
+    # 6.75 over n - 1 = 3), W = 0.25 / (1.5 / 2) = 0.3333, two-sided normal p = 0.739
+    r = matched_pairs_statistic([2, -1, -1, 1])
+    assert r.mean == pytest.approx(0.25)
+    assert r.variance == pytest.approx(2.25)
+    assert r.z == pytest.approx(1 / 3)
+    assert r.p_value == pytest.approx(0.739, abs=5e-4)
+    # the normal tail agrees with SciPy
+    assert r.p_value == pytest.approx(2 * scipy.stats.norm.sf(1 / 3), abs=P_TOL)
+
+
+def test_segments_are_bounded_by_words_both_systems_get_right() -> None:
+    # derived by hand, min_run = 2: reference a b c d e f g h
+    # before: a X c d e f G' h  -> errors at b and g
+    # after:  a b c d Y f g h   -> error at e
+    # both right: a, c d, f, h; runs of >= 2 with no insertions between: "c d" only, so the
+    # segments are [a b] (before 1, after 0) and [e f g h] (before 1, after 1)
+    ref = w("a b c d e f g h")
+    before = align(ref, w("a x c d e f z h"))
+    after = align(ref, w("a b c d y f g h"))
+    assert segment_errors(before, after, min_run=2) == [(1, 0), (1, 1)]
+    # with single-word anchors every both-right word bounds a segment
+    assert segment_errors(before, after, min_run=1) == [(1, 0), (0, 1), (1, 0)]
+
+
+def test_insertion_between_anchor_words_forms_its_own_segment() -> None:
+    # derived by hand: "on" inserted by after between "b" and "c" breaks the run a b | c d
+    ref = w("a b c d")
+    before = align(ref, ref)
+    after = align(ref, w("a b on c d"))
+    assert segment_errors(before, after, min_run=2) == [(0, 1)]
+
+
+def test_identical_systems_have_no_evidence() -> None:
+    # definition: every segment difference is zero, so W = 0 and p = 1
+    ref = w("vent bay three opened")
+    al = [align(ref, w("went bay three opened"))] * 3
+    r = matched_pairs(al, al)
+    assert r.segments == 3 and r.p_value == 1.0
+
+
+# --- sign test -----------------------------------------------------------------------------
+
+SIGN_CASES = [
+    [-1, -2, -1, 0, 1, -3, 0, -1],          # zeros are dropped
+    [1, 1, 1, 1, 1, 1],                       # all worse
+    [-1, 1, -1, 1],                           # balanced: p = 1
+    [0, 0, 0],                                # no evidence at all
+    list(np.random.default_rng(3).integers(-2, 3, size=400)),  # large n
+]
+
+
+@pytest.mark.parametrize("d", SIGN_CASES)
+def test_sign_test_matches_scipy_binomtest(d: list[int]) -> None:
+    # source: scipy.stats.binomtest(k, n, 0.5), two-sided, on the non-zero differences
+    r = sign_test(d)
+    n = r.improved + r.worsened
+    expected = 1.0 if n == 0 else scipy.stats.binomtest(r.improved, n, 0.5).pvalue
+    assert r.p_value == pytest.approx(expected, rel=1e-9, abs=1e-300)
+    assert r.ties == sum(1 for x in d if x == 0)
+
+
+def test_binomial_exact_small_case() -> None:
+    # derived by hand: 0 of 5 heads, two-sided = 2 * (1/32) = 0.0625
+    assert binomial_two_sided(0, 5) == 0.0625
+
+
+# --- Wilcoxon signed-rank ------------------------------------------------------------------
+
+def brute_force_wilcoxon_p(d: list[int]) -> float:
+    """All 2**n sign flips of the non-zero differences' mid-ranks (slow, obviously exact)."""
+    nz = [x for x in d if x != 0]
+    ranks = mid_ranks(np.abs(nz))
+    observed = float(ranks[np.array(nz) > 0].sum())
+    sums = [float(np.dot(signs, ranks)) for signs in itertools.product([0, 1], repeat=len(nz))]
+    lo = sum(s <= observed + 1e-9 for s in sums) / len(sums)
+    hi = sum(s >= observed - 1e-9 for s in sums) / len(sums)
+    return min(1.0, 2 * min(lo, hi))
+
+
+RNG = np.random.default_rng(11)
+# SciPy's "auto" method (scipy.stats.wilcoxon, zero_method="wilcox", correction=False):
+# exact distribution for n <= 50 without ties or zeros; an exhaustive sign-flip permutation
+# for n <= 13 with ties or zeros; the normal approximation with tie correction above 50.
+# Our rule (exact sign-flip over mid-ranks up to 50 non-zero differences, normal above)
+# coincides with it in each of these cases.
+SCIPY_CASES = [
+    [3, -1, 4, -5, 9, 2, 6, -8, 7, 10, -11, 12],                       # exact, no ties
+    list(RNG.permutation(np.arange(1, 41) * RNG.choice([-1, 1], 40))),  # exact, n = 40
+    [1, -1, 2, 0, 2, -3, 1, 0, 1, 2],                                  # ties and zeros, n <= 13
+    [-2, -2, -1, -1, -1, 1, -3],                                       # ties
+    list(RNG.integers(-3, 4, size=300)),                               # normal, ties and zeros
+    list(RNG.integers(-1, 3, size=120)),                               # normal, one-sided drift
+]
+
+
+@pytest.mark.parametrize("d", SCIPY_CASES)
+def test_wilcoxon_matches_scipy(d: list[int]) -> None:
+    ours = wilcoxon_signed_rank(d)
+    ref = scipy.stats.wilcoxon(d)
+    assert ours.statistic == pytest.approx(float(ref.statistic))
+    assert ours.p_value == pytest.approx(float(ref.pvalue), rel=1e-7)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_wilcoxon_exact_with_ties_matches_brute_force(seed: int) -> None:
+    # 13 < n <= 50 with ties: SciPy switches to the normal approximation here, we stay exact;
+    # checked against enumerating every sign flip (source: definition of the permutation
+    # distribution of the signed-rank statistic)
+    d = list(np.random.default_rng(seed).integers(-3, 4, size=16))
+    assert wilcoxon_signed_rank(d).p_value == pytest.approx(brute_force_wilcoxon_p(d),
+                                                             abs=P_TOL)
+
+
+def test_wilcoxon_all_zero_differences() -> None:
+    # definition: no non-zero difference, no evidence
+    r = wilcoxon_signed_rank([0, 0, 0, 0])
+    assert (r.n, r.zeros, r.p_value) == (0, 4, 1.0)
+
+
+def test_mid_ranks_match_scipy_rankdata() -> None:
+    # source: scipy.stats.rankdata(method="average")
+    x = [3, 1, 4, 1, 5, 9, 2, 6, 5, 3, 5]
+    assert mid_ranks(x).tolist() == scipy.stats.rankdata(x).tolist()
+
+
+# --- paired bootstrap ----------------------------------------------------------------------
+
+def test_bootstrap_identical_systems_give_zero_difference() -> None:
+    # definition: the same errors on both sides give difference 0 in every resample
+    e = np.array([0, 2, 1, 3, 0, 1])
+    r = paired_bootstrap(e, e, [5, 6, 4, 7, 3, 5], resamples=500, seed=4)
+    assert r.difference == 0.0
+    assert r.difference_ci == (0.0, 0.0)
+    assert r.probability_of_improvement == 0.0
+
+
+def test_bootstrap_interval_contains_point_and_is_reproducible() -> None:
+    rng = np.random.default_rng(5)
+    n_ref = rng.integers(3, 15, size=200)
+    before = rng.binomial(n_ref, 0.2)
+    after = rng.binomial(n_ref, 0.15)
+    a = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
+    b = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
+    c = paired_bootstrap(before, after, n_ref, resamples=2000, seed=10)
+    assert a == b
+    assert a != c
+    for (lo, hi), point in ((a.before_ci, a.before_wer), (a.after_ci, a.after_wer),
+                            (a.difference_ci, a.difference)):
+        assert lo <= point <= hi
+    # definition of corpus WER: total errors / total reference words
+    assert a.before_wer == before.sum() / n_ref.sum()
+
+
+def test_bootstrap_matches_plain_loop() -> None:
+    # the slow version: the same index draws, one resample at a time, in plain Python
+    before, after, words = [1, 0, 3, 2, 0], [0, 0, 2, 2, 1], [4, 3, 6, 5, 2]
+    r = paired_bootstrap(before, after, words, resamples=300, seed=2)
+    idx = np.random.default_rng(2).integers(0, 5, size=(300, 5))
+    diffs = []
+    wins = 0
+    for row in idx.tolist():
+        n = sum(words[i] for i in row)
+        d = (sum(after[i] for i in row) - sum(before[i] for i in row)) / n
+        diffs.append(d)
+        wins += d < 0
+    assert r.probability_of_improvement == wins / 300
+    assert r.difference_ci == pytest.approx(tuple(np.quantile(diffs, [0.025, 0.975])))
+
+
+def test_bootstrap_coverage_near_nominal() -> None:
+    # simulation with known truth: word errors independent with rate 0.15 (before) and
+    # 0.12 (after, sharing the same draws, so the pair is correlated as real systems are);
+    # a 95% interval should cover the truth in about 95% of experiments. Percentile
+    # intervals at 80 utterances run slightly narrow (common practice: accept 0.90-0.99).
+    rng = np.random.default_rng(2024)
+    experiments, utterances, words = 200, 80, 10
+    covered_wer = covered_diff = 0
+    for k in range(experiments):
+        u = rng.random((utterances, words))
+        before = (u < 0.15).sum(axis=1)
+        after = (u < 0.12).sum(axis=1)
+        r = paired_bootstrap(before, after, np.full(utterances, words), resamples=400, seed=k)
+        covered_wer += r.before_ci[0] <= 0.15 <= r.before_ci[1]
+        covered_diff += r.difference_ci[0] <= -0.03 <= r.difference_ci[1]
+    assert 0.90 <= covered_wer / experiments <= 0.99
+    assert 0.90 <= covered_diff / experiments <= 0.99

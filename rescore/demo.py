@@ -105,10 +105,8 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path,
             provenance: dict[str, Any]) -> list[Path]:
-    try:
-        from rescore.report import build_report, load_system, write_report
-    except ImportError:
-        return []
+    from rescore.report import build_report, load_system, write_report
+
     report = build_report(load_system(before), load_system(after), provenance=provenance,
                           tuning=json.loads(tuning.read_text()))
     return write_report(report, folder)

@@ -36,7 +36,7 @@ def test_demo_on_reduced_copy_lowers_wer(small_data: Path, tmp_path: Path) -> No
     assert result.exit_code == 0, result.stderr
     assert "before (recognizer 1-best)" in result.stdout and "after (rescored)" in result.stdout
     summary = json.loads((tmp_path / "out" / "summary.json").read_text())
-    assert SUMMARY_KEYS <= set(summary)
+    assert set(summary) >= SUMMARY_KEYS
     assert summary["utterances"] == 60
     # the LM must earn a fall; the oracle bounds what any rescoring can reach
     assert summary["oracle_wer"] <= summary["wer_after"] < summary["wer_before"]
@@ -66,3 +66,15 @@ def test_demo_missing_data_is_a_clean_error(tmp_path: Path) -> None:
     assert result.exit_code == 1
     assert result.stderr.startswith(f"error: {tmp_path / 'train.txt'}: demo data file")
     assert len(result.stderr.strip().splitlines()) == 1
+
+
+def test_demo_report_carries_the_tuning_analysis(small_data: Path, tmp_path: Path) -> None:
+    # the tuner's --analysis output feeds the report's heat map and depth curve
+    assert run(["demo", "--data", small_data, "--out", tmp_path]).exit_code == 0
+    report = json.loads((tmp_path / "report" / "report.json").read_text())
+    tuning = json.loads((tmp_path / "tuning.json").read_text())
+    assert report["tuning"]["surface"]["errors"] == tuning["surface"]["errors"]
+    assert [r["k"] for r in report["tuning"]["depth"]] == [r["depth"] for r in tuning["depth"]]
+    summary = json.loads((tmp_path / "summary.json").read_text())
+    assert report["after"]["wer"] == summary["wer_after"]
+    assert report["before"]["wer"] == summary["wer_before"]

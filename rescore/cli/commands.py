@@ -127,9 +127,9 @@ def tune(
     feature: Annotated[list[str] | None, typer.Option(
         "--feature", help="Also tune the weight of this N-best feature (repeatable).")] = None,
     grid_lm: Annotated[str | None, typer.Option(
-        "--grid-lm", help="LM weight grid A:B:N (default 0:30:61).")] = None,
+        "--grid-lm", help="LM weight grid LOW:HIGH:N, N points from LOW to HIGH (default 0:30:121).")] = None,
     grid_penalty: Annotated[str | None, typer.Option(
-        "--grid-penalty", help="Insertion penalty grid A:B:N (default -20:20:81).")] = None,
+        "--grid-penalty", help="Insertion penalty grid LOW:HIGH:N (default -20:20:81).")] = None,
     folds: Annotated[int, typer.Option("--folds", min=0,
                                        help="Cross-validation folds (0 or 1: none).")] = 5,
     seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,

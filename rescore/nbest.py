@@ -8,6 +8,7 @@ so a file larger than memory can be processed in bounded batches.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 from collections.abc import Iterable, Iterator, Mapping
@@ -15,6 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, NotRequired
 
+import numpy as np
 from pydantic import ConfigDict, Field, TypeAdapter, ValidationError, with_config
 from typing_extensions import TypedDict
 
@@ -178,18 +180,29 @@ class RecordParser:
 
 @dataclass
 class IdLedger:
-    """The whole-file rules: unique ids, references on all or none, refs file covered."""
+    """The whole-file rules: unique ids, references on all or none, refs file covered.
+
+    Ids are kept as 64-bit BLAKE2b digests in numpy arrays (12 bytes an utterance with the
+    line number), so a million-utterance file costs about 12 MB, not a dict of strings.
+    Duplicates are found when the file ends, by sorting; the error names both lines. (Two
+    different ids share a digest with probability about n^2 / 2^65: 3e-8 for a million.)
+    """
 
     path: str
     refs: Mapping[str, str] | None = None
-    seen: dict[str, int] = field(default_factory=dict)
     has_refs: bool | None = None
+    count: int = 0
+    _digests: list[int] = field(default_factory=list)
+    _lines: list[int] = field(default_factory=list)
+    _chunks: list[tuple[np.ndarray, np.ndarray]] = field(default_factory=list)
 
     def admit(self, number: int, key: str, has_reference: bool) -> None:
-        first = self.seen.setdefault(key, number)
-        if first != number:
-            raise InputError(f"duplicate id {key!r} (first on line {first})",
-                             path=self.path, line=number, field="id")
+        digest = hashlib.blake2b(key.encode("utf-8"), digest_size=8).digest()
+        self._digests.append(int.from_bytes(digest, "little", signed=True))
+        self._lines.append(number)
+        self.count += 1
+        if len(self._digests) >= 65536:
+            self._flush()
         if self.has_refs is None:
             self.has_refs = has_reference
         elif has_reference != self.has_refs:
@@ -197,12 +210,48 @@ class IdLedger:
                 else "has a reference although earlier utterances have none"
             raise InputError(which, path=self.path, line=number, field="reference")
 
+    def _flush(self) -> None:
+        if self._digests:
+            self._chunks.append((np.array(self._digests, dtype=np.int64),
+                                 np.array(self._lines, dtype=np.int64)))
+            self._digests, self._lines = [], []
+
     def finish(self) -> None:
-        if self.refs is not None and len(self.refs) != len(self.seen):
-            missing = sorted(set(self.refs) - set(self.seen))
+        self._flush()
+        if self._chunks:
+            digests = np.concatenate([c[0] for c in self._chunks])
+            lines = np.concatenate([c[1] for c in self._chunks])
+            order = np.argsort(digests, kind="stable")
+            same = np.flatnonzero(digests[order][1:] == digests[order][:-1])
+            if len(same):
+                pairs = np.sort(np.stack([lines[order][same], lines[order][same + 1]]), axis=0)
+                later = int(pairs[1].min())
+                first = int(pairs[0][pairs[1] == later][0])
+                key = _id_on_line(self.path, later)
+                raise InputError(f"duplicate id {key!r} (first on line {first})",
+                                 path=self.path, line=later, field="id")
+        if self.refs is not None and len(self.refs) != self.count:
+            missing = sorted(set(self.refs) - self._ids())
             shown = ", ".join(missing[:5]) + (" ..." if len(missing) > 5 else "")
-            raise InputError(f"{len(self.refs)} references for {len(self.seen)} utterances; "
+            raise InputError(f"{len(self.refs)} references for {self.count} utterances; "
                              f"ids not in the N-best file: {shown}", path=self.path)
+
+    def _ids(self) -> set[str]:
+        # only on the error path: every id in the file is also in refs, so compare digests
+        assert self.refs is not None
+        seen = set(np.concatenate([c[0] for c in self._chunks]).tolist()) \
+            if self._chunks else set()
+        return {k for k in self.refs
+                if int.from_bytes(hashlib.blake2b(k.encode("utf-8"), digest_size=8).digest(),
+                                  "little", signed=True) in seen}
+
+
+def _id_on_line(path: str, number: int) -> str:
+    for n, line in iter_text_lines(path):
+        if n == number:
+            value = json.loads(line).get("id", "")
+            return str(value)
+    return ""
 
 
 def read_convention(

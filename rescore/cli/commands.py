@@ -127,7 +127,8 @@ def tune(
     feature: Annotated[list[str] | None, typer.Option(
         "--feature", help="Also tune the weight of this N-best feature (repeatable).")] = None,
     grid_lm: Annotated[str | None, typer.Option(
-        "--grid-lm", help="LM weight grid LOW:HIGH:N, N points from LOW to HIGH (default 0:30:121).")] = None,
+        "--grid-lm", help="LM weight grid LOW:HIGH:N, N points from LOW to HIGH "
+        "(default 0:30:121).")] = None,
     grid_penalty: Annotated[str | None, typer.Option(
         "--grid-penalty", help="Insertion penalty grid LOW:HIGH:N (default -20:20:81).")] = None,
     folds: Annotated[int, typer.Option("--folds", min=0,

@@ -1,0 +1,34 @@
+"""Streaming: peak memory of `apply` does not grow with the number of utterances."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+from tests.bulk import write_bulk, write_weights
+
+
+def _peak_rss_kib(args: list[str]) -> int:
+    # ru_maxrss of that one child, in KiB on Linux (getrusage(2) man page)
+    with open(os.devnull, "wb") as sink:
+        proc = subprocess.Popen(args, stdout=sink, stderr=sink)
+        _, status, usage = os.wait4(proc.pid, 0)
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    assert proc.returncode == 0
+    return int(usage.ru_maxrss)
+
+
+def test_apply_peak_memory_flat_from_10k_to_100k(tmp_path: Path) -> None:
+    weights = tmp_path / "w.json"
+    write_weights(weights)
+    peaks = {}
+    for n in (10_000, 100_000):
+        src = tmp_path / f"n{n}.jsonl"
+        write_bulk(src, n, depth=5)
+        peaks[n] = _peak_rss_kib([sys.executable, "-m", "rescore", "apply", str(src),
+                                  "--weights", str(weights), "-o", str(tmp_path / "out.jsonl")])
+        src.unlink()
+    # issue target: less than 20 % apart although the input is ten times larger
+    assert peaks[100_000] < 1.2 * peaks[10_000], peaks

@@ -71,7 +71,9 @@ def _run_lengths(sorted_keys: U64) -> tuple[U64, I64]:
     flag[0] = True
     np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=flag[1:])
     starts = np.flatnonzero(flag)
-    counts = np.diff(np.append(starts, len(sorted_keys))).astype(np.int64)
+    counts = np.empty(len(starts), dtype=np.int64)
+    np.subtract(starts[1:], starts[:-1], out=counts[:-1])
+    counts[-1] = len(sorted_keys) - starts[-1]
     return sorted_keys[starts], counts
 
 
@@ -87,23 +89,31 @@ def _count_packed(
     n = len(tokens)
     filler = np.uint64((1 << bits) - 1)
     pos = np.arange(n, dtype=np.int64)
-    ends = pos >= floor
-    key = np.zeros(n, dtype=np.uint64)
-    tok64 = tokens.astype(np.uint64)
-    for j in range(order):
-        shifted = np.full(n, filler, dtype=np.uint64)
+    key = tokens.astype(np.uint64) << np.uint64(bits * (order - 1))
+    tok64 = key >> np.uint64(bits * (order - 1))
+    # positions whose window reaches back past its floor, and by how far it may reach
+    reach = pos - floor
+    short = np.flatnonzero(reach < order - 1)
+    short_reach = reach[short]
+    for j in range(1, order):
+        shift = np.uint64(bits * (order - 1 - j))
         if j < n:
-            shifted[j:] = tok64[: n - j]
-        comp = np.where(pos - j >= floor, shifted, filler)
-        key |= comp << np.uint64(bits * (order - 1 - j))
-    keys = np.sort(key[ends])
+            key[j:] |= tok64[: n - j] << shift
+        # within j of the floor the j-th word back is outside the window: the filler
+        bad = short[short_reach < j]
+        lane = filler << shift
+        key[bad] = (key[bad] & ~lane) | lane
+    if np.any(reach < 0):
+        key = key[reach >= 0]
+    key.sort()
     tables: list[OrderCounts] = []
     previous: U64 | None = None
     for k in range(1, order + 1):
-        kk = keys >> np.uint64(bits * (order - k))
+        kk = key >> np.uint64(bits * (order - k))
         if k > 1:
             kk = kk[(kk & filler) != filler]
         uniq, cnt = _run_lengths(kk)
+        del kk
         if k == 1:
             tables.append(_unigrams(uniq.astype(np.int64), cnt, vocab_size))
         else:

@@ -1,6 +1,6 @@
 """A vectorised open-addressing hash index from unique uint64 keys to their positions.
 
-Linear probing over a power-of-two table at most half full; both building and looking up
+Linear probing over a power-of-two table at most 70% full; both building and looking up
 run as numpy operations over whole batches, one probe step per loop round, so the Python
 loop runs as many times as the longest probe sequence (a few dozen at most), never once
 per key.
@@ -20,9 +20,12 @@ _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 EMPTY = -1
 
 
+MAX_LOAD = 0.7  # linear probing stays short well below full
+
+
 def table_bits(n_keys: int) -> int:
-    """Bits of a table that holds ``n_keys`` at a load factor of at most one half."""
-    return max(4, int(2 * max(n_keys, 1) - 1).bit_length())
+    """Bits of the smallest table that holds ``n_keys`` at a load factor of at most 0.7."""
+    return max(4, int(np.ceil(max(n_keys, 1) / MAX_LOAD) - 1).bit_length())
 
 
 def _home(keys: U64, bits: int) -> I64:

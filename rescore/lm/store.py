@@ -2,9 +2,11 @@
 
 Layout: an 8-byte magic, the format version (uint32), reserved (uint32), the header length
 (uint64), a JSON header (metadata and a directory of arrays: name, dtype, shape, offset),
-zero padding, the raw little-endian arrays each aligned to 64 bytes, and finally the sha256
-of every byte before it and an 8-byte end mark. Loading reads the file in one call,
-verifies length, marks, version and digest, then views the arrays in place (read-only).
+zero padding, the raw little-endian arrays each aligned to 64 bytes, then the sha256 of
+every byte before it (the model's identity for provenance), a CRC-32 of everything before
+the CRC (the integrity check, about twice as fast to verify as the sha256), four zero bytes
+and an 8-byte end mark. Loading reads the file in one call, verifies length, marks,
+version and CRC, then views the arrays in place (read-only).
 """
 
 from __future__ import annotations
@@ -12,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import json
 import struct
+import zlib
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -28,6 +31,7 @@ END = b"RSCREND\n"
 FORMAT_VERSION = 1
 ALIGN = 64
 _PREAMBLE = struct.Struct("<8sIIQ")
+_TRAILER = 32 + 4 + 4 + 8
 _DTYPES = {"<f8", "<u8", "<i4", "|u1"}
 
 
@@ -71,11 +75,15 @@ def content_parts(tables: BackoffTables, metadata: dict[str, Any]) -> Iterator[b
 def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path) -> str:
     """Write the model atomically; return its sha256."""
     digest = hashlib.sha256()
+    crc = 0
     with atomic_output(path, "wb") as fh:
         for part in content_parts(tables, metadata):
             digest.update(part)
+            crc = zlib.crc32(part, crc)
             fh.write(part)
-        fh.write(digest.digest() + END)
+        sha = digest.digest()
+        crc = zlib.crc32(sha, crc)
+        fh.write(sha + struct.pack("<I", crc) + b"\0" * 4 + END)
     return digest.hexdigest()
 
 
@@ -93,16 +101,19 @@ def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
         raise ModelFileError("is a folder, expected a model file", path=str(path)) from None
     except PermissionError:
         raise ModelFileError("permission denied", path=str(path)) from None
-    if len(data) < _PREAMBLE.size + 40 or data[:8] != MAGIC:
+    if len(data) < _PREAMBLE.size + _TRAILER or data[:8] != MAGIC:
         raise _bad(path, "unknown file type (no rescore model mark)")
     _, version, _, header_len = _PREAMBLE.unpack_from(data)
     if version != FORMAT_VERSION:
         raise _bad(path, f"format version {version}, this program reads {FORMAT_VERSION}")
     if data[-8:] != END:
         raise _bad(path, "truncated (no end mark)")
-    body = memoryview(data)[:-40]
-    if hashlib.sha256(body).digest() != data[-40:-8]:
+    view = memoryview(data)
+    body = view[:-_TRAILER]
+    (crc,) = struct.unpack_from("<I", data, len(data) - 16)
+    if zlib.crc32(view[:-16]) != crc or data[-12:-8] != b"\0" * 4:
         raise _bad(path, "checksum mismatch (the file is damaged or was altered)")
+    sha = data[-_TRAILER:-16].hex()
     try:
         header = json.loads(bytes(body[_PREAMBLE.size:_PREAMBLE.size + header_len]))
         start = _PREAMBLE.size + header_len
@@ -122,7 +133,7 @@ def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
             raise ValueError("metadata is not an object")
     except (ValueError, KeyError, TypeError, IndexError) as exc:
         raise _bad(path, f"inconsistent contents ({exc})") from None
-    return tables, metadata, hashlib.sha256(body).hexdigest()
+    return tables, metadata, sha
 
 
 def _tables(order: int, arrays: dict[str, np.ndarray[Any, Any]]) -> BackoffTables:

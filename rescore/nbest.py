@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Annotated, Any, NotRequired
 
 import numpy as np
+import orjson
 from pydantic import ConfigDict, Field, TypeAdapter, ValidationError, with_config
 from typing_extensions import TypedDict
 
@@ -350,7 +351,8 @@ def one_best(utt: Utterance) -> Hypothesis:
 
 
 def dumps(utt: Utterance) -> str:
-    return json.dumps(utt, ensure_ascii=False, allow_nan=False)
+    """One compact JSON line (UTF-8 text, floats in their shortest round-trip form)."""
+    return orjson.dumps(utt).decode("utf-8")
 
 
 def write_nbest(path: str | Path, utterances: Iterable[Utterance]) -> int:

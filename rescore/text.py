@@ -14,6 +14,7 @@ punctuation (Po) and go.
 
 from __future__ import annotations
 
+import re
 import unicodedata
 
 NORMALISATION = "nfc-lower-strip-punct-v1"
@@ -37,9 +38,16 @@ def _strip_unicode_punct(text: str) -> str:
     return "".join(out)
 
 
+# any ASCII punctuation, ' and - included: text without it needs only lower() and split()
+_ASCII_PUNCT = re.compile("[" + re.escape("".join(
+    chr(c) for c in range(128) if unicodedata.category(chr(c)).startswith("P"))) + "]")
+
+
 def tokens(text: str) -> list[str]:
     """The normalised words of ``text``."""
     if text.isascii():
+        if _ASCII_PUNCT.search(text) is None:  # the common case: plain lowercase words
+            return text.lower().split()
         text = text.lower().translate(_ASCII_TABLE)
     else:
         text = unicodedata.normalize("NFC", text).lower().replace("\u2019", "'")

@@ -85,12 +85,12 @@ def main() -> None:
                                        "insertion_penalty": 0.5, "features": {}}))
         base = [*rescore, "apply", str(nbest), "--lm", str(model), "--weights", str(weights)]
         runs = {
-            "1 process": base + ["-o", str(folder / "a.jsonl")],
-            "--workers 2": base + ["-o", str(folder / "b.jsonl"), "--workers", "2"],
+            "1 process": [*base, "-o", str(folder / "a.jsonl")],
+            "--workers 2": [*base, "-o", str(folder / "b.jsonl"), "--workers", "2"],
         }
         results = {name: timed(args, 1 if opts.quick else 3) for name, args in runs.items()}
-        cluster = timed(base + ["-o", str(folder / "c.jsonl"), "--cluster", "local",
-                                "--workers", "2"], 1)
+        cluster = timed([*base, "-o", str(folder / "c.jsonl"), "--cluster", "local",
+                         "--workers", "2"], 1)
         same = (folder / "a.jsonl").read_bytes() == (folder / "b.jsonl").read_bytes() == \
             (folder / "c.jsonl").read_bytes()
     one = results["1 process"]

@@ -83,3 +83,55 @@ def test_fuzz_nbest_reader(data: bytes) -> None:
 @given(st.one_of(_mutations(REFS_SEED), st.binary(max_size=200)))
 def test_fuzz_refs_reader(data: bytes) -> None:
     fuzz_reader(read_refs, REFS_SEED, ".tsv")(data)
+
+
+# --- language-model files, corpus text and weights files ---------------------------------
+
+def _lm_seeds() -> tuple[bytes, bytes]:
+    from rescore.lm import NGramModel, save_model
+
+    model = NGramModel(order=2, method="kn").fit([["vent", "bay", "three"], ["bay", "three"],
+                                                  ["row", "two", "opened"]])
+    with tempfile.TemporaryDirectory() as folder:
+        save_model(model, Path(folder) / "m.arpa")
+        save_model(model, Path(folder) / "m.lm")
+        return (Path(folder) / "m.arpa").read_bytes(), (Path(folder) / "m.lm").read_bytes()
+
+
+ARPA_SEED, NATIVE_SEED = _lm_seeds()
+WEIGHTS_SEED = (b'{"acoustic_scale": 1.0, "lm_weight": 0.8, "insertion_penalty": -0.5, '
+                b'"features": {"first_pass_lm": 2.0}}')
+CORPUS_SEED = "vent bay three opened\nrow two, lamp bank four dimmed.\n\nprīya's shift\n".encode()
+
+
+@FUZZ
+@given(st.one_of(_mutations(ARPA_SEED), st.binary(max_size=300)))
+def test_fuzz_arpa_reader(data: bytes) -> None:
+    from rescore.lm import load_model
+
+    fuzz_reader(load_model, ARPA_SEED, ".arpa")(data)
+
+
+@FUZZ
+@given(st.one_of(_mutations(NATIVE_SEED), st.binary(max_size=300)))
+def test_fuzz_native_model_reader(data: bytes) -> None:
+    from rescore.lm import load_model
+
+    fuzz_reader(load_model, NATIVE_SEED, ".lm")(data)
+
+
+@FUZZ
+@given(st.one_of(_mutations(WEIGHTS_SEED), st.binary(max_size=200)))
+def test_fuzz_weights_reader(data: bytes) -> None:
+    from rescore.tune import read_weights
+
+    fuzz_reader(read_weights, WEIGHTS_SEED, ".json")(data)
+
+
+@FUZZ
+@given(st.one_of(_mutations(CORPUS_SEED), _mutations(gzip.compress(CORPUS_SEED)),
+                 st.binary(max_size=200)))
+def test_fuzz_corpus_reader(data: bytes) -> None:
+    from rescore.lm import read_corpus
+
+    fuzz_reader(lambda p: list(read_corpus([p])), CORPUS_SEED, ".txt")(data)

@@ -222,8 +222,8 @@ def test_exact_curve_matches_brute_force_between_breaks(
 
 
 # derandomized: the exact search is a local search with many starts, not a global method;
-# on about 1 in 500 random tiny sets a narrow region between its starts is missed (measured
-# while building it), so fixed examples keep this check from flaking
+# on 1 of 1,000 random tiny sets tried while building it, a narrow region between its starts
+# was missed, so fixed examples keep this check from flaking
 @settings(max_examples=40, derandomize=True)
 @given(nbest_sets())
 def test_exact_search_no_worse_than_dense_grid(matrix: FeatureMatrix) -> None:

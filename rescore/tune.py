@@ -541,6 +541,23 @@ def _sort_lines(a: np.ndarray, b: np.ndarray, offsets: np.ndarray) -> np.ndarray
     return np.asarray(rows[order < sizes[:, None]])
 
 
+def _prune_lines(su: np.ndarray, sa: np.ndarray, sb: np.ndarray, se: np.ndarray, n_utt: int,
+                 lo: float, hi: float) -> tuple[np.ndarray, ...]:
+    """Drop lines strictly below the top line at ``lo`` at both ends of [lo, hi], or below
+    the top line at ``hi`` at both ends: being linear, they are below it all along."""
+    start = np.searchsorted(su, np.arange(n_utt))
+    v_lo, v_hi = sa + lo * sb, sa + hi * sb
+    at_lo = np.maximum.reduceat(v_lo, start)[su]
+    at_hi = np.maximum.reduceat(v_hi, start)[su]
+    pos = np.arange(len(su))
+    top_lo = np.minimum.reduceat(np.where(v_lo >= at_lo, pos, len(su)), start)[su]
+    top_hi = np.minimum.reduceat(np.where(v_hi >= at_hi, pos, len(su)), start)[su]
+    beaten = ((v_lo < v_lo[top_lo]) & (v_hi < v_hi[top_lo])) | (
+        (v_lo < v_lo[top_hi]) & (v_hi < v_hi[top_hi]))
+    keep = ~beaten
+    return su[keep], sa[keep], sb[keep], se[keep]
+
+
 def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: np.ndarray,
                     lo: float = -np.inf, hi: float = np.inf) -> ErrorCurve:
     """Exact corpus errors along totals ``a + step * b`` for steps in (lo, hi).
@@ -559,6 +576,8 @@ def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: n
     keep = np.ones(len(su), dtype=bool)
     keep[1:] = (su[1:] != su[:-1]) | (sb[1:] != sb[:-1])
     su, sa, sb, se = su[keep], sa[keep], sb[keep], se[keep]
+    if np.isfinite(lo) and np.isfinite(hi):
+        su, sa, sb, se = _prune_lines(su, sa, sb, se, n_utt, lo, hi)
     start = np.searchsorted(su, np.arange(n_utt))
     stop = np.append(start[1:], len(su))
     if np.isfinite(lo):
@@ -681,8 +700,9 @@ def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.n
         found = current + 1
     candidates = [(found, 0, step)]
     # a bound itself (say LM weight 0) can hold fewer errors than any open interval, when
-    # hypotheses tie there; ends are checked by scoring every hypothesis
-    for rank, end in ((1, low), (2, high)):
+    # hypotheses tie there; along an axis, the ends are checked by scoring every hypothesis
+    ends = ((1, low), (2, high)) if np.count_nonzero(d) == 1 else ()
+    for rank, end in ends:
         if math.isfinite(end):
             candidates.append((_errors_of_vector(matrix, errors, w + end * d), rank, end))
     found, _, step = min(candidates)
@@ -698,24 +718,27 @@ def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.n
 def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
                        idx: np.ndarray, lo: np.ndarray, hi: np.ndarray,
                        rng: np.random.Generator) -> tuple[np.ndarray, int]:
-    """Exact line searches along each tuned coordinate, then as many random directions,
-    sweep after sweep until a sweep gains nothing."""
+    """Exact line searches along each tuned coordinate, sweep after sweep; when a sweep
+    gains nothing, as many random directions; stop when those gain nothing either."""
     w = w.copy()
     current = _errors_of_vector(matrix, errors, w)
     width = len(matrix.names)
+    axes = []
+    for k in idx:
+        d = np.zeros(width)
+        d[k] = 1.0
+        axes.append(d)
     for _ in range(_MAX_SWEEPS):
         before = current
-        directions = []
-        for k in idx:
+        for d in axes:
+            w, current = _line_move(matrix, errors, w, d, idx, lo, hi, current)
+        if current < before:
+            continue
+        if len(idx) < 2:
+            break
+        for _ in idx:
             d = np.zeros(width)
-            d[k] = 1.0
-            directions.append(d)
-        if len(idx) > 1:
-            for _ in idx:
-                d = np.zeros(width)
-                d[idx] = rng.normal(size=len(idx))
-                directions.append(d)
-        for d in directions:
+            d[idx] = rng.normal(size=len(idx))
             w, current = _line_move(matrix, errors, w, d, idx, lo, hi, current)
         if current >= before:
             break
@@ -733,7 +756,7 @@ def exact_search(
     tune: Sequence[str] = (LM, WORDS),
     start: Weights = Weights(),  # noqa: B008 - frozen, never mutated
     seed: int = 0,
-    restarts: int = 5,
+    restarts: int = 3,
     bounds: Mapping[str, tuple[float, float]] | None = None,
     also_from: Sequence[Weights] = (),
 ) -> TuneResult:
@@ -744,12 +767,13 @@ def exact_search(
     merging all breakpoints gives the exact corpus error curve. The search moves to the
     middle of the best interval within ``bounds`` when it is no worse than the current
     point (among equal intervals: the one holding the current point, else the widest);
-    the ends of the bounded range are scored too and taken when strictly better.
+    along an axis, the ends of the bounded range are scored too and taken when strictly
+    better.
     Default bounds: 0..100 for ``lm`` and ``acoustic``, -100..100 for any other weight.
 
-    Each sweep searches along every tuned coordinate, then along as many seeded random
-    directions (common practice: they reach narrow diagonal valleys that axis moves miss);
-    sweeps repeat until one gains nothing. Runs start from ``start``, then from each of
+    Sweeps search along every tuned coordinate until one gains nothing; then as many
+    seeded random directions are tried (common practice: they reach narrow diagonal
+    valleys that axis moves miss), and sweeping resumes if they gained. Runs start from ``start``, then from each of
     ``also_from``, then ``restarts`` more from seeded random points (each tuned weight drawn
     uniformly within max(1, |w|) of the best point so far, inside the bounds). The
     fewest-error run wins, the earliest on ties, so the result is never worse than

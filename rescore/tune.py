@@ -774,8 +774,9 @@ def exact_search(
     Sweeps search along every tuned coordinate until one gains nothing; then as many
     seeded random directions are tried (common practice: they reach narrow diagonal
     valleys that axis moves miss), and sweeping resumes if they gained. Runs start from
-    ``start``, then from each of ``also_from``, then ``restarts`` more from seeded random points (each tuned weight drawn
-    uniformly within max(1, |w|) of the best point so far, inside the bounds). The
+    ``start``, then from each of ``also_from``, then ``restarts`` more from seeded random
+    points (each tuned weight drawn uniformly within max(1, |w|) of the best point so far,
+    inside the bounds). The
     fewest-error run wins, the earliest on ties, so the result is never worse than
     ``start`` (once moved inside the bounds). Weights not in ``tune`` (by default the
     acoustic scale, 1) stay as in ``start``.

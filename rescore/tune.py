@@ -442,6 +442,23 @@ def low_points(errors: np.ndarray, count: int = 6, levels: int = 3) -> list[tupl
     return out
 
 
+def edge_points(errors: np.ndarray) -> list[tuple[int, int]]:
+    """The fewest-error cell of each edge of the grid (first in row-major order on ties).
+
+    An edge such as LM weight 0 is a slice of its own: there, hypotheses with equal
+    acoustic scores tie and list order decides, which no nearby interior point reproduces.
+    """
+    last_i, last_j = errors.shape[0] - 1, errors.shape[1] - 1
+    out: list[tuple[int, int]] = []
+    for line, fixed_row, at in ((errors[0], True, 0), (errors[last_i], True, last_i),
+                                (errors[:, 0], False, 0), (errors[:, last_j], False, last_j)):
+        k = int(np.argmin(line))
+        cell = (at, k) if fixed_row else (k, at)
+        if cell not in out:
+            out.append(cell)
+    return out
+
+
 def grid_search(
     matrix: FeatureMatrix,
     *,
@@ -524,6 +541,23 @@ def _sort_lines(a: np.ndarray, b: np.ndarray, offsets: np.ndarray) -> np.ndarray
     return np.asarray(rows[order < sizes[:, None]])
 
 
+def _prune_lines(su: np.ndarray, sa: np.ndarray, sb: np.ndarray, se: np.ndarray, n_utt: int,
+                 lo: float, hi: float) -> tuple[np.ndarray, ...]:
+    """Drop lines strictly below the top line at ``lo`` at both ends of [lo, hi], or below
+    the top line at ``hi`` at both ends: being linear, they are below it all along."""
+    start = np.searchsorted(su, np.arange(n_utt))
+    v_lo, v_hi = sa + lo * sb, sa + hi * sb
+    at_lo = np.maximum.reduceat(v_lo, start)[su]
+    at_hi = np.maximum.reduceat(v_hi, start)[su]
+    pos = np.arange(len(su))
+    top_lo = np.minimum.reduceat(np.where(v_lo >= at_lo, pos, len(su)), start)[su]
+    top_hi = np.minimum.reduceat(np.where(v_hi >= at_hi, pos, len(su)), start)[su]
+    beaten = ((v_lo < v_lo[top_lo]) & (v_hi < v_hi[top_lo])) | (
+        (v_lo < v_lo[top_hi]) & (v_hi < v_hi[top_hi]))
+    keep = ~beaten
+    return su[keep], sa[keep], sb[keep], se[keep]
+
+
 def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: np.ndarray,
                     lo: float = -np.inf, hi: float = np.inf) -> ErrorCurve:
     """Exact corpus errors along totals ``a + step * b`` for steps in (lo, hi).
@@ -542,6 +576,8 @@ def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: n
     keep = np.ones(len(su), dtype=bool)
     keep[1:] = (su[1:] != su[:-1]) | (sb[1:] != sb[:-1])
     su, sa, sb, se = su[keep], sa[keep], sb[keep], se[keep]
+    if np.isfinite(lo) and np.isfinite(hi):
+        su, sa, sb, se = _prune_lines(su, sa, sb, se, n_utt, lo, hi)
     start = np.searchsorted(su, np.arange(n_utt))
     stop = np.append(start[1:], len(su))
     if np.isfinite(lo):
@@ -658,6 +694,18 @@ def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.n
     curve = _envelope_curve(matrix.values @ w, matrix.values @ d, matrix.offsets, errors,
                             low, high)
     step, found = _best_step(curve, low, high)
+    if found == current and int(curve.at(0.0)) != current:
+        # the current point sits on a break or a bound that scores as well as the best
+        # interval: stay, rather than leave a tie-broken point for an equal plateau
+        found = current + 1
+    candidates = [(found, 0, step)]
+    # a bound itself (say LM weight 0) can hold fewer errors than any open interval, when
+    # hypotheses tie there; along an axis, the ends are checked by scoring every hypothesis
+    ends = ((1, low), (2, high)) if np.count_nonzero(d) == 1 else ()
+    for rank, end in ends:
+        if math.isfinite(end):
+            candidates.append((_errors_of_vector(matrix, errors, w + end * d), rank, end))
+    found, _, step = min(candidates)
     if found > current:
         return w, current
     trial = w + step * d
@@ -670,24 +718,27 @@ def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.n
 def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
                        idx: np.ndarray, lo: np.ndarray, hi: np.ndarray,
                        rng: np.random.Generator) -> tuple[np.ndarray, int]:
-    """Exact line searches along each tuned coordinate, then as many random directions,
-    sweep after sweep until a sweep gains nothing."""
+    """Exact line searches along each tuned coordinate, sweep after sweep; when a sweep
+    gains nothing, as many random directions; stop when those gain nothing either."""
     w = w.copy()
     current = _errors_of_vector(matrix, errors, w)
     width = len(matrix.names)
+    axes = []
+    for k in idx:
+        d = np.zeros(width)
+        d[k] = 1.0
+        axes.append(d)
     for _ in range(_MAX_SWEEPS):
         before = current
-        directions = []
-        for k in idx:
+        for d in axes:
+            w, current = _line_move(matrix, errors, w, d, idx, lo, hi, current)
+        if current < before:
+            continue
+        if len(idx) < 2:
+            break
+        for _ in idx:
             d = np.zeros(width)
-            d[k] = 1.0
-            directions.append(d)
-        if len(idx) > 1:
-            for _ in idx:
-                d = np.zeros(width)
-                d[idx] = rng.normal(size=len(idx))
-                directions.append(d)
-        for d in directions:
+            d[idx] = rng.normal(size=len(idx))
             w, current = _line_move(matrix, errors, w, d, idx, lo, hi, current)
         if current >= before:
             break
@@ -705,7 +756,7 @@ def exact_search(
     tune: Sequence[str] = (LM, WORDS),
     start: Weights = Weights(),  # noqa: B008 - frozen, never mutated
     seed: int = 0,
-    restarts: int = 5,
+    restarts: int = 3,
     bounds: Mapping[str, tuple[float, float]] | None = None,
     also_from: Sequence[Weights] = (),
 ) -> TuneResult:
@@ -715,14 +766,17 @@ def exact_search(
     choice follows the upper envelope of its lines, so its errors are piecewise constant;
     merging all breakpoints gives the exact corpus error curve. The search moves to the
     middle of the best interval within ``bounds`` when it is no worse than the current
-    point (among equal intervals: the one holding the current point, else the widest).
+    point (among equal intervals: the one holding the current point, else the widest);
+    along an axis, the ends of the bounded range are scored too and taken when strictly
+    better.
     Default bounds: 0..100 for ``lm`` and ``acoustic``, -100..100 for any other weight.
 
-    Each sweep searches along every tuned coordinate, then along as many seeded random
-    directions (common practice: they reach narrow diagonal valleys that axis moves miss);
-    sweeps repeat until one gains nothing. Runs start from ``start``, then from each of
-    ``also_from``, then ``restarts`` more from seeded random points (each tuned weight drawn
-    uniformly within max(1, |w|) of the best point so far, inside the bounds). The
+    Sweeps search along every tuned coordinate until one gains nothing; then as many
+    seeded random directions are tried (common practice: they reach narrow diagonal
+    valleys that axis moves miss), and sweeping resumes if they gained. Runs start from
+    ``start``, then from each of ``also_from``, then ``restarts`` more from seeded random
+    points (each tuned weight drawn uniformly within max(1, |w|) of the best point so far,
+    inside the bounds). The
     fewest-error run wins, the earliest on ties, so the result is never worse than
     ``start`` (once moved inside the bounds). Weights not in ``tune`` (by default the
     acoustic scale, 1) stay as in ``start``.
@@ -767,20 +821,49 @@ def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
     if method == "grid":
         return grid
     # start from the best two-weight grid point, so tuning a feature never loses on dev;
-    # the centres of the grid's other low regions are further starts (a narrow valley
-    # between grid points can hold fewer errors than the best point of the grid)
+    # the centres of the grid's other low regions and the best cell of each grid edge are
+    # further starts (a narrow valley between grid points, or a tie-broken edge, can hold
+    # fewer errors than the best point of the grid)
     assert grid.surface is not None
     others = []
-    for i, j in low_points(grid.surface.errors)[1:]:
+    cells = low_points(grid.surface.errors)
+    cells += [c for c in edge_points(grid.surface.errors) if c not in cells]
+    for i, j in cells[1:]:
         updates = {WORDS: float(grid.surface.penalty[j])}
         if lm_column is not None:
             updates[lm_column] = float(grid.surface.lm[i])
         others.append(_set(grid.weights, matrix.names, updates))
+    if lm_column is not None:
+        others += _row_starts(matrix, grid, lm_column)
     found = exact_search(matrix, tune=(*grid.tuned, *features), start=grid.weights, seed=seed,
                          also_from=others)
     settings = {**found.settings, "start": "grid", "lm_grid": grid.settings["lm_grid"],
                 "penalty_grid": grid.settings["penalty_grid"]}
     return replace(found, settings=settings)
+
+
+def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: int = 3
+                ) -> list[Weights]:
+    """The best points of the grid's LM-weight rows with the penalty searched exactly.
+
+    On each row an exact line search over the penalty (within its default bounds) finds the
+    best interval, which may lie between the grid's penalty values; the ``keep`` best rows
+    give starting points.
+    """
+    assert grid.surface is not None and matrix.errors is not None
+    errors = matrix.errors.astype(np.int64)
+    lo, hi = _bounds_for((WORDS,), None)
+    words = matrix.values[:, matrix.names.index(WORDS)]
+    found = []
+    for lw in grid.surface.lm:
+        base = _set(grid.weights, matrix.names, {lm_column: float(lw), WORDS: 0.0})
+        curve = _envelope_curve(matrix.values @ base.vector(matrix.names), words,
+                                matrix.offsets, errors, float(lo[0]), float(hi[0]))
+        step, e = _best_step(curve, float(lo[0]), float(hi[0]))
+        found.append((e, float(lw), step))
+    found.sort(key=lambda item: item[0])
+    return [_set(grid.weights, matrix.names, {lm_column: lw, WORDS: step})
+            for _, lw, step in found[:keep]]
 
 
 def _folds(n_utt: int, k: int, seed: int) -> list[np.ndarray]:

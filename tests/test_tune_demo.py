@@ -1,0 +1,50 @@
+"""Tuning on the demo scenario: exact search against a dense grid, and the gain over the
+recognizer's own choice, with cross-validation reported."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from rescore import pipeline
+from rescore.lm import NGramModel, read_corpus, save_model
+from rescore.scoring import FeatureMatrix
+from rescore.tune import exact_search, grid_search, tune
+from tests.conftest import FIXTURES
+
+DEMO = FIXTURES / "demo"
+
+
+@pytest.fixture(scope="module")
+def dev_matrix(tmp_path_factory: pytest.TempPathFactory) -> FeatureMatrix:
+    folder = tmp_path_factory.mktemp("lm")
+    model = NGramModel(order=3).fit(read_corpus([DEMO / "train.txt"]))
+    save_model(model, folder / "logbook.lm")
+    models = pipeline.load_lms([str(folder / "logbook.lm")])
+    return pipeline.load_matrix(DEMO / "dev.jsonl", models=models, features=["first_pass_lm"])
+
+
+def test_exact_search_no_worse_than_dense_grid_on_demo(dev_matrix: FeatureMatrix) -> None:
+    # Och (2003): the line search follows the exact error curve, so within the same box it
+    # should match the best of a dense 200 x 200 grid (issue check; not a theorem, as the
+    # search is coordinate-wise)
+    lm_grid, pen_grid = np.linspace(0, 30, 200), np.linspace(-20, 20, 200)
+    dense = grid_search(dev_matrix, lm_grid=lm_grid, penalty_grid=pen_grid)
+    exact = exact_search(dev_matrix, bounds={"lm": (0.0, 30.0), "words": (-20.0, 20.0)})
+    assert exact.dev_errors <= dense.dev_errors
+
+
+def test_tuning_beats_the_recognizer_choice_and_reports_cv(dev_matrix: FeatureMatrix) -> None:
+    result = tune(dev_matrix, folds=5, seed=0)
+    assert result.dev_wer < result.baseline_wer
+    assert result.cv is not None and len(result.cv.folds) == 5
+    # the held-out estimate must also beat the recognizer's own choice on this data
+    assert result.cv.wer < result.baseline_wer
+    assert result.cv.reference_words == result.reference_words
+
+
+def test_adding_a_feature_never_loses_on_dev(dev_matrix: FeatureMatrix) -> None:
+    two = tune(dev_matrix, folds=0)
+    three = tune(dev_matrix, features=["first_pass_lm"], folds=0)
+    assert three.search == "exact"
+    assert three.dev_errors <= two.dev_errors

@@ -105,3 +105,30 @@ def test_apply_without_the_second_model_is_a_usage_error(setup: dict[str, Path])
     res = run(["tune", setup["dev"], "--lm", f"bg={setup['bg']}", "--lm", f"bg={setup['in']}",
                "-o", d / "w4.json"])
     assert res.exit_code == 2
+
+
+def test_demo_compares_background_in_domain_mixed_and_two_lms(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    from tests.conftest import ROOT
+
+    data = tmp_path / "data"
+    subprocess.run([sys.executable, str(ROOT / "scripts" / "make_demo_data.py"), "--small",
+                    "--out", str(data)], check=True, capture_output=True)
+    res = run(["demo", "--data", data, "--out", tmp_path / "out"])
+    assert res.exit_code == 0, res.stderr
+    assert "language models compared" in res.stdout
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    rows = {r["system"]: r for r in summary["comparison"]}
+    assert list(rows) == ["background only", "in-domain only", "mixed (merged model)",
+                          "log-linear, two LMs"]
+    # the contract's keys keep meaning the in-domain model's result
+    assert summary["wer_after"] == rows["in-domain only"]["test_wer"]
+    mixed = rows["mixed (merged model)"]
+    assert abs(sum(mixed["mixture_weights"].values()) - 1) < 1e-9
+    # EM's mixture is at least as good as either component on the text it was tuned on
+    assert mixed["mixture_perplexity"] <= min(rows["background only"]["dev_perplexity"],
+                                              rows["in-domain only"]["dev_perplexity"]) + 1e-9
+    assert set(rows["log-linear, two LMs"]["features"]) == {"lm:background"}
+    assert load_model(tmp_path / "out" / "mixed.lm").order_ == 3

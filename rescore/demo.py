@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -16,7 +16,7 @@ from rescore import pipeline
 from rescore.errors import InputError
 from rescore.ioutil import sha256_file, write_text_atomic
 from rescore.nbest import iter_nbest, one_best
-from rescore.scoring import oracle_rows
+from rescore.scoring import LM, oracle_rows
 from rescore.text import tokens
 from rescore.wer import corpus_wer
 
@@ -32,6 +32,7 @@ class DemoResult:
     oracle: dict[str, float | int]
     perplexity: dict[str, Any]
     outputs: list[Path]
+    comparison: list[dict[str, Any]] = field(default_factory=list)
 
 
 def _silent(message: str) -> None:
@@ -83,9 +84,74 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         "utterances": before["utterances"],
         "dev_perplexity": ppl["perplexity"],
     }
+    comparison: list[dict[str, Any]] = []
+    if (data / "background.txt").is_file():
+        comparison, extra = _compare(data, out, order, model, models, tuned, after, progress)
+        outputs += extra
+        summary["comparison"] = comparison
     write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
     outputs.append(out / "summary.json")
-    return DemoResult(summary, before, after, oracle, ppl, outputs)
+    return DemoResult(summary, before, after, oracle, ppl, outputs, comparison)
+
+
+def _compare(data: Path, out: Path, order: int, in_domain: Any,
+             in_models: dict[str, pipeline.NamedModel], in_tuned: dict[str, Any],
+             in_after: dict[str, Any], progress: Callable[[str], None]
+             ) -> tuple[list[dict[str, Any]], list[Path]]:
+    """Background only, in-domain only, their mixture, and both as log-linear features."""
+    from rescore.lm import NGramModel, read_corpus, save_model
+    from rescore.lm.mix import mix_models
+
+    progress(f"building a {order}-gram background LM from {data / 'background.txt'}")
+    background = NGramModel(order=order).fit(read_corpus([data / "background.txt"]))
+    bg_path, mix_path = out / "background.lm", out / "mixed.lm"
+    save_model(background, bg_path)
+    dev_text = list(read_corpus([data / "dev.txt"]))
+    progress("mixing background and in-domain LMs on dev.txt (EM)")
+    _, merged, mixed = mix_models([background, in_domain], dev_text)
+    save_model(merged, mix_path)
+    assert mixed.component_perplexities is not None
+    bg_ppl, in_ppl = mixed.component_perplexities
+    lm_path = in_models[LM].path
+    systems: list[tuple[str, list[str], float | None]] = [
+        ("background only", [str(bg_path)], bg_ppl),
+        ("in-domain only", [str(lm_path)], in_ppl),
+        ("mixed (merged model)", [str(mix_path)], mixed.merged_perplexity),
+        ("log-linear, two LMs", [str(lm_path), f"background={bg_path}"], None),
+    ]
+    rows: list[dict[str, Any]] = []
+    written = [bg_path, mix_path]
+    for name, specs, dev_ppl in systems:
+        if name == "in-domain only":
+            tuned, wer = in_tuned, in_after
+        else:
+            progress(f"tuning and rescoring with {name}")
+            tag = name.split()[0].strip(",")
+            models = pipeline.load_lms(specs)
+            weights_path = out / f"weights.{tag}.json"
+            tuned = pipeline.tune_file(
+                data / "dev.jsonl", models=models, search=None, features=[], grid_lm=None,
+                grid_penalty=None, folds=0, seed=0, refs=None, log_base=None, costs=None,
+                weights_path=weights_path, analysis_path=None,
+            ).to_dict()
+            rescored = out / f"test.{tag}.rescored.jsonl"
+            pipeline.apply_file(data / "test.jsonl", rescored, models=models,
+                                weights=pipeline.read_weights(weights_path))
+            wer = pipeline.wer_file(rescored).to_dict()
+            written += [weights_path, rescored]
+        rows.append({
+            "system": name,
+            "dev_perplexity": dev_ppl,
+            "test_wer": wer["wer"],
+            "lm_weight": tuned["lm_weight"],
+            "insertion_penalty": tuned["insertion_penalty"],
+            "features": tuned["features"],
+            **({"mixture_weights": {"background": mixed.weights[0],
+                                    "in-domain": mixed.weights[1]},
+                "mixture_perplexity": mixed.perplexity}
+               if name.startswith("mixed") else {}),
+        })
+    return rows, written
 
 
 def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel]

@@ -188,6 +188,17 @@ def demo(
                      ("oracle (best in list)", result.oracle)]))
     info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
          f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
+    if result.comparison:
+        table("language models compared (perplexity on dev.txt, WER on the test set)",
+              ["system", "dev perplexity", "test WER", "LM weights"],
+              [[r["system"], r["dev_perplexity"], pct(r["test_wer"]),
+                ", ".join([f"lm {r['lm_weight']:.3g}",
+                           *(f"{k} {v:.3g}" for k, v in r["features"].items())])]
+               for r in result.comparison])
+        mixed = next((r for r in result.comparison if "mixture_weights" in r), None)
+        if mixed is not None:
+            info("mixture weights (EM on dev.txt): " + ", ".join(
+                f"{k} {v:.4f}" for k, v in mixed["mixture_weights"].items()))
     info(f"outputs in {out}/ (summary.json, models, weights, rescored files, report)")
 
 

@@ -1,4 +1,4 @@
-"""``rescore lm build | perplexity | convert``: one small function per verb."""
+"""``rescore lm build | perplexity | mix | convert``: one small function per verb."""
 
 from __future__ import annotations
 
@@ -104,7 +104,59 @@ def convert(
     info(f"wrote {target}")
 
 
+def _weights(text: str | None) -> list[float] | None:
+    if text is None:
+        return None
+    try:
+        return [float(part) for part in text.split(",")]
+    except ValueError:
+        raise UsageError(f"--weights must be comma-separated numbers, got {text!r}",
+                         field="--weights") from None
+
+
+@guarded
+def mix(
+    models: Annotated[list[Path], typer.Argument(
+        metavar="MODEL MODEL...", help="Models to interpolate (native or ARPA).")],
+    output: Annotated[Path, typer.Option(
+        "--output", "-o", help="The merged back-off model (.arpa/.arpa.gz: ARPA).")],
+    tune_on: Annotated[Path | None, typer.Option(
+        "--tune-on", help="Held-out in-domain text: the weights maximise its likelihood.")]
+    = None,
+    weights: Annotated[str | None, typer.Option(
+        "--weights", help="Fixed weights in the models' order, e.g. 0.7,0.3 (no EM).")] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+) -> None:
+    """Interpolate language models; weights by EM on in-domain text; write one merged model."""
+    from rescore.lm.mix import mix_models
+
+    if len(models) < 2:
+        raise UsageError("lm mix needs at least two models")
+    if tune_on is None and weights is None:
+        raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
+                         field="--tune-on")
+    loaded = [load_model(p) for p in models]
+    text = None if tune_on is None else list(read_corpus(tune_on))
+    _, merged, result = mix_models(loaded, text, weights=_weights(weights))
+    save_model(merged, output)
+    if as_json:
+        emit_json(result.to_dict())
+        return
+    rows: list[tuple[object, ...]] = []
+    comp = result.component_perplexities
+    for i, p in enumerate(models):
+        rows.append((str(p), result.weights[i], "" if comp is None else comp[i]))
+    rows.append(("mixture (exact)", "", "" if result.perplexity is None else result.perplexity))
+    rows.append(("merged model", "",
+                 "" if result.merged_perplexity is None else result.merged_perplexity))
+    table(None if tune_on is None else f"perplexity on {tune_on}",
+          ["model", "weight", "perplexity"], rows)
+    info(f"wrote {output}: merged back-off model, {len(merged.vocab_)} tokens in the "
+         f"vocabulary; " + ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(merged.n_ngrams_)))
+
+
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:
     lm_app.command("build")(build)
     lm_app.command("perplexity")(perplexity_cmd)
+    lm_app.command("mix")(mix)
     lm_app.command("convert")(convert)

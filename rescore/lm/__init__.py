@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from rescore.lm.evaluate import PerplexityResult, perplexity, read_corpus
+from rescore.lm.mix import MixResult, Mixture, mix_models  # noqa: F401  (re-exported)
 from rescore.lm.model import NGramModel
 from rescore.lm.smoothing import METHODS
 

@@ -1,0 +1,262 @@
+"""Linear interpolation of n-gram models for a new domain, weights found by EM.
+
+The mixture is ``P(w | h) = sum_i lambda_i P_i'(w | h)`` over the *union* of the
+components' vocabularies. ``P_i'`` is component ``i`` widened to that union: a word it
+knows keeps its own probability; its ``<unk>`` probability is divided evenly into
+``u_i + 1`` shares, one for each of the ``u_i`` union words it does not know and one left
+for ``<unk>`` itself. So each ``P_i'`` still sums to one over the union words, ``</s>`` and
+``<unk>``, and so does the mixture, whose ``<unk>`` probability is the weighted remainder
+``sum_i lambda_i P_i(<unk> | h) / (u_i + 1)``. A history word a component does not know
+is its ``<unk>`` in that component's history.
+
+The weights maximise the likelihood of held-out in-domain text. That likelihood is concave
+in the weights (a sum of logs of linear functions over the simplex), so the EM updates
+(each weight becomes the mean posterior of its component over the tokens) climb
+monotonically to the global optimum.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.errors import UsageError
+from rescore.lm.model import NGramModel
+from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary
+
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+
+
+def union_vocabulary(models: Sequence[NGramModel]) -> Vocabulary:
+    """Every component's words, in the order the components and their vocabularies give."""
+    words: list[str] = []
+    for m in models:
+        words.extend(m.vocab_.words[len(SPECIALS):])
+    return Vocabulary.from_words(words)
+
+
+def check_weights(weights: Sequence[float], n: int) -> F64:
+    """Weights as an array: ``n`` non-negative numbers summing to one."""
+    w = np.asarray([float(x) for x in weights], dtype=np.float64)
+    if len(w) != n:
+        raise UsageError(f"{len(w)} weights given for {n} models", field="--weights")
+    if not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise UsageError(f"weights must be non-negative numbers, got {list(weights)}",
+                         field="--weights")
+    if abs(float(w.sum()) - 1.0) > 1e-6:
+        raise UsageError(f"weights must sum to 1, got {float(w.sum()):.6g}", field="--weights")
+    return w
+
+
+class Mixture:
+    """The exact (dynamic) interpolation of fitted open-vocabulary models."""
+
+    def __init__(self, models: Sequence[NGramModel], weights: Sequence[float] | None = None):
+        if not models:
+            raise UsageError("a mixture needs at least one model")
+        for i, m in enumerate(models):
+            m._fitted()
+            if m.closed_vocab:
+                raise UsageError(f"model {i + 1} has a closed vocabulary; mixing needs "
+                                 "open-vocabulary models (unknown words as <unk>)")
+        self.models = list(models)
+        self.vocab = union_vocabulary(self.models)
+        n = len(self.models)
+        self.weights: F64 = (np.full(n, 1.0 / n) if weights is None
+                             else check_weights(weights, n))
+        # per component: union id -> its own id (UNK_ID where unknown), and log(u_i + 1)
+        self.id_maps: list[I64] = []
+        self.unk_shares: list[float] = []
+        for m in self.models:
+            own = m.vocab_.index
+            ids = np.array([own.get(w, UNK_ID) for w in self.vocab.words], dtype=np.int64)
+            self.id_maps.append(ids)
+            unknown = int(np.count_nonzero(ids[len(SPECIALS):] == UNK_ID))
+            self.unk_shares.append(math.log(unknown + 1))
+
+    @property
+    def order(self) -> int:
+        return max(m.order_ for m in self.models)
+
+    # --- per-token component matrices ----------------------------------------------------
+
+    def _adjust(self, i: int, union_ids: I64, logp: F64) -> F64:
+        """Component ``i``'s log-probabilities widened to the union (the ``<unk>`` rule)."""
+        unknown = self.id_maps[i][union_ids] == UNK_ID
+        out = logp.copy()
+        out[unknown] -= self.unk_shares[i]
+        return out
+
+    def component_token_logprobs(self, sentences: Sequence[Sequence[str]]) -> F64:
+        """(tokens, models) natural-log probabilities of every word and ``</s>``."""
+        target = np.array([self.vocab.id_of(w) for s in sentences for w in [*s, "</s>"]],
+                          dtype=np.int64)
+        if len(target):
+            target[np.cumsum([len(s) + 1 for s in sentences]) - 1] = 1  # </s>
+        cols = []
+        for i, m in enumerate(self.models):
+            per = m.token_logprobs(sentences)
+            flat = np.concatenate(per) if per else np.zeros(0)
+            cols.append(self._adjust(i, target, flat))
+        return np.stack(cols, axis=1) if cols else np.zeros((0, len(self.models)))
+
+    def component_ngram_logprobs(self, ngrams: I64) -> F64:
+        """(rows, models) log P_i'(last | rest) for n-grams of union ids (-1 pads the left)."""
+        cols = []
+        for i, m in enumerate(self.models):
+            mapped = np.where(ngrams >= 0, self.id_maps[i][np.maximum(ngrams, 0)], -1)
+            logp = m._fitted().score_ngrams(mapped)
+            cols.append(self._adjust(i, ngrams[:, -1], logp))
+        return np.stack(cols, axis=1)
+
+    # --- the mixture --------------------------------------------------------------------
+
+    def token_logprobs(self, sentences: Sequence[Sequence[str]]) -> F64:
+        """Flat natural-log mixture probability of every word and ``</s>`` in order."""
+        return mix_logprobs(self.component_token_logprobs(sentences), self.weights)
+
+    def logprob_ngrams(self, ngrams: Sequence[Sequence[str]]) -> F64:
+        """log P(last word | the words before it) under the mixture."""
+        return mix_logprobs(self.component_ngram_logprobs(self.encode_ngrams(ngrams)),
+                            self.weights)
+
+    def encode_ngrams(self, ngrams: Sequence[Sequence[str]]) -> I64:
+        index = self.vocab.index
+        width = max((len(g) for g in ngrams), default=1)
+        mat = np.full((len(ngrams), width), -1, dtype=np.int64)
+        for row, gram in enumerate(ngrams):
+            mat[row, width - len(gram):] = [index.get(w, UNK_ID) for w in gram]
+        return mat
+
+
+def mix_logprobs(component_logp: F64, weights: F64) -> F64:
+    """``log sum_i w_i exp(logp[:, i])`` row by row, stable where terms are tiny."""
+    with np.errstate(divide="ignore"):
+        terms = component_logp + np.log(weights)[None, :]
+    top = np.max(terms, axis=1)
+    safe = np.where(np.isfinite(top), top, 0.0)
+    with np.errstate(divide="ignore"):
+        out: F64 = safe + np.log(np.exp(terms - safe[:, None]).sum(axis=1))
+    return out
+
+
+@dataclass(frozen=True)
+class EMResult:
+    weights: tuple[float, ...]
+    log_likelihood: tuple[float, ...]  # natural log, after each iteration (index 0: start)
+    iterations: int
+    converged: bool
+    tokens: int
+
+    @property
+    def perplexity(self) -> float:
+        return math.exp(-self.log_likelihood[-1] / self.tokens) if self.tokens else math.nan
+
+
+def estimate_weights(component_logp: F64, *, start: Sequence[float] | None = None,
+                     tol: float = 1e-10, max_iter: int = 2000) -> EMResult:
+    """EM for the interpolation weights on a (tokens, models) log-probability matrix.
+
+    E step: the posterior of each component for each token; M step: the weights become the
+    posteriors' means. Stops when the log-likelihood gains less than ``tol`` per token.
+    """
+    n_tok, n_models = component_logp.shape
+    if n_tok == 0:
+        raise UsageError("the tuning text has no tokens to estimate mixture weights on")
+    if not np.all(np.isfinite(component_logp).any(axis=1)):
+        raise UsageError("some tuning token has zero probability under every model")
+    w = (np.full(n_models, 1.0 / n_models) if start is None
+         else check_weights(start, n_models))
+    # scale each row by its largest probability: posteriors and gains are unchanged
+    shift = component_logp.max(axis=1)
+    probs = np.exp(component_logp - shift[:, None])
+    base = float(shift.sum())
+    history = [base + float(np.log(probs @ w).sum())]
+    converged = False
+    while len(history) <= max_iter:
+        mix = probs @ w
+        w = w * (probs / mix[:, None]).mean(axis=0)
+        w = w / w.sum()
+        history.append(base + float(np.log(probs @ w).sum()))
+        if history[-1] - history[-2] < tol * n_tok:
+            converged = True
+            break
+    return EMResult(tuple(float(x) for x in w), tuple(history), len(history) - 1, converged,
+                    n_tok)
+
+
+def perplexity_of(logp: F64) -> float:
+    """``exp(-mean log-probability)`` of a flat token array (``</s>`` counted, ``<s>`` not)."""
+    return math.exp(-float(logp.sum()) / len(logp)) if len(logp) else math.nan
+
+
+@dataclass(frozen=True)
+class MixResult:
+    """What ``lm mix`` reports: weights in the models' order and tuning-text perplexities."""
+
+    weights: tuple[float, ...]
+    perplexity: float | None
+    component_perplexities: tuple[float, ...] | None
+    merged_perplexity: float | None = None
+    iterations: int = 0
+    tokens: int = 0
+    log_likelihood: tuple[float, ...] = field(default=(), repr=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        def finite(x: float | None) -> float | None:
+            return x if x is not None and math.isfinite(x) else None
+
+        return {
+            "weights": list(self.weights),
+            "perplexity": finite(self.perplexity),
+            "component_perplexities": (None if self.component_perplexities is None
+                                       else [finite(x) for x in self.component_perplexities]),
+            "merged_perplexity": finite(self.merged_perplexity),
+            "em_iterations": self.iterations,
+            "tokens": self.tokens,
+        }
+
+
+def mix_models(models: Sequence[NGramModel], tune_on: Sequence[Sequence[str]] | None, *,
+               weights: Sequence[float] | None = None) -> tuple[Mixture, NGramModel, MixResult]:
+    """Estimate (or take) the weights, merge into one back-off model, measure both."""
+    from rescore.lm.merge import merge
+
+    mixture = Mixture(models)
+    if tune_on is None:
+        if weights is None:
+            raise UsageError("give tuning text to estimate weights on, or fixed weights",
+                             field="--tune-on")
+        mixture.weights = check_weights(weights, len(models))
+        merged = merge(mixture)
+        return mixture, merged, MixResult(tuple(float(x) for x in mixture.weights), None, None)
+    sentences = [list(s) for s in tune_on]
+    comp = mixture.component_token_logprobs(sentences)
+    if weights is None:
+        em = estimate_weights(comp)
+        mixture.weights = np.asarray(em.weights)
+        iterations, history = em.iterations, em.log_likelihood
+    else:
+        mixture.weights = check_weights(weights, len(models))
+        iterations, history = 0, ()
+    merged = merge(mixture)
+    mixed = mix_logprobs(comp, mixture.weights)
+    merged_logp = np.concatenate(merged.token_logprobs(sentences)) if sentences else np.zeros(0)
+    result = MixResult(
+        weights=tuple(float(x) for x in mixture.weights),
+        perplexity=perplexity_of(mixed),
+        component_perplexities=tuple(perplexity_of(comp[:, i]) for i in range(len(models))),
+        merged_perplexity=perplexity_of(merged_logp),
+        iterations=iterations, tokens=len(mixed), log_likelihood=history,
+    )
+    return mixture, merged, result
+
+
+__all__ = ["EMResult", "MixResult", "Mixture", "estimate_weights", "mix_logprobs",
+           "mix_models", "perplexity_of", "union_vocabulary"]

@@ -99,16 +99,22 @@ def progress(description: str, total: float | None = None) -> Iterator[Callable[
         BarColumn,
         MofNCompleteColumn,
         Progress,
+        ProgressColumn,
         SpinnerColumn,
+        Task,
         TaskProgressColumn,
         TextColumn,
         TimeElapsedColumn,
         TimeRemainingColumn,
     )
+    from rich.text import Text
+
+    class RateColumn(ProgressColumn):
+        def render(self, task: Task) -> Text:
+            return Text(f"{task.speed:,.0f}/s" if task.speed else "")
 
     columns = [SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
-               MofNCompleteColumn(), TaskProgressColumn(),
-               TextColumn("{task.speed:.0f}/s" if total else ""), TimeElapsedColumn(),
+               MofNCompleteColumn(), TaskProgressColumn(), RateColumn(), TimeElapsedColumn(),
                TimeRemainingColumn()]
     with Progress(*columns, console=stderr, transient=True) as bar:
         task = bar.add_task(description, total=total)

@@ -142,11 +142,12 @@ def tune(
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
     models = pipeline.load_lms(lm or [])
-    outcome = pipeline.tune_file(
-        nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
-        grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
-        log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
-    )
+    with progress(f"tuning on {nbest}"):
+        outcome = pipeline.tune_file(
+            nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
+            grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
+            log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
+        )
     data = outcome.to_dict()
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {

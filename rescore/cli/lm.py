@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, table
 from rescore.errors import UsageError
 from rescore.ioutil import iter_text_lines
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
@@ -63,7 +63,8 @@ def build(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
     )
-    model.fit(read_corpus(text))
+    with progress(f"counting and smoothing {len(text)} file(s)"):
+        model.fit(read_corpus(text))
     save_model(model, output)
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "

@@ -8,7 +8,7 @@ from typing import Annotated, Any
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, table
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError
 from rescore.ioutil import iter_text_lines, sha256_file
@@ -69,8 +69,9 @@ def report(
                                                                path=str(tuning))
     files = [p for p in (before, after, refs, tuning) if p is not None]
     provenance = {"data_sha256": {str(p): sha256_file(p) for p in files}}
-    result = build_report(before_pairs, after_pairs, provenance=provenance,
-                          tuning=tuning_data, resamples=resamples, seed=seed)
+    with progress("bootstrap and significance tests"):
+        result = build_report(before_pairs, after_pairs, provenance=provenance,
+                              tuning=tuning_data, resamples=resamples, seed=seed)
     result = with_gate(result, max_wer=max_wer, max_regression=max_regression)
     written = write_report(result, out)
     data = result.to_dict()

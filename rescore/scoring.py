@@ -18,7 +18,7 @@ import numpy as np
 
 from rescore.errors import InputError
 from rescore.nbest import Utterance
-from rescore.text import tokens
+from rescore.text import tokens, tokens_many
 from rescore.wer import word_errors
 
 ACOUSTIC = "acoustic"
@@ -170,6 +170,14 @@ class Batch:
     tokens: list[list[str]]
 
 
+def _first_missing(items: Sequence[tuple[int, Utterance]], name: str) -> tuple[int, int]:
+    for line, utt in items:
+        for h, hyp in enumerate(utt["hypotheses"]):
+            if name not in hyp.get("features", {}):
+                return line, h
+    raise AssertionError("no hypothesis lacks the feature")
+
+
 def build_matrix(
     items: Sequence[tuple[int, Utterance]],
     *,
@@ -190,32 +198,29 @@ def build_matrix(
     np.cumsum(sizes, out=offsets[1:])
     n = int(offsets[-1])
     values = np.empty((n, len(names)), dtype=np.float64)
-    toks: list[list[str]] = []
+    hyps = [hyp for _, utt in items for hyp in utt["hypotheses"]]
+    toks = tokens_many([hyp["text"] for hyp in hyps])
+    values[:, 0] = [hyp["acoustic"] for hyp in hyps]
+    first_feature = 1 + len(lms) + 1
+    values[:, first_feature - 1] = [len(words) for words in toks]
+    for j, name in enumerate(features):
+        try:
+            values[:, first_feature + j] = [hyp["features"][name] for hyp in hyps]
+        except KeyError:
+            line, h = _first_missing(items, name)
+            raise InputError(f"feature {name!r} is weighted but missing here",
+                             path=path, line=line, field=f"hypotheses[{h}].features") from None
     errors = np.zeros(n, dtype=np.int64) if with_errors else None
     ref_words = np.zeros(len(items), dtype=np.int64) if with_errors else None
-    first_feature = 1 + len(lms) + 1
-    row = 0
-    for u, (line, utt) in enumerate(items):
-        ref = tokens(utt["reference"]) if with_errors and "reference" in utt else None
-        if with_errors and ref is None:
-            raise InputError("reference needed", path=path, line=line, field="reference")
-        if ref is not None and ref_words is not None:
+    if with_errors:
+        assert errors is not None and ref_words is not None
+        for u, (line, utt) in enumerate(items):
+            if "reference" not in utt:
+                raise InputError("reference needed", path=path, line=line, field="reference")
+            ref = tokens(utt["reference"])
             ref_words[u] = len(ref)
-        for h, hyp in enumerate(utt["hypotheses"]):
-            words = tokens(hyp["text"])
-            toks.append(words)
-            values[row, 0] = hyp["acoustic"]
-            values[row, first_feature - 1] = len(words)
-            if features:
-                feats = hyp.get("features", {})
-                for j, name in enumerate(features):
-                    if name not in feats:
-                        raise InputError(f"feature {name!r} is weighted but missing here",
-                                         path=path, line=line, field=f"hypotheses[{h}].features")
-                    values[row, first_feature + j] = feats[name]
-            if errors is not None and ref is not None:
-                errors[row] = word_errors(ref, words)
-            row += 1
+            for row in range(int(offsets[u]), int(offsets[u + 1])):
+                errors[row] = word_errors(ref, toks[row])
     for j, model in enumerate(lms.values()):
         values[:, 1 + j] = model.logprob(toks) if n else 0.0
     matrix = FeatureMatrix(names=names, values=values, offsets=offsets,

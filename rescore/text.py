@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
+from collections.abc import Sequence
 
 NORMALISATION = "nfc-lower-strip-punct-v1"
 
@@ -58,6 +59,15 @@ def tokens(text: str) -> list[str]:
         if word:
             words.append(word)
     return words
+
+
+def tokens_many(texts: Sequence[str]) -> list[list[str]]:
+    """``tokens`` of each text; one pass over the whole batch when it is plain ASCII words."""
+    joined = "\n".join(texts)
+    if joined.isascii() and _ASCII_PUNCT.search(joined) is None and \
+            joined.count("\n") == len(texts) - 1:
+        return [line.split() for line in joined.lower().split("\n")] if texts else []
+    return [tokens(text) for text in texts]
 
 
 def normalise(text: str) -> str:

@@ -57,3 +57,12 @@ def test_ascii_fast_path_matches_unicode_rule(raw: str) -> None:
     # The same text with one non-ASCII letter appended takes the general path; both paths
     # must agree on the ASCII part (rule: Unicode category P* except ' and -).
     assert tokens(raw + " \u00e9") == [*tokens(raw), "\u00e9"]
+
+
+@given(st.lists(st.text(alphabet=st.sampled_from("ab c\n\t.'-É\u2019"), max_size=12),
+                max_size=8))
+def test_tokens_many_equals_tokens_one_by_one(texts: list[str]) -> None:
+    # the batch fast path must agree with the per-text rule, newlines inside texts included
+    from rescore.text import tokens_many
+
+    assert tokens_many(texts) == [tokens(t) for t in texts]

@@ -12,6 +12,7 @@ single-process run.
 from __future__ import annotations
 
 import contextlib
+import logging
 import os
 import shutil
 import tempfile
@@ -32,6 +33,8 @@ from rescore.ioutil import (
 )
 from rescore.nbest import IdLedger, ReadLimits, RecordParser, ScoreConvention, read_refs
 from rescore.scoring import Weights
+
+log = logging.getLogger(__name__)
 
 
 @dataclass(frozen=True)
@@ -218,6 +221,8 @@ def apply_sharded(
             require_references=require_references, models=tuple(models), weights=weights,
             features=tuple(features), batch_size=batch_size, display_path=str(path),
         ) for i, (a, b, first) in enumerate(shards)]
+        log.info("%d shards of %s for %s", len(tasks), source,
+                 f"cluster {cluster}" if cluster else f"{workers} worker processes")
         refs = None if refs_path is None else read_refs(refs_path)
         ledger = IdLedger(str(path), refs)
         runner = _Runner(workers, cluster)

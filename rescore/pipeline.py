@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import itertools
+import logging
 from collections import Counter
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -41,6 +42,8 @@ from rescore.scoring import (
 )
 from rescore.text import NORMALISATION, tokens
 from rescore.wer import WerResult, corpus_wer
+
+log = logging.getLogger(__name__)
 
 TUNE_JSON_KEYS = ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
                   "baseline_wer", "oracle_wer", "search")
@@ -196,6 +199,8 @@ def apply_file(
             changed += write_scored(scored, fh, tsv)
             read += len(batch)
             written += len(scored)
+            log.info("rescored lines %d-%d (%d utterances so far)", batch[0][0], batch[-1][0],
+                     read)
             if progress is not None:
                 progress(len(batch))
         if read != written:  # every utterance read is accounted for in the output
@@ -333,6 +338,8 @@ def tune_file(
     extra_lms = [lm_column(n) for n in models if n != LM]
     matrix = load_matrix(path, models=models, features=features, refs=refs,
                          log_base=log_base, costs=costs)
+    log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
+             matrix.n_hypotheses, ", ".join(matrix.names))
     result = tuning.tune(
         matrix, search=search, features=[*extra_lms, *features],
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),

@@ -147,3 +147,20 @@ def test_tune_then_apply_on_the_demo_scenario(tmp_path: Path) -> None:
     after = json.loads(run(["wer", out, "--json"]).stdout)["wer"]
     before = json.loads(run(["wer", demo / "test.jsonl", "--json"]).stdout)["wer"]
     assert after < before
+
+
+def test_verbose_logs_to_stderr_only(tmp_path: Path) -> None:
+    import logging
+
+    weights = tmp_path / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
+                                   "insertion_penalty": 0.0, "features": {}}))
+    try:
+        result = run(["--verbose", "apply", TWO, "--weights", weights, "-o", tmp_path / "o"])
+    finally:
+        root = logging.getLogger()
+        for handler in list(root.handlers):
+            root.removeHandler(handler)
+    assert result.exit_code == 0
+    assert result.stdout == ""
+    assert "rescore.pipeline: rescored lines 1-3 (2 utterances so far)" in result.stderr

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import logging
+import sys
+
 import typer
 
 from rescore import __version__
@@ -34,6 +37,9 @@ def _root(
                                  help="Print the version and exit."),
 ) -> None:
     state.debug, state.quiet, state.verbose = debug, quiet, verbose
+    if verbose or debug:
+        logging.basicConfig(level=logging.DEBUG if debug else logging.INFO,
+                            format="%(asctime)s %(name)s: %(message)s", stream=sys.stderr)
 
 
 def _register() -> None:

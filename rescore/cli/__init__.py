@@ -39,7 +39,8 @@ def _root(
     state.debug, state.quiet, state.verbose = debug, quiet, verbose
     if verbose or debug:
         logging.basicConfig(level=logging.DEBUG if debug else logging.INFO,
-                            format="%(asctime)s %(name)s: %(message)s", stream=sys.stderr)
+                            format="%(asctime)s %(name)s: %(message)s", stream=sys.stderr,
+                            force=True)
 
 
 def _register() -> None:

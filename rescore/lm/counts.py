@@ -83,48 +83,114 @@ def _unigrams(words: I64, counts: I64, vocab_size: int) -> OrderCounts:
     return OrderCounts(np.zeros(vocab_size, np.int64), np.arange(vocab_size, dtype=np.int64), dense)
 
 
+_CHUNK = 1 << 16  # positions per block while packing windows: the temporaries stay in cache
+
+
+def _window_keys(tokens: I32, floor: I64, order: int, bits: int) -> tuple[U64, int]:
+    """Every window packed into one uint64 (last word in the high bits), and how many are valid.
+
+    A lane that lies before the window's floor holds the filler (all ones); a position whose
+    floor lies past it gets an all-ones key, which sorts after every real key.
+    """
+    n = len(tokens)
+    pad = order - 1
+    shifts = [bits * (order - 1 - j) for j in range(order)]  # lane j = the j-th word back
+    filler = (1 << bits) - 1
+    # fill[r + 1]: lanes beyond reach r hold the filler; r = -1 marks a position to drop
+    fill = np.zeros(order + 1, dtype=np.uint64)
+    fill[0] = np.uint64(0xFFFFFFFFFFFFFFFF)
+    for r in range(order):
+        fill[r + 1] = np.uint64(sum(filler << shifts[j] for j in range(r + 1, order)))
+    padded = np.zeros(n + pad, dtype=np.int32)
+    padded[pad:] = tokens
+    key = np.empty(n, dtype=np.uint64)
+    tmp = np.empty(_CHUNK, dtype=np.uint64)
+    reach = np.empty(_CHUNK, dtype=np.int64)
+    base = np.arange(_CHUNK, dtype=np.int64)
+    dropped = 0
+    for a in range(0, n, _CHUNK):
+        b = min(a + _CHUNK, n)
+        c = b - a
+        seg, t = key[a:b], tmp[:c]
+        seg[:] = padded[a + pad:b + pad]
+        seg <<= np.uint64(shifts[0])
+        for j in range(1, order):
+            t[:] = padded[a + pad - j:b + pad - j]
+            t <<= np.uint64(shifts[j])
+            seg |= t
+        rc = reach[:c]
+        np.subtract(base[:c], floor[a:b] - a, out=rc)
+        np.minimum(rc, order - 1, out=rc)
+        np.maximum(rc, -1, out=rc)
+        rc += 1
+        seg |= fill[rc]
+        dropped += int(np.count_nonzero(rc == 0))
+    return key, n - dropped
+
+
 def _count_packed(
     tokens: I32, floor: I64, order: int, vocab_size: int, bits: int
 ) -> list[OrderCounts]:
-    n = len(tokens)
-    filler = np.uint64((1 << bits) - 1)
-    pos = np.arange(n, dtype=np.int64)
-    key = tokens.astype(np.uint64) << np.uint64(bits * (order - 1))
-    tok64 = key >> np.uint64(bits * (order - 1))
-    # positions whose window reaches back past its floor, and by how far it may reach
-    reach = pos - floor
-    short = np.flatnonzero(reach < order - 1)
-    short_reach = reach[short]
-    for j in range(1, order):
-        shift = np.uint64(bits * (order - 1 - j))
-        if j < n:
-            key[j:] |= tok64[: n - j] << shift
-        # within j of the floor the j-th word back is outside the window: the filler
-        bad = short[short_reach < j]
-        lane = filler << shift
-        key[bad] = (key[bad] & ~lane) | lane
-    if np.any(reach < 0):
-        key = key[reach >= 0]
+    key, m = _window_keys(tokens, floor, order, bits)
     key.sort()
-    tables: list[OrderCounts] = []
-    previous: U64 | None = None
-    for k in range(1, order + 1):
-        kk = key >> np.uint64(bits * (order - k))
-        if k > 1:
-            kk = kk[(kk & filler) != filler]
-        uniq, cnt = _run_lengths(kk)
-        del kk
-        if k == 1:
-            tables.append(_unigrams(uniq.astype(np.int64), cnt, vocab_size))
+    key = key[:m]
+    filler = np.uint64((1 << bits) - 1)
+    shifts = [bits * (order - k) for k in range(1, order + 1)]  # order k keeps the top k lanes
+    # unigrams: the top lane, counted by binary search over the sorted keys
+    edges = np.searchsorted(key, np.arange(vocab_size + 1, dtype=np.uint64)
+                            << np.uint64(shifts[0]))
+    tables = [OrderCounts(np.zeros(vocab_size, np.int64), np.arange(vocab_size, dtype=np.int64),
+                          np.diff(edges).astype(np.int64))]
+    if order == 1 or m == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        tables += [OrderCounts(empty, empty, empty) for _ in range(order - 1)]
+        return tables
+    # the highest differing bit between neighbours tells which orders start a new run there
+    diff = np.empty(m, dtype=np.uint64)
+    diff[0] = np.uint64(0xFFFFFFFFFFFFFFFF)
+    np.bitwise_xor(key[1:], key[:-1], out=diff[1:])
+    top = np.flatnonzero(diff)  # runs of the top order; every lower run starts at one of them
+    top_diff = diff[top]
+    del diff
+    top_key = key[top]
+    del key
+    prev_new: npt.NDArray[np.bool_] | None = None
+    prev_rank: I64 | None = None
+    new: npt.NDArray[np.bool_] | None
+    at: I64 | None
+    for k in range(2, order + 1):
+        if k == order:
+            new = at = None
+            starts = top
+            uk = top_key
         else:
-            upper = uniq >> np.uint64(bits)
-            if k == 2:
-                suffix = upper.astype(np.int64)
-            else:
-                assert previous is not None
-                suffix = np.searchsorted(previous, upper).astype(np.int64)
-            tables.append(OrderCounts(suffix, (uniq & filler).astype(np.int64), cnt))
-        previous = uniq
+            new = top_diff >= np.uint64(1 << shifts[k - 1])
+            at = np.flatnonzero(new)
+            starts = top[at]
+            uk = top_key[at] >> np.uint64(shifts[k - 1])
+        first = (uk & filler).view(np.int64)
+        keep = np.flatnonzero(first != np.int64(filler))
+        starts_kept = starts[keep]
+        ends = np.empty(len(starts), dtype=np.int64)
+        ends[:-1] = starts[1:]
+        ends[-1] = m
+        cnt = ends[keep]
+        cnt -= starts_kept
+        if k == 2:
+            suffix = (uk[keep] >> np.uint64(bits)).view(np.int64)
+        else:
+            assert prev_new is not None and prev_rank is not None
+            # the (k-1)-gram run each kept k-gram run lies in, then its id among the listed
+            below = prev_new if at is None else prev_new[at]
+            group = np.cumsum(below, dtype=np.int64)[keep]
+            suffix = prev_rank[group]
+        if new is not None:
+            prev_new = new
+            valid = np.zeros(len(starts) + 1, dtype=np.int64)
+            valid[keep + 1] = 1
+            prev_rank = np.cumsum(valid, out=valid)
+            prev_rank -= 1  # prev_rank[g + 1]: id of run g among the listed (k-1)-grams
+        tables.append(OrderCounts(suffix, first[keep], cnt))
     return tables
 
 

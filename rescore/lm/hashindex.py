@@ -74,3 +74,41 @@ def lookup(slots: I32, keys: U64, queries: U64) -> I64:
         q = q[more]
         where = (where[more] + 1) & mask
     return result
+
+
+NO_KEY = np.uint64(0xFFFFFFFFFFFFFFFF)  # the key of an empty slot in a slot-ordered key array
+
+
+def slot_keys(slots: I32, keys: U64) -> U64:
+    """The key held in each slot (``NO_KEY`` where empty): one probe reads one array."""
+    out = np.full(len(slots), NO_KEY, dtype=np.uint64)
+    filled = np.flatnonzero(slots >= 0)
+    out[filled] = keys[slots[filled]]
+    return out
+
+
+def lookup_slotted(slots: I32, held: U64, queries: U64) -> I64:
+    """As :func:`lookup`, given ``held = slot_keys(slots, keys)`` (keys never equal NO_KEY).
+
+    The first probe runs over the whole batch; later probes only over the queries that met
+    another key in their slot.
+    """
+    bits = len(slots).bit_length() - 1
+    mask = len(slots) - 1
+    where = _home(queries, bits)
+    got = held[where]
+    hit = got == queries
+    result = np.where(hit, slots[where], EMPTY).astype(np.int64)
+    pending = np.flatnonzero(~hit & (got != NO_KEY))
+    if pending.size:
+        q = queries[pending]
+        where = where[pending]
+        while pending.size:
+            where = (where + 1) & mask
+            got = held[where]
+            hit = got == q
+            if hit.any():
+                result[pending[hit]] = slots[where[hit]]
+            more = ~hit & (got != NO_KEY)
+            pending, q, where = pending[more], q[more], where[more]
+    return result

@@ -15,7 +15,7 @@ look-ups per token, each one batched over the whole input.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import numpy.typing as npt
@@ -38,6 +38,8 @@ class BackoffTables:
     bow: list[F64]  # orders 1 .. N-1
     keys: list[U64]  # keys[0] is empty: unigram ids are word ids
     slots: list[I32]
+    # per order, the key held in each hash slot; derived on first use, never stored
+    _held: dict[int, U64] = field(default_factory=dict, init=False, repr=False, compare=False)
 
     @property
     def order(self) -> int:
@@ -52,7 +54,10 @@ class BackoffTables:
 
     def find(self, k: int, queries: U64) -> I64:
         """Index among the order-``k`` n-grams of each key, or -1."""
-        return hashindex.lookup(self.slots[k - 1], self.keys[k - 1], queries)
+        held = self._held.get(k)
+        if held is None:
+            held = self._held[k] = hashindex.slot_keys(self.slots[k - 1], self.keys[k - 1])
+        return hashindex.lookup_slotted(self.slots[k - 1], held, queries)
 
     def key(self, ids: I64, first: I64 | npt.NDArray[np.int32]) -> U64:
         return ids.astype(np.uint64) * np.uint64(self.vsize) + first.astype(np.uint64)
@@ -113,21 +118,35 @@ class BackoffTables:
         """Natural-log probability of each position given its history back to ``floor``."""
         n = len(tokens)
         order = self.order
-        pos = np.arange(n, dtype=np.int64)
+        v = np.uint64(self.vsize)
         toks = tokens.astype(np.int64)
-        grams = [toks]
+        reach = np.arange(n, dtype=np.int64) - floor  # words of history within the sentence
+        result = self.logp[0][toks]
+        longest = np.ones(n, dtype=np.int8)
+        # listed[k-1]: positions whose order-k n-gram is listed, and that n-gram's id
+        listed: list[tuple[I64, I64]] = [(np.arange(n, dtype=np.int64), toks)]
         for k in range(2, order + 1):
-            left = np.full(n, -1, dtype=np.int64)
-            ok = pos - (k - 1) >= floor
-            left[ok] = toks[pos[ok] - (k - 1)]
-            grams.append(self._extend(k, grams[-1], left))
-        contexts = []
+            at, ids = listed[-1]
+            room = reach[at] >= k - 1
+            at, ids = at[room], ids[room]
+            key = ids.astype(np.uint64)
+            key *= v
+            key += toks[at - (k - 1)].astype(np.uint64)
+            found = self.find(k, key)
+            ok = found >= 0
+            at, ids = at[ok], found[ok]
+            listed.append((at, ids))
+            result[at] = self.logp[k - 1][ids]
+            longest[at] = k
+        # back-off weights of the contexts longer than the n-gram found, up to the order used
         for j in range(1, order):
-            ctx = np.full(n, -1, dtype=np.int64)
-            ctx[1:] = grams[j - 1][:-1]
-            contexts.append(ctx)
-        m = np.minimum(order, pos - floor + 1)
-        return self._combine(grams, contexts, m)
+            at, ids = listed[j - 1]
+            nxt = at + 1  # the order-j n-gram ending at i-1 is the context of position i
+            use = nxt < n
+            nxt, ids = nxt[use], ids[use]
+            use = (longest[nxt] <= j) & (reach[nxt] >= j)
+            result[nxt[use]] += self.bow[j - 1][ids[use]]
+        return result
 
     def score_ngrams(self, ngrams: I64) -> F64:
         """log P(last | the others) for each row; -1 on the left pads a shorter history."""

@@ -11,6 +11,7 @@ import array
 from collections import defaultdict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
+from itertools import chain, repeat
 
 import numpy as np
 import numpy.typing as npt
@@ -82,17 +83,15 @@ def stream_from_lengths(body: I32, lengths: I64) -> Stream:
 
 def encode(vocab: Vocabulary, sentences: Iterable[Sequence[str]]) -> tuple[Stream, int]:
     """The padded id stream of ``sentences`` and the number of out-of-vocabulary words."""
-    index = vocab.index
-    body = array.array("i")
-    lengths = array.array("q")
-    for sent in sentences:
-        body.extend([index.get(w, UNK_ID) for w in sent])
-        lengths.append(len(sent))
-    ids = np.frombuffer(body, dtype=np.int32).copy() if len(body) else np.zeros(0, np.int32)
+    sents = sentences if isinstance(sentences, Sequence) else list(sentences)
+    lens = np.fromiter(map(len, sents), dtype=np.int64, count=len(sents))
+    total = int(lens.sum())
+    # one C-level dict probe per token: map() calls index.get(word, UNK_ID) without a frame
+    ids = np.fromiter(map(vocab.index.get, chain.from_iterable(sents), repeat(UNK_ID)),
+                      dtype=np.int32, count=total)
     # the literal reserved words in text are unknown words, not sentence marks
-    ids[(ids == BOS_ID) | (ids == EOS_ID)] = UNK_ID
+    ids[ids <= EOS_ID] = UNK_ID
     oov = int(np.count_nonzero(ids == UNK_ID))
-    lens = np.frombuffer(lengths, dtype=np.int64).copy() if len(lengths) else np.zeros(0, np.int64)
     return stream_from_lengths(ids, lens), oov
 
 

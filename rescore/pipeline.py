@@ -7,6 +7,7 @@ returns a small result; none of them prints.
 from __future__ import annotations
 
 import contextlib
+import functools
 import itertools
 import logging
 from collections import Counter
@@ -49,18 +50,32 @@ TUNE_JSON_KEYS = ("lm_weight", "insertion_penalty", "features", "dev_errors", "d
                   "baseline_wer", "oracle_wer", "search")
 
 
-@dataclass(frozen=True)
 class NamedModel:
-    name: str
-    path: Path
-    model: LanguageModel
-    sha256: str
+    """A model named on the command line, loaded on first use.
+
+    A parallel run hands workers the path only, so the main process never loads it;
+    the file's SHA-256 is computed only when provenance asks for it.
+    """
+
+    def __init__(self, name: str, path: Path) -> None:
+        if not path.is_file():
+            raise InputError("model file not found", path=path)
+        self.name = name
+        self.path = path
+
+    @functools.cached_property
+    def model(self) -> LanguageModel:
+        from rescore.lm import load_model
+
+        return load_model(self.path)
+
+    @functools.cached_property
+    def sha256(self) -> str:
+        return sha256_file(self.path)
 
 
 def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
     """Models from ``--lm`` values: ``MODEL`` (the main LM) or ``NAME=MODEL``."""
-    from rescore.lm import load_model
-
     out: dict[str, NamedModel] = {}
     for spec in specs:
         name, eq, path = spec.partition("=")
@@ -70,7 +85,7 @@ def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
             raise UsageError(f"--lm {spec!r}: expected MODEL or NAME=MODEL")
         if name in out:
             raise UsageError(f"--lm: the name {name!r} is given twice")
-        out[name] = NamedModel(name, Path(path), load_model(path), sha256_file(path))
+        out[name] = NamedModel(name, Path(path))
     return out
 
 

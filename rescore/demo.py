@@ -22,6 +22,10 @@ from rescore.wer import corpus_wer
 
 BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
 FILES = ("train.txt", "dev.txt", "dev.jsonl", "test.jsonl")
+# In-domain sentences of the adaptation comparison: a new deployment's first days of logbook.
+ADAPT_SENTENCES = 100
+SMALL_ROW = f"in-domain, {ADAPT_SENTENCES} lines"
+FULL_ROW = "in-domain, all lines"
 
 
 @dataclass(frozen=True)
@@ -86,7 +90,8 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     }
     comparison: list[dict[str, Any]] = []
     if (data / "background.txt").is_file():
-        comparison, extra = _compare(data, out, order, model, models, tuned, after, progress)
+        comparison, extra = _compare(data, out, order, models, tuned, after,
+                                     ppl["perplexity"], progress)
         outputs += extra
         summary["comparison"] = comparison
     write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
@@ -94,35 +99,46 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     return DemoResult(summary, before, after, oracle, ppl, outputs, comparison)
 
 
-def _compare(data: Path, out: Path, order: int, in_domain: Any,
-             in_models: dict[str, pipeline.NamedModel], in_tuned: dict[str, Any],
-             in_after: dict[str, Any], progress: Callable[[str], None]
-             ) -> tuple[list[dict[str, Any]], list[Path]]:
-    """Background only, in-domain only, their mixture, and both as log-linear features."""
+def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.NamedModel],
+             in_tuned: dict[str, Any], in_after: dict[str, Any], in_ppl: float,
+             progress: Callable[[str], None]) -> tuple[list[dict[str, Any]], list[Path]]:
+    """The everyday adaptation case: a general model and only a little in-domain text.
+
+    The in-domain model here is built from the first ``ADAPT_SENTENCES`` logbook lines (a
+    new deployment's first days), so the general model has something to add. Rows: the
+    general model alone, the small in-domain model alone, their EM mixture (merged), both
+    as log-linear features, and the full logbook model for reference.
+    """
+    from itertools import islice
+
     from rescore.lm import NGramModel, read_corpus, save_model
     from rescore.lm.mix import mix_models
 
     progress(f"building a {order}-gram background LM from {data / 'background.txt'}")
     background = NGramModel(order=order).fit(read_corpus([data / "background.txt"]))
-    bg_path, mix_path = out / "background.lm", out / "mixed.lm"
+    progress(f"building a {order}-gram LM from the first {ADAPT_SENTENCES} logbook sentences")
+    small = NGramModel(order=order).fit(
+        islice(read_corpus([data / "train.txt"]), ADAPT_SENTENCES))
+    bg_path, small_path, mix_path = out / "background.lm", out / "logbook-small.lm", out / "mixed.lm"
     save_model(background, bg_path)
+    save_model(small, small_path)
     dev_text = list(read_corpus([data / "dev.txt"]))
-    progress("mixing background and in-domain LMs on dev.txt (EM)")
-    _, merged, mixed = mix_models([background, in_domain], dev_text)
+    progress("mixing background and small in-domain LMs on dev.txt (EM)")
+    _, merged, mixed = mix_models([background, small], dev_text)
     save_model(merged, mix_path)
     assert mixed.component_perplexities is not None
-    bg_ppl, in_ppl = mixed.component_perplexities
-    lm_path = in_models[LM].path
+    bg_ppl, small_ppl = mixed.component_perplexities
     systems: list[tuple[str, list[str], float | None]] = [
         ("background only", [str(bg_path)], bg_ppl),
-        ("in-domain only", [str(lm_path)], in_ppl),
+        (SMALL_ROW, [str(small_path)], small_ppl),
         ("mixed (merged model)", [str(mix_path)], mixed.merged_perplexity),
-        ("log-linear, two LMs", [str(lm_path), f"background={bg_path}"], None),
+        ("log-linear, two LMs", [str(small_path), f"background={bg_path}"], None),
+        (FULL_ROW, [str(in_models[LM].path)], in_ppl),
     ]
     rows: list[dict[str, Any]] = []
-    written = [bg_path, mix_path]
+    written = [bg_path, small_path, mix_path]
     for name, specs, dev_ppl in systems:
-        if name == "in-domain only":
+        if name == FULL_ROW:
             tuned, wer = in_tuned, in_after
         else:
             progress(f"tuning and rescoring with {name}")

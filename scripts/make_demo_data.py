@@ -4,7 +4,8 @@
 Everything is generated here from small grammars; no outside text is used.
 
 * ``train.txt`` and ``dev.txt``: in-domain logbook sentences (LM training and held-out text).
-* ``background.txt``: everyday general-English sentences from a second grammar.
+* ``background.txt``: general-English sentences from a second grammar: everyday talk, part of
+  which shares words with the logbook (numbers, times, plants, pumps, shifts).
 * ``dev.jsonl`` and ``test.jsonl``: N-best lists from a simulated recognizer.
 
 The recognizer simulation builds, for each reference sentence, a word lattice: every word
@@ -12,7 +13,8 @@ position offers the spoken word plus some acoustically confusable alternatives (
 confusion table), short function words may be dropped, and short filler words may be
 inserted between words. Each alternative carries an acoustic penalty drawn from a normal
 distribution whose mean is a few nats and which overlaps zero, so the acoustics alone often
-prefer a wrong word. A weak generic first pass (a unigram model of the background text,
+prefer a wrong word. A weak generic first pass (a unigram model of everyday text that is
+not shipped and knows nothing of the farm,
 weighted by ``FIRST_PASS_WEIGHT``) is added, the best paths are taken in order of
 ``acoustic + FIRST_PASS_WEIGHT * first_pass_lm`` and pruned to a beam and at most 20
 entries. Nothing but those two scores decides the order; the true transcript is pruned away
@@ -212,8 +214,7 @@ DOMAIN = Grammar(
 
 FRIENDS = ("sam", "alex", "nora", "ben", "maya", "leo", "ruth", "omar", "ivy", "dan")
 
-BACKGROUND = Grammar(
-    [
+EVERYDAY_TEMPLATES: list[tuple[float, str]] = [
         (4, "it {weather} {when}"),
         (2, "it will be {temp} degrees {day}"),
         (3, "the {vehicle} to {place} leaves at {clock}"),
@@ -237,8 +238,32 @@ BACKGROUND = Grammar(
         (1, "they painted the kitchen a pale shade of {colour}"),
         (2, "the {device} in the hall keeps flickering"),
         (2, "{who} planted {plant} in the garden {past}"),
-    ],
-    {
+]
+
+# Everyday talk that shares words with the logbook (numbers, 24-hour times, plants, pumps,
+# shifts), so that a general model knows some of what the domain says.
+SHARED_TEMPLATES: list[tuple[float, str]] = [
+        (2, "the coach for {place} leaves from bay {small} at {clock24}"),
+        (2, "we grew {gcrop} on the balcony {past}"),
+        (2, "i bought {gcrop} at the market for {small} pounds"),
+        (1, "the {gcrop} in the window box {gstate}"),
+        (2, "the pump in the {room} stopped working {past}"),
+        (2, "turn the heating up to {temp} degrees"),
+        (1, "the humidity was {pct} {day}"),
+        (1, "the battery on my phone is at {pct}"),
+        (2, "open the window in the {room} a little"),
+        (2, "we sat in row {count} at the {venue}"),
+        (2, "{friend} works the {shift} shift at the {workplace}"),
+        (2, "my shift at the {workplace} starts at {clock24}"),
+        (1, "the filter in the fish tank needs cleaning"),
+        (1, "the water in the tank was {temp} degrees"),
+        (1, "the seedlings on the windowsill {gstate}"),
+        (2, "the train was {count} minutes late at {clock24}"),
+        (1, "set the timer for {count} minutes"),
+        (1, "switch the {device} on when you get in"),
+]
+
+BACKGROUND_SLOTS: dict[str, Filler] = {
         "weather": pick("rained", "snowed", "was sunny", "was cold", "was windy", "poured",
                         "was foggy", "cleared up"),
         "when": pick("all morning", "in the afternoon", "on the way to work", "at the weekend",
@@ -277,8 +302,22 @@ BACKGROUND = Grammar(
         "scenery": pick("river", "beach", "canal", "cliffs", "old railway"),
         "colour": pick("green", "blue", "yellow", "grey"),
         "plant": pick("tomatoes", "beans", "sunflowers", "potatoes", "herbs", "roses"),
-    },
-)
+        "clock24": clock_24,
+        "pct": percent,
+        "gcrop": pick("basil", "mint", "lettuce", "strawberries", "kale", "spinach", "rocket",
+                      "chard", "coriander", "tomatoes", "herbs"),
+        "gstate": pick("look healthy", "are wilting", "look leggy", "need water",
+                       "are flowering"),
+        "room": pick("kitchen", "cellar", "garage", "bathroom", "hall", "shed"),
+        "shift": pick("night", "day", "early", "late"),
+        "workplace": pick("hospital", "warehouse", "bakery", "station", "factory", "depot"),
+}
+
+# The general-English text we ship (background.txt) is everyday talk plus the shared part.
+BACKGROUND = Grammar(EVERYDAY_TEMPLATES + SHARED_TEMPLATES, BACKGROUND_SLOTS)
+# The recognizer vendor's own generic text behind the simulated first pass, not shipped:
+# everyday talk only, so the first pass knows nothing of the farm.
+EVERYDAY = Grammar(EVERYDAY_TEMPLATES, BACKGROUND_SLOTS)
 
 # ---------------------------------------------------------------------------------------
 # The confusion model
@@ -540,7 +579,7 @@ def k_best(slots: Sequence[Sequence[tuple[tuple[str, ...], float, float]]],
 
 
 class Unigram:
-    """The weak generic first-pass model: add-one unigram of the background text (ln)."""
+    """The weak generic first-pass model: add-one unigram of everyday text (ln)."""
 
     def __init__(self, sentences: Iterable[str]):
         self.counts: Counter[str] = Counter(w for s in sentences for w in s.split())
@@ -602,14 +641,17 @@ Every sentence comes from the grammars in `scripts/make_demo_data.py`; no outsid
 
 - `train.txt`: {sizes.train} in-domain logbook sentences for LM training (repeats allowed).
 - `dev.txt`: {sizes.dev_text} held-out in-domain sentences, none in `train.txt`.
-- `background.txt`: {sizes.background} everyday general-English sentences from a second grammar.
+- `background.txt`: {sizes.background} general-English sentences from a second grammar:
+  everyday talk, part of which shares words with the logbook (numbers, times, plants, pumps,
+  shifts), so a general model knows some of what the crew say.
 - `dev.jsonl`, `test.jsonl`: {sizes.nbest} N-best lists each (contract format, 1 to
   {MAX_HYPOTHESES} hypotheses, `meta` = speaker and shift). Their references occur in no text
   file above. They come from a simulated recognizer: a confusion table of sound-alike words,
   filler insertions and function-word deletions, each with an acoustic penalty (nats) drawn
   from a normal distribution that overlaps zero, plus occasional noise bursts. Hypotheses are
   ordered by `acoustic + {FIRST_PASS_WEIGHT} * features.first_pass_lm`, where `first_pass_lm`
-  is the natural-log score of a generic add-one unigram model of `background.txt`; the list
+  is the natural-log score of a generic add-one unigram model of everyday text (the
+  recognizer vendor's, not shipped: the everyday part of the same grammar); the list
   is cut to a beam, so the true transcript is sometimes missing.
 
 Regenerate (seed {seed}, deterministic):
@@ -631,9 +673,10 @@ def generate(out: Path, seed: int = DEFAULT_SEED, small: bool = False) -> dict[s
     held = set(test_refs) | set(dev_refs)
     dev_text = unique_sentences(DOMAIN, stream("dev-text"), sizes.dev_text, held)
     train = sentences(DOMAIN, stream("train"), sizes.train, held | set(dev_text))
-    background = sentences(BACKGROUND, stream("background"), sizes.background, set())
+    vendor_text = sentences(EVERYDAY, stream("background"), sizes.background, set())
+    background = sentences(BACKGROUND, stream("general"), sizes.background, set())
 
-    recognizer = Recognizer(Unigram(background))
+    recognizer = Recognizer(Unigram(vendor_text))
     files = {
         "train.txt": train,
         "dev.txt": dev_text,

@@ -179,9 +179,11 @@ def test_background_shares_words_not_phrasing() -> None:
     def trigrams(lines: Sequence[str]) -> set[tuple[str, ...]]:
         return {tuple(ws[i:i + 3]) for s in lines for ws in [s.split()] for i in range(len(ws) - 2)}
 
-    # Distinct phrasing: few word triples in common (numbers and times may coincide).
+    # Design of the scenario: the general text is mostly its own phrasing (under 15 % of its
+    # word triples occur in the logbook), yet shares some (numbers, times, bays, rows), so a
+    # general model has something to add to a small in-domain one.
     bg, tr = trigrams(background), trigrams(train)
-    assert len(bg & tr) < 0.05 * len(bg)
+    assert 0.01 * len(bg) < len(bg & tr) < 0.15 * len(bg)
 
 
 def test_hypotheses_ordered_by_first_pass_score(script: ModuleType,

@@ -119,7 +119,8 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
     progress(f"building a {order}-gram LM from the first {ADAPT_SENTENCES} logbook sentences")
     small = NGramModel(order=order).fit(
         islice(read_corpus([data / "train.txt"]), ADAPT_SENTENCES))
-    bg_path, small_path, mix_path = out / "background.lm", out / "logbook-small.lm", out / "mixed.lm"
+    bg_path, small_path = out / "background.lm", out / "logbook-small.lm"
+    mix_path = out / "mixed.lm"
     save_model(background, bg_path)
     save_model(small, small_path)
     dev_text = list(read_corpus([data / "dev.txt"]))

@@ -361,8 +361,9 @@ def tune_file(
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
         folds=folds, seed=seed, cv_warn=cv_warn, lm_column=LM if LM in models else None,
     )
-    prov = provenance(data=[path], models=models,
-                      extra={"search": result.search, "seed": seed, "folds": folds})
+    # one provenance for the weights file and the analysis file: package version,
+    # normalisation, data and model checksums, then how the search ran
+    prov = provenance(data=[path], models=models, extra=result.search_record())
     tuning.write_weights(weights_path, result.weights, prov)
     if analysis_path is not None:
         import json

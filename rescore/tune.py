@@ -150,6 +150,13 @@ class TuneResult:
         """Cross-validated WER minus dev WER, absolute (positive: worse on held-out data)."""
         return None if self.cv is None else self.cv.wer - self.dev_wer
 
+    def search_record(self) -> dict[str, Any]:
+        """How the weights were found, for the weights file's provenance: the search
+        method, the weights it tuned, the dev result and every setting (grids, seed,
+        folds, restarts, bounds)."""
+        return {"search": self.search, "tuned": list(self.tuned), "dev_wer": self.dev_wer,
+                "dev_errors": self.dev_errors, "settings": dict(self.settings)}
+
     def to_dict(self) -> dict[str, Any]:
         """The contract's tune JSON keys, then extras (acoustic scale, cv, depth, surface)."""
         out: dict[str, Any] = {
@@ -999,17 +1006,6 @@ _FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
 def _weights_dict(weights: Weights) -> dict[str, Any]:
     return {"acoustic_scale": weights.acoustic_scale, "lm_weight": weights.lm_weight,
             "insertion_penalty": weights.insertion_penalty, "features": dict(weights.features)}
-
-
-def weights_file_dict(result: TuneResult, provenance: Mapping[str, Any]) -> dict[str, Any]:
-    """The contract's weights file; the search method and its settings join ``provenance``."""
-    from rescore import __version__
-
-    prov = {"package_version": __version__, "search": result.search,
-            "tuned": list(result.tuned), "dev_wer": result.dev_wer,
-            "dev_errors": result.dev_errors, "settings": dict(result.settings),
-            **dict(provenance)}
-    return {**_weights_dict(result.weights), "provenance": prov}
 
 
 def _number(value: object, path: str, name: str) -> float:

@@ -3,6 +3,8 @@ the recognizer sample's published weights, cross-validation, depth table, weight
 
 from __future__ import annotations
 
+import hashlib
+import importlib.metadata
 import itertools
 import json
 import math
@@ -25,10 +27,10 @@ from rescore.tune import (
     plateau_centre,
     read_weights,
     tune,
-    weights_file_dict,
     write_weights,
 )
 from rescore.wer import word_errors
+from tests.conftest import FIXTURES, run
 
 NAMES = ("acoustic", "lm", "words", "f")
 
@@ -432,18 +434,58 @@ def test_tuning_on_the_recognizer_sample(sample_dir: Path, name: str) -> None:
 # ---------------------------------------------------------------- weights file
 
 
-def test_weights_file_round_trip(tmp_path: Path) -> None:
-    result = tune(signal_set(n_utt=40), features=["f"], folds=0)
-    body = weights_file_dict(result, {"data_sha256": "abc"})
+@pytest.mark.parametrize("search", ["grid", "exact"])
+def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str) -> None:
+    # the path a user takes: `rescore tune` on a file, then the weights file it wrote
+    dev = FIXTURES / "demo" / "dev.jsonl"
+    model = tmp_path / "logbook.lm"
+    assert run(["lm", "build", FIXTURES / "demo" / "train.txt", "--order", "3",
+                "-o", model]).exit_code == 0
+    out, analysis = tmp_path / "out" / "weights.json", tmp_path / "out" / "tuning.json"
+    out.parent.mkdir()
+    extra = ["--feature", "first_pass_lm"] if search == "exact" else []
+    result = run(["-q", "tune", dev, "--lm", model, "-o", out, "--analysis", analysis,
+                  "--search", search, *extra, "--seed", "7", "--folds", "3",
+                  "--grid-lm", "0:20:41", "--warn-cv-gap", "2", "--json"])
+    assert result.exit_code == 0, result.stderr
+    printed = json.loads(result.stdout)
+    body = json.loads(out.read_text())
+    # the contract's weights file: these keys and no others
     assert set(body) == {"acoustic_scale", "lm_weight", "insertion_penalty", "features",
                          "provenance"}
-    assert body["provenance"]["search"] == "exact"
-    assert body["provenance"]["data_sha256"] == "abc"
+    assert read_weights(out) == Weights(lm_weight=printed["lm_weight"],
+                                        insertion_penalty=printed["insertion_penalty"],
+                                        features=printed["features"])
+    prov = body["provenance"]
+    # package version as the installed distribution's metadata gives it (importlib.metadata)
+    assert prov["version"] == importlib.metadata.version("rescore")
+    # checksums as Python's hashlib computes them over the files' bytes
+    assert prov["data_sha256"] == {str(dev): hashlib.sha256(dev.read_bytes()).hexdigest()}
+    assert prov["models"] == {"lm": {"path": str(model),
+                                     "sha256": hashlib.sha256(model.read_bytes()).hexdigest()}}
+    # how the search ran: the method, what it tuned, its dev result and the settings given
+    assert prov["search"] == search == printed["search"]
+    assert prov["tuned"] == ["lm", "words", *(["first_pass_lm"] if extra else [])]
+    assert prov["dev_wer"] == printed["dev_wer"] and prov["dev_errors"] == printed["dev_errors"]
+    settings = prov["settings"]
+    assert settings["seed"] == 7 and settings["folds"] == 3
+    assert settings["lm_grid"] == [0.0, 20.0, 41]  # --grid-lm 0:20:41 as given
+    assert settings["penalty_grid"] == [-20.0, 20.0, 81]  # the documented default
+    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2 points
+    if search == "exact":
+        assert settings["start"] == "grid" and settings["restarts"] == 3
+    # the analysis file records the same provenance; nothing else was left behind
+    assert json.loads(analysis.read_text())["provenance"] == prov
+    assert sorted(p.name for p in out.parent.iterdir()) == ["tuning.json", "weights.json"]
+
+
+def test_write_weights_round_trip(tmp_path: Path) -> None:
+    weights = Weights(acoustic_scale=0.5, lm_weight=8.25, insertion_penalty=-1.5,
+                      features={"f": 0.125})
     path = tmp_path / "weights.json"
-    write_weights(path, result.weights, body["provenance"])
-    assert read_weights(path) == result.weights
-    assert json.loads(path.read_text())["provenance"]["data_sha256"] == "abc"
-    assert [p.name for p in tmp_path.iterdir()] == ["weights.json"]
+    write_weights(path, weights, {"note": "anything"})
+    assert read_weights(path) == weights
+    assert json.loads(path.read_text())["provenance"] == {"note": "anything"}
 
 
 GOOD = '{"acoustic_scale": 1, "lm_weight": 0.8, "insertion_penalty": -0.5, "features": {}}'

@@ -190,7 +190,7 @@ def test_tune_reports_the_cross_validated_wer(demo_lm: Path, tmp_path: Path) -> 
     cv = json.loads(analysis.read_text())["cv"]
     # k-fold cross-validation pools the held-out errors of all folds over all reference
     # words (common practice; Hastie, Tibshirani and Friedman, Elements of Statistical
-    # Learning, 2nd ed., section 7.10), so the figure is their ratio
+    # Learning, 2nd ed., section 7.10, from memory), so the figure is their ratio
     assert cv["k"] == 5 and cv["errors"] == sum(f["errors"] for f in cv["folds"])
     assert cv["wer"] == cv["errors"] / cv["reference_words"]
     # every dev word is held out exactly once: the folds cover the reference words that

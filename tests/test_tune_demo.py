@@ -44,10 +44,10 @@ def test_recognizer_order_is_the_documented_score(dev_matrix: FeatureMatrix) -> 
 
 def test_tuning_beats_the_recognizer_choice_and_reports_cv(dev_matrix: FeatureMatrix) -> None:
     result = tune(dev_matrix, folds=5, seed=0)
-    # the demo README: the references come from the logbook grammar that train.txt is drawn
-    # from, while the recognizer ordered its lists with a unigram of background English; a
-    # trigram of the right domain picking better is the premise of N-best rescoring
-    # (common practice), so tuning its weight must beat the recognizer's choice
+    # the demo README: the lists are the crew's logbook dictation and train.txt holds
+    # in-domain logbook sentences, while the recognizer ranked with a generic add-one
+    # unigram; a trigram of the right domain picking better is the premise of N-best
+    # rescoring (common practice), so tuning its weight must beat the recognizer's choice
     assert result.dev_wer < result.baseline_wer
     assert result.cv is not None and len(result.cv.folds) == 5  # folds=5 asked, 500 utterances
     # k-fold cross-validation estimates the WER on unseen utterances (Hastie, Tibshirani and

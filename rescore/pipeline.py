@@ -346,7 +346,7 @@ def tune_file(
     path: Path, *, models: Mapping[str, NamedModel], search: str | None,
     features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
-    weights_path: Path, analysis_path: Path | None,
+    weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
 ) -> TuneOutcome:
     from rescore import tune as tuning
 
@@ -359,10 +359,11 @@ def tune_file(
         matrix, search=search, features=[*extra_lms, *features],
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
-        folds=folds, seed=seed, lm_column=LM if LM in models else None,
+        folds=folds, seed=seed, cv_warn=cv_warn, lm_column=LM if LM in models else None,
     )
-    prov = provenance(data=[path], models=models,
-                      extra={"search": result.search, "seed": seed, "folds": folds})
+    # one provenance for the weights file and the analysis file: package version,
+    # normalisation, data and model checksums, then how the search ran
+    prov = provenance(data=[path], models=models, extra=result.search_record())
     tuning.write_weights(weights_path, result.weights, prov)
     if analysis_path is not None:
         import json

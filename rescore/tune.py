@@ -140,6 +140,23 @@ class TuneResult:
     depth: tuple[DepthRow, ...] = ()
     settings: Mapping[str, Any] = field(default_factory=dict)
 
+    @property
+    def cv_wer(self) -> float | None:
+        """The cross-validated WER (``None`` without cross-validation)."""
+        return None if self.cv is None else self.cv.wer
+
+    @property
+    def cv_gap(self) -> float | None:
+        """Cross-validated WER minus dev WER, absolute (positive: worse on held-out data)."""
+        return None if self.cv is None else self.cv.wer - self.dev_wer
+
+    def search_record(self) -> dict[str, Any]:
+        """How the weights were found, for the weights file's provenance: the search
+        method, the weights it tuned, the dev result and every setting (grids, seed,
+        folds, restarts, bounds)."""
+        return {"search": self.search, "tuned": list(self.tuned), "dev_wer": self.dev_wer,
+                "dev_errors": self.dev_errors, "settings": dict(self.settings)}
+
     def to_dict(self) -> dict[str, Any]:
         """The contract's tune JSON keys, then extras (acoustic scale, cv, depth, surface)."""
         out: dict[str, Any] = {
@@ -156,6 +173,8 @@ class TuneResult:
             "reference_words": self.reference_words,
             "utterances": self.utterances,
             "settings": dict(self.settings),
+            "cv_wer": self.cv_wer,
+            "cv_gap": self.cv_gap,
             "cv": None if self.cv is None else self.cv.to_dict(),
             "cv_warning": self.cv_warning,
             "depth": [row.to_dict() for row in self.depth],
@@ -944,7 +963,7 @@ def tune(
     Default grid: LM weight 0 to 30 (121 points), penalty -20 to +20 per word (81 points),
     natural-log units. Adds a ``folds``-fold cross-validation (``folds < 2`` skips it), a
     warning when the cross-validated WER and the dev WER differ by more than ``cv_warn``
-    (absolute), and the depth table.
+    (absolute: 0.01 is one percentage point), and the depth table.
     """
     feats = tuple(dict.fromkeys(features))
     for name in feats:
@@ -958,6 +977,9 @@ def tune(
     if method == "grid" and feats:
         raise UsageError("grid search tunes only the LM weight and insertion penalty; "
                          "use the exact search to tune features", field="--search")
+    if not (math.isfinite(cv_warn) and cv_warn >= 0.0):
+        raise UsageError(f"the warning threshold must be a number >= 0, got {cv_warn!r}",
+                         field="--warn-cv-gap")
     lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "--grid-lm")
     pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "--grid-penalty")
     result = _search(matrix, method, feats, lm_values, pen_values, seed, lm_column)
@@ -966,10 +988,11 @@ def tune(
                         lm_column=lm_column) if folds >= 2 else None
     warning = None
     if cv is not None and abs(cv.wer - result.dev_wer) > cv_warn:
-        warning = (f"cross-validated WER {cv.wer:.4f} differs from the dev WER "
-                   f"{result.dev_wer:.4f} by more than {cv_warn:g}: the weights may be "
-                   "fitted to this dev set; use more dev utterances or tune fewer weights")
-    settings = {**result.settings, "folds": folds, "cv_warn": cv_warn}
+        warning = (f"cross-validated WER {100 * cv.wer:.2f}% differs from the dev WER "
+                   f"{100 * result.dev_wer:.2f}% by {100 * abs(cv.wer - result.dev_wer):.2f} "
+                   f"points, more than {100 * cv_warn:g}: the weights may be fitted to this "
+                   "dev set; use more dev utterances or tune fewer weights")
+    settings = {**result.settings, "seed": seed, "folds": folds, "cv_warn": cv_warn}
     return replace(result, cv=cv, cv_warning=warning, settings=settings,
                    depth=depth_table(matrix, result.weights))
 
@@ -983,17 +1006,6 @@ _FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
 def _weights_dict(weights: Weights) -> dict[str, Any]:
     return {"acoustic_scale": weights.acoustic_scale, "lm_weight": weights.lm_weight,
             "insertion_penalty": weights.insertion_penalty, "features": dict(weights.features)}
-
-
-def weights_file_dict(result: TuneResult, provenance: Mapping[str, Any]) -> dict[str, Any]:
-    """The contract's weights file; the search method and its settings join ``provenance``."""
-    from rescore import __version__
-
-    prov = {"package_version": __version__, "search": result.search,
-            "tuned": list(result.tuned), "dev_wer": result.dev_wer,
-            "dev_errors": result.dev_errors, "settings": dict(result.settings),
-            **dict(provenance)}
-    return {**_weights_dict(result.weights), "provenance": prov}
 
 
 def _number(value: object, path: str, name: str) -> float:

@@ -164,3 +164,80 @@ def test_verbose_logs_to_stderr_only(tmp_path: Path) -> None:
     assert result.exit_code == 0
     assert result.stdout == ""
     assert "rescore.pipeline: rescored lines 1-3 (2 utterances so far)" in result.stderr
+
+
+# ---------------------------------------------------------------- tune: cross-validation
+
+
+@pytest.fixture(scope="module")
+def demo_lm(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    model = tmp_path_factory.mktemp("tune-lm") / "logbook.lm"
+    built = run(["lm", "build", FIXTURES / "demo" / "train.txt", "--order", "3", "-o", model])
+    assert built.exit_code == 0, built.stderr
+    return model
+
+
+def _row(table: str, label: str) -> str:
+    return next(line for line in table.splitlines() if line.startswith(label))
+
+
+def test_tune_reports_the_cross_validated_wer(demo_lm: Path, tmp_path: Path) -> None:
+    dev = FIXTURES / "demo" / "dev.jsonl"
+    analysis = tmp_path / "tuning.json"
+    shown = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json",
+                 "--analysis", analysis])
+    assert shown.exit_code == 0, shown.stderr
+    cv = json.loads(analysis.read_text())["cv"]
+    # k-fold cross-validation pools the held-out errors of all folds over all reference
+    # words (common practice; Hastie, Tibshirani and Friedman, Elements of Statistical
+    # Learning, 2nd ed., section 7.10, from memory), so the figure is their ratio
+    assert cv["k"] == 5 and cv["errors"] == sum(f["errors"] for f in cv["folds"])
+    assert cv["wer"] == cv["errors"] / cv["reference_words"]
+    # every dev word is held out exactly once: the folds cover the reference words that
+    # `wer` counts on the same file
+    dev_words = json.loads(run(["wer", dev, "--json"]).stdout)["reference_words"]
+    assert cv["reference_words"] == dev_words
+    printed = json.loads(run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w2.json",
+                              "--json"]).stdout)
+    assert isinstance(printed["cv_wer"], float) and printed["cv_wer"] == cv["wer"]
+    assert printed["cv_gap"] == pytest.approx(cv["wer"] - printed["dev_wer"], abs=1e-15)
+    # the table shows the same figure as a percentage, and the gap to the dev WER in points
+    assert _row(shown.stdout, "cross-validated WER").split()[-1] == f"{100 * cv['wer']:.2f}%"
+    gap = 100 * (cv["wer"] - printed["dev_wer"])
+    assert _row(shown.stdout, "cross-validated - dev").split()[-2] == f"{gap:+.2f}"
+
+
+def test_tune_without_folds_shows_no_cv_figure(demo_lm: Path, tmp_path: Path) -> None:
+    dev = FIXTURES / "demo" / "dev.jsonl"
+    shown = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json", "--folds", "0"])
+    assert shown.exit_code == 0, shown.stderr
+    assert _row(shown.stdout, "cross-validated WER").split()[-1] == "-"
+    printed = json.loads(run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json",
+                              "--folds", "0", "--json"]).stdout)
+    assert printed["cv_wer"] is None and printed["cv_warning"] is None
+
+
+def test_tune_cv_warning_follows_warn_cv_gap(sample_dir: Path, tmp_path: Path) -> None:
+    # 30 utterances (the sample's README) and three tuned weights: few utterances per
+    # weight, the classic set-up for over-fitting, so the held-out WER can lie above the
+    # dev WER; the gap is measured first and the thresholds are placed around it
+    nbest = sample_dir / "warehouse_espeak.jsonl"
+    base = ["-q", "tune", nbest, "--feature", "first_pass_lm", "--feature", "filler_penalty",
+            "-o", tmp_path / "w.json"]
+    data = json.loads(run([*base, "--json", "--warn-cv-gap", "100"]).stdout)
+    gap_points = 100 * abs(data["cv_wer"] - data["dev_wer"])
+    assert data["cv_warning"] is None and gap_points > 1.0
+    # the default threshold is one point (as the README's tuning section documents)
+    assert "warning: cross-validated WER" in run(base[1:]).stderr
+    for points, warns in ((gap_points / 2, True), (gap_points * 2, False), (0.0, True)):
+        result = run([*base[1:], "--warn-cv-gap", f"{points:.6f}"])
+        assert result.exit_code == 0, result.stderr
+        assert ("warning: cross-validated WER" in result.stderr) == warns, points
+        printed = json.loads(run([*base, "--json", "--warn-cv-gap", f"{points:.6f}"]).stdout)
+        assert (printed["cv_warning"] is not None) == warns, points
+
+
+def test_tune_warn_cv_gap_must_not_be_negative(tmp_path: Path) -> None:
+    result = run(["tune", TWO, "-o", tmp_path / "w.json", "--warn-cv-gap", "-1"])
+    assert result.exit_code == 2
+    assert not (tmp_path / "w.json").exists()

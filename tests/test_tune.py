@@ -3,6 +3,8 @@ the recognizer sample's published weights, cross-validation, depth table, weight
 
 from __future__ import annotations
 
+import hashlib
+import importlib.metadata
 import itertools
 import json
 import math
@@ -25,10 +27,10 @@ from rescore.tune import (
     plateau_centre,
     read_weights,
     tune,
-    weights_file_dict,
     write_weights,
 )
 from rescore.wer import word_errors
+from tests.conftest import FIXTURES, run
 
 NAMES = ("acoustic", "lm", "words", "f")
 
@@ -177,24 +179,43 @@ def test_plateau_centre_worked_examples(grid: list[list[int]], expected: tuple[i
 
 
 def test_acoustic_only_weights_reproduce_the_acoustic_ranking() -> None:
-    # with every weight 0 but the acoustic scale, the choice is the acoustic argmax
-    # (earliest on ties), as the contract's scoring formula says
-    matrix = signal_set(n_utt=50)
-    picked = choose(matrix, Weights())
-    for u in range(matrix.n_utterances):
-        acoustic = matrix.column("acoustic")[matrix.offsets[u]:matrix.offsets[u + 1]]
-        assert picked[u] == int(np.argmax(acoustic))
+    # the contract's formula with every weight 0 but the acoustic scale leaves the acoustic
+    # score alone, so the choice is its argmax, ties to the earlier hypothesis (contract);
+    # numpy.argmax returns the first index of the maximum (numpy documentation), the same
+    # tie rule. The lists are in random order, not sorted by acoustic score, and the
+    # integer scores make ties common.
+    rng = np.random.default_rng(11)
+    sizes = [int(k) for k in rng.integers(1, 9, size=80)]
+    n = sum(sizes)
+    values = np.column_stack([rng.integers(-4, 5, size=n), rng.normal(0, 5, size=n),
+                              rng.integers(1, 9, size=n), rng.normal(0, 1, size=n)])
+    matrix = make_matrix(values, sizes, rng.integers(0, 6, size=n), [8] * len(sizes))
+    offsets = matrix.offsets
+    acoustic = [values[offsets[u]:offsets[u + 1], 0] for u in range(len(sizes))]
+    expected = np.array([int(np.argmax(a)) for a in acoustic])
+    # not circular: the acoustic best is often not first, and ties at the top occur
+    assert np.count_nonzero(expected != 0) >= 20
+    assert sum(int(np.count_nonzero(a == a.max())) > 1 for a in acoustic) >= 5
+    np.testing.assert_array_equal(choose(matrix, Weights()), expected)
+    # the grid search at its one point (0, 0) counts the errors of that same choice
     result = grid_search(matrix, lm_grid=[0.0], penalty_grid=[0.0])
-    assert result.dev_errors == slow_errors(matrix, Weights())
-    # the signal set is sorted by acoustic score, so that is also the first hypothesis
-    assert result.dev_wer == result.baseline_wer
+    errors = np.asarray(matrix.errors)
+    assert result.dev_errors == int(errors[offsets[:-1] + expected].sum())
 
 
 def test_no_lm_column_tunes_the_penalty_alone() -> None:
+    # derived: with no LM column the total is acoustic + penalty * words (the contract's
+    # formula with LM weight 0), so the one-row surface must match the plain loop at each
+    # penalty, and the chosen penalty must hold the row's fewest errors
     matrix = signal_set(n_utt=40)
-    result = grid_search(matrix, penalty_grid=np.linspace(-5, 5, 11), lm_column=None)
+    penalties = np.linspace(-5, 5, 11)
+    result = grid_search(matrix, penalty_grid=penalties, lm_column=None)
     assert result.tuned == ("words",) and result.weights.lm_weight == 0.0
     assert result.surface is not None and result.surface.errors.shape == (1, 11)
+    plain = [slow_errors(matrix, Weights(insertion_penalty=p)) for p in penalties]
+    assert result.surface.errors[0].tolist() == plain
+    assert result.dev_errors == min(plain)
+    assert result.weights.insertion_penalty in penalties[np.array(plain) == min(plain)]
 
 
 # ---------------------------------------------------------------- exact line search
@@ -283,10 +304,14 @@ def test_exact_search_keeps_untuned_weights_and_bounds() -> None:
 
 
 def test_exact_search_is_deterministic_for_a_seed() -> None:
+    # the README's reproducibility guarantee: the same inputs and seed give the same result
+    # (the random directions and restarts come from one seeded generator)
     matrix = signal_set(n_utt=80, noise=3.0)
     a = exact_search(matrix, tune=("lm", "words", "f"), start=Weights(), seed=7)
     b = exact_search(matrix, tune=("lm", "words", "f"), start=Weights(), seed=7)
-    assert a.weights == b.weights
+    assert a.weights == b.weights and a.settings == b.settings
+    # and the errors it reports are what the plain loop counts at those weights
+    assert a.dev_errors == slow_errors(matrix, a.weights)
 
 
 # ---------------------------------------------------------------- tune: the whole job
@@ -294,9 +319,21 @@ def test_exact_search_is_deterministic_for_a_seed() -> None:
 
 def test_tuning_beats_the_baseline_when_the_lm_carries_signal() -> None:
     matrix = signal_set(n_utt=200)
+    assert matrix.errors is not None
     result = tune(matrix)
     assert result.search == "grid"
-    assert result.dev_wer < result.baseline_wer - 0.05
+    # derived from signal_set: lm = -2 * words - 1.5 * errors + noise, so LM weight 5 with
+    # penalty +10 per word cancels the word term and leaves acoustic - 7.5 * errors + noise,
+    # a ranking led by the errors; (5, 10) is a point of the default grid (0..30 by 0.25,
+    # -20..20 by 0.5), so the grid's best can hold no more errors than it
+    signal_point = slow_errors(matrix, Weights(lm_weight=5.0, insertion_penalty=10.0))
+    first = int(matrix.errors[matrix.offsets[:-1]].sum())
+    assert result.dev_errors <= signal_point < first
+    assert result.baseline_wer == first / int(np.asarray(matrix.ref_words).sum())
+    # k-fold cross-validation estimates the error on unseen utterances (Hastie, Tibshirani
+    # and Friedman, Elements of Statistical Learning, section 7.10, from memory): weights
+    # fitted on four fifths must also beat the first choice on the held-out fifth when the
+    # signal is real
     assert result.cv is not None and result.cv.wer < result.baseline_wer
 
 
@@ -432,18 +469,58 @@ def test_tuning_on_the_recognizer_sample(sample_dir: Path, name: str) -> None:
 # ---------------------------------------------------------------- weights file
 
 
-def test_weights_file_round_trip(tmp_path: Path) -> None:
-    result = tune(signal_set(n_utt=40), features=["f"], folds=0)
-    body = weights_file_dict(result, {"data_sha256": "abc"})
+@pytest.mark.parametrize("search", ["grid", "exact"])
+def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str) -> None:
+    # the path a user takes: `rescore tune` on a file, then the weights file it wrote
+    dev = FIXTURES / "demo" / "dev.jsonl"
+    model = tmp_path / "logbook.lm"
+    assert run(["lm", "build", FIXTURES / "demo" / "train.txt", "--order", "3",
+                "-o", model]).exit_code == 0
+    out, analysis = tmp_path / "out" / "weights.json", tmp_path / "out" / "tuning.json"
+    out.parent.mkdir()
+    extra = ["--feature", "first_pass_lm"] if search == "exact" else []
+    result = run(["-q", "tune", dev, "--lm", model, "-o", out, "--analysis", analysis,
+                  "--search", search, *extra, "--seed", "7", "--folds", "3",
+                  "--grid-lm", "0:20:41", "--warn-cv-gap", "2", "--json"])
+    assert result.exit_code == 0, result.stderr
+    printed = json.loads(result.stdout)
+    body = json.loads(out.read_text())
+    # the contract's weights file: these keys and no others
     assert set(body) == {"acoustic_scale", "lm_weight", "insertion_penalty", "features",
                          "provenance"}
-    assert body["provenance"]["search"] == "exact"
-    assert body["provenance"]["data_sha256"] == "abc"
+    assert read_weights(out) == Weights(lm_weight=printed["lm_weight"],
+                                        insertion_penalty=printed["insertion_penalty"],
+                                        features=printed["features"])
+    prov = body["provenance"]
+    # package version as the installed distribution's metadata gives it (importlib.metadata)
+    assert prov["version"] == importlib.metadata.version("rescore")
+    # checksums as Python's hashlib computes them over the files' bytes
+    assert prov["data_sha256"] == {str(dev): hashlib.sha256(dev.read_bytes()).hexdigest()}
+    assert prov["models"] == {"lm": {"path": str(model),
+                                     "sha256": hashlib.sha256(model.read_bytes()).hexdigest()}}
+    # how the search ran: the method, what it tuned, its dev result and the settings given
+    assert prov["search"] == search == printed["search"]
+    assert prov["tuned"] == ["lm", "words", *(["first_pass_lm"] if extra else [])]
+    assert prov["dev_wer"] == printed["dev_wer"] and prov["dev_errors"] == printed["dev_errors"]
+    settings = prov["settings"]
+    assert settings["seed"] == 7 and settings["folds"] == 3
+    assert settings["lm_grid"] == [0.0, 20.0, 41]  # --grid-lm 0:20:41 as given
+    assert settings["penalty_grid"] == [-20.0, 20.0, 81]  # the documented default
+    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2 points
+    if search == "exact":
+        assert settings["start"] == "grid" and settings["restarts"] == 3
+    # the analysis file records the same provenance; nothing else was left behind
+    assert json.loads(analysis.read_text())["provenance"] == prov
+    assert sorted(p.name for p in out.parent.iterdir()) == ["tuning.json", "weights.json"]
+
+
+def test_write_weights_round_trip(tmp_path: Path) -> None:
+    weights = Weights(acoustic_scale=0.5, lm_weight=8.25, insertion_penalty=-1.5,
+                      features={"f": 0.125})
     path = tmp_path / "weights.json"
-    write_weights(path, result.weights, body["provenance"])
-    assert read_weights(path) == result.weights
-    assert json.loads(path.read_text())["provenance"]["data_sha256"] == "abc"
-    assert [p.name for p in tmp_path.iterdir()] == ["weights.json"]
+    write_weights(path, weights, {"note": "anything"})
+    assert read_weights(path) == weights
+    assert json.loads(path.read_text())["provenance"] == {"note": "anything"}
 
 
 GOOD = '{"acoustic_scale": 1, "lm_weight": 0.8, "insertion_penalty": -0.5, "features": {}}'

@@ -134,6 +134,10 @@ def tune(
     folds: Annotated[int, typer.Option("--folds", min=0,
                                        help="Cross-validation folds (0 or 1: none).")] = 5,
     seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,
+    warn_cv_gap: Annotated[float, typer.Option(
+        "--warn-cv-gap", min=0.0, metavar="POINTS",
+        help="Warn when the cross-validated WER and the dev WER differ by more than this "
+        "many percentage points.")] = 1.0,
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
@@ -147,12 +151,14 @@ def tune(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
+            cv_warn=warn_cv_gap / 100.0,
         )
     data = outcome.to_dict()
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
-            k: v for k, v in data.items() if k in ("cv_wer", "cv_warning")})
+            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning")})
     else:
+        gap = data.get("cv_gap")
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
             ["LM weight", data["lm_weight"]],
             ["insertion penalty", data["insertion_penalty"]],
@@ -160,6 +166,7 @@ def tune(
             ["baseline WER", pct(data["baseline_wer"])],
             ["dev WER (tuned)", pct(data["dev_wer"])],
             ["cross-validated WER", pct(data.get("cv_wer"))],
+            ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
             ["oracle WER", pct(data["oracle_wer"])],
         ])
     if data.get("cv_warning"):

@@ -137,6 +137,7 @@ class TuneResult:
     surface: Surface | None = None
     cv: CrossValidation | None = None
     cv_warning: str | None = None
+    edge_warning: str | None = None
     depth: tuple[DepthRow, ...] = ()
     settings: Mapping[str, Any] = field(default_factory=dict)
 
@@ -177,6 +178,7 @@ class TuneResult:
             "cv_gap": self.cv_gap,
             "cv": None if self.cv is None else self.cv.to_dict(),
             "cv_warning": self.cv_warning,
+            "edge_warning": self.edge_warning,
             "depth": [row.to_dict() for row in self.depth],
             "surface": None if self.surface is None else self.surface.to_dict(),
         }
@@ -993,8 +995,36 @@ def tune(
                    f"points, more than {100 * cv_warn:g}: the weights may be fitted to this "
                    "dev set; use more dev utterances or tune fewer weights")
     settings = {**result.settings, "seed": seed, "folds": folds, "cv_warn": cv_warn}
-    return replace(result, cv=cv, cv_warning=warning, settings=settings,
+    edge = grid_edge_warning(result.weights, lm_values, pen_values, lm_column) \
+        if method == "grid" else None
+    return replace(result, cv=cv, cv_warning=warning, edge_warning=edge, settings=settings,
                    depth=depth_table(matrix, result.weights))
+
+
+def grid_edge_warning(weights: Weights, lm_grid: np.ndarray, penalty_grid: np.ndarray,
+                      lm_column: str | None = LM) -> str | None:
+    """A warning when the chosen grid point sits on an outer edge of the grid.
+
+    The fewest errors may then lie beyond the grid. LM weight 0 (no language model) is a
+    natural lower end and never warned about; an axis of one point has no edges.
+    """
+    notes = []
+    axes = [("insertion penalty", "--grid-penalty", weights.insertion_penalty, penalty_grid,
+             True)]
+    if lm_column is not None:
+        value = weights.lm_weight if lm_column == LM else weights.features.get(lm_column, 0.0)
+        axes.insert(0, ("LM weight", "--grid-lm", value, lm_grid, lm_grid[0] != 0.0))
+    for label, option, value, grid, check_low in axes:
+        if len(grid) < 2:
+            continue
+        if value == grid[-1]:
+            notes.append(f"{label} {value:g} is the top of the grid; widen {option}")
+        elif check_low and value == grid[0]:
+            notes.append(f"{label} {value:g} is the bottom of the grid; widen {option}")
+    if not notes:
+        return None
+    return "the best grid point is on the grid's edge, so the best weights may lie beyond " \
+        "it: " + "; ".join(notes)
 
 
 # --------------------------------------------------------------------------- weights file

@@ -241,3 +241,37 @@ def test_tune_warn_cv_gap_must_not_be_negative(tmp_path: Path) -> None:
     result = run(["tune", TWO, "-o", tmp_path / "w.json", "--warn-cv-gap", "-1"])
     assert result.exit_code == 2
     assert not (tmp_path / "w.json").exists()
+
+
+def test_tune_warns_when_the_best_point_is_on_the_grid_edge(demo_lm: Path,
+                                                            tmp_path: Path) -> None:
+    dev = FIXTURES / "demo" / "dev.jsonl"
+    wide = json.loads(run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json",
+                           "--folds", "0", "--json"]).stdout)
+    # derived: on the default grid the demo's best penalty is well inside (-20, 20) and the
+    # LM weight above 0, so no warning
+    assert -20 < wide["insertion_penalty"] < 20 and wide["edge_warning"] is None
+    top = wide["insertion_penalty"] / 2
+    narrow = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w2.json", "--folds", "0",
+                  "--grid-penalty", f"{-top}:{top}:5", "--json"])
+    assert narrow.exit_code == 0, narrow.stderr
+    data = json.loads(narrow.stdout)
+    # derived: the error surface is lowest near the wide grid's penalty, outside the narrow
+    # grid, so the narrow grid's best sits at its top edge and the user is told to widen it
+    assert data["insertion_penalty"] == pytest.approx(top)
+    assert "--grid-penalty" in data["edge_warning"]
+    assert "warning: the best grid point is on the grid's edge" in narrow.stderr
+
+
+def test_grid_edge_warning_rules() -> None:
+    import numpy as np
+
+    from rescore.tune import Weights, grid_edge_warning
+
+    lm, pen = np.linspace(0, 30, 7), np.linspace(-20, 20, 9)
+    # LM weight 0 means "no LM", a natural lower end: no warning (README, tuning section)
+    assert grid_edge_warning(Weights(lm_weight=0.0, insertion_penalty=0.0), lm, pen) is None
+    assert "--grid-lm" in (grid_edge_warning(Weights(lm_weight=30.0), lm, pen) or "")
+    assert "bottom" in (grid_edge_warning(Weights(insertion_penalty=-20.0), lm, pen) or "")
+    # a one-point axis has no edges
+    assert grid_edge_warning(Weights(insertion_penalty=3.0), lm, np.array([3.0])) is None

@@ -156,7 +156,7 @@ def tune(
     data = outcome.to_dict()
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
-            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning")})
+            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning")})
     else:
         gap = data.get("cv_gap")
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
@@ -169,8 +169,9 @@ def tune(
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
             ["oracle WER", pct(data["oracle_wer"])],
         ])
-    if data.get("cv_warning"):
-        info(f"warning: {data['cv_warning']}")
+    for key in ("cv_warning", "edge_warning"):
+        if data.get(key):
+            info(f"warning: {data[key]}")
     info(f"weights -> {out}")
 
 

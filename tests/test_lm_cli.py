@@ -100,3 +100,28 @@ def test_vocab_file_and_closed_vocab(text: Path, tmp_path: Path) -> None:
     data = json.loads(out)
     # 13 words, 9 outside {pump, two, on} (2 + 7); closed: they leave the count
     assert data["oov"] == 9 and data["tokens"] == 13 + 3 - 9
+
+
+def test_pruned_arpa_model_reads_back(tmp_path: Path) -> None:
+    # entropy pruning can leave positive log10 back-off weights, which are valid ARPA (from
+    # memory); the ARPA file must score the text as the native file does (1e-6 log10 per
+    # n-gram, the ARPA round-trip tolerance, so about 1e-6 relative in perplexity)
+    import numpy as np
+
+    rng = np.random.default_rng(0)
+    p = 1.0 / np.arange(1, 26)  # Zipf's law for word frequencies (from memory)
+    text = tmp_path / "zipf.txt"
+    text.write_text("".join(" ".join(f"w{j}" for j in rng.choice(25, rng.integers(1, 10),
+                                                                  p=p / p.sum())) + "\n"
+                            for _ in range(300)))
+    outs = {}
+    for name in ("p.arpa", "p.lm"):
+        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb", "--prune", "1e-3",
+                            "-o", str(tmp_path / name))
+        assert code == 0, err
+        code, out, err = _run("lm", "perplexity", str(tmp_path / name), str(text), "--json")
+        assert code == 0, err
+        outs[name] = json.loads(out)
+    assert any(float(x.split("\t")[2]) > 0 for x in (tmp_path / "p.arpa").read_text()
+               .splitlines() if x.count("\t") == 2)
+    assert outs["p.arpa"]["perplexity"] == pytest.approx(outs["p.lm"]["perplexity"], rel=1e-5)

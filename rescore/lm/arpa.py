@@ -2,11 +2,15 @@
 
 Conventions written: a ``\\data\\`` block of ``ngram k=count`` lines, then one section per
 order of ``log10prob<TAB>w1 .. wk[<TAB>log10bow]``, the highest order without back-off
-column, and ``\\end\\``. ``<s>`` is listed with probability -99 (it is never predicted), and
--99 stands for a zero probability or weight both ways. A model without ``<unk>`` among its
-unigrams is a closed-vocabulary model. Reading accepts any valid file: an n-gram whose
-suffix is not listed gets that suffix added with the probability the back-off rule gives
-it, so look-ups behave exactly as the file says.
+column, and ``\\end\\``. ``<s>`` is listed with probability -99 (it is never predicted).
+Exactly -99 stands for a zero probability or weight both ways; any other number is read as
+the log10 value it is (so -120 is the tiny probability 1e-120, not zero), and a finite
+value that would print as -99 is written one step below it. Probabilities must be <= 0
+(``-inf`` is read as zero); back-off weights may be any finite number, positive ones
+included (entropy pruning can leave a context more weight than one). A model without
+``<unk>`` among its unigrams is a closed-vocabulary model. Reading accepts any valid file:
+an n-gram whose suffix is not listed gets that suffix added with the probability the
+back-off rule gives it, so look-ups behave exactly as the file says.
 """
 
 from __future__ import annotations
@@ -29,6 +33,7 @@ F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]
 LOG10E = 1.0 / math.log(10.0)
 ZERO = -99.0  # log10 of "never"
+NUDGED_ZERO = "-99.0000001"  # a real probability that would otherwise print as -99
 MAX_ORDER = 6
 _NGRAM_LINE = re.compile(r"^ngram\s+(\d+)\s*=\s*(\d+)$")
 _SECTION = re.compile(r"^\\(\d+)-grams:$")
@@ -36,7 +41,14 @@ _SECTION = re.compile(r"^\\(\d+)-grams:$")
 
 def _fmt(values: F64) -> list[str]:
     log10 = values * LOG10E
-    return [f"{x:.10g}" if x > ZERO else f"{ZERO:g}" for x in log10.tolist()]
+    out = []
+    for x in log10.tolist():
+        if not math.isfinite(x):
+            out.append(f"{ZERO:g}")
+            continue
+        text = f"{x:.10g}"
+        out.append(NUDGED_ZERO if float(text) == ZERO else text)
+    return out
 
 
 def write(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> None:
@@ -76,13 +88,16 @@ def _error(path: str | Path, line: int | None, field: str | None, what: str) -> 
     return ModelFileError(what, path=str(path), line=line, field=field)
 
 
-def _number(text: str, path: str | Path, line: int, field: str) -> float:
+def _number(text: str, path: str | Path, line: int, field: str, *, bow: bool) -> float:
+    """A log10 value: a probability is <= 0 (``-inf`` allowed), a back-off weight finite."""
     try:
         value = float(text)
     except ValueError:
         raise _error(path, line, field, f"not a number: {text!r}") from None
-    if math.isnan(value) or value > 0:
-        raise _error(path, line, field, f"a log10 value must be a number <= 0, got {text!r}")
+    if bow and not math.isfinite(value):
+        raise _error(path, line, field, f"a log10 weight must be a finite number, got {text!r}")
+    if not bow and (math.isnan(value) or value > 0):
+        raise _error(path, line, field, f"a log10 probability must be a number <= 0, got {text!r}")
     return value
 
 
@@ -136,8 +151,8 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
             want = f"{current + 1}" if top else f"{current + 1} or {current + 2}"
             raise _error(path, number, f"{current}-gram",
                          f"expected {want} fields, got {len(fields)}")
-        prob = _number(fields[0], path, number, "probability")
-        bow = _number(fields[current + 1], path, number, "back-off weight") \
+        prob = _number(fields[0], path, number, "probability", bow=False)
+        bow = _number(fields[current + 1], path, number, "back-off weight", bow=True) \
             if len(fields) == current + 2 else 0.0
         sections[-1].append((fields[1:current + 1], prob, bow))
     if state == "start":
@@ -154,8 +169,9 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
 
 
 def _ln(values: list[float]) -> F64:
+    """Natural logs of log10 values; exactly -99 is the conventional zero."""
     arr = np.array(values, dtype=np.float64)
-    return np.where(arr <= ZERO, -math.inf, arr / LOG10E)
+    return np.where(arr == ZERO, -math.inf, arr / LOG10E)
 
 
 def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
@@ -172,8 +188,8 @@ def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
         i = index[words[0]]
         if seen[i]:
             raise _error(path, None, "1-grams", f"{words[0]!r} is listed twice (entry {line + 1})")
-        logp1[i] = prob / LOG10E if prob > ZERO else -math.inf
-        bow1[i] = bow / LOG10E if bow > ZERO else -math.inf
+        logp1[i] = prob / LOG10E if prob != ZERO else -math.inf
+        bow1[i] = bow / LOG10E if bow != ZERO else -math.inf
         seen[i] = True
     logp1[BOS_ID] = -math.inf  # <s> is never predicted, whatever the file says
     mats: list[I64] = [np.arange(v, dtype=np.int64)[:, None]]

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rescore.errors import ModelFileError
+from rescore.errors import InputError, ModelFileError
 from rescore.lm import METHODS, NGramModel, load_model, save_model
 
 LOG10_TOL = 1e-6  # the tolerance for an ARPA round trip, in log10
@@ -157,8 +157,33 @@ def test_missing_end(tmp_path: Path) -> None:
 
 
 def test_unknown_word_and_no_data(tmp_path: Path) -> None:
-    assert "'vent' is not a unigram" in _malformed(tmp_path, HAND.replace("pump on\n", "vent on\n"))
+    # line 16 of HAND is the 2-gram "pump on"
+    msg = _malformed(tmp_path, HAND.replace("pump on\n", "vent on\n"))
+    assert msg == "FILE:16: 2-gram: word 'vent' is not a unigram"
     assert "no \\data\\" in _malformed(tmp_path, "just text\n")
+
+
+def test_data_block_without_counts(tmp_path: Path) -> None:
+    # a file of only \data\ and \end\ declares no order at all: one located error
+    msg = _malformed(tmp_path, "\\data\\\n\\end\\\n")
+    assert msg == ("FILE:2: counts header: no 'ngram k=count' lines and no n-gram sections "
+                   "before \\end\\")
+
+
+@pytest.mark.parametrize(("old", "new", "count", "expected"), [
+    # HAND's lines: 11 "pump", 12 "on", 15 "<s> pump", 16 "pump on", 19 "<s> pump on"; the
+    # header count goes up by one with the extra entry
+    ("-0.7\ton\t-0.1\n", "-0.7\ton\t-0.1\n-0.7\tpump\n", ("ngram 1=4", "ngram 1=5"),
+     "FILE:13: 1-gram: 'pump' is listed twice (first on line 11)"),
+    ("-0.2\tpump on\n", "-0.2\tpump on\n-0.3\t<s> pump\t-0.4\n", ("ngram 2=2", "ngram 2=3"),
+     "FILE:17: 2-gram: '<s> pump' is listed twice (first on line 15)"),
+    ("-0.1\t<s> pump on\n", "-0.1\t<s> pump on\n-0.2\t<s> pump on\n",
+     ("ngram 3=2", "ngram 3=3"),
+     "FILE:20: 3-gram: '<s> pump on' is listed twice (first on line 19)"),
+])
+def test_duplicate_ngram_names_its_line(tmp_path: Path, old: str, new: str,
+                                        count: tuple[str, str], expected: str) -> None:
+    assert _malformed(tmp_path, HAND.replace(old, new).replace(*count)) == expected
 
 
 def _zipf_sentences(seed: int, n: int, v: int) -> list[list[str]]:
@@ -267,3 +292,11 @@ def test_tiny_probability_survives_a_write(tmp_path: Path, value: str) -> None:
     save_model(load_model(path), tmp_path / "again.arpa")
     got = load_model(tmp_path / "again.arpa").logprob_ngrams([["on"]])[0] / LN10
     assert got == pytest.approx(float(value), abs=LOG10_TOL)
+
+
+def test_runaway_line_is_refused(tmp_path: Path) -> None:
+    # an n-gram line is a few words and numbers; a megabyte line is damage, not a model
+    path = tmp_path / "bad.arpa"
+    path.write_text(HAND.replace("-0.6\tpump", "-0.6\t" + "p" * (1 << 20)))
+    with pytest.raises(InputError, match=r":11: line longer than the limit of 1048576 bytes$"):
+        load_model(path)

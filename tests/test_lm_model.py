@@ -198,3 +198,45 @@ def test_pruning_larger_threshold_prunes_more() -> None:
     sents = [["abcdefgh"[j] for j in rng.integers(0, 8, rng.integers(1, 9))] for _ in range(80)]
     sizes = [sum(NGramModel(3, prune=t).fit(sents).n_ngrams_[1:]) for t in (1e-6, 1e-3, 1e-1)]
     assert sizes[0] >= sizes[1] >= sizes[2] and sizes[0] > sizes[2]
+
+
+def _zipf_corpus(seed: int, n: int, v: int, exponent: float) -> list[list[str]]:
+    """Words drawn with P(rank r) ~ 1/r^exponent (Zipf's law for word frequencies, from
+    memory), sentences of 1 to 11 words: the counts-of-counts of real text in miniature."""
+    rng = np.random.default_rng(seed)
+    p = 1.0 / np.arange(1, v + 1) ** exponent
+    return [[f"w{j}" for j in rng.choice(v, rng.integers(1, 12), p=p / p.sum())]
+            for _ in range(n)]
+
+
+@pytest.mark.parametrize("order", [3, 4])
+@pytest.mark.parametrize("seed", [0, 2])
+def test_modified_kneser_ney_three_discounts_match_reference(order: int, seed: int) -> None:
+    # Chen and Goodman (1998): D1 = 1 - 2Y n2/n1, D2 = 2 - 3Y n3/n2, D3+ = 3 - 4Y n4/n3 with
+    # Y = n1/(n1 + 2 n2), one per order; the random corpora of the tests above mostly hit
+    # the single-discount fallback, so this corpus is big enough that no order does
+    sents = _zipf_corpus(seed, 400, 100, 1.2)
+    model = NGramModel(order, "mkn").fit(sents)
+    ref = ReferenceModel(sents, order, "mkn")
+    meta = model.metadata
+    assert meta["fallbacks"] == {}
+    assert sorted(meta["discounts"]) == [str(k) for k in range(1, order + 1)]
+    for k in range(1, order + 1):
+        d = meta["discounts"][str(k)]
+        assert len(set(d)) == 3  # three different discounts, not one repeated
+        np.testing.assert_allclose(d, ref.d[k], rtol=0, atol=1e-11)  # rounded to 12 places
+    rng = np.random.default_rng(1)
+    by_length: dict[int, list[tuple[str, ...]]] = {}
+    for h in sorted(ref.histories()):
+        by_length.setdefault(len(h), []).append(h)
+    words = [w for w in model.vocab_.words if w != "<s>"] + ["zzz-unseen"]
+    for group in by_length.values():
+        for i in rng.choice(len(group), min(25, len(group)), replace=False):
+            h = group[i]
+            got = np.exp(model.logprob_ngrams([[*h, w] for w in words]))
+            np.testing.assert_allclose(got, [ref.prob(w, h) for w in words], rtol=0,
+                                       atol=NORM_TOL)
+            assert abs(got[:-1].sum() - 1.0) < NORM_TOL  # zzz-unseen repeats <unk>
+    probe = sents[:100]
+    np.testing.assert_allclose(model.logprob(probe), [ref.sentence_logprob(s) for s in probe],
+                               rtol=1e-9, atol=NORM_TOL)

@@ -155,6 +155,7 @@ def _arpa_line_edits(seed: bytes) -> st.SearchStrategy[bytes]:
 
 @FUZZ
 @given(st.one_of(_mutations(ARPA_SEED), _mutations(PRUNED_ARPA_SEED),
+                 _mutations(gzip.compress(PRUNED_ARPA_SEED)),
                  _arpa_line_edits(ARPA_SEED), _arpa_line_edits(PRUNED_ARPA_SEED),
                  st.binary(max_size=300)))
 # shapes that once escaped as an internal error, or lost their line number

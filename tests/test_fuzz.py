@@ -13,7 +13,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from rescore.errors import InputError
@@ -87,29 +87,95 @@ def test_fuzz_refs_reader(data: bytes) -> None:
 
 # --- language-model files, corpus text and weights files ---------------------------------
 
-def _lm_seeds() -> tuple[bytes, bytes]:
+def _lm_seeds() -> tuple[bytes, bytes, bytes]:
     from rescore.lm import NGramModel, save_model
 
     model = NGramModel(order=2, method="kn").fit([["vent", "bay", "three"], ["bay", "three"],
                                                   ["row", "two", "opened"]])
+    # entropy pruning leaves some contexts a back-off weight above one (a positive log10)
+    import numpy as np
+
+    rng = np.random.default_rng(4)
+    words = ["vent", "bay", "three", "row", "two", "opened", "lamp", "four"]
+    sents = [[words[j] for j in rng.integers(0, 8, rng.integers(1, 7))] for _ in range(40)]
+    pruned = NGramModel(order=3, method="wb", prune=1e-2).fit(sents)
     with tempfile.TemporaryDirectory() as folder:
         save_model(model, Path(folder) / "m.arpa")
         save_model(model, Path(folder) / "m.lm")
-        return (Path(folder) / "m.arpa").read_bytes(), (Path(folder) / "m.lm").read_bytes()
+        save_model(pruned, Path(folder) / "p.arpa")
+        return ((Path(folder) / "m.arpa").read_bytes(), (Path(folder) / "m.lm").read_bytes(),
+                (Path(folder) / "p.arpa").read_bytes())
 
 
-ARPA_SEED, NATIVE_SEED = _lm_seeds()
+ARPA_SEED, NATIVE_SEED, PRUNED_ARPA_SEED = _lm_seeds()
 WEIGHTS_SEED = (b'{"acoustic_scale": 1.0, "lm_weight": 0.8, "insertion_penalty": -0.5, '
                 b'"features": {"first_pass_lm": 2.0}}')
 CORPUS_SEED = "vent bay three opened\nrow two, lamp bank four dimmed.\n\nprīya's shift\n".encode()
+ARPA_VALUES = ["-99", "-99.0", "-120", "-1e300", "0", "0.25", "-0.5", "inf", "-inf", "nan",
+               "1e999", "x", ""]
+
+
+def _arpa_line_edits(seed: bytes) -> st.SearchStrategy[bytes]:
+    """Whole-line edits of a valid ARPA file, the shapes a damaged or hand-edited file takes:
+    a repeated, moved or lost line, a word missing from the 1-grams, odd numbers, counts."""
+
+    @st.composite
+    def edit(draw: st.DrawFn) -> bytes:
+        lines = seed.decode().split("\n")
+        for _ in range(draw(st.integers(1, 4))):
+            if not lines:
+                break
+            at = draw(st.integers(0, len(lines) - 1))
+            kind = draw(st.sampled_from(["delete", "dup", "move", "value", "word", "count",
+                                         "cut"]))
+            fields = lines[at].split("\t")
+            if kind == "delete":
+                del lines[at]
+            elif kind == "dup":
+                lines.insert(draw(st.integers(0, len(lines))), lines[at])
+            elif kind == "move":
+                lines.insert(draw(st.integers(0, len(lines) - 1)), lines.pop(at))
+            elif kind == "value":
+                fields[draw(st.sampled_from([0, -1]))] = draw(st.sampled_from(ARPA_VALUES))
+                lines[at] = "\t".join(fields)
+            elif kind == "word" and len(fields) > 1:
+                words = fields[1].split(" ")
+                words[draw(st.integers(0, len(words) - 1))] = draw(
+                    st.sampled_from(["<s>", "</s>", "<unk>", "vent", "never-listed", ""]))
+                fields[1] = " ".join(words)
+                lines[at] = "\t".join(fields)
+            elif kind == "count" and lines[at].startswith("ngram "):
+                lines[at] = f"ngram {draw(st.integers(0, 8))}={draw(st.integers(0, 40))}"
+            elif kind == "cut":
+                del lines[at:]
+        return "\n".join(lines).encode()
+
+    return edit()
 
 
 @FUZZ
-@given(st.one_of(_mutations(ARPA_SEED), st.binary(max_size=300)))
+@given(st.one_of(_mutations(ARPA_SEED), _mutations(PRUNED_ARPA_SEED),
+                 _mutations(gzip.compress(PRUNED_ARPA_SEED)),
+                 _arpa_line_edits(ARPA_SEED), _arpa_line_edits(PRUNED_ARPA_SEED),
+                 st.binary(max_size=300)))
+# shapes that once escaped as an internal error, or lost their line number
+@example(b"\\data\\\n\\end\\\n")
+@example(b"\\data\\\nngram 1=2\n\\1-grams:\n-1\ta\n-1\ta\n\\end\\\n")
+@example(b"\\data\\\nngram 1=1\nngram 2=2\n\\1-grams:\n-1\ta\t0\n\\2-grams:\n-1\ta a\n"
+         b"-1\ta a\n\\end\\\n")
+@example(b"\\data\\\nngram 1=1\nngram 2=1\n\\1-grams:\n-1\ta\t0\n\\2-grams:\n-1\ta b\n"
+         b"\\end\\\n")
+@example(b"\\data\\\nngram 1=" + b"9" * 5000 + b"\n\\end\\\n")
 def test_fuzz_arpa_reader(data: bytes) -> None:
     from rescore.lm import load_model
 
     fuzz_reader(load_model, ARPA_SEED, ".arpa")(data)
+
+
+def test_pruned_arpa_seed_has_positive_backoff_weight() -> None:
+    # the seed must hold a positive log10 back-off weight, which is valid ARPA (from memory)
+    lines = PRUNED_ARPA_SEED.decode().splitlines()
+    assert max(float(x.split("\t")[2]) for x in lines if x.count("\t") == 2) > 0
 
 
 @FUZZ

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import pytest
@@ -100,3 +101,70 @@ def test_vocab_file_and_closed_vocab(text: Path, tmp_path: Path) -> None:
     data = json.loads(out)
     # 13 words, 9 outside {pump, two, on} (2 + 7); closed: they leave the count
     assert data["oov"] == 9 and data["tokens"] == 13 + 3 - 9
+
+
+def test_pruned_arpa_model_reads_back(tmp_path: Path) -> None:
+    # entropy pruning can leave positive log10 back-off weights, which are valid ARPA (from
+    # memory); the ARPA file must score the text as the native file does (1e-6 log10 per
+    # n-gram, the ARPA round-trip tolerance, so about 1e-6 relative in perplexity)
+    import numpy as np
+
+    rng = np.random.default_rng(0)
+    p = 1.0 / np.arange(1, 26)  # Zipf's law for word frequencies (from memory)
+    text = tmp_path / "zipf.txt"
+    text.write_text("".join(" ".join(f"w{j}" for j in rng.choice(25, rng.integers(1, 10),
+                                                                  p=p / p.sum())) + "\n"
+                            for _ in range(300)))
+    outs = {}
+    for name in ("p.arpa", "p.lm"):
+        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb", "--prune", "1e-3",
+                            "-o", str(tmp_path / name))
+        assert code == 0, err
+        code, out, err = _run("lm", "perplexity", str(tmp_path / name), str(text), "--json")
+        assert code == 0, err
+        outs[name] = json.loads(out)
+    assert any(float(x.split("\t")[2]) > 0 for x in (tmp_path / "p.arpa").read_text()
+               .splitlines() if x.count("\t") == 2)
+    assert outs["p.arpa"]["perplexity"] == pytest.approx(outs["p.lm"]["perplexity"], rel=1e-5)
+
+
+def test_sentence_scores_file(text: Path, tmp_path: Path) -> None:
+    model = tmp_path / "m.lm"
+    assert _run("lm", "build", str(text), "-o", str(model))[0] == 0
+    probe = tmp_path / "probe.txt"
+    probe.write_text("Pump four on.\n\n  \nVent bay three open\n")
+    scores = tmp_path / "scores.jsonl"
+    code, out, err = _run("lm", "perplexity", str(model), str(probe), "--json",
+                          "--sentence-scores", str(scores))
+    assert code == 0, err
+    totals = json.loads(out)  # stdout stays one JSON object
+    rows = [json.loads(x) for x in scores.read_text().splitlines()]
+    # blank lines are skipped, so each row names its line; text is normalised (lowercase,
+    # punctuation stripped: the contract's normalisation)
+    assert [(r["line"], r["text"]) for r in rows] == [(1, "pump four on"),
+                                                    (4, "vent bay three open")]
+    assert [(r["words"], r["tokens"], r["oov"]) for r in rows] == [(3, 4, 1), (4, 5, 0)]
+    # each row is the sum of its per-token values (chain rule), and the rows add up to the
+    # totals (the contract's log10_prob and tokens)
+    from rescore.lm import load_model
+
+    per_token = load_model(model).token_logprobs([r["text"].split() for r in rows])
+    for r, tok in zip(rows, per_token, strict=True):
+        assert r["log10_prob"] == pytest.approx(float(tok.sum()) / math.log(10), abs=1e-12)
+    assert sum(r["log10_prob"] for r in rows) == pytest.approx(totals["log10_prob"], abs=1e-9)
+    assert sum(r["tokens"] for r in rows) == totals["tokens"] == 9
+    # the same figures as a run without the option
+    assert json.loads(_run("lm", "perplexity", str(model), str(probe), "--json")[1]) == totals
+
+
+def test_sentence_scores_not_written_on_bad_input(text: Path, tmp_path: Path) -> None:
+    model = tmp_path / "m.lm"
+    assert _run("lm", "build", str(text), "-o", str(model))[0] == 0
+    bad = tmp_path / "bad.txt"
+    bad.write_bytes(b"pump on\nvent \xff open\n")
+    scores = tmp_path / "scores.jsonl"
+    code, _, err = _run("lm", "perplexity", str(model), str(bad), "--sentence-scores",
+                        str(scores))
+    # bad input: one line naming file and line, and no half-written output (project rule)
+    assert code == 1 and err.startswith(f"error: {bad}:2: invalid UTF-8")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.txt", "logbook.txt", "m.lm"]

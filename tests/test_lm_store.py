@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import hashlib
+import struct
 import zipfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -26,13 +29,23 @@ def test_round_trip_gives_identical_scores(saved: tuple[NGramModel, Path]) -> No
     model, path = saved
     loaded = load_model(path)
     probe = [*SENTS, ["pump", "bay", "unseen"]]
+    # the arrays are stored as raw IEEE-754 little-endian bytes, so a lossless format gives
+    # bit-identical scores (exact equality, no tolerance; derivation from the layout)
     np.testing.assert_array_equal(loaded.logprob(probe), model.logprob(probe))
-    assert loaded.checksum == model.checksum
+    # the identity is the sha256 (FIPS 180-4, Python's hashlib) of every byte before the
+    # 48-byte trailer (digest 32, CRC 4, zeros 4, end mark 8), also recomputed in memory;
+    # the CRC-32 (zlib) covers everything before it
+    data = path.read_bytes()
+    assert loaded.checksum == model.checksum == hashlib.sha256(data[:-48]).hexdigest()
+    assert data[-48:-16] == bytes.fromhex(model.checksum)
+    assert struct.unpack("<I", data[-16:-12])[0] == zlib.crc32(data[:-16])
     assert loaded.metadata["discounts"] == model.metadata["discounts"]
     assert loaded.order_ == 3 and loaded.vocab_.words == model.vocab_.words
 
 
 def test_checksum_is_content_not_name(saved: tuple[NGramModel, Path], tmp_path: Path) -> None:
+    # sha256 of the content: equal data gives equal digests, different data different ones
+    # (collisions are not expected in practice, from memory); training is deterministic
     model, _ = saved
     again = NGramModel(3, "mkn").fit(SENTS)
     other = NGramModel(3, "wb").fit(SENTS)
@@ -41,6 +54,8 @@ def test_checksum_is_content_not_name(saved: tuple[NGramModel, Path], tmp_path: 
 
 @pytest.mark.parametrize("where", [0.01, 0.3, 0.6, 0.99])
 def test_flipped_byte_is_refused(saved: tuple[NGramModel, Path], where: float) -> None:
+    # XOR 0x40 flips one bit; a CRC-32 detects every single-bit error (its generator has
+    # more than one term, from memory), and the magic, version and end mark are checked too
     _, path = saved
     data = bytearray(path.read_bytes())
     data[int(where * (len(data) - 1))] ^= 0x40
@@ -51,6 +66,7 @@ def test_flipped_byte_is_refused(saved: tuple[NGramModel, Path], where: float) -
 
 @pytest.mark.parametrize("keep", [0, 10, 100, -1])
 def test_truncation_is_refused(saved: tuple[NGramModel, Path], keep: int) -> None:
+    # a cut file loses its 8-byte end mark (or its magic), which the loader checks first
     _, path = saved
     data = path.read_bytes()
     path.write_bytes(data[:keep])
@@ -59,6 +75,7 @@ def test_truncation_is_refused(saved: tuple[NGramModel, Path], keep: int) -> Non
 
 
 def test_foreign_npz_is_refused(tmp_path: Path) -> None:
+    # a numpy .npz is a zip archive (numpy's documented format), so it lacks our magic
     path = tmp_path / "other.npz"
     np.savez(path, logp1=np.zeros(3))
     assert zipfile.is_zipfile(path)
@@ -67,6 +84,7 @@ def test_foreign_npz_is_refused(tmp_path: Path) -> None:
 
 
 def test_missing_file_names_it(tmp_path: Path) -> None:
+    # bad input: one line naming the file (the project's error rule)
     with pytest.raises(ModelFileError, match="file not found") as info:
         load_model(tmp_path / "nope.lm")
     assert "nope.lm" in str(info.value)

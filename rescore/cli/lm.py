@@ -10,7 +10,14 @@ import typer
 from rescore.cli._common import emit_json, guarded, info, pct, progress, table
 from rescore.errors import UsageError
 from rescore.ioutil import iter_text_lines
-from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
+from rescore.lm import (
+    NGramModel,
+    load_model,
+    perplexity,
+    read_corpus,
+    save_model,
+    write_sentence_scores,
+)
 from rescore.text import tokens
 
 
@@ -78,10 +85,18 @@ def perplexity_cmd(
     model_path: Annotated[Path, typer.Argument(metavar="MODEL", help="Native or ARPA model.")],
     text: Annotated[Path, typer.Argument(help="Text to evaluate: one sentence a line.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+    scores_out: Annotated[Path | None, typer.Option(
+        "--sentence-scores", metavar="FILE",
+        help="Also write one JSON line per sentence: line, text, words, tokens, oov, "
+             "log10_prob.")] = None,
 ) -> None:
     """Perplexity, log10 probability, token and OOV counts of a text."""
     model = load_model(model_path)
-    result = perplexity(model, read_corpus(text))
+    if scores_out is None:
+        result = perplexity(model, read_corpus(text))
+    else:
+        result = write_sentence_scores(model, text, scores_out)
+        info(f"wrote {scores_out}: {result.sentences} sentences")
     if as_json:
         emit_json(result.to_dict())
         return

@@ -4,7 +4,15 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from rescore.lm.evaluate import PerplexityResult, perplexity, read_corpus
+from rescore.lm.evaluate import (
+    PerplexityResult,
+    SentenceScore,
+    perplexity,
+    read_corpus,
+    sentence_scores,
+    summarise,
+    write_sentence_scores,
+)
 from rescore.lm.mix import MixResult, Mixture, mix_models  # noqa: F401  (re-exported)
 from rescore.lm.model import NGramModel
 from rescore.lm.smoothing import METHODS
@@ -46,8 +54,12 @@ __all__ = [
     "METHODS",
     "NGramModel",
     "PerplexityResult",
+    "SentenceScore",
     "load_model",
     "perplexity",
     "read_corpus",
     "save_model",
+    "sentence_scores",
+    "summarise",
+    "write_sentence_scores",
 ]

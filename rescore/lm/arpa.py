@@ -2,11 +2,15 @@
 
 Conventions written: a ``\\data\\`` block of ``ngram k=count`` lines, then one section per
 order of ``log10prob<TAB>w1 .. wk[<TAB>log10bow]``, the highest order without back-off
-column, and ``\\end\\``. ``<s>`` is listed with probability -99 (it is never predicted), and
--99 stands for a zero probability or weight both ways. A model without ``<unk>`` among its
-unigrams is a closed-vocabulary model. Reading accepts any valid file: an n-gram whose
-suffix is not listed gets that suffix added with the probability the back-off rule gives
-it, so look-ups behave exactly as the file says.
+column, and ``\\end\\``. ``<s>`` is listed with probability -99 (it is never predicted).
+Exactly -99 stands for a zero probability or weight both ways; any other number is read as
+the log10 value it is (so -120 is the tiny probability 1e-120, not zero), and a finite
+value that would print as -99 is written one step below it. Probabilities must be <= 0
+(``-inf`` is read as zero); back-off weights may be any finite number, positive ones
+included (entropy pruning can leave a context more weight than one). A model without
+``<unk>`` among its unigrams is a closed-vocabulary model. Reading accepts any valid file:
+an n-gram whose suffix is not listed gets that suffix added with the probability the
+back-off rule gives it, so look-ups behave exactly as the file says.
 """
 
 from __future__ import annotations
@@ -29,14 +33,26 @@ F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]
 LOG10E = 1.0 / math.log(10.0)
 ZERO = -99.0  # log10 of "never"
+NUDGED_ZERO = "-99.0000001"  # a real probability that would otherwise print as -99
 MAX_ORDER = 6
-_NGRAM_LINE = re.compile(r"^ngram\s+(\d+)\s*=\s*(\d+)$")
-_SECTION = re.compile(r"^\\(\d+)-grams:$")
+MAX_LINE_BYTES = 1 << 20  # an n-gram line is a few words and numbers; refuse runaway lines
+# bounded digit runs: int() of thousands of digits raises ValueError, not our error
+_NGRAM_LINE = re.compile(r"^ngram\s+([0-9]{1,6})\s*=\s*([0-9]{1,15})$")
+_SECTION = re.compile(r"^\\([0-9]{1,6})-grams:$")
+
+Entry = tuple[list[str], float, float, int]  # words, log10 prob, log10 bow, line number
 
 
 def _fmt(values: F64) -> list[str]:
     log10 = values * LOG10E
-    return [f"{x:.10g}" if x > ZERO else f"{ZERO:g}" for x in log10.tolist()]
+    out = []
+    for x in log10.tolist():
+        if not math.isfinite(x):
+            out.append(f"{ZERO:g}")
+            continue
+        text = f"{x:.10g}"
+        out.append(NUDGED_ZERO if float(text) == ZERO else text)
+    return out
 
 
 def write(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> None:
@@ -72,28 +88,38 @@ def write(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False
         out.write("\n\\end\\\n")
 
 
+def _show(text: str, limit: int = 60) -> str:
+    """``text`` quoted for a one-line message, cut short when long."""
+    return repr(text) if len(text) <= limit else repr(text[:limit]) + f"... ({len(text)} chars)"
+
+
 def _error(path: str | Path, line: int | None, field: str | None, what: str) -> ModelFileError:
     return ModelFileError(what, path=str(path), line=line, field=field)
 
 
-def _number(text: str, path: str | Path, line: int, field: str) -> float:
+def _number(text: str, path: str | Path, line: int, field: str, *, bow: bool) -> float:
+    """A log10 value: a probability is <= 0 (``-inf`` allowed), a back-off weight finite."""
     try:
         value = float(text)
     except ValueError:
-        raise _error(path, line, field, f"not a number: {text!r}") from None
-    if math.isnan(value) or value > 0:
-        raise _error(path, line, field, f"a log10 value must be a number <= 0, got {text!r}")
+        raise _error(path, line, field, f"not a number: {_show(text)}") from None
+    if bow and not math.isfinite(value):
+        raise _error(path, line, field,
+                     f"a log10 weight must be a finite number, got {_show(text)}")
+    if not bow and (math.isnan(value) or value > 0):
+        raise _error(path, line, field,
+                     f"a log10 probability must be a number <= 0, got {_show(text)}")
     return value
 
 
-def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], float, float]]]]:
-    """Declared counts and, per order, the entries (words, log10 prob, log10 bow)."""
+def _parse(path: str | Path) -> tuple[list[int], list[list[Entry]]]:
+    """Declared counts and, per order, the entries (words, log10 prob, log10 bow, line)."""
     declared: list[int] = []
-    sections: list[list[tuple[list[str], float, float]]] = []
+    sections: list[list[Entry]] = []
     state = "start"
     current = 0
     last_line = 0
-    for number, raw in iter_text_lines(path):
+    for number, raw in iter_text_lines(path, MAX_LINE_BYTES):
         last_line = number
         line = raw.strip()
         if state == "start":
@@ -110,7 +136,7 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
             k, n = int(m.group(1)), int(m.group(2))
             if k != len(declared) + 1 or k > MAX_ORDER:
                 raise _error(path, number, "counts header",
-                             f"expected 'ngram {len(declared) + 1}=COUNT', got {line!r}")
+                             f"expected 'ngram {len(declared) + 1}=COUNT', got {_show(line)}")
             declared.append(n)
             continue
         if section:
@@ -119,7 +145,7 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
                 raise _error(path, number, "counts header", "no 'ngram k=count' lines")
             if k != current + 1 or k > len(declared):
                 raise _error(path, number, "section",
-                             f"expected \\{current + 1}-grams:, got {line!r}")
+                             f"expected \\{current + 1}-grams:, got {_show(line)}")
             if current and len(sections[-1]) != declared[current - 1]:
                 raise _error(path, number, "counts header",
                              f"{len(sections[-1])} {current}-grams listed, "
@@ -129,21 +155,24 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
             state = "grams"
             continue
         if state != "grams":
-            raise _error(path, number, "counts header", f"unexpected line {line!r}")
+            raise _error(path, number, "counts header", f"unexpected line {_show(line)}")
         fields = line.split()
         top = current == len(declared)
         if len(fields) not in ((current + 1,) if top else (current + 1, current + 2)):
             want = f"{current + 1}" if top else f"{current + 1} or {current + 2}"
             raise _error(path, number, f"{current}-gram",
                          f"expected {want} fields, got {len(fields)}")
-        prob = _number(fields[0], path, number, "probability")
-        bow = _number(fields[current + 1], path, number, "back-off weight") \
+        prob = _number(fields[0], path, number, "probability", bow=False)
+        bow = _number(fields[current + 1], path, number, "back-off weight", bow=True) \
             if len(fields) == current + 2 else 0.0
-        sections[-1].append((fields[1:current + 1], prob, bow))
+        sections[-1].append((fields[1:current + 1], prob, bow, number))
     if state == "start":
         raise _error(path, None, None, "not an ARPA file: no \\data\\ line")
     if state != "end":
         raise _error(path, last_line, None, "missing \\end\\ (the file is truncated?)")
+    if not declared:
+        raise _error(path, last_line, "counts header",
+                     "no 'ngram k=count' lines and no n-gram sections before \\end\\")
     if len(sections) != len(declared):
         raise _error(path, last_line, "section", f"{len(declared)} orders declared, "
                                                  f"{len(sections)} sections found")
@@ -154,8 +183,26 @@ def _parse(path: str | Path) -> tuple[list[int], list[list[tuple[list[str], floa
 
 
 def _ln(values: list[float]) -> F64:
+    """Natural logs of log10 values; exactly -99 is the conventional zero."""
     arr = np.array(values, dtype=np.float64)
-    return np.where(arr <= ZERO, -math.inf, arr / LOG10E)
+    return np.where(arr == ZERO, -math.inf, arr / LOG10E)
+
+
+class _Duplicate(Exception):
+    """Raised by ``_build``: rows ``first`` and ``again`` of order ``k`` are one n-gram."""
+
+    def __init__(self, k: int, first: int, again: int) -> None:
+        super().__init__(k, first, again)
+        self.k, self.first, self.again = k, first, again
+
+
+def _unknown_word(path: str | Path, k: int, rows: list[Entry], index: dict[str, int]
+                  ) -> ModelFileError:
+    for words, _, _, line in rows:
+        for w in words:
+            if w not in index:
+                return _error(path, line, f"{k}-gram", f"word {w!r} is not a unigram")
+    raise AssertionError("no unknown word")  # pragma: no cover - called after a KeyError
 
 
 def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
@@ -165,16 +212,17 @@ def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
     vocab = Vocabulary.from_words(w for w in unigram_words if w not in SPECIALS)
     v = len(vocab)
     index = vocab.index
+    rows1 = np.array([index[g[0][0]] for g in sections[0]], dtype=np.int64)
+    first_line: dict[int, int] = {}
+    for i, (words, _, _, line) in zip(rows1.tolist(), sections[0], strict=True):
+        if i in first_line:
+            raise _error(path, line, "1-gram",
+                         f"{words[0]!r} is listed twice (first on line {first_line[i]})")
+        first_line[i] = line
     logp1 = np.full(v, -math.inf)
     bow1 = np.zeros(v)
-    seen = np.zeros(v, dtype=bool)
-    for line, (words, prob, bow) in enumerate(sections[0]):
-        i = index[words[0]]
-        if seen[i]:
-            raise _error(path, None, "1-grams", f"{words[0]!r} is listed twice (entry {line + 1})")
-        logp1[i] = prob / LOG10E if prob > ZERO else -math.inf
-        bow1[i] = bow / LOG10E if bow > ZERO else -math.inf
-        seen[i] = True
+    logp1[rows1] = _ln([g[1] for g in sections[0]])
+    bow1[rows1] = _ln([g[2] for g in sections[0]])
     logp1[BOS_ID] = -math.inf  # <s> is never predicted, whatever the file says
     mats: list[I64] = [np.arange(v, dtype=np.int64)[:, None]]
     probs: list[F64] = [logp1]
@@ -183,18 +231,20 @@ def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
         rows = sections[k - 1]
         try:
             mat = np.array([[index[w] for w in g[0]] for g in rows], dtype=np.int64)
-        except KeyError as exc:
-            raise _error(path, None, f"{k}-grams", f"word {exc.args[0]!r} is not a unigram") \
-                from None
+        except KeyError:
+            raise _unknown_word(path, k, rows, index) from None
         mats.append(mat.reshape(len(rows), k))
         probs.append(_ln([g[1] for g in rows]))
         bows.append(_ln([g[2] for g in rows]))
     _close_suffixes(mats, probs, bows)
     try:
         tables = _build(vocab, mats, probs, bows)
-    except ValueError as exc:
-        raise _error(path, None, None, str(exc)) from None
-    closed = not seen[UNK_ID]
+    except _Duplicate as dup:
+        rows = sections[dup.k - 1]
+        gram = " ".join(rows[dup.again][0])
+        raise _error(path, rows[dup.again][3], f"{dup.k}-gram",
+                     f"{gram!r} is listed twice (first on line {rows[dup.first][3]})") from None
+    closed = UNK_ID not in first_line
     meta: dict[str, Any] = {"method": "arpa", "closed_vocab": bool(closed),
                             "bos_listed": BOS in unigram_words}
     return tables, meta
@@ -229,8 +279,14 @@ def _build(vocab: Vocabulary, mats: list[I64], probs: list[F64], bows: list[F64]
         key = partial.key(suffix, mat[:, 0])
         perm = np.argsort(key, kind="stable")
         key, mat = key[perm], mat[perm]
-        if len(key) > 1 and np.any(key[1:] == key[:-1]):
-            raise ValueError(f"an n-gram of order {k} is listed twice")
+        if len(key) > 1 and np.any(same := key[1:] == key[:-1]):
+            # stable sort: equal keys keep file order, so perm[j] < perm[j + 1]
+            j = np.flatnonzero(same)
+            at = int(np.argmin(perm[j + 1]))
+            start = int(j[at])
+            while start > 0 and key[start - 1] == key[start]:
+                start -= 1
+            raise _Duplicate(k, int(perm[start]), int(perm[j[at] + 1]))
         p, b = probs[k - 1][perm], bows[k - 1][perm]
         gap = np.isnan(p)
         if gap.any():

@@ -1,22 +1,30 @@
-"""Perplexity and corpus reading: the measurements made with a fitted model."""
+"""Perplexity, per-sentence scores and corpus reading: the measurements made with a model."""
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from itertools import islice
+from itertools import islice, tee
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 
-from rescore.ioutil import iter_text_lines
+from rescore.ioutil import atomic_output, iter_text_lines
 from rescore.lm.model import NGramModel
 from rescore.text import tokens
 
 LN10 = math.log(10.0)
 BATCH = 50_000  # sentences scored per vectorised call
+F64 = npt.NDArray[np.float64]
+I64 = npt.NDArray[np.int64]
+
+
+def _finite(x: float) -> float | None:
+    return x if math.isfinite(x) else None
 
 
 @dataclass(frozen=True)
@@ -42,13 +50,9 @@ class PerplexityResult:
 
     def to_dict(self) -> dict[str, Any]:
         """The contract's keys (non-finite numbers, from zero probabilities, become null)."""
-
-        def finite(x: float) -> float | None:
-            return x if math.isfinite(x) else None
-
         return {
-            "perplexity": finite(self.perplexity),
-            "log10_prob": finite(self.log10_prob),
+            "perplexity": _finite(self.perplexity),
+            "log10_prob": _finite(self.log10_prob),
             "sentences": self.sentences,
             "tokens": self.tokens,
             "oov": self.oov,
@@ -56,21 +60,46 @@ class PerplexityResult:
         }
 
 
-def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> PerplexityResult:
-    """Score ``sentences`` (normalised token lists) in batches and sum up."""
-    per_sentence: list[np.ndarray[Any, Any]] = []
-    n_tokens = n_oov = n_words = 0
+@dataclass(frozen=True)
+class SentenceScore:
+    """One sentence as :func:`perplexity` counts it: its normalised ``text``, ``words``,
+    scored ``tokens`` (its words and ``</s>``, less OOV words for a closed vocabulary), ``oov``
+    words and ``log10_prob`` (``</s>`` included; ``-inf`` for a zero probability)."""
+
+    text: str
+    words: int
+    tokens: int
+    oov: int
+    log10_prob: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"text": self.text, "words": self.words, "tokens": self.tokens, "oov": self.oov,
+                "log10_prob": _finite(self.log10_prob)}
+
+
+@dataclass(frozen=True)
+class _Batch:
+    sentences: list[Sequence[str]]
+    log10: F64
+    words: I64
+    tokens: I64
+    oov: I64
+
+
+def _batches(model: NGramModel, sentences: Iterable[Sequence[str]]) -> Iterator[_Batch]:
     it = iter(sentences)
+    in_vocab = model.vocab_.index
     while batch := list(islice(it, BATCH)):
         logp = model.logprob(batch)
-        in_vocab = model.vocab_.index
-        words = sum(len(s) for s in batch)
-        oov = sum(1 for s in batch for w in s if in_vocab.get(w, 2) <= 2)
-        n_words += words
-        n_oov += oov
-        n_tokens += words + len(batch) - (oov if model.closed_vocab else 0)
-        per_sentence.append(logp / LN10)
-    log10s = np.concatenate(per_sentence) if per_sentence else np.zeros(0)
+        words = np.array([len(s) for s in batch], dtype=np.int64)
+        # <s>, </s> and <unk> as words are outside the vocabulary too (ids 0..2)
+        oov = np.array([sum(1 for w in s if in_vocab.get(w, 2) <= 2) for s in batch],
+                       dtype=np.int64)
+        tokens = words + 1 - (oov if model.closed_vocab else 0)
+        yield _Batch(batch, logp / LN10, words, tokens, oov)
+
+
+def _result(log10s: F64, n_tokens: int, n_oov: int, n_words: int) -> PerplexityResult:
     total = float(log10s.sum())
     ppl = 10.0 ** (-total / n_tokens) if n_tokens else float("nan")
     return PerplexityResult(
@@ -79,12 +108,73 @@ def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> Perplex
     )
 
 
+def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> PerplexityResult:
+    """Score ``sentences`` (normalised token lists) in batches and sum up."""
+    per_sentence: list[F64] = []
+    n_tokens = n_oov = n_words = 0
+    for b in _batches(model, sentences):
+        n_words += int(b.words.sum())
+        n_oov += int(b.oov.sum())
+        n_tokens += int(b.tokens.sum())
+        per_sentence.append(b.log10)
+    log10s = np.concatenate(per_sentence) if per_sentence else np.zeros(0)
+    return _result(log10s, n_tokens, n_oov, n_words)
+
+
+def sentence_scores(model: NGramModel, sentences: Iterable[Sequence[str]]
+                    ) -> Iterator[SentenceScore]:
+    """Each sentence's figures, in order, scored in the same batches as :func:`perplexity`."""
+    for b in _batches(model, sentences):
+        for i, s in enumerate(b.sentences):
+            yield SentenceScore(" ".join(s), int(b.words[i]), int(b.tokens[i]), int(b.oov[i]),
+                                float(b.log10[i]))
+
+
+def summarise(scores: Iterable[SentenceScore]) -> PerplexityResult:
+    """The perplexity figures of a run of sentence scores (equal to :func:`perplexity`'s)."""
+    log10s: list[float] = []
+    n_tokens = n_oov = n_words = 0
+    for sc in scores:
+        log10s.append(sc.log10_prob)
+        n_tokens += sc.tokens
+        n_oov += sc.oov
+        n_words += sc.words
+    return _result(np.array(log10s, dtype=np.float64), n_tokens, n_oov, n_words)
+
+
+def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
+                          ) -> PerplexityResult:
+    """Score ``text`` and write one JSON object per sentence to ``out``, atomically.
+
+    Each line holds the sentence's ``line`` in ``text`` (blank lines are skipped, as in
+    :func:`read_corpus`) and the keys of :meth:`SentenceScore.to_dict`. Returns the totals.
+    """
+    numbered, again = tee(read_corpus_lines(text))
+    scores = sentence_scores(model, (words for _, words in numbered))
+
+    with atomic_output(out) as fh:
+
+        def written() -> Iterator[SentenceScore]:
+            for (line, _), sc in zip(again, scores, strict=True):
+                fh.write(json.dumps({"line": line, **sc.to_dict()}, ensure_ascii=False,
+                                    allow_nan=False) + "\n")
+                yield sc
+
+        return summarise(written())
+
+
 def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]:
     """One normalised sentence per non-blank line of each file (.gz read transparently)."""
     if isinstance(paths, (str, Path)):
         paths = [paths]
     for path in paths:
-        for _, line in iter_text_lines(path):
-            words = tokens(line)
-            if words:
-                yield words
+        for _, words in read_corpus_lines(path):
+            yield words
+
+
+def read_corpus_lines(path: str | Path) -> Iterator[tuple[int, list[str]]]:
+    """``(line number, normalised words)`` for each non-blank line of one file."""
+    for number, line in iter_text_lines(path):
+        words = tokens(line)
+        if words:
+            yield number, words

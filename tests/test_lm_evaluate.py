@@ -1,0 +1,54 @@
+"""Perplexity and per-sentence scores: each sentence's figures against its token values."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from lm_reference import ReferenceModel
+
+from rescore.lm import NGramModel, perplexity, sentence_scores, summarise
+
+LN10 = math.log(10.0)
+TRAIN = [["pump", "two", "on"], ["pump", "three", "off"], ["vent", "bay", "three", "open"]]
+PROBE = [["pump", "two", "off"], ["vent", "four", "open", "<unk>"], ["bay"], []]
+
+
+@pytest.mark.parametrize("closed", [False, True])
+@pytest.mark.parametrize("method", ["mkn", "wb", "addk"])
+def test_sentence_scores_are_sums_of_token_values(method: str, closed: bool) -> None:
+    model = NGramModel(3, method, closed_vocab=closed).fit(TRAIN)
+    scores = list(sentence_scores(model, PROBE))
+    per_token = model.token_logprobs(PROBE)
+    ref = ReferenceModel(TRAIN, 3, method, closed=closed)
+    for sc, words, tok in zip(scores, PROBE, per_token, strict=True):
+        assert sc.text == " ".join(words) and sc.words == len(words)
+        # chain rule: a sentence's log probability is the sum of its tokens' (derivation);
+        # a closed vocabulary leaves OOV words unscored (NaN), an open one scores them
+        assert sc.log10_prob == pytest.approx(float(np.nansum(tok)) / LN10, abs=1e-12)
+        assert sc.tokens == int(np.count_nonzero(~np.isnan(tok)))
+        # the plain reference of tests/lm_reference.py, written from the formulas
+        assert sc.log10_prob == pytest.approx(ref.sentence_logprob(words) / LN10, abs=1e-9)
+    # OOV counted by hand: "four" and the literal "<unk>" are not training words
+    assert [sc.oov for sc in scores] == [0, 2, 0, 0]
+    # tokens: words and </s>, never <s>; a closed vocabulary drops the OOV words (contract)
+    assert [sc.tokens for sc in scores] == ([4, 3, 2, 1] if closed else [4, 5, 2, 1])
+
+
+def test_summarise_equals_perplexity() -> None:
+    model = NGramModel(3).fit(TRAIN)
+    result = perplexity(model, PROBE)
+    assert summarise(sentence_scores(model, PROBE)) == result
+    assert result.sentence_log10 == tuple(sc.log10_prob for sc in sentence_scores(model, PROBE))
+    # the contract: perplexity = 10 ** (-log10_prob / tokens)
+    assert result.perplexity == pytest.approx(10 ** (-result.log10_prob / result.tokens))
+    assert result.tokens == 4 + 5 + 2 + 1 and result.oov == 2 and result.words == 8
+
+
+def test_zero_probability_sentence_is_null_in_json() -> None:
+    # maximum likelihood gives an unseen bigram probability 0 (relative frequency, from
+    # memory): log10 is -inf, written as null (JSON has no infinity, RFC 8259)
+    model = NGramModel(2, "mle").fit(TRAIN)
+    (sc,) = sentence_scores(model, [["pump", "bay"]])
+    assert sc.log10_prob == -math.inf and sc.to_dict()["log10_prob"] is None

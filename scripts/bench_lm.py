@@ -255,7 +255,6 @@ def main() -> None:
               f"{held_tokens / t_score / 1e6:.2f} M tokens/s; dict scorer on {part_tokens:,} "
               f"tokens {part_tokens / t_dscore / 1e6:.3f} M tokens/s ({how}); ratio "
               f"{ratio:.1f}x {target(ratio, '>=', 12)}")
-        save_model(model, Path(tmp) / "again.lm")
 
 
 if __name__ == "__main__":

@@ -12,7 +12,7 @@ import pytest
 from rescore.errors import InputError, ModelFileError
 from rescore.lm import METHODS, NGramModel, load_model, save_model
 
-LOG10_TOL = 1e-6  # the tolerance for an ARPA round trip, in log10
+LOG10_TOL = 1e-6  # our tolerance for an ARPA round trip, in log10 (README, ARPA conventions)
 LN10 = math.log(10)
 
 

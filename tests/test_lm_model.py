@@ -16,7 +16,7 @@ from rescore.lm import METHODS, NGramModel
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.vocab import Vocabulary, encode
 
-NORM_TOL = 1e-9  # the tolerance for sums of probabilities and reference matches
+NORM_TOL = 1e-9  # our tolerance for sums of probabilities and reference matches
 ALL_METHODS = list(METHODS)
 
 corpora = st.lists(

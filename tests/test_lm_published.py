@@ -34,7 +34,8 @@ def test_chen_goodman_discounts() -> None:
 
 @pytest.mark.parametrize("n", [[0, 5, 3, 1], [5, 0, 3, 1], [10, 1, 0, 2], [10, 1, 1, 20]])
 def test_degenerate_counts_of_counts_fall_back(n: list[int]) -> None:
-    # the rule: one D = n1/(n1+2 n2) for all counts, 0.5 if n1 or n2 is zero
+    # our fallback rule (README, language models): one D = n1/(n1+2 n2) for all counts,
+    # 0.5 if n1 or n2 is zero
     (d1, d2, d3), fallback = modified_discounts(n)
     want = 0.5 if n[0] == 0 or n[1] == 0 else n[0] / (n[0] + 2 * n[1])
     assert fallback and d1 == d2 == d3 == pytest.approx(want)

@@ -26,7 +26,7 @@ def dev_matrix(tmp_path_factory: pytest.TempPathFactory) -> FeatureMatrix:
 
 def test_exact_search_no_worse_than_dense_grid_on_demo(dev_matrix: FeatureMatrix) -> None:
     # Och (2003): the line search follows the exact error curve, so within the same box it
-    # should match the best of a dense 200 x 200 grid (issue check; not a theorem, as the
+    # should match the best of a dense 200 x 200 grid (our acceptance check; not a theorem, as the
     # search is coordinate-wise)
     lm_grid, pen_grid = np.linspace(0, 30, 200), np.linspace(-20, 20, 200)
     dense = grid_search(dev_matrix, lm_grid=lm_grid, penalty_grid=pen_grid)

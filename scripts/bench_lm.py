@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from rescore.lm import NGramModel, load_model, save_model
+from rescore.lm import NGramModel, load_model
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import stream_from_lengths

@@ -30,5 +30,6 @@ def test_apply_peak_memory_flat_from_10k_to_100k(tmp_path: Path) -> None:
         peaks[n] = _peak_rss_kib([sys.executable, "-m", "rescore", "apply", str(src),
                                   "--weights", str(weights), "-o", str(tmp_path / "out.jsonl")])
         src.unlink()
-    # the project's streaming target (README, large jobs): less than 20 % apart although the input is ten times larger
+    # the project's streaming target (README, large jobs): less than 20 % apart although the
+    # input is ten times larger
     assert peaks[100_000] < 1.2 * peaks[10_000], peaks

@@ -148,6 +148,24 @@ def test_caution_in_markdown_and_html() -> None:
         assert "licensed practitioners" in files[name]
 
 
+def test_matched_pairs_fallback_is_shown_in_every_output() -> None:
+    # derived by hand: two utterances, each with one error that after fixes, give segment
+    # differences (-1, -1); W is undefined and p is the exact sign test's 2 * 0.5**2 = 0.5
+    ref = "vent bay three opened"
+    before = [Pair.from_text("a", ref, "went bay three opened"),
+              Pair.from_text("b", ref, "vent day three opened")]
+    after = [Pair.from_text("a", ref, ref), Pair.from_text("b", ref, ref)]
+    files = render_all(build_report(before, after, provenance={}, resamples=200))
+    data = json.loads(files["report.json"])
+    mp = data["tests"]["matched_pairs"]
+    assert (mp["method"], mp["z"], mp["p_value"]) == ("sign", None, 0.5)
+    assert data["difference"]["mapsswe_p"] == 0.5
+    for name in ("report.md", "report.html"):
+        assert "Matched-pairs segment test p (exact sign test: W undefined)" in files[name]
+        assert "all 2 segment differences equal -1, so W is undefined" in files[name]
+        assert "0.5000" in files[name] and "&lt; 0.0001" not in files[name]
+
+
 def test_marked_words_show_each_difference() -> None:
     # one substitution, one deletion, one insertion, each marked with its own element
     html = marked_words(align(w("bay three pump row vent"), w("day three row vent on")))

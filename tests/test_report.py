@@ -114,6 +114,41 @@ def test_breakdown_counts_and_meta_groups() -> None:
     assert speakers == {"s01": (2, 2), "s02": (1, 0)}
 
 
+def test_meta_keys_not_broken_down_are_listed_with_the_reason() -> None:
+    # 60 utterances: "shift" takes 2 values (broken down), "session" 60 (more than the cap
+    # of 50, so left out and listed), "site" one value, "tags" lists; counted by hand
+    ref = "vent bay three opened"
+    before, after = [], []
+    for i in range(60):
+        meta = {"shift": "day" if i % 2 else "night", "session": f"s{i:02d}",
+                "site": "larkspur", "tags": ["a", "b"] if i % 3 else ["a"]}
+        before.append(Pair.from_text(f"u{i}", ref, "went bay three opened", meta))
+        after.append(Pair.from_text(f"u{i}", ref, ref, meta))
+    report = build_report(before, after, provenance={}, resamples=100)
+    assert list(report.breakdown.by_meta) == ["shift"]
+    files = render_all(report)
+    skipped = json.loads(files["report.json"])["breakdown"]["by_meta_skipped"]
+    assert skipped == [
+        {"key": "session", "values": 60, "reason": "60 values, more than 50"},
+        {"key": "site", "values": 1, "reason": "one value for every utterance"},
+        {"key": "tags", "values": 2, "reason": "holds lists or objects, not single values"},
+    ]
+    assert "### Metadata keys not broken down" in files["report.md"]
+    assert "| session | 60 values, more than 50 | 60 |" in files["report.md"]
+    assert "Metadata keys not broken down" in files["report.html"]
+    assert ('<td>session</td><td>60 values, more than 50</td><td class="num">60</td>'
+            in files["report.html"])
+
+
+def test_meta_key_at_the_cap_is_broken_down() -> None:
+    # the cap is inclusive: exactly 50 values still get a table (breakdown.MAX_GROUPS)
+    ref = "vent bay"
+    pairs = [Pair.from_text(f"u{i}", ref, ref, {"session": i}) for i in range(50)]
+    report = build_report(pairs, pairs, provenance={}, resamples=50)
+    assert len(report.breakdown.by_meta["session"]) == 50
+    assert report.breakdown.meta_skipped == ()
+
+
 def test_hostile_text_is_escaped_everywhere() -> None:
     before, after = systems()
     before.append(Pair.from_text(HOSTILE_ID, "pH é ok", HOSTILE_TEXT))

@@ -109,7 +109,19 @@ def _wilcoxon_note(report: Report) -> str:
 def provenance_rows(report: Report) -> list[tuple[str, str]]:
     rows = []
     for key, value in report.provenance.items():
+        if key == "weights" and isinstance(value, dict) and "sha256" in value:
+            rows.append(("weights", weights_text(value)))
+            continue
         text = value if isinstance(value, str) else json.dumps(value, sort_keys=True,
                                                                 ensure_ascii=False)
         rows.append((key, text))
     return rows
+
+
+def weights_text(weights: dict[str, Any]) -> str:
+    """The weights exactly as recorded (shortest round-trip floats), then file and SHA-256."""
+    parts = [f"{name} {weights[name]!r}"
+             for name in ("lm_weight", "insertion_penalty", "acoustic_scale") if name in weights]
+    parts += [f"feature {name} {value!r}"
+              for name, value in sorted(weights.get("features", {}).items())]
+    return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import re
+from html import unescape
 from pathlib import Path
 
 import pytest
@@ -20,6 +21,7 @@ from rescore.report import (
     write_report,
 )
 from rescore.report.html import marked_words
+from rescore.report.model import CAUTION
 from rescore.text import NORMALISATION
 from rescore.wer import align
 
@@ -28,6 +30,7 @@ def w(text: str) -> list[str]:
     """Words of a space-separated string."""
     return text.split()
 
+ROOT = Path(__file__).resolve().parent.parent
 TOL = 1e-12
 CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
                        "probability_of_improvement", "mapsswe_p", "sign_test_p", "wilcoxon_p"}
@@ -175,12 +178,24 @@ def test_html_is_self_contained() -> None:
     assert "default-src &#x27;none&#x27;" in page  # the CSP, attribute-escaped
 
 
-def test_caution_in_markdown_and_html() -> None:
+def test_caution_in_every_report_file_and_the_readme() -> None:
+    # the caution itself: a WER on one set says nothing certain about another, and
+    # medical, legal or safety use needs validation on deployment data under that field's
+    # rules and licensed practice (common practice in speech-recognition evaluation)
+    assert "guarantees nothing on another" in CAUTION
+    assert "medical, legal or safety" in CAUTION and "licensed practitioners" in CAUTION
     before, after = systems()
     files = render_all(build_report(before, after, provenance={}, resamples=200))
-    for name in ("report.md", "report.html"):
-        assert "guarantees nothing on another" in files[name]
-        assert "licensed practitioners" in files[name]
+    assert json.loads(files["report.json"])["caution"] == CAUTION
+    assert f"**Caution.** {CAUTION}" in files["report.md"]
+    footer = re.search(r'<div class="caution" id="caution">(.*?)</div>', files["report.html"])
+    assert footer is not None
+    assert unescape(footer.group(1)) == f"<strong>Caution.</strong> {CAUTION}"
+    # the README's blockquote, its line breaks and quote markers removed
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    quoted = " ".join(line.removeprefix(">").strip() for line in readme.splitlines()
+                      if line.startswith(">"))
+    assert f"**Caution.** {CAUTION}" in quoted
 
 
 def test_matched_pairs_fallback_is_shown_in_every_output() -> None:

@@ -5,17 +5,10 @@ from __future__ import annotations
 import json
 from typing import Any
 
+from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.model import Report
 
 TITLE = "Release report: WER before and after rescoring"
-
-CAUTION = (
-    "A WER measured on one test set guarantees nothing on another: a different speaker, "
-    "microphone, room, vocabulary or way of speaking can change it in either direction. "
-    "Transcripts that feed medical, legal or safety decisions need validation on the "
-    "deployment's own data, under that field's rules and by licensed practitioners, before "
-    "anyone relies on them."
-)
 
 
 def pct(value: float | None, digits: int = 2) -> str:

@@ -21,7 +21,8 @@ from rescore.report import (
     write_report,
 )
 from rescore.report.html import marked_words
-from rescore.report.model import CAUTION
+from rescore.report.model import CAUTION, Surface, Tuning
+from rescore.report.plots import chosen_cell, colour_limits
 from rescore.text import NORMALISATION
 from rescore.wer import align
 
@@ -248,6 +249,28 @@ def test_gates() -> None:
     assert "above --max-regression 0.01" in gate_failures(worse, max_regression=0.01)[0]
     gated = with_gate(worse, max_wer=None, max_regression=0.01)
     assert gated.gate is not None and gated.gate["passed"] is False
+
+
+def test_heatmap_star_marks_the_chosen_weights() -> None:
+    # derived by hand: the first grid minimum (2 errors) is at LM 0, penalty -1, but the
+    # tuner chose LM 2, penalty 0 (a plateau centre): the star goes where the title says
+    surface = Surface((0.0, 1.0, 2.0), (-1.0, 0.0, 1.0),
+                      ((2.0, 3.0, 4.0), (3.0, 2.0, 3.0), (2.0, 2.0, 2.0)))
+    assert chosen_cell(surface, Tuning(surface, (), 2.0, 0.0)) == (2, 1)
+    # weights between grid points take the nearest cell (1.4 -> 1.0, 0.6 -> 1.0)
+    assert chosen_cell(surface, Tuning(surface, (), 1.4, 0.6)) == (1, 2)
+    # no chosen weights recorded: the first minimum in row order
+    assert chosen_cell(surface, Tuning(surface)) == (0, 0)
+
+
+def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
+    # source: numpy.percentile's default linear interpolation, by hand: ten values sorted
+    # 1..9, 100; rank 0.9 * 9 = 8.1 lies between 9 and 100, so 9 + 0.1 * 91 = 18.1
+    low, high, capped = colour_limits([[1, 2, 3, 4, 5], [6, 7, 8, 9, 100]])
+    assert (low, capped) == (1.0, True) and high == pytest.approx(18.1, abs=TOL)
+    # a flat surface, or one whose top tenth is its maximum, keeps its full range
+    assert colour_limits([[3, 3], [3, 3]]) == (3.0, 3.0, False)
+    assert colour_limits([[1, 5], [5, 5]]) == (1.0, 5.0, False)
 
 
 def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:

@@ -14,7 +14,7 @@ from typing import Any
 
 from rescore import pipeline
 from rescore.errors import InputError
-from rescore.ioutil import sha256_file, write_text_atomic
+from rescore.ioutil import write_text_atomic
 from rescore.nbest import iter_nbest, one_best
 from rescore.scoring import LM, oracle_rows
 from rescore.text import tokens
@@ -80,8 +80,8 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     before, after, oracle = _test_wers(data / "test.jsonl", rescored, models)
     outputs = [model_path, weights_path, analysis_path, rescored, out / "test.best.tsv"]
     outputs += _report(data / "test.jsonl", rescored, out / "report", analysis_path,
-                       pipeline.provenance(data=[data / "test.jsonl"], models=models,
-                                           extra={"weights_sha256": sha256_file(weights_path)}))
+                       weights_path,
+                       pipeline.provenance(data=[data / "test.jsonl"], models=models))
     summary = {
         "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
         "lm_weight": tuned["lm_weight"], "insertion_penalty": tuned["insertion_penalty"],
@@ -186,10 +186,12 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
     return corpus_wer(refs, first).to_dict(), corpus_wer(refs, chosen).to_dict(), oracle.to_dict()
 
 
-def _report(before: Path, after: Path, folder: Path, tuning: Path,
+def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,
             provenance: dict[str, Any]) -> list[Path]:
     from rescore.report import build_report, load_system, write_report
+    from rescore.report.load import weights_provenance
 
-    report = build_report(load_system(before), load_system(after), provenance=provenance,
+    report = build_report(load_system(before), load_system(after),
+                          provenance={**provenance, "weights": weights_provenance(weights)},
                           tuning=json.loads(tuning.read_text()))
     return write_report(report, folder)

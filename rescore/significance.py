@@ -7,7 +7,10 @@ negative difference is an improvement):
   giving percentile intervals for each corpus WER and for their difference, and the
   probability of improvement (the share of resamples in which ``after`` has the lower WER).
 - :func:`matched_pairs`: the matched-pairs sentence-segment word error test (Gillick and
-  Cox, 1989) over segments bounded by words both systems recognise correctly.
+  Cox, 1989) over segments bounded by words both systems recognise correctly. Its normal
+  statistic needs at least two segments whose differences vary; otherwise the p-value is
+  the exact two-sided sign test over the non-zero segment differences, and the result says
+  so in ``method`` and ``note``.
 - :func:`sign_test`: exact two-sided binomial test on the signs of per-utterance error
   differences, zeros dropped.
 - :func:`wilcoxon_signed_rank`: signed-rank test on the same differences; zeros dropped
@@ -37,6 +40,10 @@ _CHUNK_ELEMENTS = 1 << 22
 
 def _normal_two_sided(z: float) -> float:
     return math.erfc(abs(z) / math.sqrt(2.0))
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
 def _as_int_array(values: Sequence[int] | npt.ArrayLike, name: str) -> IntArray:
@@ -84,7 +91,9 @@ def paired_bootstrap(
 
     Each resample draws ``n`` utterance indices with replacement (one index matrix per
     chunk of resamples); the draws are counted per utterance and the three per-utterance
-    arrays summed with one matrix product per chunk.
+    arrays summed with one matrix product per chunk. With one utterance every resample is
+    that utterance: the intervals have zero width and the probability of improvement is 0
+    or 1, which says nothing about variability (the report notes it).
     """
     stacked = np.stack([
         _as_int_array(before_errors, "before_errors"),
@@ -148,14 +157,21 @@ def paired_bootstrap(
 
 @dataclass(frozen=True)
 class MatchedPairsResult:
-    """Gillick and Cox's statistic over segment error differences (after - before)."""
+    """Gillick and Cox's statistic over segment error differences (after - before).
+
+    ``method`` is "normal" (W and its two-sided normal p) or "sign" (the exact sign test
+    over the non-zero segments, used when W is undefined; ``z`` is then None and ``note``
+    says why).
+    """
 
     segments: int
     min_run: int
     mean: float
     variance: float
-    z: float
+    z: float | None
     p_value: float
+    method: str = "normal"
+    note: str = ""
 
     def to_dict(self) -> dict[str, object]:
         return asdict(self)
@@ -235,19 +251,25 @@ def matched_pairs_statistic(differences: Sequence[int] | npt.ArrayLike, *,
                             min_run: int = 2) -> MatchedPairsResult:
     """W = mean / (sd / sqrt(n)) with the sample standard deviation; p two-sided normal.
 
-    Fewer than two segments, or differences that are all equal, give no usable variance:
-    p is 1 when the mean is 0 and 0 otherwise (the systems differ in every segment alike).
+    W is undefined with fewer than two segments or when every segment difference is the
+    same (zero variance). Then the p-value is the exact two-sided sign test over the
+    non-zero differences, the distribution-free test of the same null hypothesis (a
+    segment is as likely to favour either system): ``k`` equal non-zero differences give
+    ``min(1, 2 * 0.5**k)``, no non-zero difference or a single one gives 1.
     """
     z_arr = np.asarray(differences, dtype=np.float64)
     n = int(z_arr.size)
-    if n == 0:
-        return MatchedPairsResult(0, min_run, 0.0, 0.0, 0.0, 1.0)
-    mean = float(z_arr.mean())
+    mean = float(z_arr.mean()) if n else 0.0
     variance = float(z_arr.var(ddof=1)) if n > 1 else 0.0
-    if n < 2:
-        return MatchedPairsResult(n, min_run, mean, variance, 0.0, 1.0)
-    if variance == 0.0:
-        return MatchedPairsResult(n, min_run, mean, 0.0, 0.0, 1.0 if mean == 0 else 0.0)
+    if n < 2 or variance == 0.0:
+        lower = int(np.count_nonzero(z_arr < 0))
+        nonzero = lower + int(np.count_nonzero(z_arr > 0))
+        why = (f"{_count(n, 'segment')}, too few for W" if n < 2 else
+               f"all {n} segment differences equal {mean:g}, so W is undefined")
+        return MatchedPairsResult(
+            n, min_run, mean, variance, None, binomial_two_sided(lower, nonzero),
+            method="sign", note=f"{why}; p from the exact two-sided sign test over "
+                                f"{_count(nonzero, 'non-zero segment')}")
     w = mean / math.sqrt(variance / n)
     return MatchedPairsResult(n, min_run, mean, variance, w, _normal_two_sided(w))
 
@@ -303,7 +325,8 @@ def sign_test(differences: Sequence[int] | npt.ArrayLike) -> SignTestResult:
 
 @dataclass(frozen=True)
 class WilcoxonResult:
-    """Signed-rank sums of the non-zero differences; ``method`` is "exact" or "normal"."""
+    """Signed-rank sums of the non-zero differences; ``method`` is "exact" or "normal",
+    or "none" when no difference is non-zero (no evidence either way: p = 1)."""
 
     n: int
     zeros: int
@@ -364,7 +387,7 @@ def wilcoxon_signed_rank(
     zeros = int(d.size - nonzero.size)
     n = int(nonzero.size)
     if n == 0:
-        return WilcoxonResult(0, zeros, 0.0, 0.0, "exact", None, 1.0)
+        return WilcoxonResult(0, zeros, 0.0, 0.0, "none", None, 1.0)
     ranks = mid_ranks(np.abs(nonzero))
     r_plus = float(ranks[nonzero > 0].sum())
     r_minus = float(ranks[nonzero < 0].sum())

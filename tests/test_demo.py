@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import subprocess
 import sys
@@ -78,3 +79,18 @@ def test_demo_report_carries_the_tuning_analysis(small_data: Path, tmp_path: Pat
     summary = json.loads((tmp_path / "summary.json").read_text())
     assert report["after"]["wer"] == summary["wer_after"]
     assert report["before"]["wer"] == summary["wer_before"]
+
+
+def test_demo_report_records_its_weights(small_data: Path, tmp_path: Path) -> None:
+    # the weights that made the after system are in the report's provenance, with the
+    # file's SHA-256 (source: hashlib.sha256 of the written weights.json, computed here)
+    assert run(["demo", "--data", small_data, "--out", tmp_path]).exit_code == 0
+    weights_path = tmp_path / "weights.json"
+    weights = json.loads(weights_path.read_text())
+    recorded = json.loads((tmp_path / "report" / "report.json").read_text())[
+        "provenance"]["weights"]
+    assert recorded["sha256"] == hashlib.sha256(weights_path.read_bytes()).hexdigest()
+    assert recorded["file"] == str(weights_path)
+    for key in ("acoustic_scale", "lm_weight", "insertion_penalty", "features"):
+        assert recorded[key] == weights[key], key
+    assert f"sha256 {recorded['sha256']}" in (tmp_path / "report" / "report.md").read_text()

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import re
+from html import unescape
 from pathlib import Path
 
 import pytest
@@ -20,6 +21,8 @@ from rescore.report import (
     write_report,
 )
 from rescore.report.html import marked_words
+from rescore.report.model import CAUTION, Surface, Tuning
+from rescore.report.plots import chosen_cell, colour_limits
 from rescore.text import NORMALISATION
 from rescore.wer import align
 
@@ -28,6 +31,7 @@ def w(text: str) -> list[str]:
     """Words of a space-separated string."""
     return text.split()
 
+ROOT = Path(__file__).resolve().parent.parent
 TOL = 1e-12
 CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
                        "probability_of_improvement", "mapsswe_p", "sign_test_p", "wilcoxon_p"}
@@ -114,6 +118,41 @@ def test_breakdown_counts_and_meta_groups() -> None:
     assert speakers == {"s01": (2, 2), "s02": (1, 0)}
 
 
+def test_meta_keys_not_broken_down_are_listed_with_the_reason() -> None:
+    # 60 utterances: "shift" takes 2 values (broken down), "session" 60 (more than the cap
+    # of 50, so left out and listed), "site" one value, "tags" lists; counted by hand
+    ref = "vent bay three opened"
+    before, after = [], []
+    for i in range(60):
+        meta = {"shift": "day" if i % 2 else "night", "session": f"s{i:02d}",
+                "site": "larkspur", "tags": ["a", "b"] if i % 3 else ["a"]}
+        before.append(Pair.from_text(f"u{i}", ref, "went bay three opened", meta))
+        after.append(Pair.from_text(f"u{i}", ref, ref, meta))
+    report = build_report(before, after, provenance={}, resamples=100)
+    assert list(report.breakdown.by_meta) == ["shift"]
+    files = render_all(report)
+    skipped = json.loads(files["report.json"])["breakdown"]["by_meta_skipped"]
+    assert skipped == [
+        {"key": "session", "values": 60, "reason": "60 values, more than 50"},
+        {"key": "site", "values": 1, "reason": "one value for every utterance"},
+        {"key": "tags", "values": 2, "reason": "holds lists or objects, not single values"},
+    ]
+    assert "### Metadata keys not broken down" in files["report.md"]
+    assert "| session | 60 values, more than 50 | 60 |" in files["report.md"]
+    assert "Metadata keys not broken down" in files["report.html"]
+    assert ('<td>session</td><td>60 values, more than 50</td><td class="num">60</td>'
+            in files["report.html"])
+
+
+def test_meta_key_at_the_cap_is_broken_down() -> None:
+    # the cap is inclusive: exactly 50 values still get a table (breakdown.MAX_GROUPS)
+    ref = "vent bay"
+    pairs = [Pair.from_text(f"u{i}", ref, ref, {"session": i}) for i in range(50)]
+    report = build_report(pairs, pairs, provenance={}, resamples=50)
+    assert len(report.breakdown.by_meta["session"]) == 50
+    assert report.breakdown.meta_skipped == ()
+
+
 def test_hostile_text_is_escaped_everywhere() -> None:
     before, after = systems()
     before.append(Pair.from_text(HOSTILE_ID, "pH é ok", HOSTILE_TEXT))
@@ -140,12 +179,42 @@ def test_html_is_self_contained() -> None:
     assert "default-src &#x27;none&#x27;" in page  # the CSP, attribute-escaped
 
 
-def test_caution_in_markdown_and_html() -> None:
+def test_caution_in_every_report_file_and_the_readme() -> None:
+    # the caution itself: a WER on one set says nothing certain about another, and
+    # medical, legal or safety use needs validation on deployment data under that field's
+    # rules and licensed practice (common practice in speech-recognition evaluation)
+    assert "guarantees nothing on another" in CAUTION
+    assert "medical, legal or safety" in CAUTION and "licensed practitioners" in CAUTION
     before, after = systems()
     files = render_all(build_report(before, after, provenance={}, resamples=200))
+    assert json.loads(files["report.json"])["caution"] == CAUTION
+    assert f"**Caution.** {CAUTION}" in files["report.md"]
+    footer = re.search(r'<div class="caution" id="caution">(.*?)</div>', files["report.html"])
+    assert footer is not None
+    assert unescape(footer.group(1)) == f"<strong>Caution.</strong> {CAUTION}"
+    # the README's blockquote, its line breaks and quote markers removed
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    quoted = " ".join(line.removeprefix(">").strip() for line in readme.splitlines()
+                      if line.startswith(">"))
+    assert f"**Caution.** {CAUTION}" in quoted
+
+
+def test_matched_pairs_fallback_is_shown_in_every_output() -> None:
+    # derived by hand: two utterances, each with one error that after fixes, give segment
+    # differences (-1, -1); W is undefined and p is the exact sign test's 2 * 0.5**2 = 0.5
+    ref = "vent bay three opened"
+    before = [Pair.from_text("a", ref, "went bay three opened"),
+              Pair.from_text("b", ref, "vent day three opened")]
+    after = [Pair.from_text("a", ref, ref), Pair.from_text("b", ref, ref)]
+    files = render_all(build_report(before, after, provenance={}, resamples=200))
+    data = json.loads(files["report.json"])
+    mp = data["tests"]["matched_pairs"]
+    assert (mp["method"], mp["z"], mp["p_value"]) == ("sign", None, 0.5)
+    assert data["difference"]["mapsswe_p"] == 0.5
     for name in ("report.md", "report.html"):
-        assert "guarantees nothing on another" in files[name]
-        assert "licensed practitioners" in files[name]
+        assert "Matched-pairs segment test p (exact sign test: W undefined)" in files[name]
+        assert "all 2 segment differences equal -1, so W is undefined" in files[name]
+        assert "0.5000" in files[name] and "&lt; 0.0001" not in files[name]
 
 
 def test_marked_words_show_each_difference() -> None:
@@ -180,6 +249,28 @@ def test_gates() -> None:
     assert "above --max-regression 0.01" in gate_failures(worse, max_regression=0.01)[0]
     gated = with_gate(worse, max_wer=None, max_regression=0.01)
     assert gated.gate is not None and gated.gate["passed"] is False
+
+
+def test_heatmap_star_marks_the_chosen_weights() -> None:
+    # derived by hand: the first grid minimum (2 errors) is at LM 0, penalty -1, but the
+    # tuner chose LM 2, penalty 0 (a plateau centre): the star goes where the title says
+    surface = Surface((0.0, 1.0, 2.0), (-1.0, 0.0, 1.0),
+                      ((2.0, 3.0, 4.0), (3.0, 2.0, 3.0), (2.0, 2.0, 2.0)))
+    assert chosen_cell(surface, Tuning(surface, (), 2.0, 0.0)) == (2, 1)
+    # weights between grid points take the nearest cell (1.4 -> 1.0, 0.6 -> 1.0)
+    assert chosen_cell(surface, Tuning(surface, (), 1.4, 0.6)) == (1, 2)
+    # no chosen weights recorded: the first minimum in row order
+    assert chosen_cell(surface, Tuning(surface)) == (0, 0)
+
+
+def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
+    # source: numpy.percentile's default linear interpolation, by hand: ten values sorted
+    # 1..9, 100; rank 0.9 * 9 = 8.1 lies between 9 and 100, so 9 + 0.1 * 91 = 18.1
+    low, high, capped = colour_limits([[1, 2, 3, 4, 5], [6, 7, 8, 9, 100]])
+    assert (low, capped) == (1.0, True) and high == pytest.approx(18.1, abs=TOL)
+    # a flat surface, or one whose top tenth is its maximum, keeps its full range
+    assert colour_limits([[3, 3], [3, 3]]) == (3.0, 3.0, False)
+    assert colour_limits([[1, 5], [5, 5]]) == (1.0, 5.0, False)
 
 
 def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:

@@ -1,10 +1,13 @@
 """The HTML report in a real headless Chromium, driven over the DevTools protocol.
 
 The browser talks to us over ``--remote-debugging-pipe`` (commands on its fd 3, replies on
-its fd 4, each a JSON message ending in a NUL byte), so no port is opened at all. Checks:
-the page loads with no console error and no network request, the headline numbers shown
-equal those in report.json, a hostile id and transcript appear as text and run nothing, the
-utterance filter works, and a screenshot is saved.
+its fd 4, each a JSON message ending in a NUL byte), so no port is opened at all. Two pages:
+
+- the report of a real ``rescore demo`` run on the bundled data: it loads with no console
+  error and no network request, the headline numbers shown equal those in report.json, the
+  utterance filter works, the caution footer and the weights' checksum are on the page, and
+  a full-page screenshot is saved (it is the README's picture);
+- a report holding a hostile id and transcript: they appear as text and run nothing.
 """
 
 from __future__ import annotations
@@ -12,6 +15,8 @@ from __future__ import annotations
 import base64
 import contextlib
 import fcntl
+import hashlib
+import io
 import json
 import os
 import random
@@ -28,7 +33,9 @@ from typing import Any
 import pytest
 
 from rescore.report import Pair, build_report, write_report
+from rescore.report.model import CAUTION
 from rescore.text import tokens
+from tests.conftest import run
 
 pytestmark = pytest.mark.browser
 
@@ -43,6 +50,9 @@ _LAUNCHER = ("import os, sys; r, w = int(sys.argv[1]), int(sys.argv[2]); os.dup2
 HOSTILE_ID = 'row7<script>window.__pwned=1</script>"onload=window.__pwned=3'
 # '<', '>' and '=' survive normalisation (symbols, not punctuation)
 HOSTILE_TEXT = 'ph é <script>window.__pwned=2</script> "onload=window.__pwned=4 <img src=x>'
+# ids 0001-0009 of the demo's test set: the utterance list in the README's picture
+PICTURE_FILTER = "lark-test-000"
+DOCS_PICTURE_LIMIT = 400_000  # bytes; the README's picture must stay quick to load
 
 
 def _find_chromium() -> str | None:
@@ -192,19 +202,6 @@ def logbook_systems() -> tuple[list[Pair], list[Pair]]:
     return before, after
 
 
-TUNING = {
-    "surface": {"lm_values": [0.0, 2.0, 4.0, 6.0, 8.0, 10.0],
-                "penalty_values": [-4.0, -2.0, 0.0, 2.0, 4.0],
-                "errors": [[61, 58, 57, 59, 63], [54, 50, 48, 51, 56], [49, 44, 41, 45, 52],
-                           [50, 45, 43, 47, 53], [55, 49, 47, 50, 57], [60, 55, 53, 56, 62]]},
-    "depth": [{"k": 1, "one_best_wer": 0.21, "tuned_wer": 0.21, "oracle_wer": 0.21},
-              {"k": 2, "one_best_wer": 0.21, "tuned_wer": 0.17, "oracle_wer": 0.13},
-              {"k": 5, "one_best_wer": 0.21, "tuned_wer": 0.14, "oracle_wer": 0.07},
-              {"k": 10, "one_best_wer": 0.21, "tuned_wer": 0.135, "oracle_wer": 0.05}],
-    "lm_weight": 4.0, "insertion_penalty": 0.0,
-}
-
-
 def _shown_number(text: str) -> list[float]:
     """Numbers as a reader sees them: '12.50%' is 0.125, '0.0312' is 0.0312."""
     out = []
@@ -221,50 +218,95 @@ def _lookup(data: dict[str, Any], key: str) -> Any:
     return node
 
 
-def test_report_page_in_chromium(browser: DevTools, tmp_path: Path) -> None:
-    before, after = logbook_systems()
-    report = build_report(before, after, provenance={"scenario": "browser check"},
-                          tuning=TUNING, resamples=2000, seed=0)
-    out = tmp_path / "report"
-    write_report(report, out)
-    data = json.loads((out / "report.json").read_text())
-    page_url = (out / "report.html").resolve().as_uri()
+class Page:
+    """One tab of the browser with a report loaded, and what happened while it loaded."""
 
-    target = browser.send("Target.createTarget", {"url": "about:blank"})["targetId"]
-    session = browser.send("Target.attachToTarget",
-                           {"targetId": target, "flatten": True})["sessionId"]
-    for domain in ("Runtime", "Log", "Network", "Page"):
-        browser.send(f"{domain}.enable", session=session)
-    browser.send("Emulation.setDeviceMetricsOverride",
-                 {"width": 1200, "height": 1400, "deviceScaleFactor": 1, "mobile": False},
-                 session=session)
-    browser.send("Page.navigate", {"url": page_url}, session=session)
-    browser.wait_for("Page.loadEventFired")
-    browser.drain(1.0)
+    def __init__(self, browser: DevTools, path: Path, width: int = 1200) -> None:
+        self.browser = browser
+        self.url = path.resolve().as_uri()
+        target = browser.send("Target.createTarget", {"url": "about:blank"})["targetId"]
+        self.session = browser.send("Target.attachToTarget",
+                                    {"targetId": target, "flatten": True})["sessionId"]
+        for domain in ("Runtime", "Log", "Network", "Page"):
+            browser.send(f"{domain}.enable", session=self.session)
+        self.resize(width, 1400)
+        browser.send("Page.navigate", {"url": self.url}, session=self.session)
+        browser.wait_for("Page.loadEventFired")
+        browser.drain(1.0)
 
-    def evaluate(expression: str) -> Any:
-        res = browser.send("Runtime.evaluate", {"expression": expression,
-                                                "returnByValue": True}, session=session)
+    def resize(self, width: int, height: int) -> None:
+        self.browser.send("Emulation.setDeviceMetricsOverride",
+                          {"width": width, "height": height, "deviceScaleFactor": 1,
+                           "mobile": False}, session=self.session)
+
+    def evaluate(self, expression: str) -> Any:
+        res = self.browser.send("Runtime.evaluate", {"expression": expression,
+                                                     "returnByValue": True},
+                                session=self.session)
         assert "exceptionDetails" not in res, res
         return res["result"].get("value")
 
-    # no console errors, no uncaught exceptions, no CSP violations
-    errors = [e for e in browser.events if
-              (e.get("method") == "Runtime.consoleAPICalled"
-               and e["params"]["type"] in ("error", "assert"))
-              or e.get("method") == "Runtime.exceptionThrown"
-              or (e.get("method") == "Log.entryAdded"
-                  and e["params"]["entry"]["level"] == "error")]
-    assert errors == []
-    # no network request: only the page itself and the heat map's inline data: image
-    requests = [e["params"]["request"]["url"] for e in browser.events
-                if e.get("method") == "Network.requestWillBeSent"]
-    assert page_url in requests
-    assert [u for u in requests if u != page_url and not u.startswith("data:")] == []
+    def errors(self) -> list[dict[str, Any]]:
+        """Console errors, uncaught exceptions and CSP violations."""
+        return [e for e in self.browser.events if
+                (e.get("method") == "Runtime.consoleAPICalled"
+                 and e["params"]["type"] in ("error", "assert"))
+                or e.get("method") == "Runtime.exceptionThrown"
+                or (e.get("method") == "Log.entryAdded"
+                    and e["params"]["entry"]["level"] == "error")]
+
+    def foreign_requests(self) -> list[str]:
+        """Requests other than the page itself and inline data: images."""
+        requests = [e["params"]["request"]["url"] for e in self.browser.events
+                    if e.get("method") == "Network.requestWillBeSent"]
+        assert self.url in requests
+        return [u for u in requests if u != self.url and not u.startswith("data:")]
+
+    def show(self, choice: str, query: str = "") -> int:
+        """Set the utterance filter; the number of utterances left visible."""
+        shown: int = self.evaluate(
+            "(() => { const s = document.getElementById('utt-show');"
+            " const q = document.getElementById('utt-filter');"
+            f" s.value = {json.dumps(choice)}; q.value = {json.dumps(query)};"
+            " s.dispatchEvent(new Event('change')); q.dispatchEvent(new Event('input'));"
+            " return document.querySelectorAll('li.utt:not([hidden])').length; })()")
+        return shown
+
+    def full_screenshot(self, width: int = 1200) -> bytes:
+        """The whole page, top to bottom, as PNG."""
+        height = int(self.evaluate("document.documentElement.scrollHeight"))
+        self.resize(width, height)
+        shot = base64.b64decode(self.browser.send(
+            "Page.captureScreenshot", {"format": "png", "captureBeyondViewport": True},
+            session=self.session)["data"])
+        assert shot.startswith(b"\x89PNG")
+        return shot
+
+
+@pytest.fixture
+def demo_out(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """`rescore demo --data fixtures/demo --out demo-out` from a checkout, as a user runs it
+    (the data folder is linked in, so the report's provenance shows the same relative paths)."""
+    work = tmp_path / "checkout"
+    (work / "fixtures").mkdir(parents=True)
+    (work / "fixtures" / "demo").symlink_to(ROOT / "fixtures" / "demo",
+                                            target_is_directory=True)
+    monkeypatch.chdir(work)
+    result = run(["demo", "--data", "fixtures/demo", "--out", "demo-out"])
+    assert result.exit_code == 0, result.stderr
+    return work / "demo-out"
+
+
+def test_demo_report_page_in_chromium(browser: DevTools, demo_out: Path,
+                                      tmp_path: Path) -> None:
+    data = json.loads((demo_out / "report" / "report.json").read_text())
+    page = Page(browser, demo_out / "report" / "report.html")
+    assert page.errors() == []
+    assert page.foreign_requests() == []
 
     # the headline numbers on the page are those of report.json, to the shown precision
-    cells = evaluate("Array.from(document.querySelectorAll('td[data-key]')).map("
-                     "e => [e.dataset.key, e.dataset.value, e.textContent])")
+    cells = page.evaluate("Array.from(document.querySelectorAll('td[data-key]')).map("
+                          "e => [e.dataset.key, e.dataset.value, e.textContent])")
     keys = {k for k, _, _ in cells}
     assert {"before.wer", "after.wer", "difference.absolute", "difference.relative",
             "difference.probability_of_improvement", "difference.mapsswe_p",
@@ -274,38 +316,100 @@ def test_report_page_in_chromium(browser: DevTools, tmp_path: Path) -> None:
         if len(expected) == 1 and isinstance(expected[0], list):
             expected = expected[0]
         assert json.loads(value) == (expected if len(expected) > 1 else expected[0])
+        if text.startswith("<"):
+            # a p-value below what four decimals show is printed as "< 0.0001"
+            assert text == "< 0.0001" and len(expected) == 1 and 0 <= expected[0] < 1e-4
+            continue
         shown = _shown_number(text)
         assert len(shown) == len(expected), (key, text)
         for got, want in zip(shown, expected, strict=True):
             # two decimals of a percentage, or four of a probability
             assert abs(got - want) <= 0.00051, (key, text, want)
+    # the summary the demo prints and the page agree (one run, two outputs)
+    summary = json.loads((demo_out / "summary.json").read_text())
+    assert (summary["wer_before"], summary["wer_after"]) == (data["before"]["wer"],
+                                                            data["after"]["wer"])
 
-    # hostile id and transcript: shown as text, nothing ran, no element was injected
-    assert evaluate("typeof window.__pwned") == "undefined"
-    body = evaluate("document.body.textContent")
+    # the utterance filter keeps exactly the utterances of each kind in report.json
+    changes = [u["after_errors"] - u["before_errors"] for u in data["utterances"]]
+    for choice, count in (("improved", sum(c < 0 for c in changes)),
+                          ("worsened", sum(c > 0 for c in changes)),
+                          ("unchanged", sum(c == 0 for c in changes)),
+                          ("all", len(changes))):
+        assert page.show(choice) == count, choice
+
+    # the page ends with the caution and records the weights that made the after system
+    body = page.evaluate("document.body.textContent")
+    assert " ".join(body.split()).count(CAUTION) == 1
+    weights_sha = data["provenance"]["weights"]["sha256"]
+    assert weights_sha == hashlib.sha256((demo_out / "weights.json").read_bytes()).hexdigest()
+    assert f"sha256 {weights_sha}" in body
+
+    # the README's picture: the whole page, the utterance list narrowed by id (the page's own
+    # filter) so that the breakdowns, a few utterances and the footer all fit
+    picked = [u["id"] for u in data["utterances"] if u["id"].startswith(PICTURE_FILTER)]
+    assert page.show("all", PICTURE_FILTER) == len(picked) > 0
+    assert page.evaluate("document.getElementById('utt-count').textContent") == (
+        f"{len(picked)} of {len(changes)} shown")
+    shot = page.full_screenshot()
+    (tmp_path / "report.png").write_bytes(shot)
+    docs = ROOT / "docs" / "report.png"
+    # written when missing or asked for (RESCORE_UPDATE_DOCS=1), so test runs do not churn it
+    if not docs.exists() or os.environ.get("RESCORE_UPDATE_DOCS"):
+        figures = page.evaluate(
+            "Array.from(document.querySelectorAll('figure')).map(f => {"
+            " const r = f.getBoundingClientRect();"
+            " return [r.left, r.top + scrollY, r.right, r.bottom + scrollY]; })")
+        picture = compact_png(shot, figures)
+        assert len(picture) < DOCS_PICTURE_LIMIT, len(picture)
+        docs.parent.mkdir(exist_ok=True)
+        docs.write_bytes(picture)
+
+
+def compact_png(shot: bytes, figures: list[list[float]]) -> bytes:
+    """The screenshot with a 256-colour palette, so the README's picture stays light.
+
+    Half the palette is the page's most common exact colours (backgrounds, text, table
+    lines, the plots' line colours), half a median-cut palette of the figures alone (the
+    heat map's gradient); every pixel takes the nearest entry, undithered.
+    """
+    from PIL import Image
+
+    image = Image.open(io.BytesIO(shot)).convert("RGB")
+    common = sorted(image.getcolors(image.width * image.height) or [], reverse=True)[:128]
+    strips = [image.crop(tuple(round(v) for v in box)) for box in figures]
+    sheet = Image.new("RGB", (max(s.width for s in strips), sum(s.height for s in strips)))
+    top = 0
+    for strip in strips:
+        sheet.paste(strip, (0, top))
+        top += strip.height
+    gradient = sheet.quantize(colors=256 - len(common), method=Image.Quantize.MEDIANCUT,
+                              kmeans=4).getpalette() or []
+    flat = [c for _, rgb in common for c in rgb] + gradient[:3 * (256 - len(common))]
+    palette = Image.new("P", (1, 1))
+    palette.putpalette(flat + [0] * (768 - len(flat)))
+    out = io.BytesIO()
+    image.quantize(palette=palette, dither=Image.Dither.NONE).save(out, "PNG", optimize=True)
+    return out.getvalue()
+
+
+def test_hostile_text_stays_text_in_chromium(browser: DevTools, tmp_path: Path) -> None:
+    before, after = logbook_systems()
+    out = tmp_path / "report"
+    write_report(build_report(before, after, provenance={"scenario": "browser check"},
+                              resamples=2000, seed=0), out)
+    page = Page(browser, out / "report.html")
+    assert page.errors() == []
+    assert page.foreign_requests() == []
+    # shown as text, nothing ran, no element was injected
+    assert page.evaluate("typeof window.__pwned") == "undefined"
+    body = page.evaluate("document.body.textContent")
     assert HOSTILE_ID in body
     # the transcript as normalised ('/', '.', '_' and '"' are punctuation and become spaces)
     for word in tokens(HOSTILE_TEXT):
         assert word in body
     assert "<script>window" in body and "<img" in body
-    assert evaluate("document.scripts.length") == 1
-    assert evaluate("document.querySelectorAll('img').length") == 0
-
-    # the utterance filter: "worsened" keeps exactly the utterances that got worse
-    worse = sum(u["after_errors"] > u["before_errors"] for u in data["utterances"])
-    shown = evaluate("(() => { const s = document.getElementById('utt-show');"
-                     " s.value = 'worsened'; s.dispatchEvent(new Event('change'));"
-                     " return document.querySelectorAll('li.utt:not([hidden])').length; })()")
-    assert shown == worse
-    evaluate("(() => { const s = document.getElementById('utt-show'); s.value = 'all';"
-             " s.dispatchEvent(new Event('change')); })()")
-
-    shot = base64.b64decode(browser.send("Page.captureScreenshot", {"format": "png"},
-                                         session=session)["data"])
-    assert shot.startswith(b"\x89PNG")
-    (tmp_path / "report.png").write_bytes(shot)
-    docs = ROOT / "docs" / "report.png"
-    # the README's picture: written when missing or asked for, so test runs do not churn it
-    if not docs.exists() or os.environ.get("RESCORE_UPDATE_DOCS"):
-        docs.parent.mkdir(exist_ok=True)
-        docs.write_bytes(shot)
+    assert page.evaluate("document.scripts.length") == 1
+    assert page.evaluate("document.querySelectorAll('img').length") == 0
+    # the filter finds the hostile utterance by its id, as text
+    assert page.show("all", "row7<script>") == 1

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 from pathlib import Path
 
@@ -166,4 +167,55 @@ def test_bad_tuning_file(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
                   "-o", tmp_path / "rep", "--tuning", tuning])
     assert res.exit_code == 1
     assert res.stderr.startswith(f"error: {tuning}: surface.errors: errors should be 2 rows")
+    assert not (tmp_path / "rep").exists()
+
+
+def test_weights_go_into_provenance(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    weights = tmp_path / "weights.json"
+    weights.write_text(json.dumps({
+        "acoustic_scale": 1.0, "lm_weight": 0.8125, "insertion_penalty": -0.5,
+        "features": {"first_pass_lm": 0.25}, "provenance": {"search": "grid"}}))
+    out = tmp_path / "rep"
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1], "-o", out,
+                  "--resamples", "200", "--weights", weights, "--json"])
+    assert res.exit_code == 0, res.output
+    # source: hashlib.sha256 of the file's bytes, computed here independently
+    digest = hashlib.sha256(weights.read_bytes()).hexdigest()
+    expected = {"file": str(weights), "sha256": digest, "acoustic_scale": 1.0,
+                "lm_weight": 0.8125, "insertion_penalty": -0.5,
+                "features": {"first_pass_lm": 0.25}}
+    assert json.loads((out / "report.json").read_text())["provenance"]["weights"] == expected
+    assert json.loads(res.stdout)["provenance"]["weights"] == expected
+    shown = (f"lm_weight 0.8125, insertion_penalty -0.5, acoustic_scale 1.0, feature "
+             f"first_pass_lm 0.25; file {weights}, sha256 {digest}")
+    assert shown in (out / "report.md").read_text()
+    assert shown in (out / "report.html").read_text()
+
+
+def test_report_without_weights_records_none(tmp_path: Path,
+                                             nbest_pair: tuple[Path, Path]) -> None:
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200"])
+    assert res.exit_code == 0, res.output
+    assert "weights" not in json.loads((tmp_path / "rep" / "report.json").read_text())[
+        "provenance"]
+
+
+@pytest.mark.parametrize(("content", "message"), [
+    ('{"acoustic_scale": 1, "lm_weight": "high", "insertion_penalty": 0}',
+     "lm_weight: "),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "lm_wieght": 2}',
+     "lm_wieght: unknown key"),
+    ('{"acoustic_scale": 1, "lm_weight": 1', "invalid JSON"),
+])
+def test_bad_weights_file_is_one_error_and_no_report(
+        tmp_path: Path, nbest_pair: tuple[Path, Path], content: str, message: str) -> None:
+    weights = tmp_path / "weights.json"
+    weights.write_text(content)
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--weights", weights])
+    assert res.exit_code == 1
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"error: {weights}")
+    assert message in lines[0]
     assert not (tmp_path / "rep").exists()

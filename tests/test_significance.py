@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
+from rescore.errors import InputError
 from rescore.significance import (
     binomial_two_sided,
     matched_pairs,
@@ -41,6 +42,55 @@ def test_matched_pairs_worked_example() -> None:
     assert r.p_value == pytest.approx(0.739, abs=5e-4)
     # the normal tail agrees with SciPy
     assert r.p_value == pytest.approx(2 * scipy.stats.norm.sf(1 / 3), abs=P_TOL)
+    assert (r.method, r.note) == ("normal", "")
+
+
+# W = mean / (sd / sqrt(n)) is undefined with fewer than two segments or zero variance
+DEGENERATE_SEGMENTS = [
+    [-1, -1],          # every segment better by one error: the old code said p = 0
+    [2, 2, 2],         # every segment worse by two
+    [-1] * 15,         # fifteen agreeing segments: p = 2 * 0.5**15, below 0.0001
+    [0, 0, 0],         # segments where both erred alike: no evidence
+    [-3],              # one segment
+    [],                # no error-bearing segment at all
+]
+
+
+@pytest.mark.parametrize("d", DEGENERATE_SEGMENTS)
+def test_matched_pairs_without_variance_uses_exact_sign_test(d: list[int]) -> None:
+    # source: scipy.stats.binomtest(k, n, 0.5), two-sided, over the non-zero segment
+    # differences (the distribution-free test of "a segment favours either system alike");
+    # with no non-zero difference there is no evidence and p = 1 (definition)
+    r = matched_pairs_statistic(d)
+    nonzero = [x for x in d if x != 0]
+    expected = (1.0 if not nonzero else
+                scipy.stats.binomtest(sum(x < 0 for x in nonzero), len(nonzero), 0.5).pvalue)
+    assert r.p_value == pytest.approx(expected, rel=1e-12)
+    # derived by hand: k equal non-zero differences give min(1, 2 * 0.5**k)
+    if nonzero and len(set(nonzero)) == 1:
+        assert r.p_value == pytest.approx(min(1.0, 2 * 0.5 ** len(nonzero)), rel=1e-12)
+    assert (r.method, r.z, r.segments) == ("sign", None, len(d))
+    assert "sign test" in r.note
+
+
+def test_matched_pairs_more_agreeing_segments_never_weaken_the_evidence() -> None:
+    # one segment gave p = 1 and two identical ones p = 0: adding a segment that agrees
+    # must never raise p, and agreeing segments can never reach p = 0 (definition of a
+    # two-sided p-value of a discrete test: at least the probability of the observed sign
+    # pattern and its mirror, 2 * 0.5**n)
+    ps = [matched_pairs_statistic([-1] * n).p_value for n in range(1, 12)]
+    assert ps == sorted(ps, reverse=True)
+    assert ps[1] == 0.5 and min(ps) > 0
+
+
+def test_matched_pairs_over_alignments_with_equal_segment_changes() -> None:
+    # derived by hand: two utterances, each with one segment where after fixes the one
+    # error before made; differences (-1, -1), zero variance, exact sign test p = 0.5
+    ref = w("vent bay three opened")
+    before = [align(ref, w("went bay three opened")), align(ref, w("vent day three opened"))]
+    after = [align(ref, ref), align(ref, ref)]
+    r = matched_pairs(before, after)
+    assert (r.segments, r.mean, r.method, r.p_value) == (2, -1.0, "sign", 0.5)
 
 
 def test_segments_are_bounded_by_words_both_systems_get_right() -> None:
@@ -80,6 +130,9 @@ SIGN_CASES = [
     [1, 1, 1, 1, 1, 1],                       # all worse
     [-1, 1, -1, 1],                           # balanced: p = 1
     [0, 0, 0],                                # no evidence at all
+    [],                                       # no utterances
+    [1],                                      # one non-zero difference: p = 1
+    [-1, -1],                                 # two alike: p = 0.5
     list(np.random.default_rng(3).integers(-2, 3, size=400)),  # large n
 ]
 
@@ -146,10 +199,22 @@ def test_wilcoxon_exact_with_ties_matches_brute_force(seed: int) -> None:
                                                              abs=P_TOL)
 
 
-def test_wilcoxon_all_zero_differences() -> None:
-    # definition: no non-zero difference, no evidence
-    r = wilcoxon_signed_rank([0, 0, 0, 0])
-    assert (r.n, r.zeros, r.p_value) == (0, 4, 1.0)
+@pytest.mark.parametrize("d", [[0, 0, 0, 0], []])
+def test_wilcoxon_no_nonzero_difference(d: list[int]) -> None:
+    # definition: no non-zero difference (or no utterance at all), no evidence: p = 1, and
+    # the result says no test distribution was used
+    r = wilcoxon_signed_rank(d)
+    assert (r.n, r.zeros, r.p_value, r.method) == (0, len(d), 1.0, "none")
+
+
+@pytest.mark.parametrize("d", [[1], [-3], [-1, -1], [2, 2, 2], [0, 0, -1]])
+def test_wilcoxon_tiny_and_constant_samples_match_scipy(d: list[int]) -> None:
+    # source: scipy.stats.wilcoxon (zero_method="wilcox"): one non-zero difference gives
+    # p = 1; n equal ones give the single extreme sign pattern and its mirror, 2 * 0.5**n
+    ours = wilcoxon_signed_rank(d)
+    ref = scipy.stats.wilcoxon(d)
+    assert ours.p_value == pytest.approx(float(ref.pvalue), rel=1e-12)
+    assert ours.statistic == pytest.approx(float(ref.statistic))
 
 
 def test_mid_ranks_match_scipy_rankdata() -> None:
@@ -167,6 +232,26 @@ def test_bootstrap_identical_systems_give_zero_difference() -> None:
     assert r.difference == 0.0
     assert r.difference_ci == (0.0, 0.0)
     assert r.probability_of_improvement == 0.0
+
+
+@pytest.mark.parametrize(("before", "after", "improvement"), [([3], [1], 1.0), ([2], [2], 0.0),
+                                                             ([0], [1], 0.0)])
+def test_bootstrap_single_utterance_has_zero_width(before: list[int], after: list[int],
+                                                   improvement: float) -> None:
+    # definition: resampling one utterance always draws that utterance, so every resample
+    # equals the point estimate and the probability of improvement is 0 or 1
+    r = paired_bootstrap(before, after, [5], resamples=200, seed=1)
+    assert r.before_ci == (before[0] / 5, before[0] / 5)
+    assert r.difference_ci == pytest.approx((r.difference, r.difference), abs=P_TOL)
+    assert r.probability_of_improvement == improvement
+
+
+def test_bootstrap_refuses_no_utterances_and_no_words() -> None:
+    # definition: WER needs at least one reference word
+    with pytest.raises(InputError, match="no utterances"):
+        paired_bootstrap([], [], [])
+    with pytest.raises(InputError, match="no words"):
+        paired_bootstrap([1], [0], [0])
 
 
 def test_bootstrap_interval_contains_point_and_is_reproducible() -> None:

@@ -41,6 +41,9 @@ def report(
     seed: Annotated[int, typer.Option("--seed", help="Bootstrap seed.")] = 0,
     tuning: Annotated[Path | None, typer.Option(
         "--tuning", help="Tuning output (JSON with an error surface and depth curve).")] = None,
+    weights: Annotated[Path | None, typer.Option(
+        "--weights", help="Weights file that produced AFTER; its weights and SHA-256 go into "
+        "the provenance.")] = None,
     max_wer: Annotated[float | None, typer.Option(
         "--max-wer", help="Gate: fail (exit 3) when the after WER is above this.")] = None,
     max_regression: Annotated[float | None, typer.Option(
@@ -60,6 +63,7 @@ def report(
         with_gate,
         write_report,
     )
+    from rescore.report.load import weights_provenance
     from rescore.report.text import p_value
 
     ref_map = None if refs is None else read_refs(refs)
@@ -68,7 +72,9 @@ def report(
     tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
                                                                path=str(tuning))
     files = [p for p in (before, after, refs, tuning) if p is not None]
-    provenance = {"data_sha256": {str(p): sha256_file(p) for p in files}}
+    provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
+    if weights is not None:
+        provenance["weights"] = weights_provenance(weights)
     with progress("bootstrap and significance tests"):
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed)

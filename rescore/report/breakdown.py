@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -58,12 +59,25 @@ class GroupRow:
 
 
 @dataclass(frozen=True)
+class SkippedKey:
+    """A metadata key with no WER breakdown, and why (``values``: its distinct values)."""
+
+    key: str
+    values: int
+    reason: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"key": self.key, "values": self.values, "reason": self.reason}
+
+
+@dataclass(frozen=True)
 class Breakdown:
     before: Confusions
     after: Confusions
     improved: tuple[str, ...]
     worsened: tuple[str, ...]
     by_meta: Mapping[str, tuple[GroupRow, ...]]
+    meta_skipped: tuple[SkippedKey, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -72,6 +86,7 @@ class Breakdown:
             "most_improved": list(self.improved),
             "most_worsened": list(self.worsened),
             "by_meta": {k: [r.to_dict() for r in rows] for k, rows in self.by_meta.items()},
+            "by_meta_skipped": [k.to_dict() for k in self.meta_skipped],
         }
 
 
@@ -103,21 +118,31 @@ def _groupable(value: Any) -> bool:
 
 
 def by_meta(rows: Sequence[UtteranceRow], max_groups: int = MAX_GROUPS
-            ) -> dict[str, tuple[GroupRow, ...]]:
-    """WER per value of each metadata key whose values are scalars in few enough groups.
+            ) -> tuple[dict[str, tuple[GroupRow, ...]], tuple[SkippedKey, ...]]:
+    """WER per value of each metadata key, and the keys left out with the reason.
 
-    A key is shown when every utterance that has it holds a scalar and it takes between 2
-    and ``max_groups`` values; utterances without the key form the group "(none)".
+    A key is broken down when every utterance that has it holds a scalar and it takes
+    between 2 and ``max_groups`` values (more would make the report unreadable);
+    utterances without the key form the group "(none)". Every other key is listed as
+    skipped, with its number of distinct values.
     """
     keys = sorted({k for r in rows for k in r.meta})
     out: dict[str, tuple[GroupRow, ...]] = {}
+    skipped: list[SkippedKey] = []
     for key in keys:
         values = [r.meta.get(key) for r in rows]
         if not all(v is None or _groupable(v) for v in values):
+            kinds = len({json.dumps(v, sort_keys=True, default=str) for v in values})
+            skipped.append(SkippedKey(key, kinds, "holds lists or objects, not single values"))
             continue
         labels = ["(none)" if v is None else str(v) for v in values]
         distinct = sorted(set(labels))
-        if not 2 <= len(distinct) <= max_groups:
+        if len(distinct) > max_groups:
+            skipped.append(SkippedKey(key, len(distinct),
+                                      f"{len(distinct)} values, more than {max_groups}"))
+            continue
+        if len(distinct) < 2:
+            skipped.append(SkippedKey(key, 1, "one value for every utterance"))
             continue
         acc: dict[str, list[int]] = {lab: [0, 0, 0, 0] for lab in distinct}
         for lab, r in zip(labels, rows, strict=True):
@@ -127,17 +152,19 @@ def by_meta(rows: Sequence[UtteranceRow], max_groups: int = MAX_GROUPS
             a[2] += r.before_errors
             a[3] += r.after_errors
         out[key] = tuple(GroupRow(lab, *acc[lab]) for lab in distinct)
-    return out
+    return out, tuple(skipped)
 
 
 def build_breakdown(rows: Sequence[UtteranceRow], top: int = TOP,
                     changed: int = CHANGED) -> Breakdown:
     improved = sorted((r for r in rows if r.change < 0), key=lambda r: (r.change, r.id))
     worsened = sorted((r for r in rows if r.change > 0), key=lambda r: (-r.change, r.id))
+    groups, skipped = by_meta(rows)
     return Breakdown(
         before=confusions([r.before for r in rows], top),
         after=confusions([r.after for r in rows], top),
         improved=tuple(r.id for r in improved[:changed]),
         worsened=tuple(r.id for r in worsened[:changed]),
-        by_meta=by_meta(rows),
+        by_meta=groups,
+        meta_skipped=skipped,
     )

@@ -223,6 +223,12 @@ def _by_meta(report: Report) -> str:
                    + _table([key, "utterances", "ref words", "WER before", "WER after"],
                             [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
                               t.pct(g.after_wer)) for g in groups]) + "</div>")
+    skipped = report.breakdown.meta_skipped
+    if skipped:
+        out.append('<div class="card" id="meta-skipped"><h3>Metadata keys not broken down</h3>'
+                   + _table(["key", "why", "distinct values"],
+                            [(k.key, k.reason, k.values) for k in skipped], numeric_from=2)
+                   + "</div>")
     return f'<div class="row">{"".join(out)}</div>' if out else ""
 
 

@@ -1,12 +1,14 @@
-"""One system's transcripts from a file: an N-best file (its 1-best) or ``id<TAB>text`` lines."""
+"""What a report reads: one system's transcripts (an N-best file's 1-best or ``id<TAB>text``
+lines) and, for provenance, the weights file that made the after system."""
 
 from __future__ import annotations
 
 from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 from rescore.errors import InputError
-from rescore.ioutil import iter_text_lines
+from rescore.ioutil import iter_text_lines, sha256_file
 from rescore.nbest import iter_nbest, one_best, read_refs
 from rescore.report.model import Pair
 
@@ -55,3 +57,18 @@ def load_system(
 
 def _ids(ids: list[str], limit: int = 5) -> str:
     return ", ".join(ids[:limit]) + (f" and {len(ids) - limit} more" if len(ids) > limit else "")
+
+
+def weights_provenance(path: str | Path) -> dict[str, Any]:
+    """The weights in a weights file, its path and SHA-256, for a report's provenance.
+
+    The file is read with the tuner's strict reader, so a report never records weights
+    that ``rescore apply`` would refuse.
+    """
+    from rescore.tune import read_weights
+
+    weights = read_weights(path)
+    return {"file": str(path), "sha256": sha256_file(path),
+            "acoustic_scale": weights.acoustic_scale, "lm_weight": weights.lm_weight,
+            "insertion_penalty": weights.insertion_penalty,
+            "features": dict(sorted(weights.features.items()))}

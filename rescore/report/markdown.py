@@ -67,6 +67,10 @@ def render_markdown(report: Report) -> str:
         out += _table([_cell(key), "utterances", "ref words", "WER before", "WER after"],
                       [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
                         t.pct(g.after_wer)) for g in groups])
+    if report.breakdown.meta_skipped:
+        out += ["### Metadata keys not broken down", ""]
+        out += _table(["key", "why", "distinct values"],
+                      [(k.key, k.reason, k.values) for k in report.breakdown.meta_skipped])
     if report.tuning is not None and report.tuning.depth:
         out += ["## WER by N-best depth", ""]
         out += _table(["k", "1-best", "rescored", "oracle"],

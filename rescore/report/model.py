@@ -42,6 +42,15 @@ DEFAULT_SEED = 0
 DEFAULT_CONFIDENCE = 0.95
 DEFAULT_MIN_RUN = 2
 
+# carried by every report (a report.json field, and the .md and .html footers) and the README
+CAUTION = (
+    "A WER measured on one test set guarantees nothing on another: a different speaker, "
+    "microphone, room, vocabulary or way of speaking can change it in either direction. "
+    "Transcripts that feed medical, legal or safety decisions need validation on the "
+    "deployment's own data, under that field's rules and by licensed practitioners, before "
+    "anyone relies on them."
+)
+
 
 @dataclass(frozen=True)
 class Pair:
@@ -183,6 +192,7 @@ class Report:
         if self.gate is not None:
             out["gate"] = dict(self.gate)
         out["provenance"] = dict(self.provenance)
+        out["caution"] = CAUTION
         return out
 
 

@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import io
 import re
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 
 import matplotlib
+import numpy as np
 
 matplotlib.use("Agg")
 
@@ -66,25 +67,57 @@ def wer_intervals(report: Report) -> str:
 
 
 def surface_heatmap(surface: Surface, tuning: Tuning) -> str:
+    """Dev errors over the grid, the chosen weights starred.
+
+    Far-off corners (an LM weight of 0, say) can hold several times the errors of the best
+    region and would flatten it to one colour, so the scale stops at the 90th percentile;
+    the colour bar says so.
+    """
     with _style("surface"):
         fig = Figure(figsize=(5.6, 3.8))
         ax = fig.add_subplot()
-        image = ax.imshow(surface.errors, origin="lower", aspect="auto", cmap="viridis_r")
+        low, high, capped = colour_limits(surface.errors)
+        image = ax.imshow(surface.errors, origin="lower", aspect="auto", cmap="viridis_r",
+                          vmin=low, vmax=high)
         n_lm, n_pen = len(surface.lm_values), len(surface.penalty_values)
         ax.set_yticks(*_ticks(surface.lm_values))
         ax.set_xticks(*_ticks(surface.penalty_values))
         ax.set_ylabel("LM weight")
         ax.set_xlabel("insertion penalty")
-        best = min((v, i, j) for i, row in enumerate(surface.errors) for j, v in enumerate(row))
-        ax.plot([best[2]], [best[1]], marker="*", color="white", markersize=12,
-                markeredgecolor="black")
+        i, j = chosen_cell(surface, tuning)
+        ax.plot([j], [i], marker="*", color="white", markersize=12, markeredgecolor="black")
         if tuning.lm_weight is not None and tuning.insertion_penalty is not None:
-            ax.set_title(f"chosen: LM weight {tuning.lm_weight:g}, "
+            ax.set_title(f"chosen (star): LM weight {tuning.lm_weight:g}, "
                          f"penalty {tuning.insertion_penalty:g}", fontsize=9)
         ax.set_xlim(-0.5, n_pen - 0.5)
         ax.set_ylim(-0.5, n_lm - 0.5)
-        fig.colorbar(image, ax=ax, label="dev word errors")
+        fig.colorbar(image, ax=ax, extend="max" if capped else "neither",
+                     label="dev word errors" + (" (scale stops at 90th pct)" if capped else ""))
         return _svg(fig, "tuning error surface")
+
+
+def colour_limits(errors: Sequence[Sequence[float]]) -> tuple[float, float, bool]:
+    """Colour scale of the surface: its minimum to its 90th percentile (capped) or maximum."""
+    values = np.asarray(errors, dtype=np.float64)
+    low, high = float(values.min()), float(values.max())
+    cap = float(np.percentile(values, 90))
+    if low < cap < high:
+        return low, cap, True
+    return low, high, False
+
+
+def chosen_cell(surface: Surface, tuning: Tuning) -> tuple[int, int]:
+    """(LM row, penalty column) of the chosen weights, or of the first grid minimum when the
+    tuning result does not name them; weights between grid points take the nearest cell."""
+    if tuning.lm_weight is not None and tuning.insertion_penalty is not None:
+        return (_nearest(surface.lm_values, tuning.lm_weight),
+                _nearest(surface.penalty_values, tuning.insertion_penalty))
+    _, i, j = min((v, i, j) for i, row in enumerate(surface.errors) for j, v in enumerate(row))
+    return i, j
+
+
+def _nearest(values: Sequence[float], x: float) -> int:
+    return min(range(len(values)), key=lambda k: (abs(values[k] - x), k))
 
 
 def _ticks(values: tuple[float, ...], most: int = 8) -> tuple[list[int], list[str]]:

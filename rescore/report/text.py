@@ -5,17 +5,10 @@ from __future__ import annotations
 import json
 from typing import Any
 
+from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.model import Report
 
 TITLE = "Release report: WER before and after rescoring"
-
-CAUTION = (
-    "A WER measured on one test set guarantees nothing on another: a different speaker, "
-    "microphone, room, vocabulary or way of speaking can change it in either direction. "
-    "Transcripts that feed medical, legal or safety decisions need validation on the "
-    "deployment's own data, under that field's rules and by licensed practitioners, before "
-    "anyone relies on them."
-)
 
 
 def pct(value: float | None, digits: int = 2) -> str:
@@ -56,8 +49,9 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
          "tests.bootstrap.after_ci", list(b.after_ci)),
         ("Probability of improvement", f"{d.probability_of_improvement:.4f}",
          "difference.probability_of_improvement", d.probability_of_improvement),
-        ("Matched-pairs segment test p", p_value(d.mapsswe_p), "difference.mapsswe_p",
-         d.mapsswe_p),
+        ("Matched-pairs segment test p" + (
+            " (exact sign test: W undefined)" if report.matched_pairs.method == "sign" else ""),
+         p_value(d.mapsswe_p), "difference.mapsswe_p", d.mapsswe_p),
         ("Sign test p", p_value(d.sign_test_p), "difference.sign_test_p", d.sign_test_p),
         ("Wilcoxon signed-rank p", p_value(d.wilcoxon_p), "difference.wilcoxon_p",
          d.wilcoxon_p),
@@ -65,26 +59,62 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
 
 
 def method_notes(report: Report) -> list[str]:
-    b, m, s, w = report.bootstrap, report.matched_pairs, report.sign, report.wilcoxon
-    return [
-        f"Paired bootstrap over {report.before.utterances} utterances: {b.resamples} "
-        f"resamples, seed {b.seed}, percentile intervals; probability of improvement is the "
-        "share of resamples in which the after system has the lower WER.",
-        f"Matched-pairs segment test over {m.segments} segments bounded by runs of at least "
-        f"{m.min_run} words both systems got right: mean difference {m.mean:+.4f}, "
-        f"W = {m.z:.4f}.",
-        f"Sign test: {s.improved} utterances improved, {s.worsened} worsened, {s.ties} "
-        "unchanged (unchanged ones left out, exact binomial).",
-        f"Wilcoxon signed-rank on per-utterance error changes: {w.n} non-zero, "
-        f"{w.zeros} zero (left out), {w.method} p-value.",
-        f"Text normalisation on both sides: {report.provenance.get('normalisation')}.",
-    ]
+    return [_bootstrap_note(report), _matched_pairs_note(report), _sign_note(report),
+            _wilcoxon_note(report),
+            f"Text normalisation on both sides: {report.provenance.get('normalisation')}."]
+
+
+def _bootstrap_note(report: Report) -> str:
+    b = report.bootstrap
+    out = (f"Paired bootstrap over {report.before.utterances} utterances: {b.resamples} "
+           f"resamples, seed {b.seed}, percentile intervals; probability of improvement is "
+           "the share of resamples in which the after system has the lower WER.")
+    if report.before.utterances < 2:
+        out += (" With one utterance every resample is the same: the intervals have zero "
+                "width and say nothing about how much the WER could vary.")
+    return out
+
+
+def _matched_pairs_note(report: Report) -> str:
+    m = report.matched_pairs
+    out = (f"Matched-pairs segment test over {m.segments} segments bounded by runs of at "
+           f"least {m.min_run} words both systems got right: mean difference {m.mean:+.4f}")
+    if m.z is None:
+        return f"{out}; {m.note}."
+    return f"{out}, W = {m.z:.4f}, two-sided normal p-value."
+
+
+def _sign_note(report: Report) -> str:
+    s = report.sign
+    return (f"Sign test: {s.improved} utterances improved, {s.worsened} worsened, {s.ties} "
+            "unchanged (unchanged ones left out, exact binomial).")
+
+
+def _wilcoxon_note(report: Report) -> str:
+    w = report.wilcoxon
+    out = (f"Wilcoxon signed-rank on per-utterance error changes: {w.n} non-zero, "
+           f"{w.zeros} zero (left out)")
+    if w.method == "none":
+        return f"{out}; no non-zero change, so no evidence either way (p = 1)."
+    return f"{out}, {w.method} p-value."
 
 
 def provenance_rows(report: Report) -> list[tuple[str, str]]:
     rows = []
     for key, value in report.provenance.items():
+        if key == "weights" and isinstance(value, dict) and "sha256" in value:
+            rows.append(("weights", weights_text(value)))
+            continue
         text = value if isinstance(value, str) else json.dumps(value, sort_keys=True,
                                                                 ensure_ascii=False)
         rows.append((key, text))
     return rows
+
+
+def weights_text(weights: dict[str, Any]) -> str:
+    """The weights exactly as recorded (shortest round-trip floats), then file and SHA-256."""
+    parts = [f"{name} {weights[name]!r}"
+             for name in ("lm_weight", "insertion_penalty", "acoustic_scale") if name in weights]
+    parts += [f"feature {name} {value!r}"
+              for name, value in sorted(weights.get("features", {}).items())]
+    return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"

@@ -10,11 +10,11 @@ import os
 import shutil
 import tempfile
 import zlib
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
-from typing import IO, Any, Literal, cast, overload
+from typing import IO, Any, Literal, Protocol, cast, overload
 
-from rescore.errors import InputError
+from rescore.errors import InputError, UsageError
 
 GZIP_MAGIC = b"\x1f\x8b"
 
@@ -49,12 +49,6 @@ def atomic_output(
 def atomic_output(
     path: str | Path, mode: Literal["w", "wb"] = "w"
 ) -> contextlib.AbstractContextManager[IO[str]] | contextlib.AbstractContextManager[IO[bytes]]:
-    """See :func:`_atomic_output`."""
-    return _atomic_output(path, mode)
-
-
-@contextlib.contextmanager
-def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
     """Yield a file that appears at ``path`` only once the block completes without error.
 
     The data goes to a temporary file in the same folder, which is flushed, synced and
@@ -62,39 +56,108 @@ def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
     included, removes the temporary file and leaves ``path`` untouched. A name ending in
     ``.gz`` is gzip-compressed with a zero timestamp, so equal data gives equal bytes.
     """
-    target = Path(path)
-    folder = target.parent if str(target.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError("output folder does not exist", path=str(folder))
-    _remove_stale_temporaries(folder, target.name)
-    fd, tmp_name = tempfile.mkstemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.",
-                                    dir=folder)
-    raw = os.fdopen(fd, "wb")
-    gz: gzip.GzipFile | None = None
-    try:
-        binary: IO[bytes] = raw
+    return _atomic_output(path, mode)
+
+
+@overload
+def atomic_outputs(
+    paths: Sequence[str | Path], mode: Literal["w"] = "w"
+) -> contextlib.AbstractContextManager[list[IO[str]]]: ...
+
+
+@overload
+def atomic_outputs(
+    paths: Sequence[str | Path], mode: Literal["wb"]
+) -> contextlib.AbstractContextManager[list[IO[bytes]]]: ...
+
+
+def atomic_outputs(
+    paths: Sequence[str | Path], mode: Literal["w", "wb"] = "w"
+) -> (contextlib.AbstractContextManager[list[IO[str]]]
+      | contextlib.AbstractContextManager[list[IO[bytes]]]):
+    """Several outputs that appear together: one file per path, as :func:`atomic_output`.
+
+    Every temporary is written, flushed and synced first; only then are they renamed into
+    place, back to back, so an interruption before that point leaves none of them and the
+    window in which some are new and some are not is a few renames long.
+    """
+    return _atomic_outputs(paths, mode)
+
+
+@contextlib.contextmanager
+def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
+    with _atomic_outputs([path], mode) as (fh,):
+        yield fh
+
+
+class _Pending:
+    """One output being written: a temporary file beside its target."""
+
+    def __init__(self, target: Path, mode: str) -> None:
+        folder = target.parent if str(target.parent) else Path(".")
+        if not folder.is_dir():
+            raise InputError("output folder does not exist", path=str(folder))
+        _remove_stale_temporaries(folder, target.name)
+        self.target = target
+        fd, self.tmp_name = tempfile.mkstemp(
+            prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.", dir=folder)
+        try:
+            self.raw = os.fdopen(fd, "wb")
+        except BaseException:
+            os.close(fd)
+            os.unlink(self.tmp_name)
+            raise
+        self.gz: gzip.GzipFile | None = None
+        binary: IO[bytes] = self.raw
         if is_gzip_name(target):
-            gz = gzip.GzipFile(filename="", mode="wb", fileobj=raw, mtime=0)
-            binary = gz  # type: ignore[assignment]
-        if mode == "wb":
-            yield binary
-        else:
-            text = io.TextIOWrapper(binary, encoding="utf-8", newline="\n")
-            yield text
-            text.flush()
-            text.detach()
-        if gz is not None:
-            gz.close()
-        raw.flush()
-        os.fchmod(raw.fileno(), FILE_MODE)
-        os.fsync(raw.fileno())
-        raw.close()
-        os.replace(tmp_name, target)
-    except BaseException:
+            self.gz = gzip.GzipFile(filename="", mode="wb", fileobj=self.raw, mtime=0)
+            binary = self.gz  # type: ignore[assignment]
+        self.text: io.TextIOWrapper | None = None
+        self.handle: IO[Any] = binary
+        if mode != "wb":
+            self.text = io.TextIOWrapper(binary, encoding="utf-8", newline="\n")
+            self.handle = self.text
+
+    def finish(self) -> None:
+        """Flush every layer and sync the temporary to disk."""
+        if self.text is not None:
+            self.text.flush()
+            self.text.detach()
+        if self.gz is not None:
+            self.gz.close()
+        self.raw.flush()
+        os.fchmod(self.raw.fileno(), FILE_MODE)
+        os.fsync(self.raw.fileno())
+        self.raw.close()
+
+    def commit(self) -> None:
+        os.replace(self.tmp_name, self.target)
+
+    def abort(self) -> None:
         with contextlib.suppress(Exception):
-            raw.close()
+            self.raw.close()
         with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp_name)
+            os.unlink(self.tmp_name)
+
+
+@contextlib.contextmanager
+def _atomic_outputs(paths: Sequence[str | Path], mode: str) -> Iterator[list[Any]]:
+    targets = [Path(p) for p in paths]
+    if len({t.resolve() for t in targets}) != len(targets):
+        raise UsageError("the same file is named for two outputs: "
+                         + ", ".join(str(t) for t in targets))
+    pending: list[_Pending] = []
+    try:
+        for target in targets:
+            pending.append(_Pending(target, mode))
+        yield [p.handle for p in pending]
+        for p in pending:
+            p.finish()
+        for p in pending:  # every temporary is complete: now the renames, back to back
+            p.commit()
+    except BaseException:
+        for p in pending:
+            p.abort()
         raise
 
 
@@ -125,6 +188,34 @@ def _remove_stale_temporaries(folder: Path, name: str) -> None:
 def write_text_atomic(path: str | Path, text: str) -> None:
     with atomic_output(path) as fh:
         fh.write(text)
+
+
+def write_texts_atomic(files: Mapping[Path, str]) -> None:
+    """Write several text files that appear together (see :func:`atomic_outputs`)."""
+    paths = list(files)
+    with atomic_outputs(paths) as handles:
+        for path, fh in zip(paths, handles, strict=True):
+            fh.write(files[path])
+
+
+class TextSink(Protocol):
+    def write(self, text: str, /) -> int: ...
+
+
+class LineCounter:
+    """Passes text on to ``sink`` and counts the line ends in it: the records written.
+
+    The accounting checks compare this count, taken from what actually went to the file,
+    with the number of records read.
+    """
+
+    def __init__(self, sink: TextSink) -> None:
+        self._sink = sink
+        self.lines = 0
+
+    def write(self, text: str, /) -> int:
+        self.lines += text.count("\n")
+        return self._sink.write(text)
 
 
 def open_binary(path: str | Path) -> IO[bytes]:

@@ -6,11 +6,13 @@ import contextlib
 import gzip
 import hashlib
 import io
+import json
 import os
+import re
 import shutil
 import tempfile
 import zlib
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import IO, Any, Literal, Protocol, cast, overload
 
@@ -28,6 +30,16 @@ def _umask() -> int:
 # mkstemp makes files private (0600); outputs get the mode an ordinary open() would give
 FILE_MODE = 0o666 & ~_umask()
 TMP_PREFIX = ".rescore-tmp-"
+
+# Caps on hostile or broken input (README "Guarantees"); each breach is a one-line error.
+# One line of text (a corpus sentence, a reference, an ARPA entry): far beyond any sentence.
+TEXT_LINE_LIMIT = 8 << 20
+# JSON files read whole: a weights file holds a few numbers and its provenance; a tuning
+# analysis file holds the error surface (about 16 bytes a grid cell: 4 million cells fit).
+WEIGHTS_FILE_LIMIT = 16 << 20
+ANALYSIS_FILE_LIMIT = 64 << 20
+# Nesting reported when a JSON file is too deep to parse (the files above need a handful).
+JSON_DEPTH_REPORTED = 100
 
 
 def is_gzip_name(path: str | Path) -> bool:
@@ -239,7 +251,7 @@ def open_binary(path: str | Path) -> IO[bytes]:
 
 def iter_text_lines(
     path: str | Path,
-    max_line_bytes: int | None = None,
+    max_line_bytes: int | None = TEXT_LINE_LIMIT,
     *,
     start: int = 0,
     end: int | None = None,
@@ -247,8 +259,9 @@ def iter_text_lines(
 ) -> Iterator[tuple[int, str]]:
     """Yield ``(line_number, text)`` for each line, decoded as strict UTF-8.
 
-    Bad bytes and over-long lines raise :class:`InputError` naming the line and the byte
-    offset; a damaged gzip stream is reported the same way. The line ending is removed.
+    Bad bytes and lines over ``max_line_bytes`` (by default :data:`TEXT_LINE_LIMIT`; None
+    for no cap) raise :class:`InputError` naming the line and the byte offset; a damaged gzip
+    stream is reported the same way. The line ending is removed.
     ``start``/``end`` (byte offsets at line starts, uncompressed files only) read one shard,
     numbering its lines from ``first_line``.
     """
@@ -267,20 +280,73 @@ def iter_text_lines(
                 return
             number += 1
             if max_line_bytes is not None and len(raw.rstrip(b"\r\n")) > max_line_bytes:
-                raise InputError(
-                    f"line longer than the limit of {max_line_bytes} bytes", path=path, line=number
-                )
+                raise InputError(f"line longer than the limit of {_size(max_line_bytes)}",
+                                 path=path, line=number)
             try:
                 text = raw.decode("utf-8")
             except UnicodeDecodeError as exc:
-                bad = raw[exc.start]
-                raise InputError(
-                    f"invalid UTF-8 byte 0x{bad:02x} at byte offset {offset + exc.start}",
-                    path=path,
-                    line=number,
-                ) from None
+                raise _bad_utf8(path, number, raw, exc, offset) from None
             offset += len(raw)
             yield number, text.rstrip("\r\n")
+
+
+def _size(n: int) -> str:
+    return f"{n >> 20} MiB" if n >= 1 << 20 and n % (1 << 20) == 0 else f"{n} bytes"
+
+
+def _bad_utf8(path: str | Path, line: int, data: bytes, exc: UnicodeDecodeError,
+              base: int = 0) -> InputError:
+    """The one wording of bad UTF-8 for every reader: the byte, its offset in the file."""
+    return InputError(f"invalid UTF-8 byte 0x{data[exc.start]:02x} at byte offset "
+                      f"{base + exc.start}", path=path, line=line)
+
+
+def read_json(path: str | Path, max_bytes: int,
+              parse_constant: Callable[[str], Any] | None = None) -> Any:
+    """A whole JSON file (gzip by its magic bytes), no larger than ``max_bytes`` unpacked.
+
+    Every problem is an :class:`InputError` naming the file and, where there is one, the
+    line: too large, bad UTF-8 (with its byte offset, as :func:`iter_text_lines`), invalid
+    JSON (with its column), or nesting too deep for the parser.
+    """
+    with open_binary(path) as fh:
+        try:
+            data = fh.read(max_bytes + 1)
+        except (OSError, EOFError, zlib.error) as exc:
+            raise InputError(f"cannot read compressed data ({exc})", path=path) from None
+    if len(data) > max_bytes:
+        raise InputError(f"larger than the limit of {_size(max_bytes)} for this file",
+                         path=path)
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise _bad_utf8(path, data.count(b"\n", 0, exc.start) + 1, data, exc) from None
+    try:
+        return json.loads(text, parse_constant=parse_constant)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"invalid JSON: {exc.msg} (column {exc.colno})", path=path,
+                         line=exc.lineno, field="json") from None
+    except RecursionError:
+        raise InputError(f"JSON nested more than {JSON_DEPTH_REPORTED} levels deep",
+                         path=path, line=_deep_line(text, JSON_DEPTH_REPORTED),
+                         field="json") from None
+
+
+_JSON_NESTING = re.compile(r'"(?:[^"\\]|\\.)*"|[\[\]{}]')
+
+
+def _deep_line(text: str, limit: int) -> int | None:
+    """The line where nesting first passes ``limit`` levels (strings skipped)."""
+    depth = 0
+    for match in _JSON_NESTING.finditer(text):
+        token = match.group()
+        if token in "[{":
+            depth += 1
+            if depth > limit:
+                return text.count("\n", 0, match.start()) + 1
+        elif token in "]}":
+            depth -= 1
+    return None
 
 
 def count_lines(path: str | Path) -> int | None:

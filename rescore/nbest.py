@@ -250,7 +250,8 @@ class IdLedger:
 
 
 def _id_on_line(path: str, number: int) -> str:
-    for n, line in iter_text_lines(path):
+    # the file has been read once under its own line cap; this rereads it up to ``number``
+    for n, line in iter_text_lines(path, None):
         if n == number:
             value = json.loads(line).get("id", "")
             return str(value)

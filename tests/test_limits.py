@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 from click.testing import Result
 
+from rescore.ioutil import ANALYSIS_FILE_LIMIT, TEXT_LINE_LIMIT, WEIGHTS_FILE_LIMIT
 from rescore.nbest import DEFAULT_LIMITS
 from tests.conftest import run
 
@@ -83,7 +84,7 @@ def test_line_length_cap(tmp_path: Path) -> None:
     nbest = tmp_path / "hostile.jsonl"
     with open(nbest, "wb") as fh:
         fh.truncate(DEFAULT_LIMITS.max_line_bytes + 10)
-    _refused(_apply(tmp_path, nbest), f"{nbest}:1: line longer than the limit of ",
+    _refused(_apply(tmp_path, nbest), f"{nbest}:1: line longer than the limit of 64 MiB",
              tmp_path, {"hostile.jsonl", "w.json"})
 
 
@@ -109,3 +110,136 @@ def test_huge_string_value(tmp_path: Path, field: str) -> None:
     _refused(_apply(tmp_path, nbest),
              f"{nbest}:2: {field}: 10000000 characters, more than the limit of 100000",
              tmp_path, {"hostile.jsonl", "w.json"})
+
+
+# --- the other readers: one line of text, and JSON files read whole -----------------------
+
+def _sparse(path: Path, size: int) -> Path:
+    """A file of ``size`` NUL bytes and no line break: one over-long line, no disk used."""
+    with open(path, "wb") as fh:
+        fh.truncate(size)
+    return path
+
+
+def _model(folder: Path) -> Path:
+    corpus = folder / "c.txt"
+    corpus.write_text("pump two on\npump three off\n")
+    model = folder / "m.lm"
+    assert run(["lm", "build", corpus, "-o", model]).exit_code == 0
+    return model
+
+
+TWO = Path(__file__).resolve().parent.parent / "fixtures" / "nbest_two_utterances.jsonl"
+OVER_TEXT_LINE = TEXT_LINE_LIMIT + 10
+
+
+@pytest.mark.parametrize("reader", ["refs", "hyps", "corpus", "vocab", "perplexity", "arpa"])
+def test_line_cap_on_every_line_reader(tmp_path: Path, reader: str) -> None:
+    # Reliability audit: only N-best files had a line cap; a text file of one endless
+    # line was read whole into memory by the other readers.
+    name = {"arpa": "long.arpa", "refs": "long.tsv", "hyps": "long.tsv"}.get(reader,
+                                                                             "long.txt")
+    long = _sparse(tmp_path / name, OVER_TEXT_LINE)
+    refs = tmp_path / "refs.tsv"
+    refs.write_text("u1\trow two\n")
+    inputs = {p.name for p in tmp_path.iterdir()}
+    out = tmp_path / "out.lm"
+    if reader == "refs":
+        result = run(["check", TWO, "--refs", long])
+    elif reader == "hyps":
+        result = run(["wer", "--refs", refs, "--hyps", long])
+    elif reader == "corpus":
+        result = run(["lm", "build", long, "-o", out])
+    elif reader == "vocab":
+        result = run(["lm", "build", refs, "--vocab", long, "-o", out])
+    elif reader == "perplexity":
+        model = _model(tmp_path)
+        inputs |= {"c.txt", "m.lm"}
+        result = run(["lm", "perplexity", model, long])
+    else:
+        result = run(["lm", "convert", long, out])
+    _refused(result, f"{long}:1: line longer than the limit of 8 MiB", tmp_path, inputs)
+
+
+def test_line_cap_leaves_ordinary_long_lines_alone(tmp_path: Path) -> None:
+    # a 1 MB reference line is long but legitimate: read, not refused
+    refs = tmp_path / "refs.tsv"
+    refs.write_text("lark-0001\t" + "vent " * 200_000 + "\nlark-0002\tlamp bank four dimmed\n")
+    result = run(["check", TWO, "--refs", refs, "--json"])
+    assert result.exit_code == 0, result.stderr
+
+
+def test_size_cap_on_weights_file(tmp_path: Path) -> None:
+    weights = _sparse(tmp_path / "w.json", WEIGHTS_FILE_LIMIT + 1)
+    result = run(["apply", TWO, "--weights", weights, "-o", tmp_path / "out.jsonl"])
+    _refused(result, f"{weights}: larger than the limit of 16 MiB for this file", tmp_path,
+             {"w.json"})
+
+
+def test_size_cap_on_tuning_analysis_file(tmp_path: Path) -> None:
+    tuning = _sparse(tmp_path / "tuning.json", ANALYSIS_FILE_LIMIT + 1)
+    result = run(["report", "--before", TWO, "--after", TWO, "--tuning", tuning,
+                  "-o", tmp_path / "rep"])
+    _refused(result, f"{tuning}: larger than the limit of 64 MiB for this file", tmp_path,
+             {"tuning.json"})
+
+
+def test_weights_file_with_bad_utf8_reports_byte_offset(tmp_path: Path) -> None:
+    # Reliability audit: this reader said "position 68" where every other says "byte offset"
+    weights = tmp_path / "w.json"
+    first = b'{"acoustic_scale": 1.0, "lm_weight": 0.0, "insertion_penalty": 0.0,\n'
+    weights.write_bytes(first + b' "features": {"caf\xe9": 1.0}}\n')
+    offset = len(first) + len(b' "features": {"caf')
+    result = run(["apply", TWO, "--weights", weights, "-o", tmp_path / "out.jsonl"])
+    _refused(result, f"{weights}:2: invalid UTF-8 byte 0xe9 at byte offset {offset}",
+             tmp_path, {"w.json"})
+
+
+def test_tuning_file_with_bad_utf8_reports_byte_offset(tmp_path: Path) -> None:
+    tuning = tmp_path / "tuning.json"
+    data = b'{\n"surface": "\xff"}\n'
+    tuning.write_bytes(data)
+    offset = data.index(b"\xff")  # the byte offset is the bad byte's index in the file
+    result = run(["report", "--before", TWO, "--after", TWO, "--tuning", tuning,
+                  "-o", tmp_path / "rep"])
+    _refused(result, f"{tuning}:2: invalid UTF-8 byte 0xff at byte offset {offset}", tmp_path,
+             {"tuning.json"})
+
+
+DEEP = "[" * 100_000 + "]" * 100_000
+
+
+def test_deeply_nested_weights_file(tmp_path: Path) -> None:
+    # Reliability audit: this gave "internal error (RecursionError ...)"
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1.0,\n "provenance": {"x": ' + DEEP + "}}\n")
+    result = run(["apply", TWO, "--weights", weights, "-o", tmp_path / "out.jsonl"])
+    _refused(result, f"{weights}:2: json: JSON nested more than 100 levels deep", tmp_path,
+             {"w.json"})
+
+
+def test_deeply_nested_tuning_file(tmp_path: Path) -> None:
+    tuning = tmp_path / "tuning.json"
+    tuning.write_text(DEEP)
+    result = run(["report", "--before", TWO, "--after", TWO, "--tuning", tuning,
+                  "-o", tmp_path / "rep"])
+    _refused(result, f"{tuning}:1: json: JSON nested more than 100 levels deep", tmp_path,
+             {"tuning.json"})
+
+
+def test_nbest_lines_keep_their_own_larger_cap(tmp_path: Path) -> None:
+    # an N-best line may be longer than a text line (many hypotheses); the readers that
+    # look at N-best files again (duplicate ids, the report's file-type sniffing) must not
+    # apply the smaller text cap to it
+    big = {"id": "a", "reference": "row two", "hypotheses": [{"text": "row two",
+                                                               "acoustic": -1.0}],
+           "meta": {"note": "x" * (TEXT_LINE_LIMIT + 1000)}}
+    nbest = tmp_path / "big.jsonl"
+    nbest.write_text(json.dumps(big) + "\n" + json.dumps(big | {"meta": {}}) + "\n")
+    result = run(["check", nbest])
+    _refused(result, f"{nbest}:2: id: duplicate id 'a' (first on line 1)", tmp_path,
+             {"big.jsonl"})
+    nbest.write_text(json.dumps(big) + "\n")
+    result = run(["report", "--before", nbest, "--after", nbest, "-o", tmp_path / "rep",
+                  "--resamples", "10"])
+    assert result.exit_code == 0, result.stderr

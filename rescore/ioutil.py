@@ -109,6 +109,8 @@ class _Pending:
         folder = target.parent if str(target.parent) else Path(".")
         if not folder.is_dir():
             raise InputError("output folder does not exist", path=str(folder))
+        if target.is_dir():
+            raise InputError("is a folder, expected a file path", path=str(target))
         _remove_stale_temporaries(folder, target.name)
         self.target = target
         fd, self.tmp_name = tempfile.mkstemp(

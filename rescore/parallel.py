@@ -236,6 +236,8 @@ def apply_sharded(
             if progress is not None:
                 progress(len(result.keys))
         ledger.finish()
+        if ledger.count == 0:
+            raise InputError("no utterances in the file", path=path)
         _join_all(path, ledger.count, tasks, out, text_path)
         return total, changed
     finally:

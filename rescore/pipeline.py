@@ -57,6 +57,8 @@ class NamedModel:
     """
 
     def __init__(self, name: str, path: Path) -> None:
+        if path.is_dir():
+            raise InputError("is a folder, expected a model file", path=path)
         if not path.is_file():
             raise InputError("model file not found", path=path)
         self.name = name
@@ -216,6 +218,8 @@ def apply_file(
                      read)
             if progress is not None:
                 progress(len(batch))
+        if read == 0:
+            raise InputError("no utterances in the file", path=path)
         for target, counter in zip(outputs, written, strict=True):
             check_accounting(path, read, counter.lines,
                              f"lines written to {target}, so no output was kept")

@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines
 from rescore.lm.model import NGramModel
 from rescore.text import tokens
@@ -83,8 +84,14 @@ def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]
     """One normalised sentence per non-blank line of each file (.gz read transparently)."""
     if isinstance(paths, (str, Path)):
         paths = [paths]
+    paths = list(paths)
+    sentences = 0
     for path in paths:
         for _, line in iter_text_lines(path):
             words = tokens(line)
             if words:
+                sentences += 1
                 yield words
+    if not sentences:  # nothing to train on or measure: say so rather than give a void model
+        raise InputError("no sentences (every line is blank or has no words)",
+                         path=", ".join(str(p) for p in paths) or None)

@@ -308,7 +308,9 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
     if not refs:
         raise InputError("no references in the file", path=refs_path)
     ids = list(refs)
-    return corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+    result = corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+    check_accounting(hyps_path, len(ids), result.utterances, "scored")
+    return result
 
 
 @dataclass(frozen=True)

@@ -122,3 +122,12 @@ def test_text_output_keeps_one_line_per_utterance(tmp_path: Path) -> None:
     tsv = tmp_path / "out.tsv"
     pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS, text_path=tsv)
     assert tsv.read_bytes() == b"u1\tvent bay three \n"
+
+
+def test_wer_of_transcripts_notices_an_utterance_left_unscored(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    refs = FIXTURES / "refs_two_utterances.tsv"
+    real = pipeline.corpus_wer
+    monkeypatch.setattr(pipeline, "corpus_wer", lambda r, h: real(r[1:], h[1:]))
+    with pytest.raises(AccountingError, match="2 utterances read but 1 scored"):
+        pipeline.wer_transcripts(refs, refs)

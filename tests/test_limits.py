@@ -243,3 +243,29 @@ def test_nbest_lines_keep_their_own_larger_cap(tmp_path: Path) -> None:
     result = run(["report", "--before", nbest, "--after", nbest, "-o", tmp_path / "rep",
                   "--resamples", "10"])
     assert result.exit_code == 0, result.stderr
+
+
+def test_deepest_nesting_the_reader_accepts_can_be_written_back(tmp_path: Path) -> None:
+    # the reader's nesting limit (pydantic-core's parser, about 200 levels) must stay below
+    # the writer's (orjson has its own, about 255 levels: both measured here, not promised),
+    # or apply would read a record it cannot write and fail with an internal error
+    from rescore.errors import InputError
+    from rescore.nbest import RecordParser
+
+    parser = RecordParser("probe.jsonl")
+
+    def line(depth: int) -> str:
+        return ('{"id": "u2", "reference": "a", "hypotheses": [{"text": "a", '
+                f'"acoustic": -1.0}}], "meta": {{"x": {"[" * depth}{"]" * depth}}}}}')
+
+    deepest = 0
+    for depth in range(1, 300):
+        try:
+            parser.parse(2, line(depth))
+        except InputError:
+            break
+        deepest = depth
+    assert 0 < deepest < 299
+    nbest = _nbest(tmp_path, line(deepest))
+    result = _apply(tmp_path, nbest)
+    assert result.exit_code == 0, result.stderr

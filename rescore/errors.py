@@ -54,6 +54,10 @@ class ModelFileError(InputError):
     """A language-model file that is truncated, altered, foreign or of an unknown version."""
 
 
+class AccountingError(RescoreError):
+    """The records written do not match the utterances read: a defect, never written out."""
+
+
 class UsageError(RescoreError):
     """Bad command-line usage that the argument parser itself cannot see."""
 

@@ -23,6 +23,7 @@ from typing_extensions import TypedDict
 
 from rescore.errors import InputError
 from rescore.ioutil import atomic_output, iter_text_lines
+from rescore.text import tokens
 
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 
@@ -68,7 +69,8 @@ class ReadLimits:
 
     max_line_bytes: int = 64 * 1024 * 1024
     max_hypotheses: int = 10_000
-    max_words: int = 2_000
+    max_words: int = 2_000  # per hypothesis, counted as normalisation splits the text
+    max_chars: int = 100_000  # per id, reference and hypothesis text
 
 
 DEFAULT_LIMITS = ReadLimits()
@@ -248,7 +250,8 @@ class IdLedger:
 
 
 def _id_on_line(path: str, number: int) -> str:
-    for n, line in iter_text_lines(path):
+    # the file has been read once under its own line cap; this rereads it up to ``number``
+    for n, line in iter_text_lines(path, None):
         if n == number:
             value = json.loads(line).get("id", "")
             return str(value)
@@ -330,11 +333,24 @@ def _check_record(path: str | Path, number: int, utt: Utterance, limits: ReadLim
     if best is not None and best >= len(hyps):
         raise InputError(f"index {best} but only {len(hyps)} hypotheses",
                          path=path, line=number, field="best")
+    _check_chars(path, number, "id", utt["id"], limits)
+    if "reference" in utt:
+        _check_chars(path, number, "reference", utt["reference"], limits)
     for i, hyp in enumerate(hyps):
         text = hyp["text"]
-        if text.count(" ") >= limits.max_words and len(text.split()) > limits.max_words:
+        _check_chars(path, number, f"hypotheses[{i}].text", text, limits)
+        # Words as normalisation splits them (any whitespace, punctuation), not spaces only:
+        # each takes at least one character, so only a longer text can break the cap.
+        if len(text) > limits.max_words and len(tokens(text)) > limits.max_words:
             raise InputError(f"more than the limit of {limits.max_words} words",
                              path=path, line=number, field=f"hypotheses[{i}].text")
+
+
+def _check_chars(path: str | Path, number: int, field: str, text: str,
+                 limits: ReadLimits) -> None:
+    if len(text) > limits.max_chars:
+        raise InputError(f"{len(text)} characters, more than the limit of {limits.max_chars}",
+                         path=path, line=number, field=field)
 
 
 def _convert(utt: Utterance, factor: float) -> None:

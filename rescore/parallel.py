@@ -26,6 +26,7 @@ from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
     TMP_PREFIX,
     atomic_output,
+    atomic_outputs,
     is_gzip_file,
     iter_text_lines,
     line_shards,
@@ -235,9 +236,9 @@ def apply_sharded(
             if progress is not None:
                 progress(len(result.keys))
         ledger.finish()
-        _join([Path(t.out) for t in tasks], out)
-        if text_path is not None:
-            _join([Path(t.tsv) for t in tasks if t.tsv is not None], text_path)
+        if ledger.count == 0:
+            raise InputError("no utterances in the file", path=path)
+        _join_all(path, ledger.count, tasks, out, text_path)
         return total, changed
     finally:
         if runner is not None:
@@ -245,8 +246,28 @@ def apply_sharded(
         shutil.rmtree(scratch, ignore_errors=True)
 
 
-def _join(parts: Sequence[Path], out: Path) -> None:
-    with atomic_output(out, "wb") as dst:
-        for part in parts:
-            with open(part, "rb") as src:
-                shutil.copyfileobj(src, dst, 1 << 20)
+def _join_all(path: Path, read: int, tasks: Sequence[ShardTask], out: Path,
+              text_path: Path | None) -> None:
+    """Join the shards into the outputs, which appear only if each holds one line for each
+    utterance the ledger admitted (lines counted as they are copied, after the workers)."""
+    from rescore.pipeline import check_accounting
+
+    joins = [(out, [Path(t.out) for t in tasks])]
+    if text_path is not None:
+        joins.append((text_path, [Path(t.tsv) for t in tasks if t.tsv is not None]))
+    with atomic_outputs([target for target, _ in joins], "wb") as handles:
+        for (target, parts), dst in zip(joins, handles, strict=True):
+            lines = _join(parts, dst)
+            check_accounting(path, read, lines, f"lines in the joined {target}, so no output "
+                             "was kept")
+
+
+def _join(parts: Sequence[Path], dst: IO[bytes]) -> int:
+    """Copy ``parts`` into ``dst`` in order; returns the number of lines copied."""
+    lines = 0
+    for part in parts:
+        with open(part, "rb") as src:
+            for block in iter(lambda: src.read(1 << 20), b""):
+                lines += block.count(b"\n")
+                dst.write(block)
+    return lines

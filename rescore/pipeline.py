@@ -6,7 +6,6 @@ returns a small result; none of them prints.
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import itertools
 import logging
@@ -14,13 +13,13 @@ from collections import Counter
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import IO, Any
+from typing import Any
 
 import numpy as np
 
 from rescore import __version__
-from rescore.errors import InputError, UsageError
-from rescore.ioutil import atomic_output, sha256_file
+from rescore.errors import AccountingError, InputError, UsageError
+from rescore.ioutil import LineCounter, TextSink, atomic_outputs, sha256_file
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
@@ -58,6 +57,8 @@ class NamedModel:
     """
 
     def __init__(self, name: str, path: Path) -> None:
+        if path.is_dir():
+            raise InputError("is a folder, expected a model file", path=path)
         if not path.is_file():
             raise InputError("model file not found", path=path)
         self.name = name
@@ -201,34 +202,54 @@ def apply_file(
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
     lms = _models(models)
-    read = changed = written = 0
-    with contextlib.ExitStack() as stack:
-        fh = stack.enter_context(atomic_output(out))
-        tsv: IO[str] | None = None
-        if text_path is not None:
-            tsv = stack.enter_context(atomic_output(text_path))
+    read = changed = 0
+    outputs = [out] if text_path is None else [out, text_path]
+    with atomic_outputs(outputs) as handles:
+        # count what reaches the files, not what was handed to the writer
+        written = [LineCounter(h) for h in handles]
+        tsv = written[1] if text_path is not None else None
         for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                         limits=limits), batch_size):
             scored = rescore_batch(batch, path=str(path), lms=lms, features=features,
                                    weights=weights)
-            changed += write_scored(scored, fh, tsv)
+            changed += write_scored(scored, written[0], tsv)
             read += len(batch)
-            written += len(scored)
             log.info("rescored lines %d-%d (%d utterances so far)", batch[0][0], batch[-1][0],
                      read)
             if progress is not None:
                 progress(len(batch))
-        if read != written:  # every utterance read is accounted for in the output
-            raise RuntimeError(f"read {read} utterances but wrote {written}")
+        if read == 0:
+            raise InputError("no utterances in the file", path=path)
+        for target, counter in zip(outputs, written, strict=True):
+            check_accounting(path, read, counter.lines,
+                             f"lines written to {target}, so no output was kept")
     return ApplyResult(read, changed)
 
 
-def write_scored(scored: Sequence[Utterance], fh: IO[str], tsv: IO[str] | None) -> int:
+def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
+    """Every utterance read is accounted for: ``done`` (``what``) must equal ``read``."""
+    if done != read:
+        raise AccountingError(f"{read} utterances read but {done} {what} (a defect: please "
+                              "report it)", path=path)
+
+
+def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None) -> int:
     """Write rescored records (and their 1-best text); returns how many changed 1-best."""
     fh.write("".join(dumps(utt) + "\n" for utt in scored))
     if tsv is not None:
-        tsv.write("".join(f"{utt['id']}\t{one_best(utt)['text']}\n" for utt in scored))
+        tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
+                          for utt in scored))
     return sum(1 for utt in scored if utt.get("best", 0) != 0)
+
+
+def _one_line(text: str) -> str:
+    # a tab or line break inside the text would split its 'id<TAB>text' line; normalisation
+    # reads each as a space, so the words and the WER are unchanged
+    return text.translate(_TSV_BREAKS) if "\t" in text or "\n" in text or "\r" in text \
+        else text
+
+
+_TSV_BREAKS = str.maketrans("\t\n\r", "   ")
 
 
 def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
@@ -269,7 +290,9 @@ def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
         hyp_words.append(tokens(one_best(utt)["text"]))
     if not ref_words:
         raise InputError("no utterances in the file", path=path)
-    return corpus_wer(ref_words, hyp_words)
+    result = corpus_wer(ref_words, hyp_words)
+    check_accounting(path, len(ref_words), result.utterances, "scored")
+    return result
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
@@ -285,7 +308,9 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
     if not refs:
         raise InputError("no references in the file", path=refs_path)
     ids = list(refs)
-    return corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+    result = corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+    check_accounting(hyps_path, len(ids), result.utterances, "scored")
+    return result
 
 
 @dataclass(frozen=True)

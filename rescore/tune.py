@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import write_text_atomic
+from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
 from rescore.scoring import (
     ACOUSTIC,
     LM,
@@ -1054,17 +1054,8 @@ def read_weights(path: str | Path) -> Weights:
     """Read a weights file, strictly: unknown keys, non-numbers and NaN are errors."""
     where = str(path)
     try:
-        text = Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError("file not found", path=where) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read ({exc})", path=where) from None
-    try:
-        data = json.loads(text, parse_constant=_reject_constant)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"invalid JSON: {exc.msg} (column {exc.colno})", path=where,
-                         line=exc.lineno) from None
-    except ValueError as exc:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:  # NaN or Infinity
         raise InputError(str(exc), path=where) from None
     if not isinstance(data, dict):
         raise InputError("expected a JSON object", path=where)

@@ -275,3 +275,79 @@ def test_grid_edge_warning_rules() -> None:
     assert "bottom" in (grid_edge_warning(Weights(insertion_penalty=-20.0), lm, pen) or "")
     # a one-point axis has no edges
     assert grid_edge_warning(Weights(insertion_penalty=3.0), lm, np.array([3.0])) is None
+# --- hostile or mistaken paths and empty inputs (reliability audit) ---------------------
+# Contract, exit codes: 1 is bad input or data, with one "error:" line and no output file.
+# A path that names the wrong kind of thing is bad input, as a missing input file is.
+
+def _weights_file(folder: Path) -> Path:
+    weights = folder / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
+                                   "insertion_penalty": 0.0, "features": {}}))
+    return weights
+
+
+def test_output_that_is_a_folder_is_named(tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+                                          ) -> None:
+    # it was "internal error (IsADirectoryError ...)" after the whole run
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "adir").mkdir()
+    weights = _weights_file(tmp_path)
+    result = run(["apply", TWO, "--weights", weights, "-o", "adir"])
+    assert result.exit_code == 1
+    assert result.stderr == "error: adir: is a folder, expected a file path\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["adir", "w.json"]  # no temporary
+    assert list((tmp_path / "adir").iterdir()) == []
+
+
+@pytest.mark.parametrize("args", [
+    ["--text", "adir", "-o", "out.jsonl"],  # the second output of the same command
+    ["-o", "adir", "--workers", "2"],  # the parallel path joins into it
+])
+def test_any_output_that_is_a_folder_is_named(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                              args: list[str]) -> None:
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "adir").mkdir()
+    result = run(["apply", TWO, "--weights", _weights_file(tmp_path), *args])
+    assert result.exit_code == 1
+    assert result.stderr == "error: adir: is a folder, expected a file path\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["adir", "w.json"]
+
+
+def test_model_path_that_is_a_folder_is_named(tmp_path: Path) -> None:
+    # it said "model file not found", which sends the user looking for a missing file
+    folder = tmp_path / "adir"
+    folder.mkdir()
+    result = run(["apply", TWO, "--weights", _weights_file(tmp_path), "--lm", folder,
+                  "-o", tmp_path / "out.jsonl"])
+    assert result.exit_code == 1
+    assert result.stderr == f"error: {folder}: is a folder, expected a model file\n"
+    assert not (tmp_path / "out.jsonl").exists()
+
+
+@pytest.mark.parametrize("content", ["", "\n\n", '{"nbest_header": {"log_base": 10}}\n'])
+@pytest.mark.parametrize("workers", ["1", "2"])
+def test_apply_refuses_a_file_without_utterances(tmp_path: Path, content: str,
+                                                 workers: str) -> None:
+    # check and wer refuse such a file; apply said "rescored 0 utterances" and exited 0
+    empty = tmp_path / "empty.jsonl"
+    empty.write_text(content)
+    weights = _weights_file(tmp_path)
+    result = run(["apply", empty, "--weights", weights, "-o", tmp_path / "out.jsonl",
+                  "--text", tmp_path / "out.tsv", "--workers", workers])
+    assert result.exit_code == 1
+    assert result.stderr == f"error: {empty}: no utterances in the file\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["empty.jsonl", "w.json"]
+    for command in (["check", empty], ["wer", empty]):  # the same refusal everywhere
+        assert run(command).stderr == f"error: {empty}: no utterances in the file\n"
+
+
+@pytest.mark.parametrize("content", ["", "\n  \n", "... !!! ,,,\n"])
+def test_lm_build_refuses_text_without_sentences(tmp_path: Path, content: str) -> None:
+    # it wrote a model of three special tokens and exited 0
+    empty = tmp_path / "empty.txt"
+    empty.write_text(content)
+    result = run(["lm", "build", empty, "-o", tmp_path / "m.lm"])
+    assert result.exit_code == 1
+    assert result.stderr == (f"error: {empty}: no sentences (every line is blank or has no "
+                             "words)\n")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["empty.txt"]

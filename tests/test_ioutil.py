@@ -94,3 +94,48 @@ def test_output_has_ordinary_file_mode(tmp_path: Path) -> None:
     mask = os.umask(0)
     os.umask(mask)
     assert out.stat().st_mode & 0o777 == 0o666 & ~mask
+
+
+def test_outputs_of_a_set_appear_together(tmp_path: Path) -> None:
+    from rescore.ioutil import atomic_outputs
+
+    a, b = tmp_path / "a.txt", tmp_path / "b.txt.gz"
+    with atomic_outputs([a, b]) as (fa, fb):
+        fa.write("first")
+        fb.write("second")
+        assert not a.exists() and not b.exists()
+    assert a.read_text() == "first" and gzip.decompress(b.read_bytes()) == b"second"
+
+
+def test_error_in_a_set_leaves_every_previous_file(tmp_path: Path) -> None:
+    from rescore.ioutil import atomic_outputs
+
+    a, b = tmp_path / "a.txt", tmp_path / "b.txt"
+    a.write_text("old a")
+    b.write_text("old b")
+    with pytest.raises(KeyboardInterrupt), atomic_outputs([a, b]) as (fa, fb):
+        fa.write("new a")
+        fb.write("new b")
+        raise KeyboardInterrupt
+    assert (a.read_text(), b.read_text()) == ("old a", "old b")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt", "b.txt"]
+
+
+def test_a_set_refuses_a_folder_before_writing_anything(tmp_path: Path) -> None:
+    from rescore.ioutil import atomic_outputs
+
+    (tmp_path / "b").mkdir()
+    with pytest.raises(InputError, match="is a folder, expected a file path"), \
+            atomic_outputs([tmp_path / "a.txt", tmp_path / "b"]):
+        pass
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["b"]
+
+
+def test_a_set_refuses_the_same_file_twice(tmp_path: Path) -> None:
+    from rescore.errors import UsageError
+    from rescore.ioutil import atomic_outputs
+
+    with pytest.raises(UsageError, match="the same file is named for two outputs"), \
+            atomic_outputs([tmp_path / "a.txt", tmp_path / "." / "a.txt"]):
+        pass
+    assert list(tmp_path.iterdir()) == []

@@ -88,3 +88,76 @@ def test_missing_file_names_it(tmp_path: Path) -> None:
     with pytest.raises(ModelFileError, match="file not found") as info:
         load_model(tmp_path / "nope.lm")
     assert "nope.lm" in str(info.value)
+
+
+class _TouchOnLoad:
+    """Unpickling this creates ``path``: a stand-in for code run by a hostile model file."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+
+    def __reduce__(self) -> tuple[object, ...]:
+        return (Path.touch, (self.path,))
+
+
+def test_pickled_npz_is_refused_without_running_it(tmp_path: Path) -> None:
+    # Reliability audit: the foreign-file test above holds only zeros. A .npz may hold a
+    # pickled object array, and numpy runs its code when it is loaded with pickle allowed
+    # (numpy.load documentation, allow_pickle). The model loader must never do that.
+    marker = tmp_path / "code-ran"
+    path = tmp_path / "hostile.npz"
+    np.savez(path, logp1=np.array([_TouchOnLoad(marker)], dtype=object))
+    with np.load(path, allow_pickle=True) as archive:  # the payload is live: this runs it
+        archive["logp1"]
+    assert marker.exists()
+    marker.unlink()
+    with pytest.raises(ModelFileError, match="unknown file type") as info:
+        load_model(path)
+    assert str(info.value).startswith(f"{path}: ") and "\n" not in str(info.value)
+    assert not marker.exists()
+
+
+def test_pickled_npz_through_the_command_line(tmp_path: Path) -> None:
+    from tests.conftest import run
+
+    marker = tmp_path / "code-ran"
+    path = tmp_path / "hostile.npz"
+    np.savez(path, logp1=np.array([_TouchOnLoad(marker)], dtype=object))
+    text = tmp_path / "t.txt"
+    text.write_text("pump two on\n")
+    result = run(["lm", "perplexity", path, text])
+    assert result.exit_code == 1
+    assert result.stderr.startswith(f"error: {path}: not a valid rescore model file")
+    assert result.stderr.count("\n") == 1 and "Traceback" not in result.stderr
+    assert not marker.exists()
+
+
+def _with_version(data: bytes, version: int) -> bytes:
+    """The same file with another format version and its checksums made to match again.
+
+    Layout from the rescore.lm.store docstring: magic (8 bytes), version (uint32 LE), ...;
+    the trailer is sha256 of everything before it (32), CRC-32 of everything before the
+    CRC (4), four zero bytes and an 8-byte end mark.
+    """
+    import hashlib
+    import struct
+    import zlib
+
+    body = bytearray(data[:-48])
+    body[8:12] = struct.pack("<I", version)
+    sha = hashlib.sha256(body).digest()
+    crc = zlib.crc32(bytes(body) + sha)
+    return bytes(body) + sha + struct.pack("<I", crc) + data[-12:]
+
+
+def test_other_format_version_is_refused_clearly(saved: tuple[NGramModel, Path]) -> None:
+    # Reliability audit: a newer (or older) file must be refused by its version, not read
+    # as a wrong model; only the version differs here, the checksums are valid.
+    _, path = saved
+    original = path.read_bytes()
+    assert _with_version(original, 1) == original  # the rebuild changes nothing else
+    path.write_bytes(_with_version(original, 2))
+    with pytest.raises(ModelFileError) as info:
+        load_model(path)
+    assert str(info.value) == (f"{path}: not a valid rescore model file: format version 2, "
+                               "this program reads 1")

@@ -219,3 +219,46 @@ def test_bad_weights_file_is_one_error_and_no_report(
     assert len(lines) == 1 and lines[0].startswith(f"error: {weights}")
     assert message in lines[0]
     assert not (tmp_path / "rep").exists()
+def test_interrupted_report_leaves_no_partial_set(tmp_path: Path, nbest_pair: tuple[Path, Path],
+                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reliability audit: the three files were written one after another, so an interrupt
+    # between them left a new report.json beside an old report.md and report.html. Here an
+    # interrupt arrives while the last file is synced: the previous set must stay whole.
+    import os
+
+    before, after = nbest_pair
+    out = tmp_path / "rep"
+    assert invoke(["report", "--before", before, "--after", before, "-o", out,
+                   "--resamples", "50"]).exit_code == 0
+    previous = {name: (out / name).read_bytes() for name in FILES}
+    real_fsync, calls = os.fsync, []
+
+    def interrupted_third(fd: int) -> None:
+        calls.append(fd)
+        if len(calls) == len(FILES):
+            raise KeyboardInterrupt
+        real_fsync(fd)
+
+    monkeypatch.setattr(os, "fsync", interrupted_third)
+    res = invoke(["report", "--before", before, "--after", after, "-o", out,
+                  "--resamples", "50"])
+    assert res.exit_code == 130 and "no output was written" in res.stderr
+    assert {name: (out / name).read_bytes() for name in FILES} == previous
+    assert sorted(p.name for p in out.iterdir()) == sorted(FILES)  # no temporaries
+
+
+def test_report_output_that_is_a_file_is_named(tmp_path: Path,
+                                               nbest_pair: tuple[Path, Path]) -> None:
+    # it was "internal error (FileExistsError ...)"
+    before, after = nbest_pair
+    taken = tmp_path / "taken"
+    taken.write_text("")
+    res = invoke(["report", "--before", before, "--after", after, "-o", taken,
+                  "--resamples", "50"])
+    assert res.exit_code == 1
+    assert res.stderr == f"error: {taken}: is a file, expected a folder for the report\n"
+    res = invoke(["report", "--before", before, "--after", after, "-o", taken / "sub",
+                  "--resamples", "50"])
+    assert res.exit_code == 1
+    assert res.stderr == (f"error: {taken / 'sub'}: cannot create the report folder "
+                          "(Not a directory)\n")

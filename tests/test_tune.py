@@ -85,7 +85,11 @@ def nbest_sets(draw: st.DrawFn, integral: bool | None = None) -> FeatureMatrix:
     sizes = draw(st.lists(st.integers(1, 6), min_size=1, max_size=6))
     n = sum(sizes)
     use_ints = draw(st.booleans()) if integral is None else integral
-    score = st.integers(-8, 8).map(float) if use_ints else st.floats(-20, 20, width=32)
+    # Fractional scores are multiples of 1/1024 (|x| <= 20): with the grids used here, every
+    # product and sum is exact in float64, so a tie is a real tie and not a rounding artefact
+    # that two correct summation orders may settle differently (IEEE 754 rounding, from memory).
+    fraction = st.integers(-20 * 1024, 20 * 1024).map(lambda k: k / 1024)
+    score = st.integers(-8, 8).map(float) if use_ints else fraction
     cols = [draw(st.lists(score, min_size=n, max_size=n)) for _ in range(2)]
     words = draw(st.lists(st.integers(0, 6), min_size=n, max_size=n))
     feat = draw(st.lists(score, min_size=n, max_size=n))

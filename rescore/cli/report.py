@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -11,19 +10,14 @@ import typer
 from rescore.cli._common import emit_json, guarded, info, pct, progress, table
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError
-from rescore.ioutil import iter_text_lines, sha256_file
+from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
 
 
 def _read_tuning(path: Path) -> dict[str, Any]:
-    text = "\n".join(line for _, line in iter_text_lines(path))
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{exc.msg} (column {exc.colno})", path=path, line=exc.lineno,
-                         field="json") from None
+    data = read_json(path, ANALYSIS_FILE_LIMIT)
     if not isinstance(data, dict):
         raise InputError("expected a JSON object", path=path)
     return data

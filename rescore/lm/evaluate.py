@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.errors import InputError
 from rescore.ioutil import atomic_output, iter_text_lines
 from rescore.lm.model import NGramModel
 from rescore.text import tokens
@@ -167,9 +168,15 @@ def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]
     """One normalised sentence per non-blank line of each file (.gz read transparently)."""
     if isinstance(paths, (str, Path)):
         paths = [paths]
+    paths = list(paths)
+    sentences = 0
     for path in paths:
         for _, words in read_corpus_lines(path):
+            sentences += 1
             yield words
+    if not sentences:  # nothing to train on or measure: say so rather than give a void model
+        raise InputError("no sentences (every line is blank or has no words)",
+                         path=", ".join(str(p) for p in paths) or None)
 
 
 def read_corpus_lines(path: str | Path) -> Iterator[tuple[int, list[str]]]:

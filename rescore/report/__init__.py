@@ -1,15 +1,17 @@
 """Release reports: two systems on the same utterances, compared and written three ways.
 
 ``build_report`` computes everything into a frozen :class:`Report`; ``write_report``
-renders ``report.json``, ``report.md`` and ``report.html`` in memory first and only then
-writes each file atomically, so a failure leaves no partial folder contents behind.
+renders ``report.json``, ``report.md`` and ``report.html`` in memory first, writes all three
+to temporaries and renames them into place only when all three are complete, so a failure
+or an interruption leaves no partial set behind.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-from rescore.ioutil import write_text_atomic
+from rescore.errors import InputError
+from rescore.ioutil import write_texts_atomic
 from rescore.report.json import render_json
 from rescore.report.load import is_nbest_file, load_system
 from rescore.report.markdown import render_markdown
@@ -39,15 +41,19 @@ def render_all(report: Report) -> dict[str, str]:
 
 
 def write_report(report: Report, out_dir: str | Path) -> list[Path]:
-    """Write the three report files into ``out_dir`` (created if missing)."""
+    """Write the three report files into ``out_dir`` (created if missing), as a set: all
+    three are complete on disk before the first is renamed into place."""
     contents = render_all(report)
     folder = Path(out_dir)
-    folder.mkdir(parents=True, exist_ok=True)
-    written = []
-    for name in FILES:
-        path = folder / name
-        write_text_atomic(path, contents[name])
-        written.append(path)
+    if folder.exists() and not folder.is_dir():
+        raise InputError("is a file, expected a folder for the report", path=folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create the report folder ({exc.strerror})",
+                         path=folder) from None
+    written = [folder / name for name in FILES]
+    write_texts_atomic(dict(zip(written, (contents[name] for name in FILES), strict=True)))
     return written
 
 

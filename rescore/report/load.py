@@ -9,13 +9,13 @@ from typing import Any
 
 from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines, sha256_file
-from rescore.nbest import iter_nbest, one_best, read_refs
+from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
 from rescore.report.model import Pair
 
 
 def is_nbest_file(path: str | Path) -> bool:
     """True when the first non-blank line is a JSON object (N-best); else a transcript file."""
-    for _, line in iter_text_lines(path):
+    for _, line in iter_text_lines(path, DEFAULT_LIMITS.max_line_bytes):
         if line.strip():
             return line.lstrip().startswith("{")
     return False

@@ -298,5 +298,5 @@ def test_runaway_line_is_refused(tmp_path: Path) -> None:
     # an n-gram line is a few words and numbers; a megabyte line is damage, not a model
     path = tmp_path / "bad.arpa"
     path.write_text(HAND.replace("-0.6\tpump", "-0.6\t" + "p" * (1 << 20)))
-    with pytest.raises(InputError, match=r":11: line longer than the limit of 1048576 bytes$"):
+    with pytest.raises(InputError, match=r":11: line longer than the limit of 1 MiB$"):
         load_model(path)

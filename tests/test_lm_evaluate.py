@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -52,3 +53,18 @@ def test_zero_probability_sentence_is_null_in_json() -> None:
     model = NGramModel(2, "mle").fit(TRAIN)
     (sc,) = sentence_scores(model, [["pump", "bay"]])
     assert sc.log10_prob == -math.inf and sc.to_dict()["log10_prob"] is None
+
+
+def test_sentence_scores_of_empty_text_refused_without_output(tmp_path: Path) -> None:
+    # like every corpus reader (README, guarantees): text with no sentences is an input
+    # error, not a perplexity of nan, and the scores file is not written
+    from rescore.errors import InputError
+    from rescore.lm import NGramModel
+    from rescore.lm.evaluate import write_sentence_scores
+
+    model = NGramModel(order=2).fit([["vent", "bay", "one"]])
+    empty = tmp_path / "empty.txt"
+    empty.write_text("\n  \n")
+    with pytest.raises(InputError, match="no sentences"):
+        write_sentence_scores(model, empty, tmp_path / "scores.jsonl")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["empty.txt"]

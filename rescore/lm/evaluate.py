@@ -161,7 +161,10 @@ def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
                                     allow_nan=False) + "\n")
                 yield sc
 
-        return summarise(written())
+        result = summarise(written())
+        if not result.sentences:  # as read_corpus: no void figures, and no output file
+            raise InputError("no sentences (every line is blank or has no words)", path=text)
+        return result
 
 
 def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]:

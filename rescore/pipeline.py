@@ -42,7 +42,7 @@ from rescore.scoring import (
     segment_argmax,
 )
 from rescore.text import NORMALISATION, tokens
-from rescore.wer import WerResult, corpus_wer
+from rescore.wer import WerResult, corpus_wer, utterance_counts, wer_from_totals
 
 log = logging.getLogger(__name__)
 
@@ -260,16 +260,22 @@ def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
 
 
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
-             log_base: float | None = None, costs: bool | None = None) -> WerResult:
-    ref_words: list[list[str]] = []
-    hyp_words: list[list[str]] = []
-    for _, utt in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
-                             require_references=True):
-        ref_words.append(tokens(utt["reference"]))
-        hyp_words.append(tokens(one_best(utt)["text"]))
-    if not ref_words:
+             log_base: float | None = None, costs: bool | None = None,
+             batch_size: int = 2000) -> WerResult:
+    """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat)."""
+    totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
+    n_utt = 0
+    for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+                                    require_references=True), batch_size):
+        counts = utterance_counts([tokens(u["reference"]) for _, u in batch],
+                                  [tokens(one_best(u)["text"]) for _, u in batch])
+        totals += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
+                                          counts.insertions, counts.hits)]
+        n_utt += len(batch)
+    if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
-    return corpus_wer(ref_words, hyp_words)
+    s, d, i, h = (int(t) for t in totals)
+    return wer_from_totals(s, d, i, h, utterances=n_utt)
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:

@@ -43,9 +43,11 @@ WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
 
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
-          costs: CostsOpt = None, as_json: JsonOpt = False) -> None:
+          costs: CostsOpt = None, as_json: JsonOpt = False,
+          batch_size: BatchOpt = 2000) -> None:
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
-    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
+                                 batch_size=batch_size)
     if as_json:
         emit_json(result.to_dict())
         return
@@ -99,6 +101,7 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
+    batch_size: BatchOpt = 2000,
 ) -> None:
     """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
     if (nbest is None) == (hyps is None):
@@ -109,7 +112,8 @@ def wer(
         result = pipeline.wer_transcripts(refs, hyps)
     else:
         assert nbest is not None
-        result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+        result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
+                                   batch_size=batch_size)
     if as_json:
         emit_json(result.to_dict())
         return

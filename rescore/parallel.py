@@ -36,6 +36,8 @@ from rescore.scoring import Weights
 
 log = logging.getLogger(__name__)
 
+MIN_SHARD_BYTES = 1 << 20  # smaller shards cost more in start-up and joining than they save
+
 
 @dataclass(frozen=True)
 class ShardTask:
@@ -196,9 +198,11 @@ def apply_sharded(
     features: Sequence[str], text_path: Path | None, refs_path: Path | None,
     convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
     workers: int, cluster: str | None, require_references: bool = False,
-    progress: Callable[[int], None] | None = None,
-) -> tuple[int, int]:
-    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best)."""
+    progress: Callable[[int], None] | None = None, shard_bytes: int | None = None,
+) -> tuple[int, int, int]:
+    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best,
+    shards). The input is cut into at most ``4 * workers`` shards of at least
+    ``shard_bytes`` each (default :data:`MIN_SHARD_BYTES`)."""
     folder = out.parent if str(out.parent) else Path(".")
     scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{out.name}.{os.getpid()}.shards.",
                                     dir=folder))
@@ -211,7 +215,8 @@ def apply_sharded(
             with open_binary(path) as src, open(source, "wb") as dst:
                 shutil.copyfileobj(src, dst, 1 << 20)
         parts = max(1, workers) * 4
-        shards = line_shards(source, parts)
+        shards = line_shards(source, parts,
+                             MIN_SHARD_BYTES if shard_bytes is None else shard_bytes)
         tasks = [ShardTask(
             path=str(source), start=a, end=b, first_line=first, skip_line=header_line,
             out=str(scratch / f"{i:05d}.jsonl"),
@@ -238,7 +243,7 @@ def apply_sharded(
         _join([Path(t.out) for t in tasks], out)
         if text_path is not None:
             _join([Path(t.tsv) for t in tasks if t.tsv is not None], text_path)
-        return total, changed
+        return total, changed, len(tasks)
     finally:
         if runner is not None:
             runner.close()

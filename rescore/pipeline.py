@@ -170,6 +170,7 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
 class ApplyResult:
     utterances: int
     changed: int
+    shards: int = 1  # pieces of the input processed separately (1: one process, in order)
 
 
 def apply_file(
@@ -178,11 +179,13 @@ def apply_file(
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
     batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
     limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
+    shard_bytes: int | None = None,
 ) -> ApplyResult:
     """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete.
 
     With ``workers > 1`` or a ``cluster`` the file is split into shards processed in
-    parallel (see :mod:`rescore.parallel`); the output is the same byte for byte.
+    parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
+    the output is the same byte for byte.
     """
     features = _check_weighted(weights, models)
     if workers > 1 or cluster is not None:
@@ -192,12 +195,13 @@ def apply_file(
             raise UsageError("parallel runs take references as a file path (refs_path)")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
                                                   limits=limits)
-        total, changed = apply_sharded(
+        total, changed, shards = apply_sharded(
             path, out, models=[(m.name, str(m.path)) for m in models.values()],
             weights=weights, features=features, text_path=text_path, refs_path=refs_path,
             convention=convention, header_line=header_line, limits=limits,
-            batch_size=batch_size, workers=workers, cluster=cluster, progress=progress)
-        return ApplyResult(total, changed)
+            batch_size=batch_size, workers=workers, cluster=cluster, progress=progress,
+            shard_bytes=shard_bytes)
+        return ApplyResult(total, changed, shards)
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
     lms = _models(models)

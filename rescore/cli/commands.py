@@ -81,6 +81,9 @@ def apply(
     cluster: Annotated[str | None, typer.Option(
         "--cluster", help="Dask scheduler address (tcp://HOST:PORT), or 'local' to start a "
         "local cluster of --workers processes.")] = None,
+    shard_mb: Annotated[float, typer.Option(
+        "--shard-mb", min=0.001, help="With --workers or --cluster: least size of one shard "
+        "of the input, in MiB (the input is cut into at most 4 shards per worker).")] = 1.0,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
@@ -89,8 +92,10 @@ def apply(
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
-                                     progress=step)
-    info(f"rescored {result.utterances} utterances ({result.changed} changed 1-best) -> {out}")
+                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+    shards = f" in {result.shards} shards" if result.shards > 1 else ""
+    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best) "
+         f"-> {out}")
 
 
 @guarded

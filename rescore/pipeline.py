@@ -20,7 +20,7 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import atomic_output, sha256_file
+from rescore.ioutil import atomic_output, count_lines, sha256_file
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
@@ -31,6 +31,7 @@ from rescore.nbest import (
     read_convention,
     read_refs,
 )
+from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
     LM,
     FeatureMatrix,
@@ -324,13 +325,16 @@ def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
 
 def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
                 refs: Mapping[str, str] | None = None, log_base: float | None = None,
-                costs: bool | None = None) -> FeatureMatrix:
-    """The whole tuning set as one compact matrix (records are not kept)."""
+                costs: bool | None = None, progress: Advance | None = None) -> FeatureMatrix:
+    """The whole tuning set as one compact matrix (records are not kept); ``progress`` is
+    called with the number of utterances of each batch scored."""
     parts: list[FeatureMatrix] = []
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                      require_references=True), 2000):
         parts.append(build_matrix(batch, path=str(path), lms=_models(models),
                                   features=features, with_errors=True).matrix)
+        if progress is not None:
+            progress(len(batch))
     if not parts:
         raise InputError("no utterances in the file", path=path)
     return concat_matrices(parts)
@@ -356,20 +360,28 @@ def tune_file(
     path: Path, *, models: Mapping[str, NamedModel], search: str | None,
     features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
-    weights_path: Path, analysis_path: Path | None,
+    weights_path: Path, analysis_path: Path | None, progress: Report | None = None,
 ) -> TuneOutcome:
+    """Read and score the dev set, tune, write the weights (and the analysis).
+
+    ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
+    (the total is the file's line count), and of the tuning.
+    """
     from rescore import tune as tuning
 
     extra_lms = [lm_column(n) for n in models if n != LM]
+    scoring = Steps(progress, "scoring the dev set",
+                    None if progress is None else count_lines(path))
     matrix = load_matrix(path, models=models, features=features, refs=refs,
-                         log_base=log_base, costs=costs)
+                         log_base=log_base, costs=costs, progress=scoring)
+    scoring.finish()
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))
     result = tuning.tune(
         matrix, search=search, features=[*extra_lms, *features],
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
-        folds=folds, seed=seed, lm_column=LM if LM in models else None,
+        folds=folds, seed=seed, lm_column=LM if LM in models else None, progress=progress,
     )
     prov = provenance(data=[path], models=models,
                       extra={"search": result.search, "seed": seed, "folds": folds})

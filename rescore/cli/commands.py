@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 
 from rescore import pipeline
-from rescore.cli._common import emit_json, guarded, info, pct, progress, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -151,11 +151,12 @@ def tune(
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
     models = pipeline.load_lms(lm or [])
-    with progress(f"tuning on {nbest}"):
+    with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
+            progress=report,
         )
     data = outcome.to_dict()
     if as_json:

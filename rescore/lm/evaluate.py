@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
@@ -79,12 +79,23 @@ def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> Perplex
     )
 
 
-def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]:
-    """One normalised sentence per non-blank line of each file (.gz read transparently)."""
+def read_corpus(paths: str | Path | Iterable[str | Path], *,
+                progress: Callable[[int], None] | None = None) -> Iterator[list[str]]:
+    """One normalised sentence per non-blank line of each file (.gz read transparently).
+
+    ``progress`` is called with the number of lines read since its last call (every few
+    thousand lines and at the end of each file).
+    """
     if isinstance(paths, (str, Path)):
         paths = [paths]
     for path in paths:
-        for _, line in iter_text_lines(path):
+        number = reported = 0
+        for number, line in iter_text_lines(path):
             words = tokens(line)
             if words:
                 yield words
+            if progress is not None and number - reported >= 4096:
+                progress(number - reported)
+                reported = number
+        if progress is not None and number > reported:
+            progress(number - reported)

@@ -113,11 +113,13 @@ def run_shard(task: ShardTask) -> ShardResult:
             keys.append((number, utt["id"], "reference" in utt))
             yield number, utt
 
+    # shard outputs live in the run's scratch folder, which the main process removes on any
+    # failure; only the joined output is written atomically (and synced to disk)
     with contextlib.ExitStack() as stack:
-        fh = stack.enter_context(atomic_output(task.out))
+        fh = stack.enter_context(open(task.out, "w", encoding="utf-8", newline="\n"))
         tsv: IO[str] | None = None
         if task.tsv is not None:
-            tsv = stack.enter_context(atomic_output(task.tsv))
+            tsv = stack.enter_context(open(task.tsv, "w", encoding="utf-8", newline="\n"))
         for batch in batches(records(), task.batch_size):
             scored = rescore_batch(batch, path=task.display_path, lms=lms,
                                    features=task.features, weights=task.weights)
@@ -232,17 +234,23 @@ def apply_sharded(
         ledger = IdLedger(str(path), refs)
         runner = _Runner(workers, cluster)
         total = changed = 0
-        for result in runner.map(run_shard, tasks):
-            for number, key, has_ref in result.keys:
-                ledger.admit(number, key, has_ref)
-            total += len(result.keys)
-            changed += result.changed
-            if progress is not None:
-                progress(len(result.keys))
-        ledger.finish()
-        _join([Path(t.out) for t in tasks], out)
-        if text_path is not None:
-            _join([Path(t.tsv) for t in tasks if t.tsv is not None], text_path)
+        with contextlib.ExitStack() as outputs:
+            # each shard is appended as soon as it and those before it are done, while the
+            # workers go on with later shards, and then deleted
+            joined = outputs.enter_context(atomic_output(out, "wb"))
+            joined_tsv = None if text_path is None else outputs.enter_context(
+                atomic_output(text_path, "wb"))
+            for task, result in zip(tasks, runner.map(run_shard, tasks), strict=True):
+                for number, key, has_ref in result.keys:
+                    ledger.admit(number, key, has_ref)
+                total += len(result.keys)
+                changed += result.changed
+                _append(Path(task.out), joined)
+                if joined_tsv is not None and task.tsv is not None:
+                    _append(Path(task.tsv), joined_tsv)
+                if progress is not None:
+                    progress(len(result.keys))
+            ledger.finish()
         return total, changed, len(tasks)
     finally:
         if runner is not None:
@@ -250,8 +258,7 @@ def apply_sharded(
         shutil.rmtree(scratch, ignore_errors=True)
 
 
-def _join(parts: Sequence[Path], out: Path) -> None:
-    with atomic_output(out, "wb") as dst:
-        for part in parts:
-            with open(part, "rb") as src:
-                shutil.copyfileobj(src, dst, 1 << 20)
+def _append(part: Path, dst: IO[bytes]) -> None:
+    with open(part, "rb") as src:
+        shutil.copyfileobj(src, dst, 1 << 20)
+    part.unlink()

@@ -11,6 +11,7 @@ single-process run.
 
 from __future__ import annotations
 
+import array
 import contextlib
 import logging
 import os
@@ -22,6 +23,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, Any
 
+import numpy as np
+
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
     TMP_PREFIX,
@@ -31,7 +34,14 @@ from rescore.ioutil import (
     line_shards,
     open_binary,
 )
-from rescore.nbest import IdLedger, ReadLimits, RecordParser, ScoreConvention, read_refs
+from rescore.nbest import (
+    IdLedger,
+    ReadLimits,
+    RecordParser,
+    ScoreConvention,
+    id_digest,
+    read_refs,
+)
 from rescore.scoring import Weights
 
 log = logging.getLogger(__name__)
@@ -63,7 +73,12 @@ class ShardTask:
 
 @dataclass(frozen=True)
 class ShardResult:
-    keys: list[tuple[int, str, bool]]
+    """What the main process needs of a shard: per record its line number, id digest and
+    whether it had a reference (17 bytes a record, however long the ids), and a count."""
+
+    lines: np.ndarray
+    digests: np.ndarray
+    has_reference: np.ndarray
     changed: int
 
 
@@ -96,7 +111,7 @@ def run_shard(task: ShardTask) -> ShardResult:
     parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
                           task.require_references, task.limits)
     lms = _models(task.models)
-    keys: list[tuple[int, str, bool]] = []
+    lines, digests, has_ref = array.array("q"), array.array("q"), bytearray()
     changed = 0
 
     def records() -> Iterator[tuple[int, Any]]:
@@ -110,7 +125,9 @@ def run_shard(task: ShardTask) -> ShardResult:
             except InputError as exc:
                 exc.path = task.display_path
                 raise
-            keys.append((number, utt["id"], "reference" in utt))
+            lines.append(number)
+            digests.append(id_digest(utt["id"]))
+            has_ref.append("reference" in utt)
             yield number, utt
 
     # shard outputs live in the run's scratch folder, which the main process removes on any
@@ -124,7 +141,9 @@ def run_shard(task: ShardTask) -> ShardResult:
             scored = rescore_batch(batch, path=task.display_path, lms=lms,
                                    features=task.features, weights=task.weights)
             changed += write_scored(scored, fh, tsv)
-    return ShardResult(keys, changed)
+    return ShardResult(np.frombuffer(lines, dtype=np.int64).copy(),
+                       np.frombuffer(digests, dtype=np.int64).copy(),
+                       np.frombuffer(has_ref, dtype=np.bool_).copy(), changed)
 
 
 class _Runner:
@@ -241,15 +260,14 @@ def apply_sharded(
             joined_tsv = None if text_path is None else outputs.enter_context(
                 atomic_output(text_path, "wb"))
             for task, result in zip(tasks, runner.map(run_shard, tasks), strict=True):
-                for number, key, has_ref in result.keys:
-                    ledger.admit(number, key, has_ref)
-                total += len(result.keys)
+                ledger.admit_many(result.lines, result.digests, result.has_reference)
+                total += len(result.lines)
                 changed += result.changed
                 _append(Path(task.out), joined)
                 if joined_tsv is not None and task.tsv is not None:
                     _append(Path(task.tsv), joined_tsv)
                 if progress is not None:
-                    progress(len(result.keys))
+                    progress(len(result.lines))
             ledger.finish()
         return total, changed, len(tasks)
     finally:

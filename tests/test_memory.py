@@ -38,9 +38,29 @@ def test_apply_peak_memory_flat_from_10k_to_100k(tmp_path: Path) -> None:
                               "-o", str(tmp_path / "out.jsonl")])
     # issue target: less than 20 % apart although the input is ten times larger
     assert peaks[100_000] < 1.2 * peaks[10_000], peaks
+    # and no more than the id check's own share: 16 bytes an utterance plus the sort that
+    # finds duplicates (holding every id string in the main process took about 85)
+    assert (peaks[100_000] - peaks[10_000]) * 1024 < 45 * 90_000, peaks
 
 
 def test_wer_peak_memory_flat_from_10k_to_100k(tmp_path: Path) -> None:
     peaks = _peaks(tmp_path, ["wer", "--json"])
     # issue target: less than 20 % apart although the input is ten times larger
     assert peaks[100_000] < 1.2 * peaks[10_000], peaks
+    # and no more than the id check's own share: 16 bytes an utterance plus the sort that
+    # finds duplicates (holding every id string in the main process took about 85)
+    assert (peaks[100_000] - peaks[10_000]) * 1024 < 45 * 90_000, peaks
+
+
+def test_parallel_apply_peak_memory_flat_from_10k_to_100k(tmp_path: Path) -> None:
+    # the main process keeps 16 bytes per utterance for the whole-file id check, not the
+    # records' ids as strings; each worker holds one batch of its shard at a time
+    weights = tmp_path / "w.json"
+    write_weights(weights)
+    peaks = _peaks(tmp_path, ["apply", "--weights", str(weights), "--workers", "2",
+                              "-o", str(tmp_path / "out.jsonl")])
+    # issue target: less than 20 % apart although the input is ten times larger
+    assert peaks[100_000] < 1.2 * peaks[10_000], peaks
+    # and no more than the id check's own share: 16 bytes an utterance plus the sort that
+    # finds duplicates (holding every id string in the main process took about 85)
+    assert (peaks[100_000] - peaks[10_000]) * 1024 < 45 * 90_000, peaks

@@ -145,3 +145,20 @@ def test_shard_size_option_on_the_command_line(tmp_path: Path,
     assert one.exit_code == 0 and two.exit_code == 0, two.stderr
     assert "in 8 shards" in two.stderr and "shards" not in one.stderr
     assert (tmp_path / "one.jsonl").read_bytes() == (tmp_path / "two.jsonl").read_bytes()
+
+
+def test_reference_missing_in_a_later_shard_names_its_line(tmp_path: Path) -> None:
+    # the contract: references on all utterances or on none; the first one without is named
+    src = tmp_path / "mixed.jsonl"
+    _generate(src, 3000, seed=11)
+    lines = src.read_text().splitlines()
+    lines[2500] = lines[2500].replace('"reference": "bay row", ', "", 1)
+    src.write_text("\n".join(lines) + "\n")
+    single = tmp_path / "single.jsonl"
+    with pytest.raises(InputError, match="has no reference although earlier") as one:
+        pipeline.apply_file(src, single, models={}, weights=WEIGHTS)
+    with pytest.raises(InputError, match="has no reference although earlier") as two:
+        pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS,
+                            workers=2, shard_bytes=100_000)
+    assert one.value.line == two.value.line == 2501
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["mixed.jsonl"]

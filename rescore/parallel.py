@@ -259,13 +259,16 @@ def apply_sharded(
             joined = outputs.enter_context(atomic_output(out, "wb"))
             joined_tsv = None if text_path is None else outputs.enter_context(
                 atomic_output(text_path, "wb"))
-            for task, result in zip(tasks, runner.map(run_shard, tasks), strict=True):
+            results = zip(tasks, runner.map(run_shard, tasks), strict=True)
+            for number, (task, result) in enumerate(results, 1):
                 ledger.admit_many(result.lines, result.digests, result.has_reference)
                 total += len(result.lines)
                 changed += result.changed
                 _append(Path(task.out), joined)
                 if joined_tsv is not None and task.tsv is not None:
                     _append(Path(task.tsv), joined_tsv)
+                log.info("shard %d of %d joined (%d utterances so far)", number, len(tasks),
+                         total)
                 if progress is not None:
                     progress(len(result.lines))
             ledger.finish()

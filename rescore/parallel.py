@@ -2,11 +2,12 @@
 this machine (``--workers N``) or by a Dask cluster (``--cluster ADDRESS|local``).
 
 Each task reads its own shard of the input file, loads the models from their files (once
-per worker process; the native format is memory-mapped, never pickled across), writes its
-own output shard, and returns the ids it saw. The main process checks the whole-file rules
-(unique ids, references on all or none, the refs file covered) and joins the shards in
-input order into the output, atomically. The output is byte-identical to a
-single-process run.
+per worker process; the native format is memory-mapped, so workers share its pages, and
+no model is ever pickled), writes its own output shard, and returns per record its line
+number, id digest and whether it had a reference. The main process checks the whole-file
+rules (unique ids, references on all or none, the refs file covered) and appends the
+shards in input order to the output as they complete, atomically. The output is
+byte-identical to a single-process run.
 """
 
 from __future__ import annotations

@@ -185,8 +185,8 @@ class RecordParser:
 class IdLedger:
     """The whole-file rules: unique ids, references on all or none, refs file covered.
 
-    Ids are kept as 64-bit BLAKE2b digests in numpy arrays (12 bytes an utterance with the
-    line number), so a million-utterance file costs about 12 MB, not a dict of strings.
+    Ids are kept as 64-bit BLAKE2b digests in numpy arrays (16 bytes an utterance with the
+    line number), so a million-utterance file costs about 16 MB, not a dict of strings.
     Duplicates are found when the file ends, by sorting; the error names both lines. (Two
     different ids share a digest with probability about n^2 / 2^65: 3e-8 for a million.)
     """
@@ -200,8 +200,7 @@ class IdLedger:
     _chunks: list[tuple[np.ndarray, np.ndarray]] = field(default_factory=list)
 
     def admit(self, number: int, key: str, has_reference: bool) -> None:
-        digest = hashlib.blake2b(key.encode("utf-8"), digest_size=8).digest()
-        self._digests.append(int.from_bytes(digest, "little", signed=True))
+        self._digests.append(id_digest(key))
         self._lines.append(number)
         self.count += 1
         if len(self._digests) >= 65536:
@@ -212,6 +211,24 @@ class IdLedger:
             which = "has no reference although earlier utterances have" if self.has_refs \
                 else "has a reference although earlier utterances have none"
             raise InputError(which, path=self.path, line=number, field="reference")
+
+    def admit_many(self, lines: np.ndarray, digests: np.ndarray, has_reference: np.ndarray
+                   ) -> None:
+        """Admit a run of records at once, as :func:`id_digest` values (a parallel worker's
+        shard, in file order)."""
+        if not len(lines):
+            return
+        self._flush()
+        if self.has_refs is None:
+            self.has_refs = bool(has_reference[0])
+        odd = np.flatnonzero(has_reference != self.has_refs)
+        if odd.size:
+            which = "has no reference although earlier utterances have" if self.has_refs \
+                else "has a reference although earlier utterances have none"
+            raise InputError(which, path=self.path, line=int(lines[odd[0]]), field="reference")
+        self._chunks.append((np.asarray(digests, dtype=np.int64),
+                             np.asarray(lines, dtype=np.int64)))
+        self.count += len(lines)
 
     def _flush(self) -> None:
         if self._digests:
@@ -244,9 +261,13 @@ class IdLedger:
         assert self.refs is not None
         seen = set(np.concatenate([c[0] for c in self._chunks]).tolist()) \
             if self._chunks else set()
-        return {k for k in self.refs
-                if int.from_bytes(hashlib.blake2b(k.encode("utf-8"), digest_size=8).digest(),
-                                  "little", signed=True) in seen}
+        return {k for k in self.refs if id_digest(k) in seen}
+
+
+def id_digest(key: str) -> int:
+    """The 64-bit BLAKE2b digest of an id, as :class:`IdLedger` keeps it."""
+    digest = hashlib.blake2b(key.encode("utf-8"), digest_size=8).digest()
+    return int.from_bytes(digest, "little", signed=True)
 
 
 def _id_on_line(path: str, number: int) -> str:

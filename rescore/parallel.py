@@ -2,15 +2,17 @@
 this machine (``--workers N``) or by a Dask cluster (``--cluster ADDRESS|local``).
 
 Each task reads its own shard of the input file, loads the models from their files (once
-per worker process; the native format is memory-mapped, never pickled across), writes its
-own output shard, and returns the ids it saw. The main process checks the whole-file rules
-(unique ids, references on all or none, the refs file covered) and joins the shards in
-input order into the output, atomically. The output is byte-identical to a
-single-process run.
+per worker process; the native format is memory-mapped, so workers share its pages, and
+no model is ever pickled), writes its own output shard, and returns per record its line
+number, id digest and whether it had a reference. The main process checks the whole-file
+rules (unique ids, references on all or none, the refs file covered) and appends the
+shards in input order to the output as they complete, atomically. The output is
+byte-identical to a single-process run.
 """
 
 from __future__ import annotations
 
+import array
 import contextlib
 import logging
 import os
@@ -22,20 +24,30 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, Any
 
+import numpy as np
+
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
     TMP_PREFIX,
-    atomic_output,
     atomic_outputs,
     is_gzip_file,
     iter_text_lines,
     line_shards,
     open_binary,
 )
-from rescore.nbest import IdLedger, ReadLimits, RecordParser, ScoreConvention, read_refs
+from rescore.nbest import (
+    IdLedger,
+    ReadLimits,
+    RecordParser,
+    ScoreConvention,
+    id_digest,
+    read_refs,
+)
 from rescore.scoring import Weights
 
 log = logging.getLogger(__name__)
+
+MIN_SHARD_BYTES = 1 << 20  # smaller shards cost more in start-up and joining than they save
 
 
 @dataclass(frozen=True)
@@ -62,7 +74,12 @@ class ShardTask:
 
 @dataclass(frozen=True)
 class ShardResult:
-    keys: list[tuple[int, str, bool]]
+    """What the main process needs of a shard: per record its line number, id digest and
+    whether it had a reference (17 bytes a record, however long the ids), and a count."""
+
+    lines: np.ndarray
+    digests: np.ndarray
+    has_reference: np.ndarray
     changed: int
 
 
@@ -95,7 +112,7 @@ def run_shard(task: ShardTask) -> ShardResult:
     parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
                           task.require_references, task.limits)
     lms = _models(task.models)
-    keys: list[tuple[int, str, bool]] = []
+    lines, digests, has_ref = array.array("q"), array.array("q"), bytearray()
     changed = 0
 
     def records() -> Iterator[tuple[int, Any]]:
@@ -109,19 +126,25 @@ def run_shard(task: ShardTask) -> ShardResult:
             except InputError as exc:
                 exc.path = task.display_path
                 raise
-            keys.append((number, utt["id"], "reference" in utt))
+            lines.append(number)
+            digests.append(id_digest(utt["id"]))
+            has_ref.append("reference" in utt)
             yield number, utt
 
+    # shard outputs live in the run's scratch folder, which the main process removes on any
+    # failure; only the joined output is written atomically (and synced to disk)
     with contextlib.ExitStack() as stack:
-        fh = stack.enter_context(atomic_output(task.out))
+        fh = stack.enter_context(open(task.out, "w", encoding="utf-8", newline="\n"))
         tsv: IO[str] | None = None
         if task.tsv is not None:
-            tsv = stack.enter_context(atomic_output(task.tsv))
+            tsv = stack.enter_context(open(task.tsv, "w", encoding="utf-8", newline="\n"))
         for batch in batches(records(), task.batch_size):
             scored = rescore_batch(batch, path=task.display_path, lms=lms,
                                    features=task.features, weights=task.weights)
             changed += write_scored(scored, fh, tsv)
-    return ShardResult(keys, changed)
+    return ShardResult(np.frombuffer(lines, dtype=np.int64).copy(),
+                       np.frombuffer(digests, dtype=np.int64).copy(),
+                       np.frombuffer(has_ref, dtype=np.bool_).copy(), changed)
 
 
 class _Runner:
@@ -197,9 +220,11 @@ def apply_sharded(
     features: Sequence[str], text_path: Path | None, refs_path: Path | None,
     convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
     workers: int, cluster: str | None, require_references: bool = False,
-    progress: Callable[[int], None] | None = None,
-) -> tuple[int, int]:
-    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best)."""
+    progress: Callable[[int], None] | None = None, shard_bytes: int | None = None,
+) -> tuple[int, int, int]:
+    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best,
+    shards). The input is cut into at most ``4 * workers`` shards of at least
+    ``shard_bytes`` each (default :data:`MIN_SHARD_BYTES`)."""
     folder = out.parent if str(out.parent) else Path(".")
     scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{out.name}.{os.getpid()}.shards.",
                                     dir=folder))
@@ -212,7 +237,8 @@ def apply_sharded(
             with open_binary(path) as src, open(source, "wb") as dst:
                 shutil.copyfileobj(src, dst, 1 << 20)
         parts = max(1, workers) * 4
-        shards = line_shards(source, parts)
+        shards = line_shards(source, parts,
+                             MIN_SHARD_BYTES if shard_bytes is None else shard_bytes)
         tasks = [ShardTask(
             path=str(source), start=a, end=b, first_line=first, skip_line=header_line,
             out=str(scratch / f"{i:05d}.jsonl"),
@@ -228,46 +254,45 @@ def apply_sharded(
         ledger = IdLedger(str(path), refs)
         runner = _Runner(workers, cluster)
         total = changed = 0
-        for result in runner.map(run_shard, tasks):
-            for number, key, has_ref in result.keys:
-                ledger.admit(number, key, has_ref)
-            total += len(result.keys)
-            changed += result.changed
-            if progress is not None:
-                progress(len(result.keys))
-        ledger.finish()
-        if ledger.count == 0:
-            raise InputError("no utterances in the file", path=path)
-        _join_all(path, ledger.count, tasks, out, text_path)
-        return total, changed
+        from rescore.pipeline import check_accounting  # pipeline imports this module
+
+        targets = [out] if text_path is None else [out, text_path]
+        with atomic_outputs(targets, "wb") as handles:
+            # each shard is appended as soon as it and those before it are done, while the
+            # workers go on with later shards, and then deleted; lines are counted as they
+            # are copied, so the outputs appear only if every utterance read reached them
+            joined_lines = [0] * len(handles)
+            results = zip(tasks, runner.map(run_shard, tasks), strict=True)
+            for number, (task, result) in enumerate(results, 1):
+                ledger.admit_many(result.lines, result.digests, result.has_reference)
+                total += len(result.lines)
+                changed += result.changed
+                joined_lines[0] += _append(Path(task.out), handles[0])
+                if text_path is not None and task.tsv is not None:
+                    joined_lines[1] += _append(Path(task.tsv), handles[1])
+                log.info("shard %d of %d joined (%d utterances so far)", number, len(tasks),
+                         total)
+                if progress is not None:
+                    progress(len(result.lines))
+            ledger.finish()
+            if ledger.count == 0:
+                raise InputError("no utterances in the file", path=path)
+            for target, lines in zip(targets, joined_lines, strict=True):
+                check_accounting(path, ledger.count, lines,
+                                 f"lines in the joined {target}, so no output was kept")
+        return total, changed, len(tasks)
     finally:
         if runner is not None:
             runner.close()
         shutil.rmtree(scratch, ignore_errors=True)
 
 
-def _join_all(path: Path, read: int, tasks: Sequence[ShardTask], out: Path,
-              text_path: Path | None) -> None:
-    """Join the shards into the outputs, which appear only if each holds one line for each
-    utterance the ledger admitted (lines counted as they are copied, after the workers)."""
-    from rescore.pipeline import check_accounting
-
-    joins = [(out, [Path(t.out) for t in tasks])]
-    if text_path is not None:
-        joins.append((text_path, [Path(t.tsv) for t in tasks if t.tsv is not None]))
-    with atomic_outputs([target for target, _ in joins], "wb") as handles:
-        for (target, parts), dst in zip(joins, handles, strict=True):
-            lines = _join(parts, dst)
-            check_accounting(path, read, lines, f"lines in the joined {target}, so no output "
-                             "was kept")
-
-
-def _join(parts: Sequence[Path], dst: IO[bytes]) -> int:
-    """Copy ``parts`` into ``dst`` in order; returns the number of lines copied."""
+def _append(part: Path, dst: IO[bytes]) -> int:
+    """Copy ``part`` to the end of ``dst`` and delete it; returns the lines copied."""
     lines = 0
-    for part in parts:
-        with open(part, "rb") as src:
-            for block in iter(lambda: src.read(1 << 20), b""):
-                lines += block.count(b"\n")
-                dst.write(block)
+    with open(part, "rb") as src:
+        for block in iter(lambda: src.read(1 << 20), b""):
+            lines += block.count(b"\n")
+            dst.write(block)
+    part.unlink()
     return lines

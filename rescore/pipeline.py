@@ -19,7 +19,7 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import AccountingError, InputError, UsageError
-from rescore.ioutil import LineCounter, TextSink, atomic_outputs, sha256_file
+from rescore.ioutil import LineCounter, TextSink, atomic_outputs, count_lines, sha256_file
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
@@ -30,6 +30,7 @@ from rescore.nbest import (
     read_convention,
     read_refs,
 )
+from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
     LM,
     FeatureMatrix,
@@ -41,7 +42,7 @@ from rescore.scoring import (
     segment_argmax,
 )
 from rescore.text import NORMALISATION, tokens
-from rescore.wer import WerResult, corpus_wer
+from rescore.wer import WerResult, corpus_wer, utterance_counts, wer_from_totals
 
 log = logging.getLogger(__name__)
 
@@ -171,6 +172,7 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
 class ApplyResult:
     utterances: int
     changed: int
+    shards: int = 1  # pieces of the input processed separately (1: one process, in order)
 
 
 def apply_file(
@@ -179,11 +181,13 @@ def apply_file(
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
     batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
     limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
+    shard_bytes: int | None = None,
 ) -> ApplyResult:
     """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete.
 
     With ``workers > 1`` or a ``cluster`` the file is split into shards processed in
-    parallel (see :mod:`rescore.parallel`); the output is the same byte for byte.
+    parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
+    the output is the same byte for byte.
     """
     features = _check_weighted(weights, models)
     if workers > 1 or cluster is not None:
@@ -193,12 +197,13 @@ def apply_file(
             raise UsageError("parallel runs take references as a file path (refs_path)")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
                                                   limits=limits)
-        total, changed = apply_sharded(
+        total, changed, shards = apply_sharded(
             path, out, models=[(m.name, str(m.path)) for m in models.values()],
             weights=weights, features=features, text_path=text_path, refs_path=refs_path,
             convention=convention, header_line=header_line, limits=limits,
-            batch_size=batch_size, workers=workers, cluster=cluster, progress=progress)
-        return ApplyResult(total, changed)
+            batch_size=batch_size, workers=workers, cluster=cluster, progress=progress,
+            shard_bytes=shard_bytes)
+        return ApplyResult(total, changed, shards)
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
     lms = _models(models)
@@ -281,18 +286,24 @@ def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
 
 
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
-             log_base: float | None = None, costs: bool | None = None) -> WerResult:
-    ref_words: list[list[str]] = []
-    hyp_words: list[list[str]] = []
-    for _, utt in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
-                             require_references=True):
-        ref_words.append(tokens(utt["reference"]))
-        hyp_words.append(tokens(one_best(utt)["text"]))
-    if not ref_words:
+             log_base: float | None = None, costs: bool | None = None,
+             batch_size: int = 2000) -> WerResult:
+    """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat)."""
+    totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
+    n_utt = n_scored = 0
+    for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
+                                    require_references=True), batch_size):
+        counts = utterance_counts([tokens(u["reference"]) for _, u in batch],
+                                  [tokens(one_best(u)["text"]) for _, u in batch])
+        totals += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
+                                          counts.insertions, counts.hits)]
+        n_utt += len(batch)
+        n_scored += len(counts.substitutions)
+    if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
-    result = corpus_wer(ref_words, hyp_words)
-    check_accounting(path, len(ref_words), result.utterances, "scored")
-    return result
+    check_accounting(path, n_utt, n_scored, "scored")
+    s, d, i, h = (int(t) for t in totals)
+    return wer_from_totals(s, d, i, h, utterances=n_utt)
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
@@ -339,13 +350,16 @@ def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
 
 def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
                 refs: Mapping[str, str] | None = None, log_base: float | None = None,
-                costs: bool | None = None) -> FeatureMatrix:
-    """The whole tuning set as one compact matrix (records are not kept)."""
+                costs: bool | None = None, progress: Advance | None = None) -> FeatureMatrix:
+    """The whole tuning set as one compact matrix (records are not kept); ``progress`` is
+    called with the number of utterances of each batch scored."""
     parts: list[FeatureMatrix] = []
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                      require_references=True), 2000):
         parts.append(build_matrix(batch, path=str(path), lms=_models(models),
                                   features=features, with_errors=True).matrix)
+        if progress is not None:
+            progress(len(batch))
     if not parts:
         raise InputError("no utterances in the file", path=path)
     return concat_matrices(parts)
@@ -372,12 +386,21 @@ def tune_file(
     features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
     weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
+    progress: Report | None = None,
 ) -> TuneOutcome:
+    """Read and score the dev set, tune, write the weights (and the analysis).
+
+    ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
+    (the total is the file's line count), and of the tuning.
+    """
     from rescore import tune as tuning
 
     extra_lms = [lm_column(n) for n in models if n != LM]
+    scoring = Steps(progress, "scoring the dev set",
+                    None if progress is None else count_lines(path))
     matrix = load_matrix(path, models=models, features=features, refs=refs,
-                         log_base=log_base, costs=costs)
+                         log_base=log_base, costs=costs, progress=scoring)
+    scoring.finish()
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))
     result = tuning.tune(
@@ -385,6 +408,7 @@ def tune_file(
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
         folds=folds, seed=seed, cv_warn=cv_warn, lm_column=LM if LM in models else None,
+        progress=progress,
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran

@@ -23,7 +23,7 @@ negative difference is an improvement):
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -86,6 +86,7 @@ def paired_bootstrap(
     resamples: int = 10_000,
     seed: int = 0,
     confidence: float = 0.95,
+    progress: Callable[[int], None] | None = None,
 ) -> BootstrapResult:
     """Resample utterances (the same draw for both systems) and recompute corpus WER.
 
@@ -93,7 +94,8 @@ def paired_bootstrap(
     chunk of resamples); the draws are counted per utterance and the three per-utterance
     arrays summed with one matrix product per chunk. With one utterance every resample is
     that utterance: the intervals have zero width and the probability of improvement is 0
-    or 1, which says nothing about variability (the report notes it).
+    or 1, which says nothing about variability (the report notes it). ``progress`` is
+    called with the number of resamples of each chunk done.
     """
     stacked = np.stack([
         _as_int_array(before_errors, "before_errors"),
@@ -123,6 +125,8 @@ def paired_bootstrap(
         offsets = (idx + (np.arange(m, dtype=np.int64) * n)[:, None]).ravel()
         counts = np.bincount(offsets, minlength=m * n).reshape(m, n).astype(np.float64)
         sums[:, start:start + m] = np.rint(counts @ values).T.astype(np.int64)
+        if progress is not None:
+            progress(m)
     # a resample drawn only from empty references (vanishingly rare) is counted per one word
     # rather than divided by zero
     words = np.maximum(sums[2], 1).astype(np.float64)

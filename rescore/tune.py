@@ -30,6 +30,7 @@ import numpy as np
 
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
+from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
     ACOUSTIC,
     LM,
@@ -316,7 +317,7 @@ def _slot_layout(matrix: FeatureMatrix, words: np.ndarray) -> tuple[np.ndarray, 
 
 def _grid_errors(matrix: FeatureMatrix, errors: np.ndarray, fixed: np.ndarray, lm: np.ndarray,
                  words: np.ndarray, lm_grid: np.ndarray, pen_grid: np.ndarray,
-                 layout: str = "auto") -> np.ndarray:
+                 layout: str = "auto", progress: Advance | None = None) -> np.ndarray:
     """Corpus errors at every (lm, penalty) point, shape (len(lm_grid), len(pen_grid))."""
     n, n_utt = matrix.n_hypotheses, matrix.n_utterances
     order, gstarts = _slot_layout(matrix, words)
@@ -341,6 +342,8 @@ def _grid_errors(matrix: FeatureMatrix, errors: np.ndarray, fixed: np.ndarray, l
             out[i] = _padded_errors(g_a, g_w, g_e, g_off, slots, pen_grid)
         else:
             out[i] = _ragged_errors(g_a, g_w, g_e, g_off, pen_grid)
+        if progress is not None:
+            progress(1)
     return out
 
 
@@ -487,8 +490,11 @@ def grid_search(
     penalty_grid: Sequence[float] | np.ndarray | None = None,
     base: Weights = Weights(),  # noqa: B008 - frozen, never mutated
     lm_column: str | None = LM,
+    progress: Advance | None = None,
 ) -> TuneResult:
     """Errors at every (LM weight, insertion penalty) grid point; the other weights from ``base``.
+
+    ``progress`` is called with 1 as each LM-weight row of the grid is done.
 
     ``lm_column`` names the column the LM weight multiplies; ``None`` (no language model)
     tunes the penalty alone on a one-point LM axis at 0.
@@ -511,7 +517,7 @@ def grid_search(
         vec[li], lm = 0.0, matrix.values[:, li]
     fixed = matrix.values @ vec
     surface = _grid_errors(matrix, errors, fixed, lm, matrix.values[:, wi], lm_values,
-                           pen_values)
+                           pen_values, progress=progress)
     i, j = plateau_centre(surface)
     updates = {WORDS: float(pen_values[j])}
     if lm_column is not None:
@@ -780,6 +786,7 @@ def exact_search(
     restarts: int = 3,
     bounds: Mapping[str, tuple[float, float]] | None = None,
     also_from: Sequence[Weights] = (),
+    progress: Advance | None = None,
 ) -> TuneResult:
     """Coordinate-wise exact line search over the weights named in ``tune`` (Och, 2003).
 
@@ -800,7 +807,8 @@ def exact_search(
     inside the bounds). The
     fewest-error run wins, the earliest on ties, so the result is never worse than
     ``start`` (once moved inside the bounds). Weights not in ``tune`` (by default the
-    acoustic scale, 1) stay as in ``start``.
+    acoustic scale, 1) stay as in ``start``. ``progress`` is called with 1 after each run
+    (``1 + len(also_from) + restarts`` of them).
     """
     errors, _ = _check_matrix(matrix)
     tuned = tuple(dict.fromkeys(tune))
@@ -817,6 +825,8 @@ def exact_search(
         w, e = _coordinate_ascent(matrix, errors, w0, idx, lo, hi, rng)
         if e < best_errors:
             best, best_errors = w, e
+        if progress is not None:
+            progress(1)
     for _ in range(restarts):
         spread = np.maximum(1.0, np.abs(best[idx]))
         trial = best.copy()
@@ -824,6 +834,8 @@ def exact_search(
         w, e = _coordinate_ascent(matrix, errors, trial, idx, lo, hi, rng)
         if e < best_errors:
             best, best_errors = w, e
+        if progress is not None:
+            progress(1)
     updates = {matrix.names[k]: float(best[k]) for k in idx}
     weights = _set(start, names, updates)
     settings = {"restarts": restarts, "seed": seed, "starts": 1 + len(also_from),
@@ -835,10 +847,20 @@ def exact_search(
 # --------------------------------------------------------------------------- tune
 
 
+def _search_units(method: str, lm_grid: np.ndarray) -> int:
+    """Progress units of one search: a grid row each; the exact search adds a row-start
+    line search per row and, spread over its runs, as many units again."""
+    return len(lm_grid) * (1 if method == "grid" else 3)
+
+
+_RESTARTS = 3
+
+
 def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
-            lm_grid: np.ndarray, pen_grid: np.ndarray, seed: int, lm_column: str | None
-            ) -> TuneResult:
-    grid = grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid, lm_column=lm_column)
+            lm_grid: np.ndarray, pen_grid: np.ndarray, seed: int, lm_column: str | None,
+            steps: Steps | None = None) -> TuneResult:
+    grid = grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid, lm_column=lm_column,
+                       progress=steps)
     if method == "grid":
         return grid
     # start from the best two-weight grid point, so tuning a feature never loses on dev;
@@ -855,16 +877,20 @@ def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
             updates[lm_column] = float(grid.surface.lm[i])
         others.append(_set(grid.weights, matrix.names, updates))
     if lm_column is not None:
-        others += _row_starts(matrix, grid, lm_column)
+        others += _row_starts(matrix, grid, lm_column, progress=steps)
+    elif steps is not None:
+        steps(len(lm_grid))
+    runs = 1 + len(others) + _RESTARTS
     found = exact_search(matrix, tune=(*grid.tuned, *features), start=grid.weights, seed=seed,
-                         also_from=others)
+                         also_from=others, restarts=_RESTARTS,
+                         progress=None if steps is None else steps.spread(len(lm_grid), runs))
     settings = {**found.settings, "start": "grid", "lm_grid": grid.settings["lm_grid"],
                 "penalty_grid": grid.settings["penalty_grid"]}
     return replace(found, settings=settings)
 
 
-def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: int = 3
-                ) -> list[Weights]:
+def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: int = 3,
+                progress: Advance | None = None) -> list[Weights]:
     """The best points of the grid's LM-weight rows with the penalty searched exactly.
 
     On each row an exact line search over the penalty (within its default bounds) finds the
@@ -882,6 +908,8 @@ def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: i
                                 matrix.offsets, errors, float(lo[0]), float(hi[0]))
         step, e = _best_step(curve, float(lo[0]), float(hi[0]))
         found.append((e, float(lw), step))
+        if progress is not None:
+            progress(1)
     found.sort(key=lambda item: item[0])
     return [_set(grid.weights, matrix.names, {lm_column: lw, WORDS: step})
             for _, lw, step in found[:keep]]
@@ -894,8 +922,8 @@ def _folds(n_utt: int, k: int, seed: int) -> list[np.ndarray]:
 
 def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str] = (),
                    lm_grid: np.ndarray | None = None, penalty_grid: np.ndarray | None = None,
-                   folds: int = 5, seed: int = 0, lm_column: str | None = LM
-                   ) -> CrossValidation | None:
+                   folds: int = 5, seed: int = 0, lm_column: str | None = LM,
+                   steps: Steps | None = None) -> CrossValidation | None:
     """Tune on k-1 folds, count errors on the held-out one; ``None`` if k < 2 utterances.
 
     Utterances are shuffled with ``seed`` and split into k nearly equal folds (k capped at
@@ -915,9 +943,11 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
         train_m = matrix.subset(train)
         if int(train_m.ref_words.sum()) == 0:  # type: ignore[union-attr]
             weights = Weights()
+            if steps is not None:
+                steps(_search_units(search, lm_values))
         else:
             weights = _search(train_m, search, tuple(features), lm_values, pen_values, seed,
-                              lm_column).weights
+                              lm_column, steps).weights
         test_m = matrix.subset(held)
         words = int(matrix.ref_words[held].sum())
         errs = _errors_at(test_m, weights)
@@ -957,6 +987,7 @@ def tune(
     seed: int = 0,
     cv_warn: float = 0.01,
     lm_column: str | None = LM,
+    progress: Report | None = None,
 ) -> TuneResult:
     """Tune LM weight, insertion penalty and any named ``features`` on a dev set.
 
@@ -965,7 +996,9 @@ def tune(
     Default grid: LM weight 0 to 30 (121 points), penalty -20 to +20 per word (81 points),
     natural-log units. Adds a ``folds``-fold cross-validation (``folds < 2`` skips it), a
     warning when the cross-validated WER and the dev WER differ by more than ``cv_warn``
-    (absolute: 0.01 is one percentage point), and the depth table.
+    (absolute: 0.01 is one percentage point), and the depth table. ``progress`` (see
+    :mod:`rescore.progress`) counts grid rows and exact-search runs over the search and
+    every fold.
     """
     feats = tuple(dict.fromkeys(features))
     for name in feats:
@@ -984,10 +1017,13 @@ def tune(
                          field="--warn-cv-gap")
     lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "--grid-lm")
     pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "--grid-penalty")
-    result = _search(matrix, method, feats, lm_values, pen_values, seed, lm_column)
+    searches = 1 + (min(folds, matrix.n_utterances) if folds >= 2 else 0)
+    steps = Steps(progress, "tuning", searches * _search_units(method, lm_values))
+    result = _search(matrix, method, feats, lm_values, pen_values, seed, lm_column, steps)
     cv = cross_validate(matrix, search=method, features=feats, lm_grid=lm_values,
                         penalty_grid=pen_values, folds=folds, seed=seed,
-                        lm_column=lm_column) if folds >= 2 else None
+                        lm_column=lm_column, steps=steps) if folds >= 2 else None
+    steps.finish()
     warning = None
     if cv is not None and abs(cv.wer - result.dev_wer) > cv_warn:
         warning = (f"cross-validated WER {100 * cv.wer:.2f}% differs from the dev WER "

@@ -82,8 +82,13 @@ def utterance_counts(
 
 
 def summarise(counts: UtteranceCounts) -> WerResult:
-    s, d, i, h = (int(a.sum()) for a in (counts.substitutions, counts.deletions,
-                                           counts.insertions, counts.hits))
+    return wer_from_totals(*(int(a.sum()) for a in (counts.substitutions, counts.deletions,
+                                                     counts.insertions, counts.hits)),
+                           utterances=len(counts.hits))
+
+
+def wer_from_totals(s: int, d: int, i: int, h: int, *, utterances: int) -> WerResult:
+    """Corpus WER from summed counts (so a corpus can be counted batch by batch)."""
     n = s + d + h
     return WerResult(
         wer=(s + d + i) / n if n else (0.0 if i == 0 else float("inf")),
@@ -92,7 +97,7 @@ def summarise(counts: UtteranceCounts) -> WerResult:
         insertions=i,
         hits=h,
         reference_words=n,
-        utterances=len(counts.hits),
+        utterances=utterances,
     )
 
 

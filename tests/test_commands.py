@@ -38,6 +38,28 @@ def test_wer_of_nbest_one_best_equals_jiwer() -> None:
     assert json.loads(result.stdout)["wer"] == pytest.approx(jiwer.wer(refs, hyps))
 
 
+def test_wer_counted_in_small_batches_equals_jiwer_over_the_whole_file() -> None:
+    # source: jiwer.process_words over every utterance at once (reference library);
+    # corpus WER pools the counts, so summing them batch by batch must change nothing
+    from rescore.nbest import read_nbest
+    from rescore.text import tokens
+
+    demo = FIXTURES / "demo" / "test.jsonl"
+    utts = list(read_nbest(demo))
+    refs = [" ".join(tokens(u["reference"])) for u in utts]
+    hyps = [" ".join(tokens(u["hypotheses"][u.get("best", 0)]["text"])) for u in utts]
+    keep = [i for i, r in enumerate(refs) if r]  # jiwer refuses an empty reference
+    assert len(keep) == len(refs)
+    expected = jiwer.process_words(refs, hyps)
+    result = run(["wer", demo, "--json", "--batch-size", "7"])
+    assert result.exit_code == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert (data["substitutions"], data["deletions"], data["insertions"], data["hits"]) == (
+        expected.substitutions, expected.deletions, expected.insertions, expected.hits)
+    assert data["wer"] == pytest.approx(expected.wer)
+    assert data["utterances"] == len(utts)
+
+
 def test_wer_table_is_printed() -> None:
     result = run(["wer", TWO])
     assert result.exit_code == 0

@@ -161,3 +161,54 @@ def test_other_format_version_is_refused_clearly(saved: tuple[NGramModel, Path])
         load_model(path)
     assert str(info.value) == (f"{path}: not a valid rescore model file: format version 2, "
                                "this program reads 1")
+
+
+def _mapping_of(arr: np.ndarray) -> object:
+    """The object at the end of an array's ``base`` chain (through any memoryview)."""
+    obj: object = arr
+    while isinstance(obj, np.ndarray) and obj.base is not None:
+        obj = obj.base
+    return obj.obj if isinstance(obj, memoryview) else obj
+
+
+def test_loaded_arrays_are_zero_copy_views_of_the_file_mapping(
+        saved: tuple[NGramModel, Path]) -> None:
+    # mmap(2): a MAP_SHARED read-only mapping is backed by the page cache, so processes
+    # mapping the same file share its pages; the arrays must lie inside that mapping
+    import mmap
+
+    _, path = saved
+    tables = load_model(path).tables_
+    arrays = [*tables.logp, *tables.bow, *tables.keys[1:], *tables.slots[1:]]
+    mapping = _mapping_of(arrays[0])
+    assert isinstance(mapping, mmap.mmap)
+    whole = np.frombuffer(mapping, dtype=np.uint8)
+    assert len(whole) == path.stat().st_size
+    for arr in arrays:
+        assert _mapping_of(arr) is mapping
+        assert np.shares_memory(arr, whole)
+        assert not arr.flags.writeable
+
+
+def test_loading_maps_the_file_in_the_process(saved: tuple[NGramModel, Path]) -> None:
+    # proc(5): /proc/self/maps lists every file mapped into the process
+    maps = Path("/proc/self/maps")
+    if not maps.exists():
+        pytest.skip("no /proc on this system")
+    _, path = saved
+    model = load_model(path)
+    assert str(path.resolve()) in maps.read_text()
+    del model
+
+
+def test_loading_never_unpickles(saved: tuple[NGramModel, Path],
+                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    import pickle
+
+    def refuse(*args: object, **kwargs: object) -> None:
+        raise AssertionError("pickle used while loading a model")
+
+    for name in ("load", "loads", "Unpickler"):
+        monkeypatch.setattr(pickle, name, refuse)
+    model, path = saved
+    assert load_model(path).checksum == model.checksum

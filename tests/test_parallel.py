@@ -13,6 +13,8 @@ from rescore.errors import InputError
 from rescore.scoring import Weights
 
 WEIGHTS = Weights(1.0, 0.0, 0.7, {"first_pass_lm": 4.0})
+LM_WEIGHTS = Weights(1.0, 9.0, 2.0, {"first_pass_lm": 0.5})
+DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
 
 
 def _generate(path: Path, n: int, seed: int = 7) -> None:
@@ -37,21 +39,61 @@ def generated(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return path
 
 
+@pytest.fixture(scope="module")
+def demo_lm(tmp_path_factory: pytest.TempPathFactory) -> dict[str, pipeline.NamedModel]:
+    """A trigram built from the demo's training text, saved in the native (mapped) format."""
+    from rescore.lm import NGramModel, read_corpus, save_model
+
+    path = tmp_path_factory.mktemp("lm") / "train.lm"
+    save_model(NGramModel(3, "mkn").fit(read_corpus(DEMO / "train.txt")), path)
+    return pipeline.load_lms([str(path)])
+
+
 def _apply(src: Path, out: Path, **kw: object) -> tuple[bytes, bytes]:
+    return _apply_counted(src, out, **kw)[:2]
+
+
+def _apply_counted(src: Path, out: Path, **kw: object) -> tuple[bytes, bytes, int]:
     tsv = out.with_suffix(".tsv")
-    pipeline.apply_file(src, out, models={}, weights=WEIGHTS, text_path=tsv, **kw)  # type: ignore[arg-type]
-    return out.read_bytes(), tsv.read_bytes()
+    kw.setdefault("models", {})
+    kw.setdefault("weights", WEIGHTS)
+    result = pipeline.apply_file(src, out, text_path=tsv, **kw)  # type: ignore[arg-type]
+    return out.read_bytes(), tsv.read_bytes(), result.shards
 
 
-def test_workers_and_local_cluster_byte_identical(generated: Path, tmp_path: Path) -> None:
-    single = _apply(generated, tmp_path / "single.jsonl", batch_size=500)
-    pooled = _apply(generated, tmp_path / "pooled.jsonl", workers=2, batch_size=500)
-    assert pooled == single
-    dasked = _apply(generated, tmp_path / "dask.jsonl", workers=2, cluster="local")
-    assert dasked == single
-    assert single[0].count(b"\n") == 20_000
-    leftovers = [p.name for p in tmp_path.iterdir() if p.name.startswith(".rescore-tmp")]
+def _three_ways(src: Path, folder: Path, **kw: object) -> None:
+    """One process, two worker processes and a real two-process Dask LocalCluster give the
+    same bytes, the parallel runs over more than one shard."""
+    single = _apply_counted(src, folder / "single.jsonl", **kw)
+    pooled = _apply_counted(src, folder / "pooled.jsonl", workers=2, **kw)
+    dasked = _apply_counted(src, folder / "dask.jsonl", workers=2, cluster="local", **kw)
+    assert single[2] == 1 and pooled[2] > 1 and dasked[2] > 1, (pooled[2], dasked[2])
+    assert pooled[:2] == single[:2]
+    assert dasked[:2] == single[:2]
+    leftovers = [p.name for p in folder.iterdir() if p.name.startswith(".rescore-tmp")]
     assert leftovers == []
+    # the language model was really applied: every hypothesis carries its log-probability
+    first = json.loads(single[0].split(b"\n", 1)[0])
+    assert all(h["lm"] < 0 for h in first["hypotheses"])
+
+
+def test_generated_set_with_an_lm_byte_identical(generated: Path, tmp_path: Path,
+                                                 demo_lm: dict[str, pipeline.NamedModel]
+                                                 ) -> None:
+    _three_ways(generated, tmp_path, models=demo_lm, weights=LM_WEIGHTS, batch_size=500)
+    assert (tmp_path / "single.jsonl").read_bytes().count(b"\n") == 20_000
+
+
+def test_demo_test_set_with_an_lm_in_several_shards_byte_identical(
+        tmp_path: Path, demo_lm: dict[str, pipeline.NamedModel]) -> None:
+    # the demo file is under the default least shard size: ask for shards of ~100 kB
+    assert (DEMO / "test.jsonl").stat().st_size < (1 << 20)
+    _three_ways(DEMO / "test.jsonl", tmp_path, models=demo_lm, weights=LM_WEIGHTS,
+                shard_bytes=100_000)
+
+
+def test_default_shard_size_keeps_a_small_file_whole(tmp_path: Path) -> None:
+    assert _apply_counted(DEMO / "test.jsonl", tmp_path / "a.jsonl", workers=2)[2] == 1
 
 
 def test_gzip_input_in_parallel(tmp_path: Path) -> None:
@@ -87,3 +129,36 @@ def test_bad_record_in_a_worker_names_the_file_and_line(tmp_path: Path) -> None:
         pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS, workers=2)
     assert (e.value.path, e.value.line) == (str(src), 1501)
     assert e.value.field is not None and "acoustik" in e.value.field
+
+
+def test_shard_size_option_on_the_command_line(tmp_path: Path,
+                                               demo_lm: dict[str, pipeline.NamedModel]) -> None:
+    from tests.conftest import run
+
+    weights = tmp_path / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 9.0,
+                                   "insertion_penalty": 2.0, "features": {}}))
+    lm = str(demo_lm["lm"].path)
+    base = ["apply", DEMO / "test.jsonl", "--lm", lm, "--weights", weights]
+    one = run([*base, "-o", tmp_path / "one.jsonl"])
+    two = run([*base, "-o", tmp_path / "two.jsonl", "--workers", "2", "--shard-mb", "0.1"])
+    assert one.exit_code == 0 and two.exit_code == 0, two.stderr
+    assert "in 8 shards" in two.stderr and "shards" not in one.stderr
+    assert (tmp_path / "one.jsonl").read_bytes() == (tmp_path / "two.jsonl").read_bytes()
+
+
+def test_reference_missing_in_a_later_shard_names_its_line(tmp_path: Path) -> None:
+    # the contract: references on all utterances or on none; the first one without is named
+    src = tmp_path / "mixed.jsonl"
+    _generate(src, 3000, seed=11)
+    lines = src.read_text().splitlines()
+    lines[2500] = lines[2500].replace('"reference": "bay row", ', "", 1)
+    src.write_text("\n".join(lines) + "\n")
+    single = tmp_path / "single.jsonl"
+    with pytest.raises(InputError, match="has no reference although earlier") as one:
+        pipeline.apply_file(src, single, models={}, weights=WEIGHTS)
+    with pytest.raises(InputError, match="has no reference although earlier") as two:
+        pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS,
+                            workers=2, shard_bytes=100_000)
+    assert one.value.line == two.value.line == 2501
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["mixed.jsonl"]

@@ -19,6 +19,7 @@ from rich.console import Console
 from rich.table import Table
 
 from rescore.errors import RescoreError
+from rescore.progress import Report
 
 P = ParamSpec("P")
 R = TypeVar("R")
@@ -88,13 +89,12 @@ def _noop(amount: float = 1) -> None:
     pass
 
 
-@contextlib.contextmanager
-def progress(description: str, total: float | None = None) -> Iterator[Callable[[float], None]]:
-    """A progress bar on stderr with rate and time left; silent with --quiet or when stdout
-    is not a terminal. Yields the function that advances it."""
-    if state.quiet or not sys.stdout.isatty():
-        yield _noop
-        return
+def bars_shown() -> bool:
+    """Progress bars show on a terminal, never with --quiet or when stdout is redirected."""
+    return not state.quiet and sys.stdout.isatty()
+
+
+def _bar() -> Any:
     from rich.progress import (
         BarColumn,
         MofNCompleteColumn,
@@ -116,13 +116,50 @@ def progress(description: str, total: float | None = None) -> Iterator[Callable[
     columns = [SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
                MofNCompleteColumn(), TaskProgressColumn(), RateColumn(), TimeElapsedColumn(),
                TimeRemainingColumn()]
-    with Progress(*columns, console=stderr, transient=True) as bar:
+    return Progress(*columns, console=stderr, transient=True)
+
+
+@contextlib.contextmanager
+def progress(description: str, total: float | None = None) -> Iterator[Callable[[float], None]]:
+    """A progress bar on stderr with rate and time left; silent with --quiet or when stdout
+    is not a terminal. Yields the function that advances it."""
+    if not bars_shown():
+        yield _noop
+        return
+    with _bar() as bar:
         task = bar.add_task(description, total=total)
 
         def advance(amount: float = 1) -> None:
             bar.advance(task, amount)
 
         yield advance
+
+
+@contextlib.contextmanager
+def stages(title: str) -> Iterator[Report | None]:
+    """A progress bar that follows a library reporter (see :mod:`rescore.progress`): each
+    stage restarts it with its own total, rate and time left. Yields None (no reporter, so
+    the library skips even counting lines for totals) with --quiet or when stdout is not a
+    terminal."""
+    if not bars_shown():
+        yield None
+        return
+    with _bar() as bar:
+        task = bar.add_task(title, total=None)
+        current: list[str | None] = [None]
+
+        def report(stage: str, done: int, total: int | None) -> None:
+            if stage != current[0]:
+                if current[0] is not None:
+                    bar.refresh()  # the finished stage is drawn once in its final state
+                current[0] = stage
+                bar.reset(task, total=total, completed=0, description=f"{title}: {stage}")
+                bar.update(task, completed=done, total=total)
+                bar.refresh()
+                return
+            bar.update(task, completed=done, total=total)
+
+        yield report
 
 
 def emit_json(data: Any) -> None:

@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 
 from rescore import pipeline
-from rescore.cli._common import emit_json, guarded, info, pct, progress, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -43,9 +43,11 @@ WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
 
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
-          costs: CostsOpt = None, as_json: JsonOpt = False) -> None:
+          costs: CostsOpt = None, as_json: JsonOpt = False,
+          batch_size: BatchOpt = 2000) -> None:
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
-    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
+                                 batch_size=batch_size)
     if as_json:
         emit_json(result.to_dict())
         return
@@ -79,6 +81,9 @@ def apply(
     cluster: Annotated[str | None, typer.Option(
         "--cluster", help="Dask scheduler address (tcp://HOST:PORT), or 'local' to start a "
         "local cluster of --workers processes.")] = None,
+    shard_mb: Annotated[float, typer.Option(
+        "--shard-mb", min=0.001, help="With --workers or --cluster: least size of one shard "
+        "of the input, in MiB (the input is cut into at most 4 shards per worker).")] = 1.0,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
@@ -87,8 +92,10 @@ def apply(
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
-                                     progress=step)
-    info(f"rescored {result.utterances} utterances ({result.changed} changed 1-best) -> {out}")
+                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+    shards = f" in {result.shards} shards" if result.shards > 1 else ""
+    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best) "
+         f"-> {out}")
 
 
 @guarded
@@ -99,6 +106,7 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
+    batch_size: BatchOpt = 2000,
 ) -> None:
     """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
     if (nbest is None) == (hyps is None):
@@ -109,7 +117,8 @@ def wer(
         result = pipeline.wer_transcripts(refs, hyps)
     else:
         assert nbest is not None
-        result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs)
+        result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
+                                   batch_size=batch_size)
     if as_json:
         emit_json(result.to_dict())
         return
@@ -146,12 +155,13 @@ def tune(
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
     models = pipeline.load_lms(lm or [])
-    with progress(f"tuning on {nbest}"):
+    with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
+            progress=report,
         )
     data = outcome.to_dict()
     if as_json:

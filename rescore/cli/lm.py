@@ -7,9 +7,9 @@ from typing import Annotated
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, progress, table
+from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
 from rescore.errors import UsageError
-from rescore.ioutil import iter_text_lines
+from rescore.ioutil import count_lines, iter_text_lines
 from rescore.lm import (
     NGramModel,
     load_model,
@@ -18,6 +18,7 @@ from rescore.lm import (
     save_model,
     write_sentence_scores,
 )
+from rescore.progress import Steps
 from rescore.text import tokens
 
 
@@ -30,6 +31,12 @@ def _cutoffs(text: str | None) -> list[int] | None:
         raise UsageError(
             f"--cutoffs must be comma-separated whole numbers, one per order from 2, got {text!r}"
         ) from None
+
+
+def _lines(paths: list[Path]) -> int | None:
+    """Lines in all the files (None when one is compressed or unreadable)."""
+    counts = [count_lines(p) for p in paths]
+    return None if any(c is None for c in counts) else sum(c or 0 for c in counts)
 
 
 def _vocab_words(path: Path | None) -> list[str] | None:
@@ -70,8 +77,10 @@ def build(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
     )
-    with progress(f"counting and smoothing {len(text)} file(s)"):
-        model.fit(read_corpus(text))
+    lines = _lines(text) if bars_shown() else None
+    with stages(f"lm build ({len(text)} file{'s' if len(text) > 1 else ''})") as report:
+        model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
+                  progress=report)
     save_model(model, output)
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "

@@ -7,7 +7,7 @@ from typing import Annotated, Any
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, progress, table
+from rescore.cli._common import emit_json, guarded, info, pct, stages, table
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
@@ -69,9 +69,10 @@ def report(
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
-    with progress("bootstrap and significance tests"):
+    with stages("report") as report_progress:
         result = build_report(before_pairs, after_pairs, provenance=provenance,
-                              tuning=tuning_data, resamples=resamples, seed=seed)
+                              tuning=tuning_data, resamples=resamples, seed=seed,
+                              progress=report_progress)
     result = with_gate(result, max_wer=max_wer, max_regression=max_regression)
     written = write_report(result, out)
     data = result.to_dict()

@@ -24,6 +24,7 @@ from rescore.lm.counts import OrderCounts
 from rescore.lm.smoothing import OrderStats, Smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
+from rescore.progress import Report, Steps
 
 F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]
@@ -87,15 +88,20 @@ def estimate(
     closed_vocab: bool,
     cutoffs: Sequence[int] | None,
     prune: float | None,
+    progress: Report | None = None,
 ) -> tuple[BackoffTables, dict[str, Any]]:
+    """The back-off tables and metadata; ``progress`` hears of smoothing, pruning and
+    indexing order by order (see :mod:`rescore.progress`)."""
     order = len(counts)
     v = len(vocab)
+    smoothing = Steps(progress, "smoothing", order + 1)
     work = _Work(
         suffix=[c.suffix for c in counts],
         first=[c.first for c in counts],
         prefix=_prefixes(counts, v),
         raw=[c.count.astype(np.float64) for c in counts],
     )
+    smoothing()  # the context of every n-gram found
     predictable = np.ones(v, dtype=bool)
     predictable[BOS_ID] = False
     if closed_vocab:
@@ -131,6 +137,7 @@ def estimate(
             gamma0 = float(gamma[0])
         else:
             work.gamma.append(gamma)
+        smoothing()
     work.gamma.append(np.ones(len(counts[-1])))  # the top order backs off to nothing
 
     p1 = alphas[0] + gamma0 / n_pred
@@ -142,8 +149,8 @@ def estimate(
 
     _mark_kept(work, cut)
     if prune is not None and prune > 0:
-        _entropy_prune(work, prune)
-    tables = _compact(work, vocab)
+        _entropy_prune(work, prune, Steps(progress, "pruning", order - 1))
+    tables = _compact(work, vocab, Steps(progress, "indexing", order))
     meta["uniform_tokens"] = n_pred
     return tables, meta
 
@@ -181,7 +188,7 @@ def _marginals(work: _Work) -> list[F64]:
     return out
 
 
-def _entropy_prune(work: _Work, threshold: float) -> None:
+def _entropy_prune(work: _Work, threshold: float, tick: Steps) -> None:
     """Stolcke (1998): drop n-grams whose removal raises perplexity by less than threshold."""
     order = len(work.raw)
     marg = _marginals(work)
@@ -207,6 +214,7 @@ def _entropy_prune(work: _Work, threshold: float) -> None:
         drop = candidate & (relative < threshold)
         work.keep[k - 1] = keep & ~drop
         changed[k - 2][prefix[drop]] = True
+        tick()
     for k in range(2, order + 1):
         _reweigh(work, k, changed[k - 2])
 
@@ -227,7 +235,7 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
     work.gamma[k - 2] = np.where(contexts, new, work.gamma[k - 2])
 
 
-def _compact(work: _Work, vocab: Vocabulary) -> BackoffTables:
+def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
     order = len(work.raw)
     v = len(vocab)
     logp: list[F64] = []
@@ -244,10 +252,12 @@ def _compact(work: _Work, vocab: Vocabulary) -> BackoffTables:
         if k == 1:
             keys.append(np.zeros(0, dtype=np.uint64))
             slots.append(np.zeros(0, dtype=np.int32))
+            tick()
             continue
         suffix = new_id[work.suffix[k - 1][keep]]
         kk = _keys(suffix, work.first[k - 1][keep], v)
         keys.append(kk)
         slots.append(hashindex.build_slots(kk))
         new_id = np.cumsum(keep) - 1
+        tick()
     return BackoffTables(vocab, logp, bow, keys, slots)

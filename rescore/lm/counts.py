@@ -10,6 +10,7 @@ sorted keys by a shift; otherwise each order is sorted on its own with an invers
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -50,9 +51,14 @@ def window_floor(stream: Stream, closed_vocab: bool) -> I64:
 
 
 def count_ngrams(
-    tokens: I32, floor: I64, order: int, vocab_size: int, *, packed: bool | None = None
+    tokens: I32, floor: I64, order: int, vocab_size: int, *, packed: bool | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> list[OrderCounts]:
-    """The n-gram tables of orders 1..``order`` (index 0 holds the unigrams, dense)."""
+    """The n-gram tables of orders 1..``order`` (index 0 holds the unigrams, dense).
+
+    ``progress`` is called with 1 as each order's table is complete.
+    """
+    tick = progress if progress is not None else _no_progress
     bits = max(int(vocab_size).bit_length(), 1)
     fits = order * bits <= 64
     if packed is None:
@@ -60,8 +66,12 @@ def count_ngrams(
     if packed and not fits:
         raise ValueError(f"{order} ids of {bits} bits do not fit in 64 bits")
     if packed:
-        return _count_packed(tokens, floor, order, vocab_size, bits)
-    return _count_by_order(tokens, floor, order, vocab_size)
+        return _count_packed(tokens, floor, order, vocab_size, bits, tick)
+    return _count_by_order(tokens, floor, order, vocab_size, tick)
+
+
+def _no_progress(n: int) -> None:
+    pass
 
 
 def _run_lengths(sorted_keys: U64) -> tuple[U64, I64]:
@@ -129,7 +139,8 @@ def _window_keys(tokens: I32, floor: I64, order: int, bits: int) -> tuple[U64, i
 
 
 def _count_packed(
-    tokens: I32, floor: I64, order: int, vocab_size: int, bits: int
+    tokens: I32, floor: I64, order: int, vocab_size: int, bits: int,
+    tick: Callable[[int], None],
 ) -> list[OrderCounts]:
     key, m = _window_keys(tokens, floor, order, bits)
     key.sort()
@@ -141,6 +152,7 @@ def _count_packed(
                             << np.uint64(shifts[0]))
     tables = [OrderCounts(np.zeros(vocab_size, np.int64), np.arange(vocab_size, dtype=np.int64),
                           np.diff(edges).astype(np.int64))]
+    tick(1)
     if order == 1 or m == 0:
         empty = np.zeros(0, dtype=np.int64)
         tables += [OrderCounts(empty, empty, empty) for _ in range(order - 1)]
@@ -191,16 +203,19 @@ def _count_packed(
             prev_rank = np.cumsum(valid, out=valid)
             prev_rank -= 1  # prev_rank[g + 1]: id of run g among the listed (k-1)-grams
         tables.append(OrderCounts(suffix, first[keep], cnt))
+        tick(1)
     return tables
 
 
-def _count_by_order(tokens: I32, floor: I64, order: int, vocab_size: int) -> list[OrderCounts]:
+def _count_by_order(tokens: I32, floor: I64, order: int, vocab_size: int,
+                    tick: Callable[[int], None]) -> list[OrderCounts]:
     n = len(tokens)
     pos = np.arange(n, dtype=np.int64)
     ends = pos >= floor
     words = tokens[ends].astype(np.int64)
     unigram_counts = np.bincount(words, minlength=vocab_size).astype(np.int64)
     tables = [_unigrams(np.arange(vocab_size, dtype=np.int64), unigram_counts, vocab_size)]
+    tick(1)
     ids = tokens.astype(np.int64)  # id of the n-gram of the current order ending at each position
     v = np.uint64(vocab_size)
     for k in range(2, order + 1):
@@ -218,4 +233,5 @@ def _count_by_order(tokens: I32, floor: I64, order: int, vocab_size: int) -> lis
             ids = np.full(n, -1, dtype=np.int64)
             ids[at[perm]] = group
         tables.append(OrderCounts((uniq // v).astype(np.int64), (uniq % v).astype(np.int64), cnt))
+        tick(1)
     return tables

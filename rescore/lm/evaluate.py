@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from itertools import islice, tee
 from pathlib import Path
@@ -167,16 +167,29 @@ def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
         return result
 
 
-def read_corpus(paths: str | Path | Iterable[str | Path]) -> Iterator[list[str]]:
-    """One normalised sentence per non-blank line of each file (.gz read transparently)."""
+def read_corpus(paths: str | Path | Iterable[str | Path], *,
+                progress: Callable[[int], None] | None = None) -> Iterator[list[str]]:
+    """One normalised sentence per non-blank line of each file (.gz read transparently).
+
+    ``progress`` is called with the number of lines read since its last call (every few
+    thousand lines and at the end of each file).
+    """
     if isinstance(paths, (str, Path)):
         paths = [paths]
     paths = list(paths)
     sentences = 0
     for path in paths:
-        for _, words in read_corpus_lines(path):
-            sentences += 1
-            yield words
+        number = reported = 0
+        for number, line in iter_text_lines(path):
+            words = tokens(line)
+            if words:
+                sentences += 1
+                yield words
+            if progress is not None and number - reported >= 4096:
+                progress(number - reported)
+                reported = number
+        if progress is not None and number > reported:
+            progress(number - reported)
     if not sentences:  # nothing to train on or measure: say so rather than give a void model
         raise InputError("no sentences (every line is blank or has no words)",
                          path=", ".join(str(p) for p in paths) or None)

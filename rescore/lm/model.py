@@ -25,6 +25,7 @@ from rescore.lm.vocab import (
     remap,
     stream_from_lengths,
 )
+from rescore.progress import Report, Steps
 
 F64 = npt.NDArray[np.float64]
 MAX_ORDER = 6
@@ -84,8 +85,13 @@ class NGramModel:
 
     # --- fitting --------------------------------------------------------------------------
 
-    def fit(self, sentences: Iterable[Sequence[str]]) -> NGramModel:
-        """Learn from token lists (already normalised; ``<s>`` and ``</s>`` are added here)."""
+    def fit(self, sentences: Iterable[Sequence[str]], *,
+            progress: Report | None = None) -> NGramModel:
+        """Learn from token lists (already normalised; ``<s>`` and ``</s>`` are added here).
+
+        ``progress`` (see :mod:`rescore.progress`) hears of the counting and smoothing,
+        order by order.
+        """
         self._check_settings()
         words, counts, body, lengths = first_pass(sentences)
         vocab = Vocabulary.from_words(
@@ -94,10 +100,14 @@ class NGramModel:
         )
         stream = stream_from_lengths(remap(words, vocab)[body], lengths)
         floor = window_floor(stream, self.closed_vocab)
-        ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab))
+        counting = Steps(progress, "counting n-grams", self.order)
+        ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab),
+                                    progress=counting)
+        counting.finish()
         tables, meta = estimate(
             ngram_counts, make_smoother(self.method, self.k), vocab,
             closed_vocab=self.closed_vocab, cutoffs=self.cutoffs, prune=self.prune,
+            progress=progress,
         )
         self._set_fitted(tables, {
             **meta,

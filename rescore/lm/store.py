@@ -5,14 +5,18 @@ Layout: an 8-byte magic, the format version (uint32), reserved (uint32), the hea
 zero padding, the raw little-endian arrays each aligned to 64 bytes, then the sha256 of
 every byte before it (the model's identity for provenance), a CRC-32 of everything before
 the CRC (the integrity check, about twice as fast to verify as the sha256), four zero bytes
-and an 8-byte end mark. Loading reads the file in one call, verifies length, marks,
-version and CRC, then views the arrays in place (read-only).
+and an 8-byte end mark. Loading memory-maps the file (read-only), verifies length, marks,
+version and CRC over the mapped bytes, then views the arrays in place: every table is a
+zero-copy numpy view of the mapping, so processes that load the same file share its pages
+through the operating system's page cache instead of each holding a private copy.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
+import mmap
+import os
 import struct
 import zlib
 from collections.abc import Iterator
@@ -91,16 +95,31 @@ def _bad(path: str | Path, what: str) -> ModelFileError:
     return ModelFileError(f"not a valid rescore model file: {what}", path=str(path))
 
 
-def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
-    """Read, verify and view a native model file: tables, metadata and sha256."""
+def map_file(path: str | Path) -> mmap.mmap:
+    """The whole file mapped read-only (shared with every other mapping of it)."""
     try:
-        data = Path(path).read_bytes()
+        with open(path, "rb") as fh:
+            if os.fstat(fh.fileno()).st_size < _PREAMBLE.size + _TRAILER:
+                raise _bad(path, "unknown file type (no rescore model mark)")
+            # the mapping keeps its own reference to the file; closing fh does not unmap it
+            return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
     except FileNotFoundError:
         raise ModelFileError("file not found", path=str(path)) from None
     except IsADirectoryError:
         raise ModelFileError("is a folder, expected a model file", path=str(path)) from None
     except PermissionError:
         raise ModelFileError("permission denied", path=str(path)) from None
+    except (OSError, ValueError) as exc:
+        raise ModelFileError(f"cannot map the file ({exc})", path=str(path)) from None
+
+
+def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
+    """Map, verify and view a native model file: tables, metadata and sha256.
+
+    The arrays of the returned tables are read-only views of the mapping (nothing is
+    copied or unpickled); the mapping lives as long as any of them does.
+    """
+    data = map_file(path)
     if len(data) < _PREAMBLE.size + _TRAILER or data[:8] != MAGIC:
         raise _bad(path, "unknown file type (no rescore model mark)")
     _, version, _, header_len = _PREAMBLE.unpack_from(data)
@@ -125,8 +144,10 @@ def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
                 raise ValueError(f"array dtype {dtype.str}")
             count = int(np.prod(entry["shape"], dtype=np.int64))
             arrays[entry["name"]] = np.frombuffer(
-                body, dtype=dtype, count=count, offset=start + int(entry["offset"])
+                data, dtype=dtype, count=count, offset=start + int(entry["offset"])
             ).reshape(entry["shape"])
+            if start + int(entry["offset"]) + arrays[entry["name"]].nbytes > len(body):
+                raise ValueError(f"array {entry['name']} runs past the data")
         tables = _tables(int(header["order"]), arrays)
         metadata = header["metadata"]
         if not isinstance(metadata, dict):

@@ -15,6 +15,8 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import InputError
+from rescore.progress import Report as ProgressReport
+from rescore.progress import Steps
 from rescore.report.breakdown import Breakdown, build_breakdown
 from rescore.significance import (
     BootstrapResult,
@@ -242,11 +244,13 @@ def build_report(
     seed: int = DEFAULT_SEED,
     confidence: float = DEFAULT_CONFIDENCE,
     min_run: int = DEFAULT_MIN_RUN,
+    progress: ProgressReport | None = None,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
     ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
-    and ``depth`` are shown when present).
+    and ``depth`` are shown when present). ``progress`` (see :mod:`rescore.progress`)
+    hears of the bootstrap, resample by resample.
     """
     if tuning is not None and not isinstance(tuning, Tuning):
         tuning = tuning_from_dict(tuning)
@@ -260,7 +264,8 @@ def build_report(
     counts_a = counts_from_alignments(al_a)
     wer_b, wer_a = summarise(counts_b), summarise(counts_a)
     boot = paired_bootstrap(counts_b.errors, counts_a.errors, counts_b.reference_words,
-                            resamples=resamples, seed=seed, confidence=confidence)
+                            resamples=resamples, seed=seed, confidence=confidence,
+                            progress=Steps(progress, "bootstrap resamples", resamples))
     mp = matched_pairs(al_b, al_a, min_run=min_run)
     diffs = counts_a.errors - counts_b.errors
     sign = sign_test(diffs)

@@ -17,6 +17,15 @@ LM_WEIGHTS = Weights(1.0, 9.0, 2.0, {"first_pass_lm": 0.5})
 DEMO = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
 
 
+def _generated_with_edit(path: Path, n: int, seed: int, line: int, old: str, new: str) -> Path:
+    """A generated file whose 0-based ``line`` has its first ``old`` replaced by ``new``."""
+    _generate(path, n, seed=seed)
+    lines = path.read_text().splitlines()
+    lines[line] = lines[line].replace(old, new, 1)
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
 def _generate(path: Path, n: int, seed: int = 7) -> None:
     # invented records of the demo scenario's shape, only to exercise the plumbing
     rng = np.random.default_rng(seed)
@@ -120,11 +129,8 @@ def test_duplicate_id_across_shards_is_caught(tmp_path: Path) -> None:
 
 
 def test_bad_record_in_a_worker_names_the_file_and_line(tmp_path: Path) -> None:
-    src = tmp_path / "bad.jsonl"
-    _generate(src, 2000, seed=9)
-    lines = src.read_text().splitlines()
-    lines[1500] = lines[1500].replace('"acoustic"', '"acoustik"', 1)
-    src.write_text("\n".join(lines) + "\n")
+    src = _generated_with_edit(tmp_path / "bad.jsonl", 2000, 9, 1500, '"acoustic"',
+                               '"acoustik"')
     with pytest.raises(InputError) as e:
         pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS, workers=2)
     assert (e.value.path, e.value.line) == (str(src), 1501)
@@ -149,11 +155,8 @@ def test_shard_size_option_on_the_command_line(tmp_path: Path,
 
 def test_reference_missing_in_a_later_shard_names_its_line(tmp_path: Path) -> None:
     # the contract: references on all utterances or on none; the first one without is named
-    src = tmp_path / "mixed.jsonl"
-    _generate(src, 3000, seed=11)
-    lines = src.read_text().splitlines()
-    lines[2500] = lines[2500].replace('"reference": "bay row", ', "", 1)
-    src.write_text("\n".join(lines) + "\n")
+    src = _generated_with_edit(tmp_path / "mixed.jsonl", 3000, 11, 2500,
+                               '"reference": "bay row", ', "")
     single = tmp_path / "single.jsonl"
     with pytest.raises(InputError, match="has no reference although earlier") as one:
         pipeline.apply_file(src, single, models={}, weights=WEIGHTS)

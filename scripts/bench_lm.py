@@ -24,6 +24,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from benchkit import like_the_command_line
 
 from rescore.lm import NGramModel, load_model
 from rescore.lm.counts import count_ngrams, window_floor
@@ -166,6 +167,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--quick", action="store_true", help="small sizes, under a minute")
     args = ap.parse_args()
+    like_the_command_line()
     n_tokens = 400_000 if args.quick else 10_000_000
     slice_tokens = 100_000 if args.quick else 1_000_000
     repeats = REPEATS

@@ -12,6 +12,7 @@ import time
 from collections.abc import Callable
 
 import numpy as np
+from benchkit import like_the_command_line
 
 from rescore.significance import paired_bootstrap
 
@@ -40,6 +41,7 @@ def median_seconds(fn: Callable[[], object], repeats: int) -> float:
 
 def main(argv: list[str]) -> int:
     quick = "--quick" in argv
+    like_the_command_line()
     n, resamples, repeats = (300, 200, 3) if quick else (2000, 1000, 5)
     rng = np.random.default_rng(0)
     words = rng.integers(3, 20, size=n)

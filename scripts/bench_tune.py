@@ -33,6 +33,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
+from benchkit import like_the_command_line
+
 from rescore.scoring import FeatureMatrix, Weights, choose
 from rescore.tune import cross_validate, exact_search, grid_search, tune
 from rescore.wer import word_errors
@@ -130,6 +132,7 @@ def main() -> None:
     parser.add_argument("--quick", action="store_true", help="2,000 utterances, one repeat")
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
+    like_the_command_line()
     n_utt = 2_000 if args.quick else 10_000
     repeats = 1 if args.quick else args.repeats
     matrix, refs, hyps = make_set(n_utt, 20)

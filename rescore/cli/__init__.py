@@ -9,6 +9,7 @@ import typer
 
 from rescore import __version__
 from rescore.cli._common import install_signal_handlers, state
+from rescore.process import avoid_huge_pages
 
 app = typer.Typer(
     name="rescore",
@@ -56,5 +57,6 @@ _register()
 
 
 def main() -> None:
+    avoid_huge_pages()
     install_signal_handlers()
     app()

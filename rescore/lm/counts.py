@@ -11,6 +11,7 @@ sorted keys by a shift; otherwise each order is sorted on its own with an invers
 from __future__ import annotations
 
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -157,54 +158,78 @@ def _count_packed(
         empty = np.zeros(0, dtype=np.int64)
         tables += [OrderCounts(empty, empty, empty) for _ in range(order - 1)]
         return tables
-    # the highest differing bit between neighbours tells which orders start a new run there
-    diff = np.empty(m, dtype=np.uint64)
-    diff[0] = np.uint64(0xFFFFFFFFFFFFFFFF)
-    np.bitwise_xor(key[1:], key[:-1], out=diff[1:])
-    top = np.flatnonzero(diff)  # runs of the top order; every lower run starts at one of them
-    top_diff = diff[top]
-    del diff
+    # runs of the top order start where neighbouring sorted keys differ; every lower order's
+    # run starts at one of them, where the two keys differ in that order's lanes
+    flag = np.empty(m, dtype=bool)
+    flag[0] = True
+    np.not_equal(key[1:], key[:-1], out=flag[1:])
+    top = np.flatnonzero(flag)
+    del flag
     top_key = key[top]
     del key
-    prev_new: npt.NDArray[np.bool_] | None = None
-    prev_rank: I64 | None = None
-    new: npt.NDArray[np.bool_] | None
-    at: I64 | None
-    for k in range(2, order + 1):
-        if k == order:
-            new = at = None
-            starts = top
-            uk = top_key
-        else:
-            new = top_diff >= np.uint64(1 << shifts[k - 1])
-            at = np.flatnonzero(new)
-            starts = top[at]
-            uk = top_key[at] >> np.uint64(shifts[k - 1])
-        first = (uk & filler).view(np.int64)
-        keep = np.flatnonzero(first != np.int64(filler))
-        starts_kept = starts[keep]
-        ends = np.empty(len(starts), dtype=np.int64)
-        ends[:-1] = starts[1:]
-        ends[-1] = m
-        cnt = ends[keep]
-        cnt -= starts_kept
-        if k == 2:
-            suffix = (uk[keep] >> np.uint64(bits)).view(np.int64)
-        else:
-            assert prev_new is not None and prev_rank is not None
-            # the (k-1)-gram run each kept k-gram run lies in, then its id among the listed
-            below = prev_new if at is None else prev_new[at]
-            group = np.cumsum(below, dtype=np.int64)[keep]
-            suffix = prev_rank[group]
-        if new is not None:
-            prev_new = new
-            valid = np.zeros(len(starts) + 1, dtype=np.int64)
-            valid[keep + 1] = 1
-            prev_rank = np.cumsum(valid, out=valid)
-            prev_rank -= 1  # prev_rank[g + 1]: id of run g among the listed (k-1)-grams
-        tables.append(OrderCounts(suffix, first[keep], cnt))
-        tick(1)
+    top_diff = np.empty(len(top), dtype=np.uint64)
+    top_diff[0] = np.uint64(0xFFFFFFFFFFFFFFFF)
+    np.bitwise_xor(top_key[1:], top_key[:-1], out=top_diff[1:])
+    runs = _Runs(top, top_key, top_diff, m, order, bits, filler, shifts)
+    # the orders are independent given the runs; numpy releases the GIL in these whole-array
+    # operations, so two threads keep both cores of a small machine busy
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        levels = list(pool.map(runs.level, range(2, order + 1)))
+        for table in pool.map(lambda k: runs.table(k, levels), range(2, order + 1)):
+            tables.append(table)
+            tick(1)
     return tables
+
+
+@dataclass(frozen=True)
+class _Level:
+    """The runs of one order k among the top-order runs, before padded n-grams are dropped."""
+
+    new: npt.NDArray[np.bool_] | None  # which top runs start a k-run (None: all, k = order)
+    starts: I64  # where each k-run starts in the sorted keys
+    keys: U64  # each k-run's key: the top k lanes
+    first: I64  # each k-run's first word (the filler when the window began before <s>)
+    kept: npt.NDArray[np.bool_]  # runs that are real n-grams (first word not the filler)
+
+
+@dataclass(frozen=True)
+class _Runs:
+    top: I64
+    top_key: U64
+    top_diff: U64
+    m: int
+    order: int
+    bits: int
+    filler: np.uint64
+    shifts: list[int]
+
+    def level(self, k: int) -> _Level:
+        if k == self.order:
+            new, starts, keys = None, self.top, self.top_key
+        else:
+            new = self.top_diff >= np.uint64(1 << self.shifts[k - 1])
+            starts, keys = self.top[new], self.top_key[new] >> np.uint64(self.shifts[k - 1])
+        first = (keys & self.filler).view(np.int64)
+        return _Level(new, starts, keys, first, first != np.int64(self.filler))
+
+    def table(self, k: int, levels: list[_Level]) -> OrderCounts:
+        lv = levels[k - 2]
+        count = np.empty(len(lv.starts), dtype=np.int64)
+        np.subtract(lv.starts[1:], lv.starts[:-1], out=count[:-1])
+        count[-1] = self.m - lv.starts[-1]
+        if k == 2:
+            suffix = (lv.keys[lv.kept] >> np.uint64(self.bits)).view(np.int64)
+        else:
+            below = levels[k - 3]
+            assert below.new is not None
+            # the (k-1)-run each k-run lies in, then that run's id among the listed (k-1)-grams
+            inside = below.new if lv.new is None else below.new[lv.new]
+            group = np.cumsum(inside, dtype=np.int64)
+            group -= 1
+            rank = np.cumsum(below.kept, dtype=np.int64)
+            rank -= 1
+            suffix = rank[group[lv.kept]]
+        return OrderCounts(suffix, lv.first[lv.kept], count[lv.kept])
 
 
 def _count_by_order(tokens: I32, floor: I64, order: int, vocab_size: int,

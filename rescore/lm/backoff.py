@@ -42,17 +42,21 @@ class _Work:
     prob: list[F64] = field(default_factory=list)
     gamma: list[F64] = field(default_factory=list)  # gamma[k-1]: over order-k n-grams
     keep: list[B] = field(default_factory=list)
+    # hash slots of the unpruned keys of some orders, built while finding contexts; the
+    # final tables reuse them where an order and every order below it lose nothing
+    slots: dict[int, npt.NDArray[np.int32]] = field(default_factory=dict)
 
 
 def _keys(suffix: I64, first: I64, v: int) -> npt.NDArray[np.uint64]:
     return suffix.astype(np.uint64) * np.uint64(v) + first.astype(np.uint64)
 
 
-def _prefixes(counts: list[OrderCounts], v: int) -> list[I64]:
-    """For each n-gram the id of its context (its first k-1 words) among the (k-1)-grams."""
+def _prefixes(counts: list[OrderCounts], v: int
+              ) -> tuple[list[I64], dict[int, npt.NDArray[np.int32]]]:
+    """For each n-gram the id of its context (its first k-1 words) among the (k-1)-grams,
+    and the hash slots built on the way (orders 2 to N-1: the contexts of the next order)."""
     prefix = [np.zeros(v, dtype=np.int64)]
-    slots = [np.zeros(0, np.int32)] + [hashindex.build_slots(_keys(c.suffix, c.first, v))
-                                       for c in counts[1:]]
+    slots: dict[int, npt.NDArray[np.int32]] = {}
     for k in range(2, len(counts) + 1):
         c = counts[k - 1]
         if k == 2:
@@ -61,9 +65,10 @@ def _prefixes(counts: list[OrderCounts], v: int) -> list[I64]:
         # the context of w1..wk is w1 + (context of its suffix w2..wk)
         q = _keys(prefix[k - 2][c.suffix], c.first, v)
         lower = counts[k - 2]
-        got = hashindex.lookup(slots[k - 2], _keys(lower.suffix, lower.first, v), q)
-        prefix.append(got)
-    return prefix
+        lower_keys = _keys(lower.suffix, lower.first, v)
+        slots[k - 1] = hashindex.build_slots(lower_keys)
+        prefix.append(hashindex.lookup(slots[k - 1], lower_keys, q))
+    return prefix, slots
 
 
 def _used_counts(work: _Work, smoother: Smoother, k: int, order: int) -> F64:
@@ -95,11 +100,13 @@ def estimate(
     order = len(counts)
     v = len(vocab)
     smoothing = Steps(progress, "smoothing", order + 1)
+    prefixes, slots = _prefixes(counts, v)
     work = _Work(
         suffix=[c.suffix for c in counts],
         first=[c.first for c in counts],
-        prefix=_prefixes(counts, v),
+        prefix=prefixes,
         raw=[c.count.astype(np.float64) for c in counts],
+        slots=slots,
     )
     smoothing()  # the context of every n-gram found
     predictable = np.ones(v, dtype=bool)
@@ -243,6 +250,7 @@ def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
     keys: list[npt.NDArray[np.uint64]] = []
     slots: list[npt.NDArray[np.int32]] = []
     new_id: I64 = np.arange(v, dtype=np.int64)
+    whole = True  # no order so far lost an n-gram: ids and keys are those of the counts
     for k in range(1, order + 1):
         keep = work.keep[k - 1]
         with np.errstate(divide="ignore"):
@@ -257,7 +265,9 @@ def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
         suffix = new_id[work.suffix[k - 1][keep]]
         kk = _keys(suffix, work.first[k - 1][keep], v)
         keys.append(kk)
-        slots.append(hashindex.build_slots(kk))
+        whole = whole and bool(keep.all())
+        built = work.slots.get(k) if whole else None
+        slots.append(built if built is not None else hashindex.build_slots(kk))
         new_id = np.cumsum(keep) - 1
         tick()
     return BackoffTables(vocab, logp, bow, keys, slots)

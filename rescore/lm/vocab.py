@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import array
 from collections import defaultdict
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from itertools import chain, repeat
 
@@ -95,18 +95,24 @@ def encode(vocab: Vocabulary, sentences: Iterable[Sequence[str]]) -> tuple[Strea
     return stream_from_lengths(ids, lens), oov
 
 
+def _noting_lengths(sentences: Iterable[Sequence[str]], lengths: array.array[int]
+                    ) -> Iterator[Sequence[str]]:
+    for sent in sentences:
+        lengths.append(len(sent))
+        yield sent
+
+
 def first_pass(sentences: Iterable[Sequence[str]]) -> tuple[list[str], I64, I32, I64]:
     """Read the corpus once: provisional word list, word counts, id body and lengths."""
     provisional: defaultdict[str, int] = defaultdict()
     provisional.default_factory = provisional.__len__  # a new word gets the next id
     for special in SPECIALS:
         provisional[special]
-    body = array.array("i")
     lengths = array.array("q")
-    for sent in sentences:
-        body.extend([provisional[w] for w in sent])
-        lengths.append(len(sent))
-    ids = np.frombuffer(body, dtype=np.int32).copy() if len(body) else np.zeros(0, np.int32)
+    # one C-level dict probe per token (a new word gets its id from __missing__); Python
+    # runs once per sentence, only to note its length
+    tokens_of = chain.from_iterable(_noting_lengths(sentences, lengths))
+    ids = np.fromiter(map(provisional.__getitem__, tokens_of), dtype=np.int32)
     words = list(provisional)
     counts = np.bincount(ids, minlength=len(words)).astype(np.int64)
     lens = np.frombuffer(lengths, dtype=np.int64).copy() if len(lengths) else np.zeros(0, np.int64)

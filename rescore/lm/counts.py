@@ -231,11 +231,13 @@ class _Runs:
         else:
             below = levels[k - 3]
             assert below.new is not None
-            # the (k-1)-run each k-run lies in, then that run's id among the listed (k-1)-grams
+            # the (k-1)-run each k-run lies in (counted from 1, in 32 bits while the keys are
+            # fewer than 2**31), then that run's id among the listed (k-1)-grams
             inside = below.new if lv.new is None else below.new[lv.new]
-            group = np.cumsum(inside, dtype=np.int64)
-            group -= 1
-            rank = np.cumsum(below.kept, dtype=np.int64)
+            group = np.cumsum(inside, dtype=np.int32 if self.m < 2**31 else np.int64)
+            rank = np.empty(len(below.kept) + 1, dtype=np.int64)
+            rank[0] = -1
+            np.cumsum(below.kept, out=rank[1:])
             rank -= 1
             suffix = rank[group[lv.kept]]
         return OrderCounts(suffix, lv.first[lv.kept], count[lv.kept])

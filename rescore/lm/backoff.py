@@ -13,6 +13,7 @@ the tables stay closed under both.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -55,19 +56,20 @@ def _prefixes(counts: list[OrderCounts], v: int
               ) -> tuple[list[I64], dict[int, npt.NDArray[np.int32]]]:
     """For each n-gram the id of its context (its first k-1 words) among the (k-1)-grams,
     and the hash slots built on the way (orders 2 to N-1: the contexts of the next order)."""
+    order = len(counts)
+    keys = {k: _keys(counts[k - 1].suffix, counts[k - 1].first, v) for k in range(2, order)}
+    # the tables of the context orders are independent: built on two threads
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        slots = dict(zip(keys, pool.map(hashindex.build_slots, keys.values()), strict=True))
     prefix = [np.zeros(v, dtype=np.int64)]
-    slots: dict[int, npt.NDArray[np.int32]] = {}
-    for k in range(2, len(counts) + 1):
+    for k in range(2, order + 1):
         c = counts[k - 1]
         if k == 2:
             prefix.append(c.first.copy())
             continue
         # the context of w1..wk is w1 + (context of its suffix w2..wk)
         q = _keys(prefix[k - 2][c.suffix], c.first, v)
-        lower = counts[k - 2]
-        lower_keys = _keys(lower.suffix, lower.first, v)
-        slots[k - 1] = hashindex.build_slots(lower_keys)
-        prefix.append(hashindex.lookup(slots[k - 1], lower_keys, q))
+        prefix.append(hashindex.lookup(slots[k - 1], keys[k - 1], q))
     return prefix, slots
 
 
@@ -245,29 +247,34 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
 def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
     order = len(work.raw)
     v = len(vocab)
+    # ids of the kept n-grams of each order (the unigrams are all kept)
+    new_ids: list[I64] = [np.arange(v, dtype=np.int64)]
+    for k in range(2, order):
+        new_ids.append(np.cumsum(work.keep[k - 1]) - 1)
+    whole = np.logical_and.accumulate([bool(keep.all()) for keep in work.keep])
+
+    def index(k: int) -> tuple[npt.NDArray[np.uint64], npt.NDArray[np.int32]]:
+        if k == 1:
+            return np.zeros(0, dtype=np.uint64), np.zeros(0, dtype=np.int32)
+        keep = work.keep[k - 1]
+        kk = _keys(new_ids[k - 2][work.suffix[k - 1][keep]], work.first[k - 1][keep], v)
+        # no order up to k lost an n-gram: ids and keys are those of the counts
+        built = work.slots.get(k) if whole[k - 1] else None
+        return kk, built if built is not None else hashindex.build_slots(kk)
+
     logp: list[F64] = []
     bow: list[F64] = []
     keys: list[npt.NDArray[np.uint64]] = []
     slots: list[npt.NDArray[np.int32]] = []
-    new_id: I64 = np.arange(v, dtype=np.int64)
-    whole = True  # no order so far lost an n-gram: ids and keys are those of the counts
-    for k in range(1, order + 1):
-        keep = work.keep[k - 1]
-        with np.errstate(divide="ignore"):
-            logp.append(np.log(work.prob[k - 1][keep]))
-            if k < order:
-                bow.append(np.log(work.gamma[k - 1][keep]))
-        if k == 1:
-            keys.append(np.zeros(0, dtype=np.uint64))
-            slots.append(np.zeros(0, dtype=np.int32))
+    # the orders' hash tables are independent; numpy releases the GIL while building them
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        for k, (kk, ss) in enumerate(pool.map(index, range(1, order + 1)), 1):
+            keep = work.keep[k - 1]
+            with np.errstate(divide="ignore"):
+                logp.append(np.log(work.prob[k - 1][keep]))
+                if k < order:
+                    bow.append(np.log(work.gamma[k - 1][keep]))
+            keys.append(kk)
+            slots.append(ss)
             tick()
-            continue
-        suffix = new_id[work.suffix[k - 1][keep]]
-        kk = _keys(suffix, work.first[k - 1][keep], v)
-        keys.append(kk)
-        whole = whole and bool(keep.all())
-        built = work.slots.get(k) if whole else None
-        slots.append(built if built is not None else hashindex.build_slots(kk))
-        new_id = np.cumsum(keep) - 1
-        tick()
     return BackoffTables(vocab, logp, bow, keys, slots)

@@ -15,6 +15,7 @@ look-ups per token, each one batched over the whole input.
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -56,8 +57,18 @@ class BackoffTables:
         """Index among the order-``k`` n-grams of each key, or -1."""
         held = self._held.get(k)
         if held is None:
-            held = self._held[k] = hashindex.slot_keys(self.slots[k - 1], self.keys[k - 1])
+            self._hold_all()
+            held = self._held[k]
         return hashindex.lookup_slotted(self.slots[k - 1], held, queries)
+
+    def _hold_all(self) -> None:
+        """Derive the slot-ordered keys of every order from 2, on two threads (numpy
+        releases the GIL while filling them): a batch soon needs every order."""
+        todo = [k for k in range(2, self.order + 1) if k not in self._held]
+        with ThreadPoolExecutor(max_workers=2) as pool:
+            held = pool.map(lambda k: hashindex.slot_keys(self.slots[k - 1], self.keys[k - 1]),
+                            todo)
+            self._held.update(zip(todo, held, strict=True))
 
     def key(self, ids: I64, first: I64 | npt.NDArray[np.int32]) -> U64:
         return ids.astype(np.uint64) * np.uint64(self.vsize) + first.astype(np.uint64)

@@ -18,7 +18,7 @@ import numpy as np
 
 from rescore.errors import InputError
 from rescore.nbest import Utterance
-from rescore.text import tokens, tokens_many
+from rescore.text import tokens, tokens_many, word_counts
 from rescore.wer import word_errors
 
 ACOUSTIC = "acoustic"
@@ -167,7 +167,7 @@ class Batch:
     """Utterances with their tokenised hypotheses and the matrix built from them."""
 
     matrix: FeatureMatrix
-    tokens: list[list[str]]
+    tokens: Sequence[list[str]]
 
 
 def _first_missing(items: Sequence[tuple[int, Utterance]], name: str) -> tuple[int, int]:
@@ -202,7 +202,7 @@ def build_matrix(
     toks = tokens_many([hyp["text"] for hyp in hyps])
     values[:, 0] = [hyp["acoustic"] for hyp in hyps]
     first_feature = 1 + len(lms) + 1
-    values[:, first_feature - 1] = [len(words) for words in toks]
+    values[:, first_feature - 1] = word_counts(toks)
     for j, name in enumerate(features):
         try:
             values[:, first_feature + j] = [hyp["features"][name] for hyp in hyps]

@@ -5,7 +5,7 @@ from __future__ import annotations
 import unicodedata
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from rescore.text import normalise, tokens
@@ -65,4 +65,20 @@ def test_tokens_many_equals_tokens_one_by_one(texts: list[str]) -> None:
     # the batch fast path must agree with the per-text rule, newlines inside texts included
     from rescore.text import tokens_many
 
-    assert tokens_many(texts) == [tokens(t) for t in texts]
+    assert list(tokens_many(texts)) == [tokens(t) for t in texts]
+
+
+@settings(max_examples=300)
+@given(st.lists(st.text(alphabet=st.sampled_from(list("ab Zy\t\x0b\x0c\r\x1c\x1f  ")),
+                        max_size=12), max_size=8))
+def test_batch_split_equals_text_by_text(texts: list[str]) -> None:
+    # the one-pass split of a plain ASCII batch must give what normalising each text
+    # alone gives (Python's str.split: any ASCII whitespace separates words)
+    from rescore.text import Words, tokens_many, word_counts
+
+    got = tokens_many(texts)
+    want = [tokens(t) for t in texts]
+    assert list(got) == want
+    assert word_counts(got).tolist() == [len(w) for w in want]
+    if isinstance(got, Words) and texts:
+        assert got[-1] == want[-1] and got[0:2] == want[0:2]

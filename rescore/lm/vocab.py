@@ -17,6 +17,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import UsageError
+from rescore.text import Words, word_counts
 
 BOS, EOS, UNK = "<s>", "</s>", "<unk>"
 BOS_ID, EOS_ID, UNK_ID = 0, 1, 2
@@ -84,11 +85,11 @@ def stream_from_lengths(body: I32, lengths: I64) -> Stream:
 def encode(vocab: Vocabulary, sentences: Iterable[Sequence[str]]) -> tuple[Stream, int]:
     """The padded id stream of ``sentences`` and the number of out-of-vocabulary words."""
     sents = sentences if isinstance(sentences, Sequence) else list(sentences)
-    lens = np.fromiter(map(len, sents), dtype=np.int64, count=len(sents))
+    lens = word_counts(sents)
     total = int(lens.sum())
     # one C-level dict probe per token: map() calls index.get(word, UNK_ID) without a frame
-    ids = np.fromiter(map(vocab.index.get, chain.from_iterable(sents), repeat(UNK_ID)),
-                      dtype=np.int32, count=total)
+    flat = sents.flat if isinstance(sents, Words) else chain.from_iterable(sents)
+    ids = np.fromiter(map(vocab.index.get, flat, repeat(UNK_ID)), dtype=np.int32, count=total)
     # the literal reserved words in text are unknown words, not sentence marks
     ids[ids <= EOS_ID] = UNK_ID
     oov = int(np.count_nonzero(ids == UNK_ID))

@@ -357,6 +357,10 @@ def _check_record(path: str | Path, number: int, utt: Utterance, limits: ReadLim
     _check_chars(path, number, "id", utt["id"], limits)
     if "reference" in utt:
         _check_chars(path, number, "reference", utt["reference"], limits)
+    # no text longer than both caps: neither can be broken (one word takes one character)
+    if max(map(len, [hyp["text"] for hyp in hyps]), default=0) <= min(limits.max_chars,
+                                                                      limits.max_words):
+        return
     for i, hyp in enumerate(hyps):
         text = hyp["text"]
         _check_chars(path, number, f"hypotheses[{i}].text", text, limits)

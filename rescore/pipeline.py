@@ -265,20 +265,20 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     vector = _weight_vector(weights, m)
     total = m.values @ vector
     best = segment_argmax(total, m.offsets) - m.offsets[:-1]
-    main_lm = m.names.index(LM) if LM in m.names else None
-    words = m.values[:, m.names.index("words")]
-    out: list[Utterance] = []
-    row = 0
-    for u, (_, utt) in enumerate(batch):
-        for hyp in utt["hypotheses"]:
-            if main_lm is not None:
-                hyp["lm"] = float(m.values[row, main_lm])
-            hyp["words"] = int(words[row])
-            hyp["total"] = float(total[row])
-            row += 1
-        utt["best"] = int(best[u])
-        out.append(utt)
-    return out
+    # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
+    words = m.values[:, m.names.index("words")].astype(np.int64).tolist()
+    totals = total.tolist()
+    hyps = [hyp for _, utt in batch for hyp in utt["hypotheses"]]
+    if LM in m.names:
+        for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, totals,
+                                 strict=True):
+            hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
+    else:
+        for hyp, w, t in zip(hyps, words, totals, strict=True):
+            hyp["words"], hyp["total"] = w, t
+    for (_, utt), b in zip(batch, best.tolist(), strict=True):
+        utt["best"] = b
+    return [utt for _, utt in batch]
 
 
 def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import xxhash
 
 from rescore.errors import ModelFileError
 from rescore.lm import NGramModel, load_model, save_model
@@ -33,12 +34,12 @@ def test_round_trip_gives_identical_scores(saved: tuple[NGramModel, Path]) -> No
     # bit-identical scores (exact equality, no tolerance; derivation from the layout)
     np.testing.assert_array_equal(loaded.logprob(probe), model.logprob(probe))
     # the identity is the sha256 (FIPS 180-4, Python's hashlib) of every byte before the
-    # 48-byte trailer (digest 32, CRC 4, zeros 4, end mark 8), also recomputed in memory;
-    # the CRC-32 (zlib) covers everything before it
+    # 48-byte trailer (digest 32, XXH3-64 8, end mark 8), also recomputed in memory; the
+    # XXH3-64 check (xxhash library) covers everything before it
     data = path.read_bytes()
     assert loaded.checksum == model.checksum == hashlib.sha256(data[:-48]).hexdigest()
     assert data[-48:-16] == bytes.fromhex(model.checksum)
-    assert struct.unpack("<I", data[-16:-12])[0] == zlib.crc32(data[:-16])
+    assert struct.unpack("<Q", data[-16:-8])[0] == xxhash.xxh3_64_intdigest(data[:-16])
     assert loaded.metadata["discounts"] == model.metadata["discounts"]
     assert loaded.order_ == 3 and loaded.vocab_.words == model.vocab_.words
 
@@ -54,8 +55,8 @@ def test_checksum_is_content_not_name(saved: tuple[NGramModel, Path], tmp_path: 
 
 @pytest.mark.parametrize("where", [0.01, 0.3, 0.6, 0.99])
 def test_flipped_byte_is_refused(saved: tuple[NGramModel, Path], where: float) -> None:
-    # XOR 0x40 flips one bit; a CRC-32 detects every single-bit error (its generator has
-    # more than one term, from memory), and the magic, version and end mark are checked too
+    # XOR 0x40 flips one bit; a 64-bit hash of the content misses a change with probability
+    # about 2**-64 (from memory), and the magic, version and end mark are checked too
     _, path = saved
     data = bytearray(path.read_bytes())
     data[int(where * (len(data) - 1))] ^= 0x40
@@ -136,18 +137,21 @@ def _with_version(data: bytes, version: int) -> bytes:
     """The same file with another format version and its checksums made to match again.
 
     Layout from the rescore.lm.store docstring: magic (8 bytes), version (uint32 LE), ...;
-    the trailer is sha256 of everything before it (32), CRC-32 of everything before the
-    CRC (4), four zero bytes and an 8-byte end mark.
+    the trailer is sha256 of everything before it (32), the integrity check of everything
+    before it (8: format 1 a CRC-32 and four zero bytes, format 2 an XXH3-64) and an 8-byte
+    end mark.
     """
     import hashlib
     import struct
-    import zlib
 
     body = bytearray(data[:-48])
     body[8:12] = struct.pack("<I", version)
     sha = hashlib.sha256(body).digest()
-    crc = zlib.crc32(bytes(body) + sha)
-    return bytes(body) + sha + struct.pack("<I", crc) + data[-12:]
+    if version == 1:
+        check = struct.pack("<I", zlib.crc32(bytes(body) + sha)) + b"\0" * 4
+    else:
+        check = struct.pack("<Q", xxhash.xxh3_64_intdigest(bytes(body) + sha))
+    return bytes(body) + sha + check + data[-8:]
 
 
 def test_other_format_version_is_refused_clearly(saved: tuple[NGramModel, Path]) -> None:
@@ -155,12 +159,12 @@ def test_other_format_version_is_refused_clearly(saved: tuple[NGramModel, Path])
     # as a wrong model; only the version differs here, the checksums are valid.
     _, path = saved
     original = path.read_bytes()
-    assert _with_version(original, 1) == original  # the rebuild changes nothing else
-    path.write_bytes(_with_version(original, 2))
+    assert _with_version(original, 2) == original  # the rebuild changes nothing else
+    path.write_bytes(_with_version(original, 3))
     with pytest.raises(ModelFileError) as info:
         load_model(path)
-    assert str(info.value) == (f"{path}: not a valid rescore model file: format version 2, "
-                               "this program reads 1")
+    assert str(info.value) == (f"{path}: not a valid rescore model file: format version 3, "
+                               "this program reads 1 and 2")
 
 
 def _mapping_of(arr: np.ndarray) -> object:
@@ -212,3 +216,37 @@ def test_loading_never_unpickles(saved: tuple[NGramModel, Path],
         monkeypatch.setattr(pickle, name, refuse)
     model, path = saved
     assert load_model(path).checksum == model.checksum
+
+
+def test_format_1_without_held_keys_still_reads_the_same(saved: tuple[NGramModel, Path],
+                                                        tmp_path: Path) -> None:
+    # format 1 (before the held keys were stored) is read, deriving them on first use;
+    # the file is rebuilt here as format 1 wrote it: the same arrays less held{k}
+    from rescore.lm import store
+
+    model, path = saved
+    tables = model.tables_
+    arrays = [(n, a) for n, a in store._arrays(tables) if not n.startswith("held")]
+    old = tmp_path / "v1.lm"
+    real_arrays = store._arrays
+    try:
+        store._arrays = lambda t: arrays  # type: ignore[assignment]
+        store.save(tables, {"method": "mkn"}, old)
+    finally:
+        store._arrays = real_arrays
+    old.write_bytes(_with_version(old.read_bytes(), 1))  # format 1's trailer: CRC-32
+    assert old.read_bytes()[8:12] == (1).to_bytes(4, "little")
+    v1, _, _ = store.load(old)
+    assert not v1._held  # nothing given: derived on first use
+    assert np.array_equal(v1.score_ngrams(np.array([[-1, 3, 4]])),
+                          tables.score_ngrams(np.array([[-1, 3, 4]])))
+    v2, _, _ = store.load(path)
+    assert set(v2._held) == set(range(2, tables.order + 1))  # given by the file
+    for k in range(2, tables.order + 1):
+        assert np.array_equal(v1.held_keys(k), v2.held_keys(k))
+    # format 1's own check (CRC-32) still guards it
+    damaged = bytearray(old.read_bytes())
+    damaged[len(damaged) // 2] ^= 0x40
+    old.write_bytes(bytes(damaged))
+    with pytest.raises(ModelFileError, match="checksum mismatch"):
+        store.load(old)

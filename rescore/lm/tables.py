@@ -55,11 +55,23 @@ class BackoffTables:
 
     def find(self, k: int, queries: U64) -> I64:
         """Index among the order-``k`` n-grams of each key, or -1."""
+        return hashindex.lookup_slotted(self.slots[k - 1], self.held_keys(k), queries)
+
+    def held_keys(self, k: int) -> U64:
+        """The key held in each hash slot of order ``k`` (derived once, or given by the
+        model file)."""
         held = self._held.get(k)
         if held is None:
             self._hold_all()
             held = self._held[k]
-        return hashindex.lookup_slotted(self.slots[k - 1], held, queries)
+        return held
+
+    def give_held_keys(self, held: dict[int, U64]) -> None:
+        """Slot-ordered keys read from a model file, so they need not be derived."""
+        for k, arr in held.items():
+            if len(arr) != len(self.slots[k - 1]):
+                raise ValueError(f"order {k} held keys")
+        self._held.update(held)
 
     def _hold_all(self) -> None:
         """Derive the slot-ordered keys of every order from 2, on two threads (numpy

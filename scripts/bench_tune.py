@@ -158,6 +158,8 @@ def main() -> None:
           f"(median {statistics.median(slow_times) * 1e3:.0f} ms a point x 10,000, "
           f"{len(probe)} points timed, errors equal); ratio {slow / fast:.0f}x; "
           f"best {result.dev_errors} errors, WER {result.dev_wer:.4f}")
+    print(f"  {verdict(fast, n_utt, limit=10)}; ratio {slow / fast:.0f}x (target >= 50: "
+          f"{'met' if slow / fast >= 50 else 'NOT met'})")
 
     tuned = ("lm", "words", "f1", "f2")
     found = exact_search(matrix, tune=tuned, start=Weights())

@@ -141,7 +141,8 @@ def run_shard(task: ShardTask) -> ShardResult:
         for batch in batches(records(), task.batch_size):
             scored = rescore_batch(batch, path=task.display_path, lms=lms,
                                    features=task.features, weights=task.weights)
-            changed += write_scored(scored, fh, tsv)
+            changed += write_scored(scored, fh, tsv, path=task.display_path,
+                                    lines=[line for line, _ in batch])
     return ShardResult(np.frombuffer(lines, dtype=np.int64).copy(),
                        np.frombuffer(digests, dtype=np.int64).copy(),
                        np.frombuffer(has_ref, dtype=np.bool_).copy(), changed)

@@ -217,7 +217,8 @@ def apply_file(
                                         limits=limits), batch_size):
             scored = rescore_batch(batch, path=str(path), lms=lms, features=features,
                                    weights=weights)
-            changed += write_scored(scored, written[0], tsv)
+            changed += write_scored(scored, written[0], tsv, path=str(path),
+                                    lines=[line for line, _ in batch])
             read += len(batch)
             log.info("rescored lines %d-%d (%d utterances so far)", batch[0][0], batch[-1][0],
                      read)
@@ -238,13 +239,31 @@ def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
                               "report it)", path=path)
 
 
-def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None) -> int:
-    """Write rescored records (and their 1-best text); returns how many changed 1-best."""
+def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None, *,
+                 path: str = "", lines: Sequence[int] = ()) -> int:
+    """Write rescored records (and their 1-best text); returns how many changed 1-best.
+
+    ``path`` and ``lines`` (the records' line numbers) name an id that the ``id<TAB>text``
+    file cannot hold.
+    """
+    if tsv is not None:
+        _check_tsv_ids(scored, path, lines)
     fh.write("".join(dumps(utt) + "\n" for utt in scored))
     if tsv is not None:
         tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
                           for utt in scored))
     return sum(1 for utt in scored if utt.get("best", 0) != 0)
+
+
+def _check_tsv_ids(scored: Sequence[Utterance], path: str, lines: Sequence[int]) -> None:
+    ids = "".join(utt["id"] for utt in scored)
+    if "\t" not in ids and "\n" not in ids and "\r" not in ids:
+        return
+    for i, utt in enumerate(scored):
+        if any(c in utt["id"] for c in "\t\n\r"):
+            raise InputError("contains a tab or line break, which an id<TAB>text file "
+                             "(--text) cannot hold", path=path or None,
+                             line=lines[i] if i < len(lines) else None, field="id")
 
 
 def _one_line(text: str) -> str:

@@ -28,8 +28,9 @@ WEIGHTS = Weights(1.0, 0.0, 0.0, {})
 def _drop_last(real: Callable[..., int]) -> Callable[..., int]:
     """A writer that loses the last record of every batch (the fault under test)."""
 
-    def write(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None) -> int:
-        return real(list(scored)[:-1], fh, tsv)
+    def write(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None,
+              **where: Any) -> int:
+        return real(list(scored)[:-1], fh, tsv, **where)
 
     return write
 
@@ -54,7 +55,8 @@ def test_apply_counts_the_lines_that_reach_the_text_file(tmp_path: Path,
     # the JSON output is whole; only the TSV loses a line: still refused, nothing kept
     real = pipeline.write_scored
 
-    def lossy_tsv(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None) -> int:
+    def lossy_tsv(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None,
+                  **where: Any) -> int:
         changed = real(scored, fh, None)
         if tsv is not None:
             real(list(scored)[1:], _Discard(), tsv)
@@ -124,6 +126,26 @@ def test_text_output_keeps_one_line_per_utterance(tmp_path: Path) -> None:
     tsv = tmp_path / "out.tsv"
     pipeline.apply_file(src, tmp_path / "out.jsonl", models={}, weights=WEIGHTS, text_path=tsv)
     assert tsv.read_bytes() == b"u1\tvent bay three \n"
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_id_with_a_tab_is_refused_for_the_text_file(tmp_path: Path, workers: int) -> None:
+    # a JSON id may hold a tab (valid JSON), but an id<TAB>text line cannot (the contract's
+    # transcript format): a clear input error naming the line, not an accounting defect
+    from rescore.errors import InputError
+
+    src = tmp_path / "tab.jsonl"
+    src.write_text('{"id": "u1", "hypotheses": [{"text": "vent", "acoustic": -1.0}]}\n'
+                   '{"id": "u\\t2", "hypotheses": [{"text": "bay", "acoustic": -1.0}]}\n')
+    out, tsv = tmp_path / "out.jsonl", tmp_path / "out.tsv"
+    with pytest.raises(InputError, match="tab or line break") as info:
+        pipeline.apply_file(src, out, models={}, weights=WEIGHTS, text_path=tsv,
+                            workers=workers)
+    assert (info.value.line, info.value.field) == (2, "id")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["tab.jsonl"]
+    # without --text the same file is fine
+    pipeline.apply_file(src, out, models={}, weights=WEIGHTS)
+    assert out.read_text().count("\n") == 2
 
 
 def test_wer_of_transcripts_notices_an_utterance_left_unscored(

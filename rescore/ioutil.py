@@ -102,15 +102,25 @@ def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
         yield fh
 
 
+def check_output_path(path: str | Path | None) -> None:
+    """Refuse, before any work, an output path that writing would refuse at the end: one
+    whose folder is missing, or that is itself a folder. Nothing is created."""
+    if path is None:
+        return
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError("output folder does not exist", path=str(folder))
+    if target.is_dir():
+        raise InputError("is a folder, expected a file path", path=str(target))
+
+
 class _Pending:
     """One output being written: a temporary file beside its target."""
 
     def __init__(self, target: Path, mode: str) -> None:
+        check_output_path(target)
         folder = target.parent if str(target.parent) else Path(".")
-        if not folder.is_dir():
-            raise InputError("output folder does not exist", path=str(folder))
-        if target.is_dir():
-            raise InputError("is a folder, expected a file path", path=str(target))
         _remove_stale_temporaries(folder, target.name)
         self.target = target
         fd, self.tmp_name = tempfile.mkstemp(

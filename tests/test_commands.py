@@ -373,3 +373,30 @@ def test_lm_build_refuses_text_without_sentences(tmp_path: Path, content: str) -
     assert result.stderr == (f"error: {empty}: no sentences (every line is blank or has no "
                              "words)\n")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["empty.txt"]
+
+
+@pytest.mark.parametrize("command", ["tune", "lm build", "lm mix"])
+def test_output_that_is_a_folder_is_refused_before_the_work(
+        tmp_path: Path, command: str, demo_lm: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the contract: bad input exits 1 with one line; refusing the output path first spares
+    # the user the whole build or search before the same refusal (the work is made to fail
+    # loudly here, so the test tells "before" from "after")
+    from rescore import pipeline
+    from rescore.lm import NGramModel, mix
+
+    def started(*args: object, **kwargs: object) -> None:
+        raise AssertionError("the work started")
+
+    monkeypatch.setattr(pipeline, "tune_file", started)
+    monkeypatch.setattr(NGramModel, "fit", started)
+    monkeypatch.setattr(mix, "mix_models", started)
+    folder = tmp_path / "adir"
+    folder.mkdir()
+    demo = FIXTURES / "demo"
+    args = {"tune": ["tune", demo / "dev.jsonl", "--lm", demo_lm, "-o", folder],
+            "lm build": ["lm", "build", demo / "dev.txt", "-o", folder],
+            "lm mix": ["lm", "mix", demo_lm, demo_lm, "--weights", "0.5,0.5", "-o", folder]}
+    result = run(args[command])
+    assert result.exit_code == 1
+    assert result.stderr == f"error: {folder}: is a folder, expected a file path\n"
+    assert "Traceback" not in result.stderr

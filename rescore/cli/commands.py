@@ -20,7 +20,7 @@ from rescore.cli.options import (
     RefsOpt,
 )
 from rescore.errors import UsageError
-from rescore.ioutil import count_lines
+from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
 
 
@@ -154,6 +154,8 @@ def tune(
     as_json: JsonOpt = False,
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
+    check_output_path(out)
+    check_output_path(analysis)
     models = pipeline.load_lms(lm or [])
     with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(

@@ -9,7 +9,7 @@ import typer
 
 from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
 from rescore.errors import UsageError
-from rescore.ioutil import count_lines, iter_text_lines
+from rescore.ioutil import check_output_path, count_lines, iter_text_lines
 from rescore.lm import (
     NGramModel,
     load_model,
@@ -73,6 +73,7 @@ def build(
     prune: _Prune = None,
 ) -> None:
     """Train an n-gram language model."""
+    check_output_path(output)
     model = NGramModel(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
@@ -157,6 +158,7 @@ def mix(
 
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
+    check_output_path(output)
     if tune_on is None and weights is None:
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
                          field="--tune-on")

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import ctypes
 import os
+import sys
 from typing import Any
 
 import numpy as np
@@ -31,3 +33,36 @@ def avoid_huge_pages() -> bool:
         return False
     setter(False)
     return True
+
+
+# glibc's mallopt parameters (malloc.h)
+_M_TRIM_THRESHOLD = -1
+_M_MMAP_MAX = -4
+_MALLOC_ENV = ("MALLOC_MMAP_MAX_", "MALLOC_TRIM_THRESHOLD_", "MALLOC_MMAP_THRESHOLD_",
+               "GLIBC_TUNABLES")
+KEEP_FREED_BYTES = 1 << 30
+
+
+def keep_freed_memory() -> bool:
+    """Let glibc reuse freed memory for the next large array instead of returning it.
+
+    By default glibc gives every large block (above 32 MiB at most) its own mapping and
+    returns it to the system when freed, so the next large temporary is faulted in page by
+    page again. Counting, fitting and scoring make many such temporaries; serving them from
+    the heap, and keeping up to 1 GiB of freed heap for reuse, made counting about a fifth
+    faster on our 2-core test machine (scripts/bench_lm.py). The price: the process does
+    not shrink until it exits, and the heap's fragments raise the peak a little (building
+    the 4-gram model of a 10-million-word text: 3.4 GB instead of 3.1, same time).
+    Skipped when any glibc malloc variable is set (the user's choice wins) or the C library
+    is not glibc. Returns whether applied.
+    """
+    if not sys.platform.startswith("linux") or any(v in os.environ for v in _MALLOC_ENV):
+        return False
+    try:
+        libc = ctypes.CDLL(None)
+        mallopt = libc.mallopt
+        gnu = libc.gnu_get_libc_version
+    except (OSError, AttributeError):
+        return False
+    del gnu  # present only in glibc, whose mallopt parameters these are
+    return bool(mallopt(_M_MMAP_MAX, 0)) and bool(mallopt(_M_TRIM_THRESHOLD, KEEP_FREED_BYTES))

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from rescore.process import avoid_huge_pages
+from rescore.process import avoid_huge_pages, keep_freed_memory
 
 
 def like_the_command_line() -> None:
@@ -10,3 +10,6 @@ def like_the_command_line() -> None:
     changed = avoid_huge_pages()
     print("numpy huge-page advice: " + ("off, as in the command line" if changed
                                         else "as set by NUMPY_MADVISE_HUGEPAGE or numpy"))
+    kept = keep_freed_memory()
+    print("freed memory: " + ("kept for reuse, as in the command line" if kept
+                              else "glibc's default or the user's MALLOC_* settings"))

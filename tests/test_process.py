@@ -33,3 +33,27 @@ def test_huge_page_advice_turned_off_for_this_and_later_processes(
     finally:
         setter(before)
         monkeypatch.delenv(HUGEPAGE_ENV, raising=False)
+
+
+def test_user_malloc_settings_win(monkeypatch: pytest.MonkeyPatch) -> None:
+    # glibc reads MALLOC_MMAP_MAX_ and friends at start-up (mallopt(3), from memory); a
+    # process started with any of them keeps the user's choice
+    from rescore.process import keep_freed_memory
+
+    monkeypatch.setenv("MALLOC_TRIM_THRESHOLD_", "0")
+    assert keep_freed_memory() is False
+
+
+def test_freed_memory_kept_on_glibc(monkeypatch: pytest.MonkeyPatch) -> None:
+    import ctypes
+    import sys
+
+    from rescore.process import _MALLOC_ENV, keep_freed_memory
+
+    for name in _MALLOC_ENV:
+        monkeypatch.delenv(name, raising=False)
+    libc = ctypes.CDLL(None)
+    if not sys.platform.startswith("linux") or not hasattr(libc, "gnu_get_libc_version"):
+        pytest.skip("not glibc")
+    # mallopt returns 1 on success for both parameters (mallopt(3), from memory)
+    assert keep_freed_memory() is True

@@ -9,7 +9,7 @@ import typer
 
 from rescore import __version__
 from rescore.cli._common import install_signal_handlers, state
-from rescore.process import avoid_huge_pages
+from rescore.process import avoid_huge_pages, keep_freed_memory
 
 app = typer.Typer(
     name="rescore",
@@ -58,5 +58,6 @@ _register()
 
 def main() -> None:
     avoid_huge_pages()
+    keep_freed_memory()
     install_signal_handlers()
     app()

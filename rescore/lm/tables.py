@@ -142,33 +142,41 @@ class BackoffTables:
         n = len(tokens)
         order = self.order
         v = np.uint64(self.vsize)
-        toks = tokens.astype(np.int64)
-        reach = np.arange(n, dtype=np.int64) - floor  # words of history within the sentence
-        result = self.logp[0][toks]
+        reach = np.arange(n, dtype=np.int64)
+        reach -= floor  # words of history within the sentence
+        result = self.logp[0][tokens]
+        if order == 1:
+            return result
         longest = np.ones(n, dtype=np.int8)
-        # listed[k-1]: positions whose order-k n-gram is listed, and that n-gram's id
-        listed: list[tuple[I64, I64]] = [(np.arange(n, dtype=np.int64), toks)]
+        # listed[k-2]: positions whose order-k n-gram is listed, and that n-gram's id
+        listed: list[tuple[I64, I64]] = []
+        at = np.flatnonzero(reach >= 1)
+        ids: I64 = tokens[at].astype(np.int64)  # order 2: the word is the suffix's id
         for k in range(2, order + 1):
-            at, ids = listed[-1]
-            room = reach[at] >= k - 1
-            at, ids = at[room], ids[room]
+            if k > 2:
+                room = reach[at] >= k - 1
+                at, ids = at[room], ids[room]
             key = ids.astype(np.uint64)
             key *= v
-            key += toks[at - (k - 1)].astype(np.uint64)
+            key += tokens[at - (k - 1)].astype(np.uint64)
             found = self.find(k, key)
             ok = found >= 0
             at, ids = at[ok], found[ok]
             listed.append((at, ids))
             result[at] = self.logp[k - 1][ids]
             longest[at] = k
-        # back-off weights of the contexts longer than the n-gram found, up to the order used
-        for j in range(1, order):
-            at, ids = listed[j - 1]
+        # back-off weights of the contexts longer than the n-gram found, up to the order used;
+        # the one-word contexts are every previous word: slices, no index arrays
+        use = (longest[1:] <= 1) & (reach[1:] >= 1)
+        tail = result[1:]
+        tail[use] += self.bow[0][tokens[:-1][use]]
+        for j in range(2, order):
+            at, ids = listed[j - 2]
             nxt = at + 1  # the order-j n-gram ending at i-1 is the context of position i
-            use = nxt < n
-            nxt, ids = nxt[use], ids[use]
-            use = (longest[nxt] <= j) & (reach[nxt] >= j)
-            result[nxt[use]] += self.bow[j - 1][ids[use]]
+            keep = nxt < n
+            nxt, ids = nxt[keep], ids[keep]
+            keep = (longest[nxt] <= j) & (reach[nxt] >= j)
+            result[nxt[keep]] += self.bow[j - 1][ids[keep]]
         return result
 
     def score_ngrams(self, ngrams: I64) -> F64:

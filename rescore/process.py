@@ -60,9 +60,10 @@ def keep_freed_memory() -> bool:
         return False
     try:
         libc = ctypes.CDLL(None)
-        mallopt = libc.mallopt
-        gnu = libc.gnu_get_libc_version
-    except (OSError, AttributeError):
+    except OSError:
         return False
-    del gnu  # present only in glibc, whose mallopt parameters these are
-    return bool(mallopt(_M_MMAP_MAX, 0)) and bool(mallopt(_M_TRIM_THRESHOLD, KEEP_FREED_BYTES))
+    # gnu_get_libc_version exists only in glibc, whose mallopt parameters these are
+    if not hasattr(libc, "gnu_get_libc_version") or not hasattr(libc, "mallopt"):
+        return False
+    return bool(libc.mallopt(_M_MMAP_MAX, 0)) and bool(
+        libc.mallopt(_M_TRIM_THRESHOLD, KEEP_FREED_BYTES))

@@ -4,7 +4,7 @@ VENV ?= .venv
 PY := $(VENV)/bin/python
 BIN := $(VENV)/bin
 
-.PHONY: demo test lint typecheck unit bench fuzz demo-data clean
+.PHONY: demo test check lint typecheck unit bench fuzz demo-data clean
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
@@ -29,6 +29,10 @@ unit: $(VENV)/.installed-dev
 	$(PY) -m pytest
 
 test: lint unit
+
+# The fast loop between submissions: lint, types and every test not marked slow.
+check: lint
+	$(PY) -m pytest -m 'not slow'
 
 bench: $(VENV)/.installed-dev
 	$(PY) scripts/bench

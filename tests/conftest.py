@@ -34,3 +34,15 @@ def sample_dir() -> Path:
     if not SAMPLE.is_dir():
         pytest.skip(f"recognizer sample not found at {SAMPLE}")
     return SAMPLE
+
+
+# Modules whose tests start real subprocesses, worker pools, a Dask cluster or a browser, or
+# run many fuzz examples: `make check` leaves them out (`-m 'not slow'`); `make test` runs all.
+SLOW_MODULES = frozenset({"test_report_browser", "test_parallel", "test_memory", "test_fuzz",
+                          "test_interrupt", "test_progress"})
+
+
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    for item in items:
+        if item.path.stem in SLOW_MODULES:
+            item.add_marker(pytest.mark.slow)

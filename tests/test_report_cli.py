@@ -114,8 +114,10 @@ def test_transcript_without_refs_is_refused(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize(("option", "value", "reason"), [
-    ("--max-wer", "0.01", "after WER 0.1250 is above --max-wer 0.01"),
-    ("--max-regression", "0.05", "WER change +0.1250 is above --max-regression 0.05"),
+    ("--max-wer", "0.01", "after WER 12.50% is above --max-wer 1%"),
+    ("--max-wer", "1%", "after WER 12.50% is above --max-wer 1%"),
+    ("--max-regression", "0.05", "WER change +12.50 points is above --max-regression 5 points"),
+    ("--max-regression", "5%", "WER change +12.50 points is above --max-regression 5 points"),
 ])
 def test_gate_fails_after_writing(tmp_path: Path, nbest_pair: tuple[Path, Path],
                                   option: str, value: str, reason: str) -> None:
@@ -138,6 +140,33 @@ def test_gate_passes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
                   "--max-wer", "0.05", "--max-regression", "0"])
     assert res.exit_code == 0, res.output
     assert json.loads((tmp_path / "rep" / "report.json").read_text())["gate"]["passed"]
+
+
+@pytest.mark.parametrize("option", ["--max-wer", "--max-regression"])
+@pytest.mark.parametrize("value", ["5", "-1", "150%", "-0.5%", "1.5", "five", "nan", "inf%"])
+def test_gate_threshold_out_of_range_is_a_usage_error(tmp_path: Path,
+                                                       nbest_pair: tuple[Path, Path],
+                                                       option: str, value: str) -> None:
+    # a bare 5 would be read as 500 %: refused, with both accepted forms shown
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200", option, value])
+    assert res.exit_code == 2, res.output
+    assert res.stderr.strip().splitlines() == [
+        f"error: {option} {value!r}: expected a percentage from 0% to 100% (5%) or a "
+        "fraction from 0 to 1 (0.05)"]
+    assert not (tmp_path / "rep").exists()
+
+
+def test_gate_percentage_and_fraction_are_the_same_gate(tmp_path: Path,
+                                                        nbest_pair: tuple[Path, Path]) -> None:
+    # 5% and 0.05 are one threshold: the recorded gates are equal
+    gates = []
+    for name, value in (("pct", "5%"), ("frac", "0.05")):
+        res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                      "-o", tmp_path / name, "--resamples", "200", "--max-wer", value])
+        assert res.exit_code == 0, res.output
+        gates.append(json.loads((tmp_path / name / "report.json").read_text())["gate"])
+    assert gates[0] == gates[1] and gates[0]["max_wer"] == 0.05
 
 
 def test_same_inputs_same_bytes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -9,11 +10,29 @@ import typer
 
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
-from rescore.errors import GateError, InputError
+from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
+
+
+def gate_rate(text: str | None, option: str) -> float | None:
+    """A gate threshold as a fraction: ``5%`` (a percentage, 0 to 100) or ``0.05`` (a
+    fraction, 0 to 1); anything else is a usage error that shows both forms."""
+    if text is None:
+        return None
+    raw = text.strip()
+    percent = raw.endswith("%")
+    try:
+        value = float(raw[:-1] if percent else raw)
+    except ValueError:
+        value = math.nan
+    limit = 100.0 if percent else 1.0
+    if not (0.0 <= value <= limit):
+        raise UsageError(f"{option} {text!r}: expected a percentage from 0% to 100% (5%) or a "
+                         "fraction from 0 to 1 (0.05)")
+    return value / 100.0 if percent else value
 
 
 def _read_tuning(path: Path) -> dict[str, Any]:
@@ -38,16 +57,20 @@ def report(
     weights: Annotated[Path | None, typer.Option(
         "--weights", help="Weights file that produced AFTER; its weights and SHA-256 go into "
         "the provenance.")] = None,
-    max_wer: Annotated[float | None, typer.Option(
-        "--max-wer", help="Gate: fail (exit 3) when the after WER is above this.")] = None,
-    max_regression: Annotated[float | None, typer.Option(
+    max_wer: Annotated[str | None, typer.Option(
+        "--max-wer", help="Gate: fail (exit 3) when the after WER is above this; a percentage "
+        "(5%) or a fraction in [0, 1] (0.05).", show_default=False)] = None,
+    max_regression: Annotated[str | None, typer.Option(
         "--max-regression",
-        help="Gate: fail (exit 3) when after - before WER is above this (absolute).")] = None,
+        help="Gate: fail (exit 3) when after - before WER is above this many points; a "
+        "percentage (0.5%) or a fraction in [0, 1] (0.005).", show_default=False)] = None,
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
+    max_wer_rate = gate_rate(max_wer, "--max-wer")
+    max_regression_rate = gate_rate(max_regression, "--max-regression")
     from rescore.nbest import read_refs
     from rescore.report import (
         build_report,
@@ -73,7 +96,7 @@ def report(
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed,
                               progress=report_progress)
-    result = with_gate(result, max_wer=max_wer, max_regression=max_regression)
+    result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
     written = write_report(result, out)
     data = result.to_dict()
     if as_json:
@@ -90,7 +113,8 @@ def report(
             ("p (matched pairs / sign / Wilcoxon)", "", "",
              " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
         ])
-    reasons = gate_failures(result, max_wer=max_wer, max_regression=max_regression)
+    reasons = gate_failures(result, max_wer=max_wer_rate,
+                            max_regression=max_regression_rate)
     if reasons:
         # the one line of a failed gate also says where the report is
         raise GateError("release gate failed: " + "; ".join(reasons)

@@ -308,11 +308,13 @@ def gate_failures(report: Report, *, max_wer: float | None = None,
                   max_regression: float | None = None) -> list[str]:
     """Why the release gates fail (empty when they pass or none is set)."""
     reasons = []
+    # in the report's units: WERs in percent, their change in percentage points
     if max_wer is not None and report.after.wer > max_wer:
-        reasons.append(f"after WER {report.after.wer:.4f} is above --max-wer {max_wer:g}")
+        reasons.append(f"after WER {100 * report.after.wer:.2f}% is above --max-wer "
+                       f"{100 * max_wer:g}%")
     if max_regression is not None and report.difference.absolute > max_regression:
-        reasons.append(f"WER change {report.difference.absolute:+.4f} is above "
-                       f"--max-regression {max_regression:g}")
+        reasons.append(f"WER change {100 * report.difference.absolute:+.2f} points is above "
+                       f"--max-regression {100 * max_regression:g} points")
     return reasons
 
 

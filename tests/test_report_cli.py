@@ -127,8 +127,11 @@ def test_gate_fails_after_writing(tmp_path: Path, nbest_pair: tuple[Path, Path],
     res = invoke(["report", "--before", good, "--after", bad, "-o", out,
                   "--resamples", "200", option, value])
     assert res.exit_code == 3
-    assert res.stderr.strip().splitlines() == [
-        f"error: release gate failed: {reason} (report written to {out})"]
+    # the warnings (3 utterances; 1-utterance speakers) and the caution come first, then
+    # the one error line
+    lines = res.stderr.strip().splitlines()
+    assert lines[-1] == f"error: release gate failed: {reason} (report written to {out})"
+    assert [line.split(":")[0] for line in lines] == ["warning", "warning", "caution", "error"]
     saved = json.loads((out / "report.json").read_text())
     assert saved["gate"]["passed"] is False and saved["gate"]["reasons"] == [reason]
     assert "Release gate failed" in (out / "report.html").read_text()

@@ -8,7 +8,7 @@ from typing import Annotated, Any
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, stages, table
+from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
@@ -81,7 +81,7 @@ def report(
         write_report,
     )
     from rescore.report.load import weights_provenance
-    from rescore.report.text import p_value
+    from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
 
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
@@ -105,14 +105,16 @@ def report(
     else:
         d = result.difference
         table(None, ["", "before", "after", "change"], [
-            ("WER", pct(result.before.wer), pct(result.after.wer),
-             f"{100 * d.absolute:+.2f}%"),
-            ("interval of the change", "", "",
-             f"[{100 * d.ci_low:+.2f}%, {100 * d.ci_high:+.2f}%]"),
-            ("probability of improvement", "", "", f"{d.probability_of_improvement:.4f}"),
+            ("WER", pct(result.before.wer), pct(result.after.wer), points(d.absolute)),
+            ("interval of the change", "", "", interval(d.ci_low, d.ci_high)),
+            ("probability of improvement", "", "",
+             share_of_resamples(d.probability_of_improvement, result.bootstrap.resamples)),
             ("p (matched pairs / sign / Wilcoxon)", "", "",
              " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
         ])
+    for warning in result.warnings:
+        warn(warning)
+    warn(CAUTION, label="caution")
     reasons = gate_failures(result, max_wer=max_wer_rate,
                             max_regression=max_regression_rate)
     if reasons:

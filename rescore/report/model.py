@@ -17,7 +17,7 @@ from rescore import __version__
 from rescore.errors import InputError
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
-from rescore.report.breakdown import Breakdown, build_breakdown
+from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
 from rescore.significance import (
     BootstrapResult,
     MatchedPairsResult,
@@ -43,6 +43,9 @@ DEFAULT_RESAMPLES = 10_000
 DEFAULT_SEED = 0
 DEFAULT_CONFIDENCE = 0.95
 DEFAULT_MIN_RUN = 2
+# common practice, not law: under about a hundred test utterances one utterance moves the
+# WER and the tests' verdicts too much to rest a release on
+MIN_TEST_UTTERANCES = 100
 
 # carried by every report (a report.json field, and the .md and .html footers) and the README
 CAUTION = (
@@ -165,6 +168,7 @@ class Report:
     provenance: Mapping[str, Any]
     tuning: Tuning | None = None
     gate: Mapping[str, Any] | None = None
+    warnings: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -193,6 +197,7 @@ class Report:
             out["tuning"] = self.tuning.to_dict()
         if self.gate is not None:
             out["gate"] = dict(self.gate)
+        out["warnings"] = list(self.warnings)
         out["provenance"] = dict(self.provenance)
         out["caution"] = CAUTION
         return out
@@ -295,12 +300,23 @@ def build_report(
         "wilcoxon": {"zeros": "dropped", "ties": "mid-ranks", "exact_limit": 50},
     }
     prov.update(provenance or {})
+    warnings = []
+    if len(rows) < MIN_TEST_UTTERANCES:
+        warnings.append(f"only {len(rows)} test utterances (fewer than {MIN_TEST_UTTERANCES}): "
+                        "one utterance moves the WER and the tests' verdicts a lot; treat "
+                        "the comparison as a hint, not evidence")
+    breakdown = build_breakdown(rows)
+    small = sorted(key for key, groups in breakdown.by_meta.items()
+                   if any(g.too_small for g in groups))
+    if small:
+        warnings.append(f"subgroups with fewer than {MIN_GROUP_UTTERANCES} utterances (by "
+                        f"{', '.join(small)}) are too small to compare; they are marked")
     return Report(
         before=wer_b, after=wer_a,
         before_cer=corpus_cer(refs, hyp_b), after_cer=corpus_cer(refs, hyp_a),
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
-        breakdown=build_breakdown(rows),
-        utterances=rows, provenance=prov, tuning=tuning,
+        breakdown=breakdown,
+        utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
     )
 
 

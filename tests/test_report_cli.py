@@ -294,3 +294,23 @@ def test_report_output_that_is_a_file_is_named(tmp_path: Path,
     assert res.exit_code == 1
     assert res.stderr == (f"error: {taken / 'sub'}: cannot create the report folder "
                           "(Not a directory)\n")
+
+
+def test_terms_option_adds_a_class(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    terms = tmp_path / "terms.txt"
+    terms.write_text("bay\n")
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200", "--terms", terms])
+    assert res.exit_code == 0, res.output
+    data = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert set(data["critical_words"]) == {"numbers", "negations", "terms"}
+    assert str(terms) in data["provenance"]["data_sha256"]
+    assert 'id="critical-words"' in (tmp_path / "rep" / "report.html").read_text()
+    bad = tmp_path / "bad.txt"
+    bad.write_text("...\n")
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep2", "--terms", bad])
+    assert res.exit_code == 1
+    assert res.stderr.strip() == (f"error: {bad}:1: term: no words left after "
+                                  "normalisation in '...'")
+    assert not (tmp_path / "rep2").exists()

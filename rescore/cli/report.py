@@ -64,6 +64,10 @@ def report(
         "--max-regression",
         help="Gate: fail (exit 3) when after - before WER is above this many points; a "
         "percentage (0.5%) or a fraction in [0, 1] (0.005).", show_default=False)] = None,
+    terms: Annotated[Path | None, typer.Option(
+        "--terms", help="Critical terms counted apart: one word or phrase a line, or "
+        "CLASS<TAB>term (negations<TAB>... extends a built-in class).",
+        show_default=False)] = None,
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
@@ -80,22 +84,24 @@ def report(
         with_gate,
         write_report,
     )
+    from rescore.report.critical import classes_with_terms, read_terms
     from rescore.report.load import weights_provenance
     from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
 
+    classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
     tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
                                                                path=str(tuning))
-    files = [p for p in (before, after, refs, tuning) if p is not None]
+    files = [p for p in (before, after, refs, tuning, terms) if p is not None]
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
     with stages("report") as report_progress:
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed,
-                              progress=report_progress)
+                              critical_classes=classes, progress=report_progress)
     result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
     written = write_report(result, out)
     data = result.to_dict()

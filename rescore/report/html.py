@@ -233,6 +233,17 @@ def _by_meta(report: Report) -> str:
     return f'<div class="row">{"".join(out)}</div>' if out else ""
 
 
+def _critical(report: Report) -> str:
+    if not report.critical:
+        return ""
+    head, rows = t.critical_table(report)
+    worse = "".join(f"<li>worse on {_e(c.name)}: {_e(t.worse_text([w.id for w in c.worse]))}"
+                    "</li>" for c in report.critical if c.worse)
+    return ('<div class="card" id="critical-words"><h3>Critical words</h3>'
+            + _table(head, rows) + f'<ul class="notes">{worse}<li>{_e(t.CRITICAL_NOTE)}</li>'
+            "</ul></div>")
+
+
 def _warnings(report: Report) -> str:
     return "".join(f'<div class="warning"><strong>Warning.</strong> {_e(w)}</div>'
                    for w in report.warnings)
@@ -275,6 +286,7 @@ reference words; normalisation {_e(report.provenance.get("normalisation", ""))}<
 <div class="card"><figure>{plots.wer_intervals(report)}</figure></div>
 </div>
 <div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
+{_critical(report)}
 <div class="card">{counts}</div>
 <div class="card"><ul class="notes">{notes}</ul></div>
 {_tuning(report)}

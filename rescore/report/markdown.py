@@ -47,6 +47,15 @@ def render_markdown(report: Report) -> str:
         verdict = "passed" if report.gate["passed"] else "FAILED: " + "; ".join(
             report.gate["reasons"])
         out += [f"**Release gate:** {_cell(verdict)}", ""]
+    if report.critical:
+        out += ["## Critical words", ""]
+        head, rows_ = t.critical_table(report)
+        out += _table(head, rows_)
+        for cls in report.critical:
+            if cls.worse:
+                out += [f"Worse on {_cell(cls.name)}: "
+                        + _cell(t.worse_text([w.id for w in cls.worse])), ""]
+        out += [t.CRITICAL_NOTE, ""]
     out += ["## Counts", ""]
     rows = []
     for name, w, c in (("before", report.before, report.before_cer),

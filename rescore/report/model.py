@@ -18,6 +18,7 @@ from rescore.errors import InputError
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
+from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
 from rescore.significance import (
     BootstrapResult,
     MatchedPairsResult,
@@ -169,6 +170,7 @@ class Report:
     tuning: Tuning | None = None
     gate: Mapping[str, Any] | None = None
     warnings: tuple[str, ...] = ()
+    critical: tuple[ClassResult, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -184,6 +186,7 @@ class Report:
                 "wilcoxon": self.wilcoxon.to_dict(),
             },
             "breakdown": self.breakdown.to_dict(),
+            "critical_words": {c.name: c.to_dict() for c in self.critical},
             "utterances": [
                 {"id": u.id, "reference_words": u.reference_words,
                  "before_errors": u.before_errors, "after_errors": u.after_errors,
@@ -249,13 +252,16 @@ def build_report(
     seed: int = DEFAULT_SEED,
     confidence: float = DEFAULT_CONFIDENCE,
     min_run: int = DEFAULT_MIN_RUN,
+    critical_classes: Sequence[CriticalClass] | None = None,
     progress: ProgressReport | None = None,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
     ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
     and ``depth`` are shown when present). ``progress`` (see :mod:`rescore.progress`)
-    hears of the bootstrap, resample by resample.
+    hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
+    of critical words counted apart (default: the built-in numbers and negations; see
+    :mod:`rescore.report.critical`).
     """
     if tuning is not None and not isinstance(tuning, Tuning):
         tuning = tuning_from_dict(tuning)
@@ -317,6 +323,8 @@ def build_report(
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
         breakdown=breakdown,
         utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
+        critical=critical_words(rows, builtin_classes() if critical_classes is None
+                                else critical_classes),
     )
 
 

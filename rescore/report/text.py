@@ -6,8 +6,8 @@ import json
 import math
 from typing import Any
 
-from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
+from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.model import Report
 
 TITLE = "Release report: WER before and after rescoring"
@@ -152,3 +152,23 @@ def group_table(key: str, groups: tuple[GroupRow, ...]) -> tuple[list[str], list
         head.append("note")
         rows = [(*r, note if g.too_small else "") for r, g in zip(rows, groups, strict=True)]
     return head, rows
+
+
+def critical_table(report: Report) -> tuple[list[str], list[tuple[Any, ...]]]:
+    """Head and rows of the critical-words table: per class, occurrences in the references,
+    errors and error rate before and after, and how many utterances got worse on it."""
+    head = ["class", "occurrences", "errors before", "rate before", "errors after",
+            "rate after", "utterances worse"]
+    rows = [(c.name, c.before.occurrences, c.before.errors, pct(c.before.error_rate),
+             c.after.errors, pct(c.after.error_rate), len(c.worse)) for c in report.critical]
+    return head, rows
+
+
+def worse_text(ids: list[str], limit: int = 20) -> str:
+    shown = ", ".join(ids[:limit])
+    return shown if len(ids) <= limit else f"{shown} and {len(ids) - limit} more"
+
+
+CRITICAL_NOTE = ("Errors on a class: its words in the reference substituted or deleted, or "
+                 "its words in the hypothesis where the reference has none of them; the rate "
+                 "is errors over occurrences in the references.")

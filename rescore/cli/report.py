@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
@@ -13,8 +13,16 @@ from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
 
+if TYPE_CHECKING:
+    from rescore.lm.fingerprint import OverlapSummary
+
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
+
+
+WarnOverlapOpt = Annotated[str, typer.Option(
+    "--warn-overlap", help="Warn when more than this share of the test references are "
+    "sentences of an LM's training text: a percentage (1%) or a fraction (0.01).")]
 
 
 def gate_rate(text: str | None, option: str) -> float | None:
@@ -33,6 +41,33 @@ def gate_rate(text: str | None, option: str) -> float | None:
         raise UsageError(f"{option} {text!r}: expected a percentage from 0% to 100% (5%) or a "
                          "fraction from 0 to 1 (0.05)")
     return value / 100.0 if percent else value
+
+
+def _leak_models(lm: list[Path] | None, weights: Path | None) -> list[tuple[str, Path]]:
+    """The models to check for leakage: those given, else those the weights file records
+    whose file is still at its recorded path with its recorded SHA-256."""
+    if lm:
+        return [(str(p), p) for p in lm]
+    if weights is None:
+        return []
+    recorded = _read_tuning(weights).get("provenance", {})
+    models = recorded.get("models", {}) if isinstance(recorded, dict) else {}
+    out = []
+    for name, entry in (models.items() if isinstance(models, dict) else ()):
+        path = Path(str(entry.get("path", ""))) if isinstance(entry, dict) else None
+        if path is not None and path.is_file() and sha256_file(path) == entry.get("sha256"):
+            out.append((str(name), path))
+    return out
+
+
+def leakage(models: list[tuple[str, Path]], references: list[list[str]],
+            threshold: float) -> OverlapSummary:
+    """The overlap of the references with the named models' training text."""
+    from rescore.lm import load_model
+    from rescore.lm.fingerprint import overlap_summary
+
+    return overlap_summary([(name, load_model(path)) for name, path in models], references,
+                           threshold=threshold)
 
 
 def _read_tuning(path: Path) -> dict[str, Any]:
@@ -68,6 +103,11 @@ def report(
         "--terms", help="Critical terms counted apart: one word or phrase a line, or "
         "CLASS<TAB>term (negations<TAB>... extends a built-in class).",
         show_default=False)] = None,
+    lm: Annotated[list[Path] | None, typer.Option(
+        "--lm", help="Language model whose training text is checked for the test references "
+        "(repeatable). Default: the models the --weights file records, where they still are.",
+        show_default=False)] = None,
+    warn_overlap: WarnOverlapOpt = "1%",
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
@@ -75,6 +115,7 @@ def report(
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
+    overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
     from rescore.nbest import read_refs
     from rescore.report import (
         build_report,
@@ -98,10 +139,17 @@ def report(
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
+    models = _leak_models(lm, weights)
+    overlap = None
+    if models:
+        overlap = leakage(models, [list(p.reference) for p in before_pairs],
+                          overlap_threshold or 0.0)
+        provenance["overlap_models"] = {name: sha256_file(path) for name, path in models}
     with stages("report") as report_progress:
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed,
-                              critical_classes=classes, progress=report_progress)
+                              critical_classes=classes, overlap=overlap,
+                              progress=report_progress)
     result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
     written = write_report(result, out)
     data = result.to_dict()

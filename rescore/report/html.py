@@ -244,6 +244,14 @@ def _critical(report: Report) -> str:
             "</ul></div>")
 
 
+def _overlap(report: Report) -> str:
+    if report.overlap is None:
+        return ""
+    head, rows = t.overlap_table(report)
+    return ('<div class="card" id="overlap"><h3>Test references in the LM\'s training text</h3>'
+            + _table(head, rows) + f'<ul class="notes"><li>{_e(t.OVERLAP_NOTE)}</li></ul></div>')
+
+
 def _warnings(report: Report) -> str:
     return "".join(f'<div class="warning"><strong>Warning.</strong> {_e(w)}</div>'
                    for w in report.warnings)
@@ -287,6 +295,7 @@ reference words; normalisation {_e(report.provenance.get("normalisation", ""))}<
 </div>
 <div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
 {_critical(report)}
+{_overlap(report)}
 <div class="card">{counts}</div>
 <div class="card"><ul class="notes">{notes}</ul></div>
 {_tuning(report)}

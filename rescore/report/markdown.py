@@ -56,6 +56,11 @@ def render_markdown(report: Report) -> str:
                 out += [f"Worse on {_cell(cls.name)}: "
                         + _cell(t.worse_text([w.id for w in cls.worse])), ""]
         out += [t.CRITICAL_NOTE, ""]
+    if report.overlap is not None:
+        out += ["## Test references in the LM's training text", ""]
+        head, rows_ = t.overlap_table(report)
+        out += _table(head, rows_)
+        out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
     rows = []
     for name, w, c in (("before", report.before, report.before_cer),

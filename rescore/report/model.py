@@ -15,6 +15,7 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import InputError
+from rescore.lm.fingerprint import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
@@ -171,6 +172,7 @@ class Report:
     gate: Mapping[str, Any] | None = None
     warnings: tuple[str, ...] = ()
     critical: tuple[ClassResult, ...] = ()
+    overlap: OverlapSummary | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -187,6 +189,7 @@ class Report:
             },
             "breakdown": self.breakdown.to_dict(),
             "critical_words": {c.name: c.to_dict() for c in self.critical},
+            **({} if self.overlap is None else {"overlap": self.overlap.to_dict()}),
             "utterances": [
                 {"id": u.id, "reference_words": u.reference_words,
                  "before_errors": u.before_errors, "after_errors": u.after_errors,
@@ -253,6 +256,7 @@ def build_report(
     confidence: float = DEFAULT_CONFIDENCE,
     min_run: int = DEFAULT_MIN_RUN,
     critical_classes: Sequence[CriticalClass] | None = None,
+    overlap: OverlapSummary | None = None,
     progress: ProgressReport | None = None,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
@@ -261,7 +265,9 @@ def build_report(
     and ``depth`` are shown when present). ``progress`` (see :mod:`rescore.progress`)
     hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
     of critical words counted apart (default: the built-in numbers and negations; see
-    :mod:`rescore.report.critical`).
+    :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
+    language models' training text (:func:`rescore.lm.fingerprint.overlap_summary`); above
+    its threshold the report warns first of all.
     """
     if tuning is not None and not isinstance(tuning, Tuning):
         tuning = tuning_from_dict(tuning)
@@ -306,7 +312,8 @@ def build_report(
         "wilcoxon": {"zeros": "dropped", "ties": "mid-ranks", "exact_limit": 50},
     }
     prov.update(provenance or {})
-    warnings = []
+    warnings: list[str] = []
+    warnings += [] if overlap is None else overlap.warnings()
     if len(rows) < MIN_TEST_UTTERANCES:
         warnings.append(f"only {len(rows)} test utterances (fewer than {MIN_TEST_UTTERANCES}): "
                         "one utterance moves the WER and the tests' verdicts a lot; treat "
@@ -325,6 +332,7 @@ def build_report(
         utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
         critical=critical_words(rows, builtin_classes() if critical_classes is None
                                 else critical_classes),
+        overlap=overlap,
     )
 
 

@@ -172,3 +172,27 @@ def worse_text(ids: list[str], limit: int = 20) -> str:
 CRITICAL_NOTE = ("Errors on a class: its words in the reference substituted or deleted, or "
                  "its words in the hypothesis where the reference has none of them; the rate "
                  "is errors over occurrences in the references.")
+
+
+def overlap_table(report: Report) -> tuple[list[str], list[tuple[Any, ...]]]:
+    """Per model: test references found verbatim in its training text, and the share of the
+    references' highest-order n-grams the model lists (reported, not warned on)."""
+    head = ["model", "references", "found", "share", "n-gram order", "n-grams listed"]
+    o = report.overlap
+    if o is None:
+        return head, []
+    rows: list[tuple[Any, ...]] = [
+        (m.model, m.references, m.found, pct(m.share),
+         "-" if m.ngram_order is None else m.ngram_order, pct(m.ngram_share))
+        for m in o.per_model]
+    if len(o.per_model) > 1:
+        rows.append(("any of them", o.references, o.found, pct(o.share), "-", "-"))
+    rows += [(name, o.references, "not checked (no fingerprint)", "-", "-", "-")
+             for name in o.unchecked]
+    return head, rows
+
+
+OVERLAP_NOTE = ("A reference counts as found when the same normalised sentence is in the "
+                "model's training text (64-bit hashes kept in the model file). n-grams "
+                "listed: the references' n-grams of the model's highest order that the "
+                "model holds; cut-offs and pruning drop some seen in training.")

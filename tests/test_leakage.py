@@ -157,3 +157,14 @@ def test_report_uses_the_models_the_weights_record(tmp_path: Path,
     data = json.loads((tmp_path / "r" / "report.json").read_text())
     assert data["overlap"]["share"] == 1.0
     assert data["overlap"]["models"][0]["model"] == "lm"
+
+
+def test_arpa_model_is_not_checked_and_says_so(tmp_path: Path) -> None:
+    arpa = tmp_path / "m.arpa"
+    res = invoke(["lm", "build", DEMO / "train.txt", "--order", "2", "-o", arpa])
+    assert res.exit_code == 0, res.output
+    res = invoke(["check", DEMO / "test.jsonl", "--lm", arpa, "--json"])
+    assert res.exit_code == 0, res.output
+    data = json.loads(res.stdout)["overlap"]
+    assert data["unchecked"] == [str(arpa)] and data["models"] == [] and data["share"] is None
+    assert f"warning: no training-text fingerprint in {arpa}" in res.stderr

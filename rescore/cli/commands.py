@@ -73,6 +73,9 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         ["mean depth", result.hypotheses / max(result.utterances, 1)],
         ["1-best WER", pct(result.one_best_wer)],
         ["oracle WER", pct(result.oracle_wer)],
+        *([] if overlap is None else [
+            ["references in the LM text", f"{overlap.found} of {overlap.references} "
+             f"({pct(overlap.share)})"]]),
     ])
     table("list depth", ["hypotheses", "utterances"],
           [[d, c] for d, c in sorted(result.depths.items())])

@@ -163,7 +163,8 @@ class OverlapSummary:
 
     @property
     def share(self) -> float | None:
-        return self.found / self.references if self.references else None
+        """None when no model could be checked (or there is no reference)."""
+        return self.found / self.references if self.references and self.per_model else None
 
     @property
     def leaked(self) -> bool:

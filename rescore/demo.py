@@ -196,7 +196,7 @@ def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path
 
     before_pairs = load_system(before)
     # the test references against the tuned model's training text (the leakage check)
-    overlap = overlap_summary([(str(model), load_model(model))],
+    overlap = overlap_summary([(model.name, load_model(model))],
                               [list(p.reference) for p in before_pairs])
     report = build_report(before_pairs, load_system(after),
                           provenance={**provenance, "weights": weights_provenance(weights)},

@@ -38,8 +38,8 @@ def _confusions(name: str, c: Confusions) -> list[str]:
 
 def render_markdown(report: Report) -> str:
     out = [f"# {t.TITLE}", ""]
-    out += [f"> **Warning.** {_cell(w)}" for w in report.warnings]
-    out += [""] if report.warnings else []
+    for warning in report.warnings:
+        out += [f"> **Warning.** {_cell(warning)}", ""]
     out += _table(["measure", "value"],
                   [(label, shown) for label, shown, _, _ in t.headline(report)])
     out += [f"**Caution.** {t.CAUTION}", ""]

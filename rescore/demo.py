@@ -81,7 +81,8 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     outputs = [model_path, weights_path, analysis_path, rescored, out / "test.best.tsv"]
     outputs += _report(data / "test.jsonl", rescored, out / "report", analysis_path,
                        weights_path,
-                       pipeline.provenance(data=[data / "test.jsonl"], models=models))
+                       pipeline.provenance(data=[data / "test.jsonl"], models=models),
+                       model_path)
     summary = {
         "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
         "lm_weight": tuned["lm_weight"], "insertion_penalty": tuned["insertion_penalty"],
@@ -187,11 +188,17 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
 
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,
-            provenance: dict[str, Any]) -> list[Path]:
+            provenance: dict[str, Any], model: Path) -> list[Path]:
+    from rescore.lm import load_model
+    from rescore.lm.fingerprint import overlap_summary
     from rescore.report import build_report, load_system, write_report
     from rescore.report.load import weights_provenance
 
-    report = build_report(load_system(before), load_system(after),
+    before_pairs = load_system(before)
+    # the test references against the tuned model's training text (the leakage check)
+    overlap = overlap_summary([(model.name, load_model(model))],
+                              [list(p.reference) for p in before_pairs])
+    report = build_report(before_pairs, load_system(after),
                           provenance={**provenance, "weights": weights_provenance(weights)},
-                          tuning=json.loads(tuning.read_text()))
+                          tuning=json.loads(tuning.read_text()), overlap=overlap)
     return write_report(report, folder)

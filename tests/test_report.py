@@ -243,10 +243,12 @@ def test_gates() -> None:
     before, after = systems()
     report = build_report(before, after, provenance={}, resamples=200)
     assert gate_failures(report, max_wer=0.2, max_regression=0.0) == []
-    assert gate_failures(report, max_wer=0.05)[0].startswith("after WER 0.0952 is above")
+    # 2/21 = 9.52 % after; the message is in percent like the rest of the report
+    assert gate_failures(report, max_wer=0.05) == ["after WER 9.52% is above --max-wer 5%"]
     # swapped, the change is a regression of +1/21
     worse = build_report(after, before, provenance={}, resamples=200)
-    assert "above --max-regression 0.01" in gate_failures(worse, max_regression=0.01)[0]
+    assert gate_failures(worse, max_regression=0.01) == [
+        "WER change +4.76 points is above --max-regression 1 points"]
     gated = with_gate(worse, max_wer=None, max_regression=0.01)
     assert gated.gate is not None and gated.gate["passed"] is False
 
@@ -281,3 +283,58 @@ def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
     with pytest.raises(InputError, match=r"surface\.errors"):
         tuning_from_dict({"surface": {"lm_values": [0, 1], "penalty_values": [0],
                                       "errors": [[1, 2]]}})
+
+
+@pytest.mark.parametrize(("value", "resamples", "shown"), [
+    # every one of 10,000 resamples improved: the estimate is 1 but its resolution is
+    # 1/10,000, so all that can be said is "above 0.9999"
+    (1.0, 10_000, "> 0.9999"),
+    (0.0, 10_000, "< 0.0001"),
+    (0.5, 10_000, "0.5000"),
+    # 199/200 is shown as it is; with 200 resamples the next step below 1 is 0.995
+    (199 / 200, 200, "0.9950"),
+    (1.0, 200, "> 0.9950"),
+    # 100,000 resamples resolve a fifth decimal: 99,999/100,000 must not print as 1.0000
+    (99_999 / 100_000, 100_000, "0.99999"),
+    (1.0, 100_000, "> 0.99999"),
+])
+def test_probability_at_the_resolution_of_the_resamples(value: float, resamples: int,
+                                                        shown: str) -> None:
+    from rescore.report.text import share_of_resamples
+
+    assert share_of_resamples(value, resamples) == shown
+
+
+def test_absolute_change_in_points_and_small_sets_warned() -> None:
+    before, after = systems()
+    report = build_report(before, after, provenance={}, resamples=200)
+    files = render_all(report)
+    # (2 - 3) / 21 = -4.76 percentage points, not "-4.76%" (that would be relative)
+    assert "| Absolute change (after - before) | -4.76 points |" in files["report.md"]
+    # 4 utterances < 100, and both speakers have 2 < 30 utterances (common practice)
+    data = json.loads(files["report.json"])
+    assert data["warnings"][0].startswith("only 4 test utterances (fewer than 100)")
+    assert "(by speaker) are too small to compare" in data["warnings"][1]
+    assert all(g["too_small"] for g in data["breakdown"]["by_meta"]["speaker"])
+    # s01: 7 + 5 = 12 reference words; before went, to (2 errors); after to, +six (2)
+    assert ("| s01 | 2 | 12 | 16.67% | 16.67% | too small to compare (under 30) |"
+            in files["report.md"])
+    assert files["report.html"].count('<div class="warning">') == 2
+    # the caution follows the headline table, before the counts, in both writers
+    md = files["report.md"]
+    assert md.index("Wilcoxon signed-rank p") < md.index("**Caution.**") < md.index("## Counts")
+    page = files["report.html"]
+    assert page.index('class="headline"') < page.index('id="caution"') < page.index(
+        "substitutions")
+
+
+def test_large_even_groups_are_not_warned() -> None:
+    # 120 utterances, two speakers of 60: above both thresholds, no warning, no note column
+    before, after = systems()
+    big_b = [Pair(f"{p.id}-{i}", p.reference, p.hypothesis, p.meta)
+             for i in range(30) for p in before]
+    big_a = [Pair(f"{p.id}-{i}", p.reference, p.hypothesis, p.meta)
+             for i in range(30) for p in after]
+    report = build_report(big_b, big_a, provenance={}, resamples=50)
+    assert report.warnings == ()
+    assert "too small" not in render_all(report)["report.md"]

@@ -5,7 +5,7 @@ its fd 4, each a JSON message ending in a NUL byte), so no port is opened at all
 
 - the report of a real ``rescore demo`` run on the bundled data: it loads with no console
   error and no network request, the headline numbers shown equal those in report.json, the
-  utterance filter works, the caution footer and the weights' checksum are on the page, and
+  utterance filter works, the caution and the weights' checksum are on the page, and
   a full-page screenshot is saved (it is the README's picture);
 - a report holding a hostile id and transcript: they appear as text and run nothing.
 """
@@ -196,11 +196,13 @@ def logbook_systems() -> tuple[list[Pair], list[Pair]]:
 
 
 def _shown_number(text: str) -> list[float]:
-    """Numbers as a reader sees them: '12.50%' is 0.125, '0.0312' is 0.0312."""
+    """Numbers as a reader sees them: '12.50%' is 0.125, '-1.20 points' and '[-2.00,
+    +1.00] points' are -0.012 and -0.02, 0.01 (percentage points), '0.0312' is 0.0312."""
     out = []
+    in_points = text.endswith(" points")
     for m in re.finditer(r"([+-]?\d+(?:\.\d+)?)(%?)", text):
         value = float(m.group(1))
-        out.append(value / 100 if m.group(2) else value)
+        out.append(value / 100 if m.group(2) or in_points else value)
     return out
 
 
@@ -313,6 +315,10 @@ def test_demo_report_page_in_chromium(browser: DevTools, demo_out: Path,
             # a p-value below what four decimals show is printed as "< 0.0001"
             assert text == "< 0.0001" and len(expected) == 1 and 0 <= expected[0] < 1e-4
             continue
+        if text.startswith(">"):
+            # every one of the 10,000 resamples improved: "> 0.9999", the resolution they give
+            assert text == "> 0.9999" and expected == [1.0]
+            continue
         shown = _shown_number(text)
         assert len(shown) == len(expected), (key, text)
         for got, want in zip(shown, expected, strict=True):
@@ -331,7 +337,8 @@ def test_demo_report_page_in_chromium(browser: DevTools, demo_out: Path,
                           ("all", len(changes))):
         assert page.show(choice) == count, choice
 
-    # the page ends with the caution and records the weights that made the after system
+    # the page carries the caution once (beside the headline) and records the weights
+    # that made the after system
     body = page.evaluate("document.body.textContent")
     assert " ".join(body.split()).count(CAUTION) == 1
     weights_sha = data["provenance"]["weights"]["sha256"]

@@ -114,8 +114,10 @@ def test_transcript_without_refs_is_refused(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize(("option", "value", "reason"), [
-    ("--max-wer", "0.01", "after WER 0.1250 is above --max-wer 0.01"),
-    ("--max-regression", "0.05", "WER change +0.1250 is above --max-regression 0.05"),
+    ("--max-wer", "0.01", "after WER 12.50% is above --max-wer 1%"),
+    ("--max-wer", "1%", "after WER 12.50% is above --max-wer 1%"),
+    ("--max-regression", "0.05", "WER change +12.50 points is above --max-regression 5 points"),
+    ("--max-regression", "5%", "WER change +12.50 points is above --max-regression 5 points"),
 ])
 def test_gate_fails_after_writing(tmp_path: Path, nbest_pair: tuple[Path, Path],
                                   option: str, value: str, reason: str) -> None:
@@ -125,8 +127,11 @@ def test_gate_fails_after_writing(tmp_path: Path, nbest_pair: tuple[Path, Path],
     res = invoke(["report", "--before", good, "--after", bad, "-o", out,
                   "--resamples", "200", option, value])
     assert res.exit_code == 3
-    assert res.stderr.strip().splitlines() == [
-        f"error: release gate failed: {reason} (report written to {out})"]
+    # the warnings (3 utterances; 1-utterance speakers) and the caution come first, then
+    # the one error line
+    lines = res.stderr.strip().splitlines()
+    assert lines[-1] == f"error: release gate failed: {reason} (report written to {out})"
+    assert [line.split(":")[0] for line in lines] == ["warning", "warning", "caution", "error"]
     saved = json.loads((out / "report.json").read_text())
     assert saved["gate"]["passed"] is False and saved["gate"]["reasons"] == [reason]
     assert "Release gate failed" in (out / "report.html").read_text()
@@ -138,6 +143,33 @@ def test_gate_passes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
                   "--max-wer", "0.05", "--max-regression", "0"])
     assert res.exit_code == 0, res.output
     assert json.loads((tmp_path / "rep" / "report.json").read_text())["gate"]["passed"]
+
+
+@pytest.mark.parametrize("option", ["--max-wer", "--max-regression"])
+@pytest.mark.parametrize("value", ["5", "-1", "150%", "-0.5%", "1.5", "five", "nan", "inf%"])
+def test_gate_threshold_out_of_range_is_a_usage_error(tmp_path: Path,
+                                                       nbest_pair: tuple[Path, Path],
+                                                       option: str, value: str) -> None:
+    # a bare 5 would be read as 500 %: refused, with both accepted forms shown
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200", option, value])
+    assert res.exit_code == 2, res.output
+    assert res.stderr.strip().splitlines() == [
+        f"error: {option} {value!r}: expected a percentage from 0% to 100% (5%) or a "
+        "fraction from 0 to 1 (0.05)"]
+    assert not (tmp_path / "rep").exists()
+
+
+def test_gate_percentage_and_fraction_are_the_same_gate(tmp_path: Path,
+                                                        nbest_pair: tuple[Path, Path]) -> None:
+    # 5% and 0.05 are one threshold: the recorded gates are equal
+    gates = []
+    for name, value in (("pct", "5%"), ("frac", "0.05")):
+        res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                      "-o", tmp_path / name, "--resamples", "200", "--max-wer", value])
+        assert res.exit_code == 0, res.output
+        gates.append(json.loads((tmp_path / name / "report.json").read_text())["gate"])
+    assert gates[0] == gates[1] and gates[0]["max_wer"] == 0.05
 
 
 def test_same_inputs_same_bytes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
@@ -262,3 +294,23 @@ def test_report_output_that_is_a_file_is_named(tmp_path: Path,
     assert res.exit_code == 1
     assert res.stderr == (f"error: {taken / 'sub'}: cannot create the report folder "
                           "(Not a directory)\n")
+
+
+def test_terms_option_adds_a_class(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    terms = tmp_path / "terms.txt"
+    terms.write_text("bay\n")
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep", "--resamples", "200", "--terms", terms])
+    assert res.exit_code == 0, res.output
+    data = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert set(data["critical_words"]) == {"numbers", "negations", "terms"}
+    assert str(terms) in data["provenance"]["data_sha256"]
+    assert 'id="critical-words"' in (tmp_path / "rep" / "report.html").read_text()
+    bad = tmp_path / "bad.txt"
+    bad.write_text("...\n")
+    res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+                  "-o", tmp_path / "rep2", "--terms", bad])
+    assert res.exit_code == 1
+    assert res.stderr.strip() == (f"error: {bad}:1: term: no words left after "
+                                  "normalisation in '...'")
+    assert not (tmp_path / "rep2").exists()

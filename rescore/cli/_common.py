@@ -172,6 +172,12 @@ def info(message: str) -> None:
         stderr.print(message, highlight=False)
 
 
+def warn(message: str, label: str = "warning") -> None:
+    """A ``warning:`` (or other ``label:``) line on stderr, shown even with --quiet: it is
+    not progress."""
+    stderr.print(f"{label}: {message}", highlight=False, soft_wrap=True, markup=False)
+
+
 def table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[object]]) -> None:
     t = Table(title=title, title_justify="left", show_edge=False, pad_edge=False)
     for i, name in enumerate(columns):

@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 
 from rescore import pipeline
-from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table
+from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -19,9 +19,11 @@ from rescore.cli.options import (
     OutOpt,
     RefsOpt,
 )
+from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
 from rescore.errors import UsageError
 from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
+from rescore.report.load import reference_sentences
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -44,12 +46,25 @@ WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           costs: CostsOpt = None, as_json: JsonOpt = False,
-          batch_size: BatchOpt = 2000) -> None:
+          batch_size: BatchOpt = 2000,
+          lm: Annotated[list[Path] | None, typer.Option(
+              "--lm", help="Count the references found verbatim in this LM's training text "
+              "(repeatable).", show_default=False)] = None,
+          warn_overlap: WarnOverlapOpt = "1%") -> None:
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
-    result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
+    threshold = gate_rate(warn_overlap, "--warn-overlap") or 0.0
+    if lm and str(nbest) == "-":
+        raise UsageError("check --lm reads the references a second time: give a file, not -")
+    ref_map = _refs(refs)
+    result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
                                  batch_size=batch_size)
+    overlap = None if not lm else leakage(
+        [(str(p), p) for p in lm],
+        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs), threshold)
+    for line in [] if overlap is None else overlap.warnings():
+        warn(line)
     if as_json:
-        emit_json(result.to_dict())
+        emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()}))
         return
     table(f"{nbest}", ["", "value"], [
         ["utterances", result.utterances],
@@ -58,6 +73,9 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         ["mean depth", result.hypotheses / max(result.utterances, 1)],
         ["1-best WER", pct(result.one_best_wer)],
         ["oracle WER", pct(result.oracle_wer)],
+        *([] if overlap is None else [
+            ["references in the LM text", f"{overlap.found} of {overlap.references} "
+             f"({pct(overlap.share)})"]]),
     ])
     table("list depth", ["hypotheses", "utterances"],
           [[d, c] for d, c in sorted(result.depths.items())])

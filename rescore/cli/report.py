@@ -2,18 +2,72 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info, pct, stages, table
+from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
-from rescore.errors import GateError, InputError
+from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
+
+if TYPE_CHECKING:
+    from rescore.lm.fingerprint import OverlapSummary
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
+
+
+WarnOverlapOpt = Annotated[str, typer.Option(
+    "--warn-overlap", help="Warn when more than this share of the test references are "
+    "sentences of an LM's training text: a percentage (1%) or a fraction (0.01).")]
+
+
+def gate_rate(text: str | None, option: str) -> float | None:
+    """A gate threshold as a fraction: ``5%`` (a percentage, 0 to 100) or ``0.05`` (a
+    fraction, 0 to 1); anything else is a usage error that shows both forms."""
+    if text is None:
+        return None
+    raw = text.strip()
+    percent = raw.endswith("%")
+    try:
+        value = float(raw[:-1] if percent else raw)
+    except ValueError:
+        value = math.nan
+    limit = 100.0 if percent else 1.0
+    if not (0.0 <= value <= limit):
+        raise UsageError(f"{option} {text!r}: expected a percentage from 0% to 100% (5%) or a "
+                         "fraction from 0 to 1 (0.05)")
+    return value / 100.0 if percent else value
+
+
+def _leak_models(lm: list[Path] | None, weights: Path | None) -> list[tuple[str, Path]]:
+    """The models to check for leakage: those given, else those the weights file records
+    whose file is still at its recorded path with its recorded SHA-256."""
+    if lm:
+        return [(str(p), p) for p in lm]
+    if weights is None:
+        return []
+    recorded = _read_tuning(weights).get("provenance", {})
+    models = recorded.get("models", {}) if isinstance(recorded, dict) else {}
+    out = []
+    for name, entry in (models.items() if isinstance(models, dict) else ()):
+        path = Path(str(entry.get("path", ""))) if isinstance(entry, dict) else None
+        if path is not None and path.is_file() and sha256_file(path) == entry.get("sha256"):
+            out.append((str(name), path))
+    return out
+
+
+def leakage(models: list[tuple[str, Path]], references: list[list[str]],
+            threshold: float) -> OverlapSummary:
+    """The overlap of the references with the named models' training text."""
+    from rescore.lm import load_model
+    from rescore.lm.fingerprint import overlap_summary
+
+    return overlap_summary([(name, load_model(path)) for name, path in models], references,
+                           threshold=threshold)
 
 
 def _read_tuning(path: Path) -> dict[str, Any]:
@@ -38,16 +92,30 @@ def report(
     weights: Annotated[Path | None, typer.Option(
         "--weights", help="Weights file that produced AFTER; its weights and SHA-256 go into "
         "the provenance.")] = None,
-    max_wer: Annotated[float | None, typer.Option(
-        "--max-wer", help="Gate: fail (exit 3) when the after WER is above this.")] = None,
-    max_regression: Annotated[float | None, typer.Option(
+    max_wer: Annotated[str | None, typer.Option(
+        "--max-wer", help="Gate: fail (exit 3) when the after WER is above this; a percentage "
+        "(5%) or a fraction in [0, 1] (0.05).", show_default=False)] = None,
+    max_regression: Annotated[str | None, typer.Option(
         "--max-regression",
-        help="Gate: fail (exit 3) when after - before WER is above this (absolute).")] = None,
+        help="Gate: fail (exit 3) when after - before WER is above this many points; a "
+        "percentage (0.5%) or a fraction in [0, 1] (0.005).", show_default=False)] = None,
+    terms: Annotated[Path | None, typer.Option(
+        "--terms", help="Critical terms counted apart: one word or phrase a line, or "
+        "CLASS<TAB>term (negations<TAB>... extends a built-in class).",
+        show_default=False)] = None,
+    lm: Annotated[list[Path] | None, typer.Option(
+        "--lm", help="Language model whose training text is checked for the test references "
+        "(repeatable). Default: the models the --weights file records, where they still are.",
+        show_default=False)] = None,
+    warn_overlap: WarnOverlapOpt = "1%",
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
+    max_wer_rate = gate_rate(max_wer, "--max-wer")
+    max_regression_rate = gate_rate(max_regression, "--max-regression")
+    overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
     from rescore.nbest import read_refs
     from rescore.report import (
         build_report,
@@ -57,23 +125,32 @@ def report(
         with_gate,
         write_report,
     )
+    from rescore.report.critical import classes_with_terms, read_terms
     from rescore.report.load import weights_provenance
-    from rescore.report.text import p_value
+    from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
 
+    classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
     tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
                                                                path=str(tuning))
-    files = [p for p in (before, after, refs, tuning) if p is not None]
+    files = [p for p in (before, after, refs, tuning, terms) if p is not None]
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
+    models = _leak_models(lm, weights)
+    overlap = None
+    if models:
+        overlap = leakage(models, [list(p.reference) for p in before_pairs],
+                          overlap_threshold or 0.0)
+        provenance["overlap_models"] = {name: sha256_file(path) for name, path in models}
     with stages("report") as report_progress:
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed,
+                              critical_classes=classes, overlap=overlap,
                               progress=report_progress)
-    result = with_gate(result, max_wer=max_wer, max_regression=max_regression)
+    result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
     written = write_report(result, out)
     data = result.to_dict()
     if as_json:
@@ -82,15 +159,18 @@ def report(
     else:
         d = result.difference
         table(None, ["", "before", "after", "change"], [
-            ("WER", pct(result.before.wer), pct(result.after.wer),
-             f"{100 * d.absolute:+.2f}%"),
-            ("interval of the change", "", "",
-             f"[{100 * d.ci_low:+.2f}%, {100 * d.ci_high:+.2f}%]"),
-            ("probability of improvement", "", "", f"{d.probability_of_improvement:.4f}"),
+            ("WER", pct(result.before.wer), pct(result.after.wer), points(d.absolute)),
+            ("interval of the change", "", "", interval(d.ci_low, d.ci_high)),
+            ("probability of improvement", "", "",
+             share_of_resamples(d.probability_of_improvement, result.bootstrap.resamples)),
             ("p (matched pairs / sign / Wilcoxon)", "", "",
              " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
         ])
-    reasons = gate_failures(result, max_wer=max_wer, max_regression=max_regression)
+    for warning in result.warnings:
+        warn(warning)
+    warn(CAUTION, label="caution")
+    reasons = gate_failures(result, max_wer=max_wer_rate,
+                            max_regression=max_regression_rate)
     if reasons:
         # the one line of a failed gate also says where the report is
         raise GateError("release gate failed: " + "; ".join(reasons)

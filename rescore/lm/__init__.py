@@ -33,7 +33,8 @@ def save_model(model: NGramModel, path: str | Path) -> None:
     else:
         from rescore.lm import store
 
-        digest = store.save(model._fitted(), model.metadata_, path)
+        digest = store.save(model._fitted(), model.metadata_, path,
+                            {"sentence_hashes": model.sentence_hashes})
         model._checksum = digest
 
 
@@ -46,8 +47,8 @@ def load_model(path: str | Path) -> NGramModel:
         return NGramModel.from_tables(tables, meta)
     from rescore.lm import store
 
-    tables, meta, digest = store.load(path)
-    return NGramModel.from_tables(tables, meta, digest)
+    tables, meta, digest, optional = store.load_with_optional(path)
+    return NGramModel.from_tables(tables, meta, digest, optional["sentence_hashes"])
 
 
 __all__ = [

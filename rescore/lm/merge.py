@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 import numpy.typing as npt
 
-from rescore.lm import hashindex
+from rescore.lm import fingerprint, hashindex
 from rescore.lm.mix import Mixture, mix_logprobs
 from rescore.lm.model import NGramModel
 from rescore.lm.tables import BackoffTables
@@ -88,4 +88,7 @@ def merge(mixture: Mixture) -> NGramModel:
         "mixture_weights": [float(x) for x in mixture.weights],
         "mixture_components": [m.checksum for m in mixture.models],
     }
-    return NGramModel.from_tables(tables, meta)
+    # the mixture was trained on every component's text: the union of their fingerprints
+    return NGramModel.from_tables(
+        tables, meta, sentence_hashes=fingerprint.union([m.sentence_hashes
+                                                         for m in mixture.models]))

@@ -12,6 +12,7 @@ import numpy.typing as npt
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.counts import count_ngrams, window_floor
+from rescore.lm.fingerprint import Recorder
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
@@ -65,6 +66,9 @@ class NGramModel:
         self.cutoffs = None if cutoffs is None else list(cutoffs)
         self.prune = prune
         self._checksum: str | None = None
+        #: sorted unique XXH3-64 hashes of the normalised training sentences (see
+        #: :mod:`rescore.lm.fingerprint`), or None when unknown (an ARPA file, older files)
+        self.sentence_hashes: npt.NDArray[np.uint64] | None = None
 
     # --- settings -------------------------------------------------------------------------
 
@@ -93,7 +97,8 @@ class NGramModel:
         order by order.
         """
         self._check_settings()
-        words, counts, body, lengths = first_pass(sentences)
+        recorder = Recorder(sentences)
+        words, counts, body, lengths = first_pass(recorder)
         vocab = Vocabulary.from_words(
             choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
                          min_count=self.min_count)
@@ -115,6 +120,7 @@ class NGramModel:
             "training_words": len(body),
             "training_oov": int(np.count_nonzero(stream.tokens == UNK_ID)),
         })
+        self.sentence_hashes = recorder.result()
         return self
 
     def _set_fitted(self, tables: BackoffTables, extra: dict[str, Any]) -> None:
@@ -137,7 +143,8 @@ class NGramModel:
 
     @classmethod
     def from_tables(
-        cls, tables: BackoffTables, metadata: dict[str, Any], checksum: str | None = None
+        cls, tables: BackoffTables, metadata: dict[str, Any], checksum: str | None = None,
+        sentence_hashes: npt.NDArray[np.uint64] | None = None,
     ) -> NGramModel:
         """A fitted model around ready-made tables (a loaded file)."""
         method = str(metadata.get("method", "arpa"))
@@ -153,6 +160,7 @@ class NGramModel:
                                "cutoffs", "prune"}}
         model._set_fitted(tables, rest)
         model._checksum = checksum
+        model.sentence_hashes = sentence_hashes
         return model
 
     def _fitted(self) -> BackoffTables:
@@ -173,7 +181,8 @@ class NGramModel:
             from rescore.lm.store import content_parts
 
             digest = hashlib.sha256()
-            for part in content_parts(self._fitted(), self.metadata_):
+            for part in content_parts(self._fitted(), self.metadata_,
+                                      {"sentence_hashes": self.sentence_hashes}):
                 digest.update(part)
             self._checksum = digest.hexdigest()
         return self._checksum

@@ -12,6 +12,9 @@ memory-maps the file (read-only), verifies length, marks, version and CRC over t
 bytes, then views the arrays in place: every table is a
 zero-copy numpy view of the mapping, so processes that load the same file share its pages
 through the operating system's page cache instead of each holding a private copy.
+An optional array ``sentence_hashes`` (the training text's fingerprint, see
+:mod:`rescore.lm.fingerprint`; 8 bytes per distinct sentence) follows the tables when the
+model has one; files without it load, with no fingerprint.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ import mmap
 import os
 import struct
 import zlib
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
@@ -44,6 +47,10 @@ _TRAILER = 32 + 4 + 4 + 8
 _DTYPES = {"<f8", "<u8", "<i4", "|u1"}
 
 
+# optional arrays: absent from older files, and read back as None when absent
+OPTIONAL_ARRAYS = ("sentence_hashes",)
+
+
 def _arrays(tables: BackoffTables) -> list[tuple[str, np.ndarray[Any, Any]]]:
     vocab = "\n".join(tables.vocab.words).encode("utf-8")
     out: list[tuple[str, np.ndarray[Any, Any]]] = [("vocab", np.frombuffer(vocab, np.uint8))]
@@ -62,9 +69,14 @@ def _pad(n: int) -> int:
     return (-n) % ALIGN
 
 
-def content_parts(tables: BackoffTables, metadata: dict[str, Any]) -> Iterator[bytes | memoryview]:
-    """The file's bytes before its digest, in order, without copying the arrays."""
-    arrays = _arrays(tables)
+def content_parts(tables: BackoffTables, metadata: dict[str, Any],
+                  optional: Mapping[str, np.ndarray[Any, Any] | None] | None = None
+                  ) -> Iterator[bytes | memoryview]:
+    """The file's bytes before its digest, in order, without copying the arrays;
+    ``optional`` holds the arrays of :data:`OPTIONAL_ARRAYS` to store (None: left out)."""
+    arrays = _arrays(tables) + [
+        (name, np.ascontiguousarray(arr, dtype=arr.dtype.newbyteorder("<")))
+        for name, arr in sorted((optional or {}).items()) if arr is not None]
     directory = []
     offset = 0
     for name, arr in arrays:
@@ -82,12 +94,13 @@ def content_parts(tables: BackoffTables, metadata: dict[str, Any]) -> Iterator[b
         yield b"\0" * _pad(arr.nbytes)
 
 
-def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path) -> str:
+def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path,
+         optional: Mapping[str, np.ndarray[Any, Any] | None] | None = None) -> str:
     """Write the model atomically; return its sha256."""
     digest = hashlib.sha256()
     check = xxhash.xxh3_64()
     with atomic_output(path, "wb") as fh:
-        for part in content_parts(tables, metadata):
+        for part in content_parts(tables, metadata, optional):
             digest.update(part)
             check.update(part)
             fh.write(part)
@@ -125,6 +138,13 @@ def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
     The arrays of the returned tables are read-only views of the mapping (nothing is
     copied or unpickled); the mapping lives as long as any of them does.
     """
+    tables, metadata, sha, _ = load_with_optional(path)
+    return tables, metadata, sha
+
+
+def load_with_optional(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str,
+                                                  dict[str, np.ndarray[Any, Any] | None]]:
+    """:func:`load`, and the optional arrays by name (None where the file has none)."""
     data = map_file(path)
     if len(data) < _PREAMBLE.size + _TRAILER or data[:8] != MAGIC:
         raise _bad(path, "unknown file type (no rescore model mark)")
@@ -155,12 +175,16 @@ def load(path: str | Path) -> tuple[BackoffTables, dict[str, Any], str]:
             if start + int(entry["offset"]) + arrays[entry["name"]].nbytes > len(body):
                 raise ValueError(f"array {entry['name']} runs past the data")
         tables = _tables(int(header["order"]), arrays)
+        optional = {name: arrays.get(name) for name in OPTIONAL_ARRAYS}
+        hashes = optional["sentence_hashes"]
+        if hashes is not None and (hashes.dtype.str != "<u8" or hashes.ndim != 1):
+            raise ValueError("sentence_hashes")
         metadata = header["metadata"]
         if not isinstance(metadata, dict):
             raise ValueError("metadata is not an object")
     except (ValueError, KeyError, TypeError, IndexError) as exc:
         raise _bad(path, f"inconsistent contents ({exc})") from None
-    return tables, metadata, sha
+    return tables, metadata, sha, optional
 
 
 def _intact(version: int, data: mmap.mmap, checked: memoryview) -> bool:

@@ -16,6 +16,9 @@ if TYPE_CHECKING:
 TOP = 15
 CHANGED = 10
 MAX_GROUPS = 50
+# common practice, not law: below this many utterances a subgroup's WER moves too much with
+# one utterance to compare groups or systems on it
+MIN_GROUP_UTTERANCES = 30
 
 
 @dataclass(frozen=True)
@@ -51,11 +54,17 @@ class GroupRow:
     def after_wer(self) -> float | None:
         return self.after_errors / self.reference_words if self.reference_words else None
 
+    @property
+    def too_small(self) -> bool:
+        """Fewer utterances than :data:`MIN_GROUP_UTTERANCES`: too few to compare."""
+        return self.utterances < MIN_GROUP_UTTERANCES
+
     def to_dict(self) -> dict[str, Any]:
         return {"value": self.value, "utterances": self.utterances,
                 "reference_words": self.reference_words,
                 "before_errors": self.before_errors, "after_errors": self.after_errors,
-                "before_wer": self.before_wer, "after_wer": self.after_wer}
+                "before_wer": self.before_wer, "after_wer": self.after_wer,
+                "too_small": self.too_small}
 
 
 @dataclass(frozen=True)

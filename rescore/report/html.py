@@ -63,7 +63,9 @@ del { background: #fbe0de; color: var(--bad); }
 .legend span { margin-right: 10px; }
 footer { color: var(--muted); padding-bottom: 30px; }
 .caution { background: #fff7e0; border: 1px solid #eed58c; color: #5c4700;
-           border-radius: 8px; padding: 12px 14px; margin: 24px 0 14px; }
+           border-radius: 8px; padding: 12px 14px; margin: 0 0 14px; }
+.warning { background: #fbe5e3; border: 1px solid #e8a9a3; color: var(--bad);
+           border-radius: 8px; padding: 10px 14px; margin-bottom: 14px; }
 code { font-family: ui-monospace, monospace; font-size: 12px; word-break: break-all; }
 """
 
@@ -196,12 +198,12 @@ def _tuning(report: Report) -> str:
         cards.append('<div class="card"><h3>Error surface on the tuning set</h3><figure>'
                      + plots.surface_heatmap(tuning.surface, tuning) + "</figure></div>")
     if tuning.depth:
-        cards.append('<div class="card"><h3>WER by N-best depth</h3><figure>'
+        cards.append('<div class="card"><h3>WER by N-best depth (dev set)</h3><figure>'
                      + plots.depth_curve(tuning) + "</figure>"
                      + _table(["k", "1-best", "rescored", "oracle"],
                               [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
                                 t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
-    return f'<h2>Tuning</h2><div class="row">{"".join(cards)}</div>'
+    return f'<h2>Tuning (dev set)</h2><div class="row">{"".join(cards)}</div>'
 
 
 def _changed(report: Report) -> str:
@@ -219,10 +221,9 @@ def _changed(report: Report) -> str:
 def _by_meta(report: Report) -> str:
     out = []
     for key, groups in report.breakdown.by_meta.items():
+        head, rows = t.group_table(key, groups)
         out.append(f'<div class="card"><h3>WER by {_e(key)}</h3>'
-                   + _table([key, "utterances", "ref words", "WER before", "WER after"],
-                            [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
-                              t.pct(g.after_wer)) for g in groups]) + "</div>")
+                   + _table(head, rows) + "</div>")
     skipped = report.breakdown.meta_skipped
     if skipped:
         out.append('<div class="card" id="meta-skipped"><h3>Metadata keys not broken down</h3>'
@@ -230,6 +231,30 @@ def _by_meta(report: Report) -> str:
                             [(k.key, k.reason, k.values) for k in skipped], numeric_from=2)
                    + "</div>")
     return f'<div class="row">{"".join(out)}</div>' if out else ""
+
+
+def _critical(report: Report) -> str:
+    if not report.critical:
+        return ""
+    head, rows = t.critical_table(report)
+    worse = "".join(f"<li>worse on {_e(c.name)}: {_e(t.worse_text([w.id for w in c.worse]))}"
+                    "</li>" for c in report.critical if c.worse)
+    return ('<div class="card" id="critical-words"><h3>Critical words</h3>'
+            + _table(head, rows) + f'<ul class="notes">{worse}<li>{_e(t.CRITICAL_NOTE)}</li>'
+            "</ul></div>")
+
+
+def _overlap(report: Report) -> str:
+    if report.overlap is None:
+        return ""
+    head, rows = t.overlap_table(report)
+    return ('<div class="card" id="overlap"><h3>Test references in the LM\'s training text</h3>'
+            + _table(head, rows) + f'<ul class="notes"><li>{_e(t.OVERLAP_NOTE)}</li></ul></div>')
+
+
+def _warnings(report: Report) -> str:
+    return "".join(f'<div class="warning"><strong>Warning.</strong> {_e(w)}</div>'
+                   for w in report.warnings)
 
 
 def render_html(report: Report) -> str:
@@ -262,11 +287,15 @@ def render_html(report: Report) -> str:
 reference words; normalisation {_e(report.provenance.get("normalisation", ""))}</p>
 </header>
 <main>
+{_warnings(report)}
 {_gate(report)}
 <div class="row">
 <div class="card">{_headline(report)}</div>
 <div class="card"><figure>{plots.wer_intervals(report)}</figure></div>
 </div>
+<div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
+{_critical(report)}
+{_overlap(report)}
 <div class="card">{counts}</div>
 <div class="card"><ul class="notes">{notes}</ul></div>
 {_tuning(report)}
@@ -289,7 +318,6 @@ reference words; normalisation {_e(report.provenance.get("normalisation", ""))}<
 <ol class="utts">{utterances}</ol>
 </main>
 <footer>
-<div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
 <h3>Provenance</h3>
 {provenance}
 </footer>

@@ -11,6 +11,7 @@ from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines, sha256_file
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
 from rescore.report.model import Pair
+from rescore.text import tokens
 
 
 def is_nbest_file(path: str | Path) -> bool:
@@ -53,6 +54,16 @@ def load_system(
     if not hyps:
         raise InputError("no utterances in the file", path=path)
     return [Pair.from_text(k, refs[k], hyps[k]) for k in refs]
+
+
+def reference_sentences(path: str | Path, *, refs: Mapping[str, str] | None = None,
+                        log_base: float | None = None,
+                        costs: bool | None = None) -> list[list[str]]:
+    """The normalised references of an N-best file (or ``refs`` in their place), in file
+    order; utterances without one are left out."""
+    return [tokens(u["reference"]) for _, u in iter_nbest(path, refs=refs, log_base=log_base,
+                                                          costs=costs)
+            if u.get("reference") is not None]
 
 
 def _ids(ids: list[str], limit: int = 5) -> str:

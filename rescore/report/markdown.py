@@ -38,12 +38,29 @@ def _confusions(name: str, c: Confusions) -> list[str]:
 
 def render_markdown(report: Report) -> str:
     out = [f"# {t.TITLE}", ""]
+    for warning in report.warnings:
+        out += [f"> **Warning.** {_cell(warning)}", ""]
     out += _table(["measure", "value"],
                   [(label, shown) for label, shown, _, _ in t.headline(report)])
+    out += [f"**Caution.** {t.CAUTION}", ""]
     if report.gate is not None:
         verdict = "passed" if report.gate["passed"] else "FAILED: " + "; ".join(
             report.gate["reasons"])
         out += [f"**Release gate:** {_cell(verdict)}", ""]
+    if report.critical:
+        out += ["## Critical words", ""]
+        head, rows_ = t.critical_table(report)
+        out += _table(head, rows_)
+        for cls in report.critical:
+            if cls.worse:
+                out += [f"Worse on {_cell(cls.name)}: "
+                        + _cell(t.worse_text([w.id for w in cls.worse])), ""]
+        out += [t.CRITICAL_NOTE, ""]
+    if report.overlap is not None:
+        out += ["## Test references in the LM's training text", ""]
+        head, rows_ = t.overlap_table(report)
+        out += _table(head, rows_)
+        out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
     rows = []
     for name, w, c in (("before", report.before, report.before_cer),
@@ -64,19 +81,17 @@ def render_markdown(report: Report) -> str:
                         " ".join(by_id[i].after.hypothesis)) for i in ids])
     for key, groups in report.breakdown.by_meta.items():
         out += [f"### WER by {_cell(key)}", ""]
-        out += _table([_cell(key), "utterances", "ref words", "WER before", "WER after"],
-                      [(g.value, g.utterances, g.reference_words, t.pct(g.before_wer),
-                        t.pct(g.after_wer)) for g in groups])
+        head, rows_ = t.group_table(key, groups)
+        out += _table([_cell(h) for h in head], rows_)
     if report.breakdown.meta_skipped:
         out += ["### Metadata keys not broken down", ""]
         out += _table(["key", "why", "distinct values"],
                       [(k.key, k.reason, k.values) for k in report.breakdown.meta_skipped])
     if report.tuning is not None and report.tuning.depth:
-        out += ["## WER by N-best depth", ""]
+        out += ["## WER by N-best depth (dev set, from tuning)", ""]
         out += _table(["k", "1-best", "rescored", "oracle"],
                       [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
                        for r in report.tuning.depth])
     out += ["## Provenance", ""]
     out += _table(["item", "value"], t.provenance_rows(report))
-    out += ["---", "", f"**Caution.** {t.CAUTION}", ""]
     return "\n".join(out)

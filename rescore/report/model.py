@@ -15,9 +15,11 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import InputError
+from rescore.lm.fingerprint import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
-from rescore.report.breakdown import Breakdown, build_breakdown
+from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
+from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
 from rescore.significance import (
     BootstrapResult,
     MatchedPairsResult,
@@ -43,6 +45,9 @@ DEFAULT_RESAMPLES = 10_000
 DEFAULT_SEED = 0
 DEFAULT_CONFIDENCE = 0.95
 DEFAULT_MIN_RUN = 2
+# common practice, not law: under about a hundred test utterances one utterance moves the
+# WER and the tests' verdicts too much to rest a release on
+MIN_TEST_UTTERANCES = 100
 
 # carried by every report (a report.json field, and the .md and .html footers) and the README
 CAUTION = (
@@ -165,6 +170,9 @@ class Report:
     provenance: Mapping[str, Any]
     tuning: Tuning | None = None
     gate: Mapping[str, Any] | None = None
+    warnings: tuple[str, ...] = ()
+    critical: tuple[ClassResult, ...] = ()
+    overlap: OverlapSummary | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -180,6 +188,8 @@ class Report:
                 "wilcoxon": self.wilcoxon.to_dict(),
             },
             "breakdown": self.breakdown.to_dict(),
+            "critical_words": {c.name: c.to_dict() for c in self.critical},
+            **({} if self.overlap is None else {"overlap": self.overlap.to_dict()}),
             "utterances": [
                 {"id": u.id, "reference_words": u.reference_words,
                  "before_errors": u.before_errors, "after_errors": u.after_errors,
@@ -193,6 +203,7 @@ class Report:
             out["tuning"] = self.tuning.to_dict()
         if self.gate is not None:
             out["gate"] = dict(self.gate)
+        out["warnings"] = list(self.warnings)
         out["provenance"] = dict(self.provenance)
         out["caution"] = CAUTION
         return out
@@ -244,13 +255,19 @@ def build_report(
     seed: int = DEFAULT_SEED,
     confidence: float = DEFAULT_CONFIDENCE,
     min_run: int = DEFAULT_MIN_RUN,
+    critical_classes: Sequence[CriticalClass] | None = None,
+    overlap: OverlapSummary | None = None,
     progress: ProgressReport | None = None,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
     ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
     and ``depth`` are shown when present). ``progress`` (see :mod:`rescore.progress`)
-    hears of the bootstrap, resample by resample.
+    hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
+    of critical words counted apart (default: the built-in numbers and negations; see
+    :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
+    language models' training text (:func:`rescore.lm.fingerprint.overlap_summary`); above
+    its threshold the report warns first of all.
     """
     if tuning is not None and not isinstance(tuning, Tuning):
         tuning = tuning_from_dict(tuning)
@@ -295,12 +312,27 @@ def build_report(
         "wilcoxon": {"zeros": "dropped", "ties": "mid-ranks", "exact_limit": 50},
     }
     prov.update(provenance or {})
+    warnings: list[str] = []
+    warnings += [] if overlap is None else overlap.warnings()
+    if len(rows) < MIN_TEST_UTTERANCES:
+        warnings.append(f"only {len(rows)} test utterances (fewer than {MIN_TEST_UTTERANCES}): "
+                        "one utterance moves the WER and the tests' verdicts a lot; treat "
+                        "the comparison as a hint, not evidence")
+    breakdown = build_breakdown(rows)
+    small = sorted(key for key, groups in breakdown.by_meta.items()
+                   if any(g.too_small for g in groups))
+    if small:
+        warnings.append(f"subgroups with fewer than {MIN_GROUP_UTTERANCES} utterances (by "
+                        f"{', '.join(small)}) are too small to compare; they are marked")
     return Report(
         before=wer_b, after=wer_a,
         before_cer=corpus_cer(refs, hyp_b), after_cer=corpus_cer(refs, hyp_a),
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
-        breakdown=build_breakdown(rows),
-        utterances=rows, provenance=prov, tuning=tuning,
+        breakdown=breakdown,
+        utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
+        critical=critical_words(rows, builtin_classes() if critical_classes is None
+                                else critical_classes),
+        overlap=overlap,
     )
 
 
@@ -308,11 +340,13 @@ def gate_failures(report: Report, *, max_wer: float | None = None,
                   max_regression: float | None = None) -> list[str]:
     """Why the release gates fail (empty when they pass or none is set)."""
     reasons = []
+    # in the report's units: WERs in percent, their change in percentage points
     if max_wer is not None and report.after.wer > max_wer:
-        reasons.append(f"after WER {report.after.wer:.4f} is above --max-wer {max_wer:g}")
+        reasons.append(f"after WER {100 * report.after.wer:.2f}% is above --max-wer "
+                       f"{100 * max_wer:g}%")
     if max_regression is not None and report.difference.absolute > max_regression:
-        reasons.append(f"WER change {report.difference.absolute:+.4f} is above "
-                       f"--max-regression {max_regression:g}")
+        reasons.append(f"WER change {100 * report.difference.absolute:+.2f} points is above "
+                       f"--max-regression {100 * max_regression:g} points")
     return reasons
 
 

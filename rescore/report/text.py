@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import json
+import math
 from typing import Any
 
+from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
 from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.model import Report
 
@@ -23,8 +25,26 @@ def p_value(value: float) -> str:
     return "< 0.0001" if value < 1e-4 else f"{value:.4f}"
 
 
+def points(value: float | None, digits: int = 2) -> str:
+    """A difference of two rates in percentage points: ``-12.40 points``."""
+    return "-" if value is None else f"{100 * value:+.{digits}f} points"
+
+
 def interval(lo: float, hi: float) -> str:
-    return f"[{signed_pct(lo)}, {signed_pct(hi)}]"
+    return f"[{100 * lo:+.2f}, {100 * hi:+.2f}] points"
+
+
+def share_of_resamples(value: float, resamples: int) -> str:
+    """A share of ``resamples`` at the resolution they allow: never 1.0000 or 0.0000 when
+    one resample more or fewer would have changed it (``> 0.9999`` after 10,000 resamples
+    that all improve). At least four decimals; more when there are over 10,000 resamples."""
+    digits = max(4, math.ceil(math.log10(max(resamples, 1))))
+    step = 1.0 / max(resamples, 1)
+    if value >= 1.0:
+        return f"> {1.0 - step:.{digits}f}"
+    if value <= 0.0:
+        return f"< {step:.{digits}f}"
+    return f"{value:.{digits}f}"
 
 
 def plain_interval(lo: float, hi: float) -> str:
@@ -38,7 +58,7 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
     return [
         ("WER before", pct(report.before.wer), "before.wer", report.before.wer),
         ("WER after", pct(report.after.wer), "after.wer", report.after.wer),
-        ("Absolute change (after - before)", signed_pct(d.absolute), "difference.absolute",
+        ("Absolute change (after - before)", points(d.absolute), "difference.absolute",
          d.absolute),
         ("Relative change", signed_pct(d.relative, 1), "difference.relative", d.relative),
         (f"{level} interval of the change", interval(d.ci_low, d.ci_high),
@@ -47,7 +67,8 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
          "tests.bootstrap.before_ci", list(b.before_ci)),
         (f"{level} interval of WER after", plain_interval(*b.after_ci),
          "tests.bootstrap.after_ci", list(b.after_ci)),
-        ("Probability of improvement", f"{d.probability_of_improvement:.4f}",
+        ("Probability of improvement",
+         share_of_resamples(d.probability_of_improvement, b.resamples),
          "difference.probability_of_improvement", d.probability_of_improvement),
         ("Matched-pairs segment test p" + (
             " (exact sign test: W undefined)" if report.matched_pairs.method == "sign" else ""),
@@ -118,3 +139,60 @@ def weights_text(weights: dict[str, Any]) -> str:
     parts += [f"feature {name} {value!r}"
               for name, value in sorted(weights.get("features", {}).items())]
     return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"
+
+
+def group_table(key: str, groups: tuple[GroupRow, ...]) -> tuple[list[str], list[tuple[Any, ...]]]:
+    """Head and rows of a WER-by-metadata table; a ``note`` column marks the groups too
+    small to compare, and appears only when there is one."""
+    head = [key, "utterances", "ref words", "WER before", "WER after"]
+    rows: list[tuple[Any, ...]] = [(g.value, g.utterances, g.reference_words,
+                                    pct(g.before_wer), pct(g.after_wer)) for g in groups]
+    if any(g.too_small for g in groups):
+        note = f"too small to compare (under {MIN_GROUP_UTTERANCES})"
+        head.append("note")
+        rows = [(*r, note if g.too_small else "") for r, g in zip(rows, groups, strict=True)]
+    return head, rows
+
+
+def critical_table(report: Report) -> tuple[list[str], list[tuple[Any, ...]]]:
+    """Head and rows of the critical-words table: per class, occurrences in the references,
+    errors and error rate before and after, and how many utterances got worse on it."""
+    head = ["class", "occurrences", "errors before", "rate before", "errors after",
+            "rate after", "utterances worse"]
+    rows = [(c.name, c.before.occurrences, c.before.errors, pct(c.before.error_rate),
+             c.after.errors, pct(c.after.error_rate), len(c.worse)) for c in report.critical]
+    return head, rows
+
+
+def worse_text(ids: list[str], limit: int = 20) -> str:
+    shown = ", ".join(ids[:limit])
+    return shown if len(ids) <= limit else f"{shown} and {len(ids) - limit} more"
+
+
+CRITICAL_NOTE = ("Errors on a class: its words in the reference substituted or deleted, or "
+                 "its words in the hypothesis where the reference has none of them; the rate "
+                 "is errors over occurrences in the references.")
+
+
+def overlap_table(report: Report) -> tuple[list[str], list[tuple[Any, ...]]]:
+    """Per model: test references found verbatim in its training text, and the share of the
+    references' highest-order n-grams the model lists (reported, not warned on)."""
+    head = ["model", "references", "found", "share", "n-gram order", "n-grams listed"]
+    o = report.overlap
+    if o is None:
+        return head, []
+    rows: list[tuple[Any, ...]] = [
+        (m.model, m.references, m.found, pct(m.share),
+         "-" if m.ngram_order is None else m.ngram_order, pct(m.ngram_share))
+        for m in o.per_model]
+    if len(o.per_model) > 1:
+        rows.append(("any of them", o.references, o.found, pct(o.share), "-", "-"))
+    rows += [(name, o.references, "not checked (no fingerprint)", "-", "-", "-")
+             for name in o.unchecked]
+    return head, rows
+
+
+OVERLAP_NOTE = ("A reference counts as found when the same normalised sentence is in the "
+                "model's training text (64-bit hashes kept in the model file). n-grams "
+                "listed: the references' n-grams of the model's highest order that the "
+                "model holds; cut-offs and pruning drop some seen in training.")

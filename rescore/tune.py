@@ -41,6 +41,7 @@ from rescore.scoring import (
     oracle_rows,
     segment_argmax,
 )
+from rescore.wer import UNDEFINED_WER
 
 DEFAULT_LM_GRID = (0.0, 30.0, 121)
 DEFAULT_PENALTY_GRID = (-20.0, 20.0, 81)
@@ -241,7 +242,7 @@ def _check_matrix(matrix: FeatureMatrix) -> tuple[np.ndarray, int]:
         raise InputError("scores must be finite (NaN or infinite value in the feature matrix)")
     words = int(matrix.ref_words.sum())
     if words == 0:
-        raise InputError("the references hold no words; WER is undefined")
+        raise InputError(UNDEFINED_WER)
     return matrix.errors.astype(np.int64), words
 
 
@@ -1116,6 +1117,28 @@ def read_weights(path: str | Path) -> Weights:
         raise InputError("expected an object", path=where, field="provenance")
     return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
                    insertion_penalty=values["insertion_penalty"], features=feats)
+
+
+def read_weights_models(path: str | Path) -> dict[str, str]:
+    """The SHA-256 of each model the weights were tuned with, by name, as the weights
+    file's provenance records them (empty when it records none)."""
+    where = str(path)
+    try:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise InputError(str(exc), path=where) from None
+    prov = data.get("provenance") if isinstance(data, dict) else None
+    models = prov.get("models") if isinstance(prov, dict) else None
+    if not isinstance(models, dict):
+        return {}
+    out = {}
+    for name, record in models.items():
+        digest = record.get("sha256") if isinstance(record, dict) else None
+        if not isinstance(digest, str):
+            raise InputError("expected the model's sha256 as a string", path=where,
+                             field=f"provenance.models.{name}.sha256")
+        out[str(name)] = digest
+    return out
 
 
 def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:

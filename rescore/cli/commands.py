@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Annotated
 
@@ -48,6 +49,7 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
     result = pipeline.check_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
                                  batch_size=batch_size)
+    _warn(result.warnings)
     if as_json:
         emit_json(result.to_dict())
         return
@@ -58,9 +60,17 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         ["mean depth", result.hypotheses / max(result.utterances, 1)],
         ["1-best WER", pct(result.one_best_wer)],
         ["oracle WER", pct(result.oracle_wer)],
+        ["empty hypotheses", result.lists.empty_hypotheses],
+        ["duplicates (after normalisation)", result.lists.duplicate_hypotheses],
+        ["lists ordered against their scores", result.lists.lists_out_of_order],
     ])
     table("list depth", ["hypotheses", "utterances"],
           [[d, c] for d, c in sorted(result.depths.items())])
+
+
+def _warn(warnings: Sequence[str]) -> None:
+    for line in warnings:
+        info(f"warning: {line}")
 
 
 @guarded
@@ -84,18 +94,24 @@ def apply(
     shard_mb: Annotated[float, typer.Option(
         "--shard-mb", min=0.001, help="With --workers or --cluster: least size of one shard "
         "of the input, in MiB (the input is cut into at most 4 shards per worker).")] = 1.0,
+    allow_other_model: Annotated[bool, typer.Option(
+        "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
+        "from the one the weights were tuned with.")] = False,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     w = pipeline.read_weights(weights)
+    for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
+        info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+    _warn(result.warnings)
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
-    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best) "
-         f"-> {out}")
+    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
+         f"{result.empty} chose an empty hypothesis) -> {out}")
 
 
 @guarded

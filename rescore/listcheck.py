@@ -7,10 +7,10 @@ scores are positive after reading, the file most likely holds costs read as
 log-likelihoods. Recognizers write their lists best first (by their own total, so the
 acoustic score alone need not fall at every step, but it falls on the whole); a list whose
 acoustic scores grow down the list (positive covariance with the position) is ordered
-against its scores, which is what costs read as log-likelihoods look like too. Thresholds (common practice, not law):
-:data:`POSITIVE_SHARE` of the acoustic scores positive, or more than
-:data:`DISORDER_SHARE` of the lists (of two or more hypotheses with different scores,
-at least :data:`MIN_LISTS` of them) ordered against their scores.
+against its scores, which is what costs read as log-likelihoods look like too.
+Thresholds (common practice, not law): :data:`POSITIVE_SHARE` of the acoustic scores
+positive, or more than :data:`DISORDER_SHARE` of the lists (of two or more hypotheses
+with different scores, at least :data:`MIN_LISTS` of them) ordered against their scores.
 """
 
 from __future__ import annotations

@@ -446,10 +446,11 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
 class TuneOutcome:
     result: Any
     provenance: dict[str, Any] = field(default_factory=dict)
+    warnings: tuple[str, ...] = ()  # the dev lists' score convention (rescore.listcheck)
 
     def to_dict(self) -> dict[str, Any]:
         data: dict[str, Any] = self.result.to_dict()
-        return data
+        return data | {"warnings": list(self.warnings)}
 
 
 def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
@@ -504,9 +505,12 @@ def tune_file(
     features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
     weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
-    progress: Report | None = None,
+    progress: Report | None = None, widen: bool = True, bounds: str | None = None,
 ) -> TuneOutcome:
     """Read and score the dev set, tune, write the weights (and the analysis).
+
+    ``widen`` lets the grid search widen its grid (see :func:`rescore.tune.widen_grid`);
+    ``bounds`` is ``LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH``, the exact search's box.
 
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
@@ -514,19 +518,22 @@ def tune_file(
     from rescore import tune as tuning
 
     extra_lms = [lm_column(n) for n in models if n != LM]
+    main_lm = LM if LM in models else None
+    box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)
     scoring = Steps(progress, "scoring the dev set",
                     None if progress is None else count_lines(path))
     matrix = load_matrix(path, models=models, features=features, refs=refs,
                          log_base=log_base, costs=costs, progress=scoring)
     scoring.finish()
+    stats = score_stats(matrix.column(ACOUSTIC), matrix.offsets)
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))
     result = tuning.tune(
         matrix, search=search, features=[*extra_lms, *features],
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
-        folds=folds, seed=seed, cv_warn=cv_warn, lm_column=LM if LM in models else None,
-        progress=progress,
+        folds=folds, seed=seed, cv_warn=cv_warn, lm_column=main_lm,
+        progress=progress, widen=widen, bounds=box,
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
@@ -539,4 +546,4 @@ def tune_file(
 
         write_text_atomic(analysis_path, json.dumps(result.to_dict() | {"provenance": prov},
                                                     indent=2) + "\n")
-    return TuneOutcome(result, prov)
+    return TuneOutcome(result, prov, stats.warnings(costs=_read_as_costs(path, costs)))

@@ -166,6 +166,13 @@ def tune(
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
+    no_widen: Annotated[bool, typer.Option(
+        "--no-widen", help="Keep the grid fixed even when its fewest-errors region touches "
+        "its edge (warn instead of widening it).")] = False,
+    bounds: Annotated[str | None, typer.Option(
+        "--bounds", metavar="LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH",
+        help="The exact search's box for LM weight and insertion penalty, which also "
+        "limits grid widening (default 0:100,-100:100).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
@@ -179,12 +186,16 @@ def tune(
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
-            progress=report,
+            progress=report, widen=not no_widen, bounds=bounds,
         )
     data = outcome.to_dict()
+    _warn(outcome.warnings)
+    for widening in outcome.result.widenings:
+        info(widening.describe())
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
-            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning")})
+            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning",
+                                     "widenings", "warnings")})
     else:
         gap = data.get("cv_gap")
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [

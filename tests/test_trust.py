@@ -235,3 +235,24 @@ def test_apply_counts_changed_and_empty_choices(tmp_path: Path) -> None:
         assert result.exit_code == 0, result.stderr
         assert f"({changed} changed 1-best, {empty} chose an empty hypothesis)" \
             in result.stderr, penalty
+
+
+def test_parallel_apply_pools_the_counts_of_its_shards(tmp_path: Path) -> None:
+    # the same file in one process and in shards: the same summary and warnings (the
+    # counts are sums over utterances, so splitting the file cannot change them)
+    nbest = _lists(tmp_path / "costs.jsonl", 40, costs=True)
+    weights = tmp_path / "w.json"
+    weights.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
+                                   "insertion_penalty": 0.0, "features": {}}))
+    one = run(["apply", nbest, "--weights", weights, "-o", tmp_path / "a.jsonl"])
+    many = run(["apply", nbest, "--weights", weights, "-o", tmp_path / "b.jsonl",
+                "--workers", "2", "--shard-mb", "0.001"])
+    assert one.exit_code == 0 and many.exit_code == 0, many.stderr
+    # derived: 40 lists of two costs read as log-likelihoods: 80 of 80 scores positive,
+    # the second hypothesis (higher as read) chosen in all 40
+    assert "80 of 80 acoustic scores" in one.stderr and "40 of 40 lists" in one.stderr
+    assert "(40 changed 1-best, 0 chose an empty hypothesis)" in one.stderr
+    warnings = [ln for ln in many.stderr.splitlines() if ln.startswith("warning:")]
+    assert warnings == [ln for ln in one.stderr.splitlines() if ln.startswith("warning:")]
+    assert "(40 changed 1-best, 0 chose an empty hypothesis)" in many.stderr
+    assert " shards " in many.stderr

@@ -1156,6 +1156,8 @@ def _extend(grid: np.ndarray, low: bool, high: bool, floor: float, ceiling: floa
     if len(grid) < 2 or not (low or high):
         return grid
     step = (grid[-1] - grid[0]) / (len(grid) - 1)
+    if not step > 0.0:  # a grid of one repeated value has no step to widen by
+        return grid
     add = max(1, (len(grid) - 1) // 2)
     # whole steps only, so the old points stay points of the new grid
     k_lo = min(add, math.floor((grid[0] - floor) / step + 1e-9)) if low else 0

@@ -139,3 +139,16 @@ def test_lm_axis_is_widened_too() -> None:
     assert result.dev_errors < fixed.dev_errors
     assert "highest LM weight" in (fixed.edge_warning or "")
     assert result.weights.lm_weight > 30.0
+
+
+def test_a_grid_already_past_the_box_or_without_a_step_is_not_widened(tmp_path: Path
+                                                                      ) -> None:
+    # -200..200 already lies past the default box (-100..100): no widening can add a point
+    # inside it, so the grid stays and the warning names the box; a grid of one repeated
+    # value (5:5:3) has no step to widen by
+    dev = tmp_path / "far.jsonl"
+    write_far_optimum(dev, n_utt=30, deletion=(300.0, 320.0), insertion=(900.0, 950.0))
+    data = _tune(dev, tmp_path / "w.json", "--grid-penalty", "-200:200:5")
+    assert data["widenings"] == [] and "search box" in str(data["edge_warning"])
+    same = _tune(dev, tmp_path / "w2.json", "--grid-penalty", "5:5:3")
+    assert same["widenings"] == []

@@ -22,7 +22,7 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, Any
+from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -35,6 +35,7 @@ from rescore.ioutil import (
     line_shards,
     open_binary,
 )
+from rescore.listcheck import ListStats
 from rescore.nbest import (
     IdLedger,
     ReadLimits,
@@ -44,6 +45,9 @@ from rescore.nbest import (
     read_refs,
 )
 from rescore.scoring import Weights
+
+if TYPE_CHECKING:
+    from rescore.pipeline import WriteCounts
 
 log = logging.getLogger(__name__)
 
@@ -80,7 +84,8 @@ class ShardResult:
     lines: np.ndarray
     digests: np.ndarray
     has_reference: np.ndarray
-    changed: int
+    counts: WriteCounts
+    lists: ListStats
 
 
 _MODEL_CACHE: dict[tuple[tuple[str, str], ...], dict[str, Any]] = {}
@@ -107,13 +112,14 @@ def _refs(path: str | None) -> dict[str, str] | None:
 
 def run_shard(task: ShardTask) -> ShardResult:
     """Rescore one shard into its own output file (runs inside a worker)."""
-    from rescore.pipeline import batches, rescore_batch, write_scored
+    from rescore.pipeline import WriteCounts, batches, rescore_batch, write_scored
 
     parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
                           task.require_references, task.limits)
     lms = _models(task.models)
     lines, digests, has_ref = array.array("q"), array.array("q"), bytearray()
-    changed = 0
+    counts = WriteCounts()
+    stats = ListStats()
 
     def records() -> Iterator[tuple[int, Any]]:
         for number, line in iter_text_lines(task.path, task.limits.max_line_bytes,
@@ -139,13 +145,14 @@ def run_shard(task: ShardTask) -> ShardResult:
         if task.tsv is not None:
             tsv = stack.enter_context(open(task.tsv, "w", encoding="utf-8", newline="\n"))
         for batch in batches(records(), task.batch_size):
-            scored = rescore_batch(batch, path=task.display_path, lms=lms,
-                                   features=task.features, weights=task.weights)
-            changed += write_scored(scored, fh, tsv, path=task.display_path,
-                                    lines=[line for line, _ in batch])
+            scored, batch_stats = rescore_batch(batch, path=task.display_path, lms=lms,
+                                                features=task.features, weights=task.weights)
+            stats += batch_stats
+            counts += write_scored(scored, fh, tsv, path=task.display_path,
+                                   lines=[line for line, _ in batch])
     return ShardResult(np.frombuffer(lines, dtype=np.int64).copy(),
                        np.frombuffer(digests, dtype=np.int64).copy(),
-                       np.frombuffer(has_ref, dtype=np.bool_).copy(), changed)
+                       np.frombuffer(has_ref, dtype=np.bool_).copy(), counts, stats)
 
 
 class _Runner:
@@ -222,10 +229,10 @@ def apply_sharded(
     convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
     workers: int, cluster: str | None, require_references: bool = False,
     progress: Callable[[int], None] | None = None, shard_bytes: int | None = None,
-) -> tuple[int, int, int]:
-    """Rescore ``path`` into ``out`` with shards; returns (utterances, changed 1-best,
-    shards). The input is cut into at most ``4 * workers`` shards of at least
-    ``shard_bytes`` each (default :data:`MIN_SHARD_BYTES`)."""
+) -> tuple[int, WriteCounts, ListStats, int]:
+    """Rescore ``path`` into ``out`` with shards; returns (utterances, what was written,
+    the lists' score counts, shards). The input is cut into at most ``4 * workers``
+    shards of at least ``shard_bytes`` each (default :data:`MIN_SHARD_BYTES`)."""
     folder = out.parent if str(out.parent) else Path(".")
     scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{out.name}.{os.getpid()}.shards.",
                                     dir=folder))
@@ -254,8 +261,10 @@ def apply_sharded(
         refs = None if refs_path is None else read_refs(refs_path)
         ledger = IdLedger(str(path), refs)
         runner = _Runner(workers, cluster)
-        total = changed = 0
-        from rescore.pipeline import check_accounting  # pipeline imports this module
+        from rescore.pipeline import WriteCounts, check_accounting  # pipeline imports us
+
+        total = 0
+        counts, stats = WriteCounts(), ListStats()
 
         targets = [out] if text_path is None else [out, text_path]
         with atomic_outputs(targets, "wb") as handles:
@@ -267,7 +276,8 @@ def apply_sharded(
             for number, (task, result) in enumerate(results, 1):
                 ledger.admit_many(result.lines, result.digests, result.has_reference)
                 total += len(result.lines)
-                changed += result.changed
+                counts += result.counts
+                stats += result.lists
                 joined_lines[0] += _append(Path(task.out), handles[0])
                 if text_path is not None and task.tsv is not None:
                     joined_lines[1] += _append(Path(task.tsv), handles[1])
@@ -281,7 +291,7 @@ def apply_sharded(
             for target, lines in zip(targets, joined_lines, strict=True):
                 check_accounting(path, ledger.count, lines,
                                  f"lines in the joined {target}, so no output was kept")
-        return total, changed, len(tasks)
+        return total, counts, stats, len(tasks)
     finally:
         if runner is not None:
             runner.close()

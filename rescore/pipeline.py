@@ -20,6 +20,7 @@ import numpy as np
 from rescore import __version__
 from rescore.errors import AccountingError, InputError, UsageError
 from rescore.ioutil import LineCounter, TextSink, atomic_outputs, count_lines, sha256_file
+from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
@@ -32,6 +33,7 @@ from rescore.nbest import (
 )
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
+    ACOUSTIC,
     LM,
     FeatureMatrix,
     LanguageModel,
@@ -42,7 +44,13 @@ from rescore.scoring import (
     segment_argmax,
 )
 from rescore.text import NORMALISATION, tokens
-from rescore.wer import WerResult, corpus_wer, utterance_counts, wer_from_totals
+from rescore.wer import (
+    UNDEFINED_WER,
+    WerResult,
+    corpus_wer,
+    utterance_counts,
+    wer_from_totals,
+)
 
 log = logging.getLogger(__name__)
 
@@ -97,6 +105,46 @@ def read_weights(path: str | Path) -> Weights:
     return _read(path)
 
 
+@dataclass(frozen=True)
+class OtherModel:
+    """A model given for weights that were tuned with another (``--allow-other-model``)."""
+
+    name: str
+    path: str
+    sha256: str  # of the model given
+    tuned_sha256: str  # the weights file's record
+
+    def describe(self) -> str:
+        return (f"the weights were tuned with a model {self.name!r} of SHA-256 "
+                f"{self.tuned_sha256}, but {self.path} has SHA-256 {self.sha256}")
+
+    def to_dict(self) -> dict[str, str]:
+        return {"name": self.name, "path": self.path, "sha256": self.sha256,
+                "tuned_sha256": self.tuned_sha256}
+
+
+def check_models(weights_path: str | Path, models: Mapping[str, NamedModel], *,
+                 allow_other: bool = False) -> tuple[OtherModel, ...]:
+    """Compare the models given with those the weights file's provenance records.
+
+    A model whose SHA-256 differs from the record is an :class:`InputError` naming both
+    hashes, unless ``allow_other``: then the differences are returned for the caller to
+    record. A model the weights do not record (or a weights file without provenance) is
+    not compared.
+    """
+    from rescore.tune import read_weights_models
+
+    recorded = read_weights_models(weights_path)
+    other = tuple(OtherModel(name, str(m.path), m.sha256, recorded[name])
+                  for name, m in models.items()
+                  if name in recorded and m.sha256 != recorded[name])
+    if other and not allow_other:
+        raise InputError(other[0].describe() + "; give the model the weights were tuned with, or "
+                         "--allow-other-model", path=weights_path,
+                         field=f"provenance.models.{other[0].name}.sha256")
+    return other
+
+
 def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
     return {name: m.model for name, m in models.items()}
 
@@ -132,12 +180,19 @@ class CheckResult:
     one_best_wer: float | None
     oracle_wer: float | None
     one_best: WerResult | None = None
+    lists: ListStats = field(default_factory=ListStats)
+    warnings: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {"utterances": self.utterances, "hypotheses": self.hypotheses,
                 "max_depth": self.max_depth, "one_best_wer": self.one_best_wer,
                 "oracle_wer": self.oracle_wer,
-                "depths": {str(k): v for k, v in sorted(self.depths.items())}}
+                "depths": {str(k): v for k, v in sorted(self.depths.items())},
+                "empty_hypotheses": self.lists.empty_hypotheses,
+                "duplicate_hypotheses": self.lists.duplicate_hypotheses,
+                "lists_out_of_order": self.lists.lists_out_of_order,
+                "positive_acoustic": self.lists.positive_acoustic,
+                "warnings": list(self.warnings)}
 
 
 def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
@@ -146,12 +201,16 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
     depths: Counter[int] = Counter()
     n_utt = n_hyp = 0
     errors_1 = errors_o = words = 0
+    stats = ListStats()
     with_refs: bool | None = None
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs),
                           batch_size):
         if with_refs is None:
             with_refs = "reference" in batch[0][1]
-        m = build_matrix(batch, path=str(path), with_errors=with_refs).matrix
+        built = build_matrix(batch, path=str(path), with_errors=with_refs)
+        m = built.matrix
+        stats += score_stats(m.column(ACOUSTIC), m.offsets) + text_stats(built.tokens,
+                                                                         m.offsets)
         depths.update(np.diff(m.offsets).tolist())
         n_utt += m.n_utterances
         n_hyp += m.n_hypotheses
@@ -162,10 +221,19 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
             words += int(m.ref_words.sum())
     if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
+    if with_refs and words == 0:
+        raise InputError(UNDEFINED_WER, path=path)
+
     def rate(errors: int) -> float | None:
         return errors / words if with_refs and words else None
 
-    return CheckResult(n_utt, n_hyp, max(depths), dict(depths), rate(errors_1), rate(errors_o))
+    return CheckResult(n_utt, n_hyp, max(depths), dict(depths), rate(errors_1), rate(errors_o),
+                       lists=stats, warnings=stats.warnings(costs=_read_as_costs(path, costs)))
+
+
+def _read_as_costs(path: Path, costs: bool | None) -> bool:
+    """Whether the file's scores were read as costs (--costs, or its header)."""
+    return costs if costs is not None else read_convention(path)[0].scores_are_costs
 
 
 @dataclass(frozen=True)
@@ -173,6 +241,21 @@ class ApplyResult:
     utterances: int
     changed: int
     shards: int = 1  # pieces of the input processed separately (1: one process, in order)
+    empty: int = 0  # utterances whose chosen hypothesis has no words
+    lists: ListStats = field(default_factory=ListStats)
+    warnings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class WriteCounts:
+    """What :func:`write_scored` wrote: 1-best changed from the first hypothesis, and
+    chosen hypotheses without words."""
+
+    changed: int = 0
+    empty: int = 0
+
+    def __add__(self, other: WriteCounts) -> WriteCounts:
+        return WriteCounts(self.changed + other.changed, self.empty + other.empty)
 
 
 def apply_file(
@@ -197,17 +280,20 @@ def apply_file(
             raise UsageError("parallel runs take references as a file path (refs_path)")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
                                                   limits=limits)
-        total, changed, shards = apply_sharded(
+        total, counts, stats, shards = apply_sharded(
             path, out, models=[(m.name, str(m.path)) for m in models.values()],
             weights=weights, features=features, text_path=text_path, refs_path=refs_path,
             convention=convention, header_line=header_line, limits=limits,
             batch_size=batch_size, workers=workers, cluster=cluster, progress=progress,
             shard_bytes=shard_bytes)
-        return ApplyResult(total, changed, shards)
+        return ApplyResult(total, counts.changed, shards, counts.empty, stats,
+                           stats.warnings(costs=convention.scores_are_costs))
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
     lms = _models(models)
-    read = changed = 0
+    read = 0
+    counts = WriteCounts()
+    stats = ListStats()
     outputs = [out] if text_path is None else [out, text_path]
     with atomic_outputs(outputs) as handles:
         # count what reaches the files, not what was handed to the writer
@@ -215,10 +301,11 @@ def apply_file(
         tsv = written[1] if text_path is not None else None
         for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                         limits=limits), batch_size):
-            scored = rescore_batch(batch, path=str(path), lms=lms, features=features,
-                                   weights=weights)
-            changed += write_scored(scored, written[0], tsv, path=str(path),
-                                    lines=[line for line, _ in batch])
+            scored, batch_stats = rescore_batch(batch, path=str(path), lms=lms,
+                                                features=features, weights=weights)
+            stats += batch_stats
+            counts += write_scored(scored, written[0], tsv, path=str(path),
+                                   lines=[line for line, _ in batch])
             read += len(batch)
             log.info("rescored lines %d-%d (%d utterances so far)", batch[0][0], batch[-1][0],
                      read)
@@ -229,7 +316,8 @@ def apply_file(
         for target, counter in zip(outputs, written, strict=True):
             check_accounting(path, read, counter.lines,
                              f"lines written to {target}, so no output was kept")
-    return ApplyResult(read, changed)
+    return ApplyResult(read, counts.changed, 1, counts.empty, stats,
+                       stats.warnings(costs=_read_as_costs(path, costs)))
 
 
 def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
@@ -240,8 +328,9 @@ def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
 
 
 def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None, *,
-                 path: str = "", lines: Sequence[int] = ()) -> int:
-    """Write rescored records (and their 1-best text); returns how many changed 1-best.
+                 path: str = "", lines: Sequence[int] = ()) -> WriteCounts:
+    """Write rescored records (and their 1-best text); returns how many changed 1-best
+    and how many chose a hypothesis without words.
 
     ``path`` and ``lines`` (the records' line numbers) name an id that the ``id<TAB>text``
     file cannot hold.
@@ -252,7 +341,12 @@ def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None
     if tsv is not None:
         tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
                           for utt in scored))
-    return sum(1 for utt in scored if utt.get("best", 0) != 0)
+    changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
+    # ``words`` is set on every hypothesis by rescore_batch; records written as they were
+    # read may lack it, and then the text is counted
+    empty = sum(1 for utt in scored if not one_best(utt).get("words", len(tokens(
+        one_best(utt)["text"]))))
+    return WriteCounts(changed, empty)
 
 
 def _check_tsv_ids(scored: Sequence[Utterance], path: str, lines: Sequence[int]) -> None:
@@ -278,8 +372,9 @@ _TSV_BREAKS = str.maketrans("\t\n\r", "   ")
 
 def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
                   lms: Mapping[str, LanguageModel], features: Sequence[str],
-                  weights: Weights) -> list[Utterance]:
-    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in."""
+                  weights: Weights) -> tuple[list[Utterance], ListStats]:
+    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
+    the sign and order counts of their acoustic scores."""
     m = build_matrix(batch, path=path, lms=lms, features=features).matrix
     vector = _weight_vector(weights, m)
     total = m.values @ vector
@@ -297,7 +392,7 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
             hyp["words"], hyp["total"] = w, t
     for (_, utt), b in zip(batch, best.tolist(), strict=True):
         utt["best"] = b
-    return [utt for _, utt in batch]
+    return [utt for _, utt in batch], score_stats(m.column(ACOUSTIC), m.offsets)
 
 
 def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
@@ -322,6 +417,8 @@ def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
         raise InputError("no utterances in the file", path=path)
     check_accounting(path, n_utt, n_scored, "scored")
     s, d, i, h = (int(t) for t in totals)
+    if s + d + h == 0:
+        raise InputError(UNDEFINED_WER, path=path)
     return wer_from_totals(s, d, i, h, utterances=n_utt)
 
 
@@ -338,6 +435,8 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
     if not refs:
         raise InputError("no references in the file", path=refs_path)
     ids = list(refs)
+    if not any(tokens(refs[i]) for i in ids):
+        raise InputError(UNDEFINED_WER, path=refs_path)
     result = corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
     check_accounting(hyps_path, len(ids), result.utterances, "scored")
     return result
@@ -347,10 +446,11 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
 class TuneOutcome:
     result: Any
     provenance: dict[str, Any] = field(default_factory=dict)
+    warnings: tuple[str, ...] = ()  # the dev lists' score convention (rescore.listcheck)
 
     def to_dict(self) -> dict[str, Any]:
         data: dict[str, Any] = self.result.to_dict()
-        return data
+        return data | {"warnings": list(self.warnings)}
 
 
 def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
@@ -405,9 +505,12 @@ def tune_file(
     features: Sequence[str], grid_lm: str | None, grid_penalty: str | None, folds: int,
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
     weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
-    progress: Report | None = None,
+    progress: Report | None = None, widen: bool = True, bounds: str | None = None,
 ) -> TuneOutcome:
     """Read and score the dev set, tune, write the weights (and the analysis).
+
+    ``widen`` lets the grid search widen its grid (see :func:`rescore.tune.widen_grid`);
+    ``bounds`` is ``LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH``, the exact search's box.
 
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
@@ -415,19 +518,22 @@ def tune_file(
     from rescore import tune as tuning
 
     extra_lms = [lm_column(n) for n in models if n != LM]
+    main_lm = LM if LM in models else None
+    box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)
     scoring = Steps(progress, "scoring the dev set",
                     None if progress is None else count_lines(path))
     matrix = load_matrix(path, models=models, features=features, refs=refs,
                          log_base=log_base, costs=costs, progress=scoring)
     scoring.finish()
+    stats = score_stats(matrix.column(ACOUSTIC), matrix.offsets)
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))
     result = tuning.tune(
         matrix, search=search, features=[*extra_lms, *features],
         lm_grid=None if grid_lm is None else tuning.parse_grid(grid_lm),
         penalty_grid=None if grid_penalty is None else tuning.parse_grid(grid_penalty),
-        folds=folds, seed=seed, cv_warn=cv_warn, lm_column=LM if LM in models else None,
-        progress=progress,
+        folds=folds, seed=seed, cv_warn=cv_warn, lm_column=main_lm,
+        progress=progress, widen=widen, bounds=box,
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
@@ -440,4 +546,4 @@ def tune_file(
 
         write_text_atomic(analysis_path, json.dumps(result.to_dict() | {"provenance": prov},
                                                     indent=2) + "\n")
-    return TuneOutcome(result, prov)
+    return TuneOutcome(result, prov, stats.warnings(costs=_read_as_costs(path, costs)))

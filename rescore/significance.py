@@ -30,7 +30,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError
-from rescore.wer import Alignment
+from rescore.wer import UNDEFINED_WER, Alignment
 
 IntArray = npt.NDArray[np.int64]
 # elements of one resample index matrix; rows per chunk depend only on the corpus size, so
@@ -107,7 +107,7 @@ def paired_bootstrap(
         raise InputError("no utterances to compare")
     total_ref = int(stacked[2].sum())
     if total_ref == 0:
-        raise InputError("the references hold no words; WER is undefined")
+        raise InputError(UNDEFINED_WER)
     if resamples < 1:
         raise InputError(f"resamples must be at least 1, got {resamples}", field="resamples")
     if not 0.0 < confidence < 1.0:

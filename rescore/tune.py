@@ -20,6 +20,7 @@ penalty multiplies the word count and is added to the total).
 from __future__ import annotations
 
 import json
+import logging
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -41,10 +42,16 @@ from rescore.scoring import (
     oracle_rows,
     segment_argmax,
 )
+from rescore.wer import UNDEFINED_WER
+
+log = logging.getLogger(__name__)
 
 DEFAULT_LM_GRID = (0.0, 30.0, 121)
 DEFAULT_PENALTY_GRID = (-20.0, 20.0, 81)
 DEFAULT_BOUND = 100.0
+# a grid whose fewest-errors region touches its edge is widened at most this many times
+# (each adds half the axis's span: 40 -> 60 -> 90 -> 135 -> 202 for the default penalty)
+MAX_WIDENINGS = 4
 DEPTHS = (1, 2, 5, 10)
 # elements of one (utterances x points x slots) score block; about 32 MB of float64
 _BLOCK = 4_000_000
@@ -119,6 +126,28 @@ class DepthRow:
 
 
 @dataclass(frozen=True)
+class Widening:
+    """One widening of the grid: the sides of the grid that the fewest-errors region
+    touched (with its error count), and the grid that replaced it."""
+
+    sides: tuple[str, ...]
+    dev_errors: int
+    lm_grid: tuple[float, float, int]
+    penalty_grid: tuple[float, float, int]
+
+    def describe(self) -> str:
+        lm, pen = self.lm_grid, self.penalty_grid
+        return (f"the fewest-errors region ({self.dev_errors} errors) touched the grid's "
+                f"{', '.join(_SIDE_LABELS[s] for s in self.sides)}; grid widened to LM "
+                f"weight {lm[0]:g}..{lm[1]:g} ({lm[2]} points), penalty {pen[0]:g}..{pen[1]:g} "
+                f"({pen[2]} points)")
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"sides": list(self.sides), "dev_errors": self.dev_errors,
+                "lm_grid": list(self.lm_grid), "penalty_grid": list(self.penalty_grid)}
+
+
+@dataclass(frozen=True)
 class TuneResult:
     """Tuned weights and how they were found.
 
@@ -141,6 +170,7 @@ class TuneResult:
     edge_warning: str | None = None
     depth: tuple[DepthRow, ...] = ()
     settings: Mapping[str, Any] = field(default_factory=dict)
+    widenings: tuple[Widening, ...] = ()
 
     @property
     def cv_wer(self) -> float | None:
@@ -180,6 +210,7 @@ class TuneResult:
             "cv": None if self.cv is None else self.cv.to_dict(),
             "cv_warning": self.cv_warning,
             "edge_warning": self.edge_warning,
+            "widenings": [w.to_dict() for w in self.widenings],
             "depth": [row.to_dict() for row in self.depth],
             "surface": None if self.surface is None else self.surface.to_dict(),
         }
@@ -213,6 +244,29 @@ def parse_grid(text: str, *, option: str = "grid") -> np.ndarray:
     return np.linspace(lo, hi, n)
 
 
+def parse_bounds(text: str, lm_column: str | None = LM) -> dict[str, tuple[float, float]]:
+    """``"LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH"``: the exact search's box for the LM weight (of
+    ``lm_column``) and the insertion penalty."""
+    parts = text.split(",")
+    if len(parts) != 2:
+        raise UsageError(f"expected LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH, got {text!r}",
+                         field="--bounds")
+    out: dict[str, tuple[float, float]] = {}
+    for name, part in zip((lm_column, WORDS), parts, strict=True):
+        ends = part.split(":")
+        try:
+            lo, hi = (float(e) for e in ends) if len(ends) == 2 else (math.nan, math.nan)
+        except ValueError:
+            lo = hi = math.nan
+        if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+            raise UsageError(f"expected LOW:HIGH, two finite numbers with LOW below HIGH, "
+                             f"got {part!r} (in {text!r}: LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH)",
+                             field="--bounds")
+        if name is not None:
+            out[name] = (lo, hi)
+    return out
+
+
 def _default_grid(spec: tuple[float, float, int]) -> np.ndarray:
     return np.linspace(*spec)
 
@@ -241,7 +295,7 @@ def _check_matrix(matrix: FeatureMatrix) -> tuple[np.ndarray, int]:
         raise InputError("scores must be finite (NaN or infinite value in the feature matrix)")
     words = int(matrix.ref_words.sum())
     if words == 0:
-        raise InputError("the references hold no words; WER is undefined")
+        raise InputError(UNDEFINED_WER)
     return matrix.errors.astype(np.int64), words
 
 
@@ -858,7 +912,8 @@ _RESTARTS = 3
 
 def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
             lm_grid: np.ndarray, pen_grid: np.ndarray, seed: int, lm_column: str | None,
-            steps: Steps | None = None) -> TuneResult:
+            steps: Steps | None = None,
+            bounds: Mapping[str, tuple[float, float]] | None = None) -> TuneResult:
     grid = grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid, lm_column=lm_column,
                        progress=steps)
     if method == "grid":
@@ -877,12 +932,12 @@ def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
             updates[lm_column] = float(grid.surface.lm[i])
         others.append(_set(grid.weights, matrix.names, updates))
     if lm_column is not None:
-        others += _row_starts(matrix, grid, lm_column, progress=steps)
+        others += _row_starts(matrix, grid, lm_column, progress=steps, bounds=bounds)
     elif steps is not None:
         steps(len(lm_grid))
     runs = 1 + len(others) + _RESTARTS
     found = exact_search(matrix, tune=(*grid.tuned, *features), start=grid.weights, seed=seed,
-                         also_from=others, restarts=_RESTARTS,
+                         also_from=others, restarts=_RESTARTS, bounds=bounds,
                          progress=None if steps is None else steps.spread(len(lm_grid), runs))
     settings = {**found.settings, "start": "grid", "lm_grid": grid.settings["lm_grid"],
                 "penalty_grid": grid.settings["penalty_grid"]}
@@ -890,16 +945,17 @@ def _search(matrix: FeatureMatrix, method: str, features: tuple[str, ...],
 
 
 def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: int = 3,
-                progress: Advance | None = None) -> list[Weights]:
+                progress: Advance | None = None,
+                bounds: Mapping[str, tuple[float, float]] | None = None) -> list[Weights]:
     """The best points of the grid's LM-weight rows with the penalty searched exactly.
 
-    On each row an exact line search over the penalty (within its default bounds) finds the
+    On each row an exact line search over the penalty (within its bounds) finds the
     best interval, which may lie between the grid's penalty values; the ``keep`` best rows
     give starting points.
     """
     assert grid.surface is not None and matrix.errors is not None
     errors = matrix.errors.astype(np.int64)
-    lo, hi = _bounds_for((WORDS,), None)
+    lo, hi = _bounds_for((WORDS,), bounds)
     words = matrix.values[:, matrix.names.index(WORDS)]
     found = []
     for lw in grid.surface.lm:
@@ -923,7 +979,9 @@ def _folds(n_utt: int, k: int, seed: int) -> list[np.ndarray]:
 def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str] = (),
                    lm_grid: np.ndarray | None = None, penalty_grid: np.ndarray | None = None,
                    folds: int = 5, seed: int = 0, lm_column: str | None = LM,
-                   steps: Steps | None = None) -> CrossValidation | None:
+                   steps: Steps | None = None,
+                   bounds: Mapping[str, tuple[float, float]] | None = None
+                   ) -> CrossValidation | None:
     """Tune on k-1 folds, count errors on the held-out one; ``None`` if k < 2 utterances.
 
     Utterances are shuffled with ``seed`` and split into k nearly equal folds (k capped at
@@ -947,7 +1005,7 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
                 steps(_search_units(search, lm_values))
         else:
             weights = _search(train_m, search, tuple(features), lm_values, pen_values, seed,
-                              lm_column, steps).weights
+                              lm_column, steps, bounds).weights
         test_m = matrix.subset(held)
         words = int(matrix.ref_words[held].sum())
         errs = _errors_at(test_m, weights)
@@ -988,17 +1046,24 @@ def tune(
     cv_warn: float = 0.01,
     lm_column: str | None = LM,
     progress: Report | None = None,
+    widen: bool = True,
+    max_widenings: int = MAX_WIDENINGS,
+    bounds: Mapping[str, tuple[float, float]] | None = None,
 ) -> TuneResult:
     """Tune LM weight, insertion penalty and any named ``features`` on a dev set.
 
     ``search`` defaults to ``"grid"`` when only the LM weight and penalty are tuned and to
     ``"exact"`` when features are too (the exact search starts from the best grid point).
     Default grid: LM weight 0 to 30 (121 points), penalty -20 to +20 per word (81 points),
-    natural-log units. Adds a ``folds``-fold cross-validation (``folds < 2`` skips it), a
-    warning when the cross-validated WER and the dev WER differ by more than ``cv_warn``
-    (absolute: 0.01 is one percentage point), and the depth table. ``progress`` (see
-    :mod:`rescore.progress`) counts grid rows and exact-search runs over the search and
-    every fold.
+    natural-log units. With the grid search and ``widen``, a grid whose fewest-errors region
+    touches its edge is widened (see :func:`widen_grid`, at most ``max_widenings`` times,
+    within ``bounds``); the final grid serves the cross-validation too. ``bounds`` (by
+    column name) is the exact search's box. Adds a ``folds``-fold cross-validation
+    (``folds < 2`` skips it), a warning when the cross-validated WER and the dev WER differ
+    by more than ``cv_warn`` (absolute: 0.01 is one percentage point), a warning when the
+    fewest-errors region still touches the grid's edge, and the depth table. ``progress``
+    (see :mod:`rescore.progress`) counts grid rows and exact-search runs over the search
+    and every fold.
     """
     feats = tuple(dict.fromkeys(features))
     for name in feats:
@@ -1017,12 +1082,22 @@ def tune(
                          field="--warn-cv-gap")
     lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "--grid-lm")
     pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "--grid-penalty")
-    searches = 1 + (min(folds, matrix.n_utterances) if folds >= 2 else 0)
+    widenings: tuple[Widening, ...] = ()
+    widened: TuneResult | None = None
+    if method == "grid" and widen:
+        widened, widenings = widen_grid(matrix, lm_values, pen_values, lm_column=lm_column,
+                                        bounds=bounds, max_widenings=max_widenings,
+                                        progress=progress)
+        assert widened.surface is not None
+        lm_values, pen_values = widened.surface.lm, widened.surface.penalty
+    cv_searches = min(folds, matrix.n_utterances) if folds >= 2 else 0
+    searches = cv_searches + (0 if widened is not None else 1)
     steps = Steps(progress, "tuning", searches * _search_units(method, lm_values))
-    result = _search(matrix, method, feats, lm_values, pen_values, seed, lm_column, steps)
+    result = widened if widened is not None else _search(
+        matrix, method, feats, lm_values, pen_values, seed, lm_column, steps, bounds)
     cv = cross_validate(matrix, search=method, features=feats, lm_grid=lm_values,
                         penalty_grid=pen_values, folds=folds, seed=seed,
-                        lm_column=lm_column, steps=steps) if folds >= 2 else None
+                        lm_column=lm_column, steps=steps, bounds=bounds) if folds >= 2 else None
     steps.finish()
     warning = None
     if cv is not None and abs(cv.wer - result.dev_wer) > cv_warn:
@@ -1030,37 +1105,129 @@ def tune(
                    f"{100 * result.dev_wer:.2f}% by {100 * abs(cv.wer - result.dev_wer):.2f} "
                    f"points, more than {100 * cv_warn:g}: the weights may be fitted to this "
                    "dev set; use more dev utterances or tune fewer weights")
-    settings = {**result.settings, "seed": seed, "folds": folds, "cv_warn": cv_warn}
-    edge = grid_edge_warning(result.weights, lm_values, pen_values, lm_column) \
-        if method == "grid" else None
+    settings = {**result.settings, "seed": seed, "folds": folds, "cv_warn": cv_warn,
+                "widen": widen and method == "grid", "max_widenings": max_widenings}
+    if bounds:
+        settings["bounds"] = {k: [float(a), float(b)] for k, (a, b) in bounds.items()}
+    edge = None
+    if method == "grid":
+        assert result.surface is not None
+        sides = region_edges(result.surface.errors, lm_values, pen_values, lm_column)
+        edge = grid_edge_warning(sides, why=_edge_reason(widen, widenings, max_widenings))
     return replace(result, cv=cv, cv_warning=warning, edge_warning=edge, settings=settings,
-                   depth=depth_table(matrix, result.weights))
+                   depth=depth_table(matrix, result.weights), widenings=widenings)
 
 
-def grid_edge_warning(weights: Weights, lm_grid: np.ndarray, penalty_grid: np.ndarray,
-                      lm_column: str | None = LM) -> str | None:
-    """A warning when the chosen grid point sits on an outer edge of the grid.
+# --------------------------------------------------------------------------- grid widening
 
-    The fewest errors may then lie beyond the grid. LM weight 0 (no language model) is a
-    natural lower end and never warned about; an axis of one point has no edges.
+_SIDE_LABELS = {"lm_low": "lowest LM weight", "lm_high": "highest LM weight",
+                "penalty_low": "lowest penalty", "penalty_high": "highest penalty"}
+_SIDE_OPTION = {"lm_low": "--grid-lm", "lm_high": "--grid-lm", "penalty_low": "--grid-penalty",
+                "penalty_high": "--grid-penalty"}
+
+
+def region_edges(errors: np.ndarray, lm_grid: np.ndarray, penalty_grid: np.ndarray,
+                 lm_column: str | None = LM) -> tuple[str, ...]:
+    """The sides of the grid (``lm_low``, ``lm_high``, ``penalty_low``, ``penalty_high``)
+    that some cell with the fewest errors lies on.
+
+    LM weight 0 (no language model) is a natural lower end and never counted as an edge;
+    an axis of one point has no edges.
     """
-    notes = []
-    axes = [("insertion penalty", "--grid-penalty", weights.insertion_penalty, penalty_grid,
-             True)]
-    if lm_column is not None:
-        value = weights.lm_weight if lm_column == LM else weights.features.get(lm_column, 0.0)
-        axes.insert(0, ("LM weight", "--grid-lm", value, lm_grid, lm_grid[0] != 0.0))
-    for label, option, value, grid, check_low in axes:
-        if len(grid) < 2:
-            continue
-        if value == grid[-1]:
-            notes.append(f"{label} {value:g} is the top of the grid; widen {option}")
-        elif check_low and value == grid[0]:
-            notes.append(f"{label} {value:g} is the bottom of the grid; widen {option}")
-    if not notes:
+    best = errors == errors.min()
+    sides = []
+    if lm_column is not None and len(lm_grid) > 1:
+        if lm_grid[0] > 0.0 and best[0].any():
+            sides.append("lm_low")
+        if best[-1].any():
+            sides.append("lm_high")
+    if len(penalty_grid) > 1:
+        if best[:, 0].any():
+            sides.append("penalty_low")
+        if best[:, -1].any():
+            sides.append("penalty_high")
+    return tuple(sides)
+
+
+def _extend(grid: np.ndarray, low: bool, high: bool, floor: float, ceiling: float
+            ) -> np.ndarray:
+    """``grid`` (evenly spaced) longer by half its span at each side asked for, in its own
+    step, not past ``floor`` or ``ceiling``."""
+    if len(grid) < 2 or not (low or high):
+        return grid
+    step = (grid[-1] - grid[0]) / (len(grid) - 1)
+    if not step > 0.0:  # a grid of one repeated value has no step to widen by
+        return grid
+    add = max(1, (len(grid) - 1) // 2)
+    # whole steps only, so the old points stay points of the new grid
+    k_lo = min(add, math.floor((grid[0] - floor) / step + 1e-9)) if low else 0
+    k_hi = min(add, math.floor((ceiling - grid[-1]) / step + 1e-9)) if high else 0
+    k_lo, k_hi = max(k_lo, 0), max(k_hi, 0)
+    if not (k_lo or k_hi):
+        return grid
+    return np.linspace(grid[0] - k_lo * step, grid[-1] + k_hi * step, len(grid) + k_lo + k_hi)
+
+
+def widen_grid(matrix: FeatureMatrix, lm_grid: np.ndarray, penalty_grid: np.ndarray, *,
+               lm_column: str | None = LM,
+               bounds: Mapping[str, tuple[float, float]] | None = None,
+               max_widenings: int = MAX_WIDENINGS, progress: Report | None = None
+               ) -> tuple[TuneResult, tuple[Widening, ...]]:
+    """Grid search, widening the grid while the fewest-errors region touches its edge.
+
+    Each widening adds half the axis's span (in the grid's own step) at every side the
+    region touched, never beyond the exact search's box (``bounds``; by default LM weight
+    0..100 and penalty -100..100), at most ``max_widenings`` times. Returns the search on
+    the last grid and the widenings made; each is also logged and reported to
+    ``progress`` as a stage of its own.
+    """
+    lm_lo, lm_hi = _bounds_for((LM if lm_column is None else lm_column,), bounds)
+    pen_lo, pen_hi = _bounds_for((WORDS,), bounds)
+    done: list[Widening] = []
+    while True:
+        stage = "grid search" if not done else f"grid search (widened {len(done)})"
+        steps = Steps(progress, stage, len(lm_grid) if lm_column is not None else 1)
+        result = grid_search(matrix, lm_grid=lm_grid, penalty_grid=penalty_grid,
+                             lm_column=lm_column, progress=steps)
+        steps.finish()
+        assert result.surface is not None
+        sides = region_edges(result.surface.errors, lm_grid, penalty_grid, lm_column)
+        if not sides or len(done) >= max_widenings:
+            return result, tuple(done)
+        new_lm = _extend(lm_grid, "lm_low" in sides, "lm_high" in sides, float(lm_lo[0]),
+                         float(lm_hi[0])) if lm_column is not None else lm_grid
+        new_pen = _extend(penalty_grid, "penalty_low" in sides, "penalty_high" in sides,
+                          float(pen_lo[0]), float(pen_hi[0]))
+        if len(new_lm) == len(lm_grid) and len(new_pen) == len(penalty_grid):
+            return result, tuple(done)  # at the box on every side touched
+        lm_grid, penalty_grid = new_lm, new_pen
+        done.append(Widening(sides=sides, dev_errors=result.dev_errors,
+                             lm_grid=_spec(lm_grid), penalty_grid=_spec(penalty_grid)))
+        log.info("%s", done[-1].describe())
+
+
+def _spec(grid: np.ndarray) -> tuple[float, float, int]:
+    return float(grid[0]), float(grid[-1]), len(grid)
+
+
+def _edge_reason(widen: bool, widenings: Sequence[Widening], max_widenings: int) -> str:
+    if not widen:
+        return "--no-widen kept the grid fixed"
+    if len(widenings) >= max_widenings:
+        return f"after {len(widenings)} widenings, the most allowed"
+    return "the grid reached the search box (--bounds)"
+
+
+def grid_edge_warning(sides: Sequence[str], *, why: str = "") -> str | None:
+    """A warning when the fewest-errors region touches the grid's edge (``sides`` from
+    :func:`region_edges`): the fewest errors may then lie beyond the grid."""
+    if not sides:
         return None
-    return "the best grid point is on the grid's edge, so the best weights may lie beyond " \
-        "it: " + "; ".join(notes)
+    options = sorted({_SIDE_OPTION[s] for s in sides})
+    reason = f" ({why})" if why else ""
+    return (f"the fewest-errors region touches the grid's "
+            f"{', '.join(_SIDE_LABELS[s] for s in sides)}{reason}, so the best weights may "
+            f"lie beyond it; widen {' and '.join(options)}")
 
 
 # --------------------------------------------------------------------------- weights file
@@ -1116,6 +1283,28 @@ def read_weights(path: str | Path) -> Weights:
         raise InputError("expected an object", path=where, field="provenance")
     return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
                    insertion_penalty=values["insertion_penalty"], features=feats)
+
+
+def read_weights_models(path: str | Path) -> dict[str, str]:
+    """The SHA-256 of each model the weights were tuned with, by name, as the weights
+    file's provenance records them (empty when it records none)."""
+    where = str(path)
+    try:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise InputError(str(exc), path=where) from None
+    prov = data.get("provenance") if isinstance(data, dict) else None
+    models = prov.get("models") if isinstance(prov, dict) else None
+    if not isinstance(models, dict):
+        return {}
+    out = {}
+    for name, record in models.items():
+        digest = record.get("sha256") if isinstance(record, dict) else None
+        if not isinstance(digest, str):
+            raise InputError("expected the model's sha256 as a string", path=where,
+                             field=f"provenance.models.{name}.sha256")
+        out[str(name)] = digest
+    return out
 
 
 def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:

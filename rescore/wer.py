@@ -14,6 +14,10 @@ import jiwer
 import numpy as np
 from rapidfuzz.distance import Levenshtein
 
+# every command refuses a reference set without words: its WER, errors over zero words,
+# is undefined (one rule for wer, check, tune and report)
+UNDEFINED_WER = "the references hold no words; WER is undefined"
+
 
 @dataclass(frozen=True)
 class WerResult:

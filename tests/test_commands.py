@@ -265,38 +265,62 @@ def test_tune_warn_cv_gap_must_not_be_negative(tmp_path: Path) -> None:
     assert not (tmp_path / "w.json").exists()
 
 
-def test_tune_warns_when_the_best_point_is_on_the_grid_edge(demo_lm: Path,
+def test_tune_widens_a_narrow_grid_and_warns_with_no_widen(demo_lm: Path,
                                                             tmp_path: Path) -> None:
     dev = FIXTURES / "demo" / "dev.jsonl"
-    wide = json.loads(run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json",
-                           "--folds", "0", "--json"]).stdout)
-    # derived: on the default grid the demo's best penalty is well inside (-20, 20) and the
-    # LM weight above 0, so no warning
-    assert -20 < wide["insertion_penalty"] < 20 and wide["edge_warning"] is None
-    top = wide["insertion_penalty"] / 2
-    narrow = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w2.json", "--folds", "0",
-                  "--grid-penalty", f"{-top}:{top}:5", "--json"])
-    assert narrow.exit_code == 0, narrow.stderr
-    data = json.loads(narrow.stdout)
-    # derived: the error surface is lowest near the wide grid's penalty, outside the narrow
-    # grid, so the narrow grid's best sits at its top edge and the user is told to widen it
-    assert data["insertion_penalty"] == pytest.approx(top)
-    assert "--grid-penalty" in data["edge_warning"]
-    assert "warning: the best grid point is on the grid's edge" in narrow.stderr
+    exact = json.loads(run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w.json",
+                            "--folds", "0", "--search", "exact", "--json"]).stdout)
+    # measured: the exact search puts the demo's penalty well above 0 (about 30), so a grid
+    # of -top..top with top a quarter of it is too narrow
+    top = exact["insertion_penalty"] / 4
+    assert top > 2
+    fixed = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w2.json", "--folds", "0",
+                 "--grid-penalty", f"{-top}:{top}:5", "--no-widen", "--json"])
+    assert fixed.exit_code == 0, fixed.stderr
+    data = json.loads(fixed.stdout)
+    # derived: the error surface is lowest beyond the narrow grid, so its fewest-errors
+    # region lies on the top edge; --no-widen keeps the grid and tells the user to widen it
+    assert data["insertion_penalty"] == pytest.approx(top) and data["widenings"] == []
+    assert "--grid-penalty" in data["edge_warning"] and "--no-widen" in data["edge_warning"]
+    assert "warning: the fewest-errors region touches the grid's" in fixed.stderr
+    assert "highest penalty" in data["edge_warning"]
+    widened = run(["tune", dev, "--lm", demo_lm, "-o", tmp_path / "w3.json", "--folds", "0",
+                   "--grid-penalty", f"{-top}:{top}:5", "--json"])
+    assert widened.exit_code == 0, widened.stderr
+    data = json.loads(widened.stdout)
+    steps = data["widenings"]
+    # each widening adds half the span (2 of the 4 steps) at the top, in the grid's step
+    # (README, tuning section): 5 points, then 7, 9, ... up to the documented maximum of 4
+    assert 1 <= len(steps) <= 4 and "penalty_high" in steps[0]["sides"]
+    assert steps[0]["penalty_grid"] == pytest.approx([-top, 2 * top, 7])
+    assert data["insertion_penalty"] > top
+    assert data["dev_errors"] < json.loads(fixed.stdout)["dev_errors"]
+    assert "grid widened to" in widened.stderr
 
 
-def test_grid_edge_warning_rules() -> None:
+def test_region_edges_rules() -> None:
     import numpy as np
 
-    from rescore.tune import Weights, grid_edge_warning
+    from rescore.tune import grid_edge_warning, region_edges
 
-    lm, pen = np.linspace(0, 30, 7), np.linspace(-20, 20, 9)
-    # LM weight 0 means "no LM", a natural lower end: no warning (README, tuning section)
-    assert grid_edge_warning(Weights(lm_weight=0.0, insertion_penalty=0.0), lm, pen) is None
-    assert "--grid-lm" in (grid_edge_warning(Weights(lm_weight=30.0), lm, pen) or "")
-    assert "bottom" in (grid_edge_warning(Weights(insertion_penalty=-20.0), lm, pen) or "")
+    lm, pen = np.linspace(0, 30, 4), np.linspace(-20, 20, 5)
+    errors = np.full((4, 5), 9)
+    # LM weight 0 means "no LM", a natural lower end: never an edge (README, tuning section)
+    errors[0, 2] = 1
+    assert region_edges(errors, lm, pen) == ()
+    assert region_edges(errors, lm + 5, pen) == ("lm_low",)
+    # any cell of the fewest-errors region counts, not only the chosen one: a region from
+    # the middle to the top penalty touches the top edge
+    errors[1:3, 2:] = 1
+    assert region_edges(errors, lm, pen) == ("penalty_high",)
+    assert "--grid-penalty" in (grid_edge_warning(region_edges(errors, lm, pen)) or "")
+    assert grid_edge_warning(()) is None
     # a one-point axis has no edges
-    assert grid_edge_warning(Weights(insertion_penalty=3.0), lm, np.array([3.0])) is None
+    assert region_edges(np.array([[1, 1, 1]]), np.array([3.0]), np.linspace(0, 2, 3)) == (
+        "penalty_low", "penalty_high")
+    assert region_edges(np.array([[1], [1]]), lm[:2], np.array([3.0])) == ("lm_high",)
+
+
 # --- hostile or mistaken paths and empty inputs (reliability audit) ---------------------
 # Contract, exit codes: 1 is bad input or data, with one "error:" line and no output file.
 # A path that names the wrong kind of thing is bad input, as a missing input file is.

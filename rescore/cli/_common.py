@@ -169,7 +169,8 @@ def emit_json(data: Any) -> None:
 def info(message: str) -> None:
     """A progress or summary line on stderr, silent with --quiet."""
     if not state.quiet:
-        stderr.print(message, highlight=False)
+        # plain text: a path or grid such as 0:100:5 must not turn into markup or an emoji
+        stderr.print(message, highlight=False, markup=False, emoji=False)
 
 
 def warn(message: str, label: str = "warning") -> None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Annotated
 
@@ -63,6 +64,7 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs), threshold)
     for line in [] if overlap is None else overlap.warnings():
         warn(line)
+    _warn(result.warnings)
     if as_json:
         emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()}))
         return
@@ -76,9 +78,17 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         *([] if overlap is None else [
             ["references in the LM text", f"{overlap.found} of {overlap.references} "
              f"({pct(overlap.share)})"]]),
+        ["empty hypotheses", result.lists.empty_hypotheses],
+        ["duplicates (after normalisation)", result.lists.duplicate_hypotheses],
+        ["lists ordered against their scores", result.lists.lists_out_of_order],
     ])
     table("list depth", ["hypotheses", "utterances"],
           [[d, c] for d, c in sorted(result.depths.items())])
+
+
+def _warn(warnings: Sequence[str]) -> None:
+    for line in warnings:
+        info(f"warning: {line}")
 
 
 @guarded
@@ -102,18 +112,24 @@ def apply(
     shard_mb: Annotated[float, typer.Option(
         "--shard-mb", min=0.001, help="With --workers or --cluster: least size of one shard "
         "of the input, in MiB (the input is cut into at most 4 shards per worker).")] = 1.0,
+    allow_other_model: Annotated[bool, typer.Option(
+        "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
+        "from the one the weights were tuned with.")] = False,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     w = pipeline.read_weights(weights)
+    for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
+        info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+    _warn(result.warnings)
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
-    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best) "
-         f"-> {out}")
+    info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
+         f"{result.empty} chose an empty hypothesis) -> {out}")
 
 
 @guarded
@@ -168,6 +184,13 @@ def tune(
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
+    no_widen: Annotated[bool, typer.Option(
+        "--no-widen", help="Keep the grid fixed even when its fewest-errors region touches "
+        "its edge (warn instead of widening it).")] = False,
+    bounds: Annotated[str | None, typer.Option(
+        "--bounds", metavar="LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH",
+        help="The exact search's box for LM weight and insertion penalty, which also "
+        "limits grid widening (default 0:100,-100:100).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
@@ -181,12 +204,16 @@ def tune(
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
-            progress=report,
+            progress=report, widen=not no_widen, bounds=bounds,
         )
     data = outcome.to_dict()
+    _warn(outcome.warnings)
+    for widening in outcome.result.widenings:
+        info(widening.describe())
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
-            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning")})
+            k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning",
+                                     "widenings", "warnings")})
     else:
         gap = data.get("cv_gap")
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [

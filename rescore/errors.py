@@ -54,6 +54,11 @@ class ModelFileError(InputError):
     """A language-model file that is truncated, altered, foreign or of an unknown version."""
 
 
+class OutputError(RescoreError):
+    """An output that could not be written whole (a full disk, a quota, a file size limit);
+    the previous file at its path is kept and no temporary is left."""
+
+
 class AccountingError(RescoreError):
     """The records written do not match the utterances read: a defect, never written out."""
 

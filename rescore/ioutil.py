@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import contextlib
+import errno
+import fcntl
 import gzip
 import hashlib
 import io
@@ -16,7 +18,7 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import IO, Any, Literal, Protocol, cast, overload
 
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, OutputError, UsageError
 
 GZIP_MAGIC = b"\x1f\x8b"
 
@@ -40,6 +42,31 @@ WEIGHTS_FILE_LIMIT = 16 << 20
 ANALYSIS_FILE_LIMIT = 64 << 20
 # Nesting reported when a JSON file is too deep to parse (the files above need a handful).
 JSON_DEPTH_REPORTED = 100
+# Blank lines skipped in a row by every line reader: a file of nothing but line breaks
+# (a few MB of gzip unpack to billions of them) is refused instead of read for hours.
+BLANK_RUN_LIMIT = 1_000_000
+# A gzip input may unpack to this many times its compressed size (and to this floor
+# whatever its size). Real N-best lists and corpus text unpack to 7 to 10 times (measured
+# on the demo data and the recognizer sample); gzip's ceiling is about 1,030 times.
+GZIP_RATIO_LIMIT = 100
+GZIP_FLOOR_BYTES = 16 << 20
+GZIP_RATIO_VARIABLE = "RESCORE_GZIP_MAX_RATIO"
+
+# Write errors that mean the file system is full for this file; each ends a command with
+# ``error: PATH: no space left on device (N bytes written)``.
+DISK_FULL = {errno.ENOSPC: "", errno.EDQUOT: "disk quota exceeded",
+             errno.EFBIG: "file size limit reached"}
+
+
+def disk_full_error(exc: OSError, path: str | Path, written: int) -> OutputError:
+    """The one wording of a full disk (or quota, or file size limit) for every writer."""
+    why = DISK_FULL.get(exc.errno or 0, "")
+    return OutputError(f"no space left on device{': ' + why if why else ''} "
+                       f"({written} bytes written)", path=str(path))
+
+
+def is_disk_full(exc: BaseException) -> bool:
+    return isinstance(exc, OSError) and exc.errno in DISK_FULL
 
 
 def is_gzip_name(path: str | Path) -> bool:
@@ -115,8 +142,31 @@ def check_output_path(path: str | Path | None) -> None:
         raise InputError("is a folder, expected a file path", path=str(target))
 
 
+class _CountingFile(io.FileIO):
+    """The temporary's file descriptor: counts the bytes that reached the file and keeps
+    the first write error, so a full disk can be reported for the right output."""
+
+    written = 0
+    error: OSError | None = None
+
+    def write(self, data: Any, /) -> int:
+        try:
+            n = super().write(data)
+        except OSError as exc:
+            if self.error is None:
+                self.error = exc
+            raise
+        self.written += n or 0
+        return n or 0
+
+
 class _Pending:
-    """One output being written: a temporary file beside its target."""
+    """One output being written: a temporary file beside its target.
+
+    The temporary is locked (``flock``) for as long as it is open, so a later run removes
+    a leftover only when its writer is provably gone: the kernel drops the lock when the
+    process dies, in whatever PID namespace it ran.
+    """
 
     def __init__(self, target: Path, mode: str) -> None:
         check_output_path(target)
@@ -126,7 +176,9 @@ class _Pending:
         fd, self.tmp_name = tempfile.mkstemp(
             prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.", dir=folder)
         try:
-            self.raw = os.fdopen(fd, "wb")
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            self.file = _CountingFile(fd, "wb")
+            self.raw = io.BufferedWriter(self.file, 1 << 16)
         except BaseException:
             os.close(fd)
             os.unlink(self.tmp_name)
@@ -151,7 +203,12 @@ class _Pending:
             self.gz.close()
         self.raw.flush()
         os.fchmod(self.raw.fileno(), FILE_MODE)
-        os.fsync(self.raw.fileno())
+        try:
+            os.fsync(self.raw.fileno())  # where space is claimed late (NFS), fsync is told
+        except OSError as exc:
+            if self.file.error is None:
+                self.file.error = exc
+            raise
         self.raw.close()
 
     def commit(self) -> None:
@@ -179,9 +236,16 @@ def _atomic_outputs(paths: Sequence[str | Path], mode: str) -> Iterator[list[Any
             p.finish()
         for p in pending:  # every temporary is complete: now the renames, back to back
             p.commit()
-    except BaseException:
+    except BaseException as exc:
+        full = next((p for p in pending if p.file.error is not None
+                     and is_disk_full(p.file.error)), None)
         for p in pending:
             p.abort()
+        if full is not None and full.file.error is not None:
+            raise disk_full_error(full.file.error, full.target, full.file.written) from None
+        if is_disk_full(exc) and isinstance(exc, OSError) and len(pending) == 1:
+            # a layer above the file (a text or gzip buffer) saw it first
+            raise disk_full_error(exc, pending[0].target, pending[0].file.written) from None
         raise
 
 
@@ -195,18 +259,69 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
+SCRATCH_LOCK = "lock"
+
+
+def _lock_free(path: Path) -> bool:
+    """Whether nobody holds the ``flock`` of ``path`` (a temporary, or a scratch folder's
+    lock file): taking it, briefly, proves that the run which held it is gone. A folder
+    without a lock file (one made by an older version) counts as free."""
+    target = path / SCRATCH_LOCK if path.is_dir() else path
+    try:
+        fd = os.open(target, os.O_RDONLY)
+    except FileNotFoundError:
+        return path.is_dir()
+    except OSError:
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return False
+    finally:
+        os.close(fd)
+    return True
+
+
 def _remove_stale_temporaries(folder: Path, name: str) -> None:
-    """Delete temporaries of ``name`` left by a killed run (their writer's pid is gone)."""
+    """Delete temporaries and scratch folders of ``name`` left by a killed run.
+
+    Both signs must agree: nobody holds the leftover's lock, and no process of its pid runs
+    here. (The lock alone proves it across PID namespaces; the pid closes the instant
+    between a temporary's creation and its locking.)
+    """
     prefix = f"{TMP_PREFIX}{name}."
     for leftover in folder.glob(f"{TMP_PREFIX}*"):
         rest = leftover.name[len(prefix):] if leftover.name.startswith(prefix) else ""
         pid_text = rest.split(".", 1)[0]
-        if pid_text.isdigit() and not _pid_alive(int(pid_text)):
+        if pid_text.isdigit() and not _pid_alive(int(pid_text)) and _lock_free(leftover):
             with contextlib.suppress(OSError):
                 if leftover.is_dir():
                     shutil.rmtree(leftover)
                 else:
                     leftover.unlink()
+
+
+@contextlib.contextmanager
+def scratch_folder(target: Path, label: str) -> Iterator[Path]:
+    """A locked scratch folder beside ``target`` for one run, removed when the block ends.
+
+    The run holds the ``flock`` of the folder's lock file for its whole life; a run killed
+    with SIGKILL leaves the folder, and the next run writing the same output removes it
+    once it can take that lock (see :func:`_remove_stale_temporaries`).
+    """
+    folder = target.parent if str(target.parent) else Path(".")
+    _remove_stale_temporaries(folder, target.name)
+    scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.{label}.",
+                                    dir=folder))
+    try:
+        fd = os.open(scratch / SCRATCH_LOCK, os.O_RDWR | os.O_CREAT, 0o600)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            yield scratch
+        finally:
+            os.close(fd)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:
@@ -261,6 +376,38 @@ def open_binary(path: str | Path) -> IO[bytes]:
     return fh
 
 
+def gzip_ratio_limit() -> int:
+    """How many times its compressed size a gzip input may unpack to: :data:`GZIP_RATIO_LIMIT`,
+    or the whole number in the environment variable ``RESCORE_GZIP_MAX_RATIO`` (inherited
+    by worker processes); 0 lifts the cap."""
+    text = os.environ.get(GZIP_RATIO_VARIABLE, "").strip()
+    if not text:
+        return GZIP_RATIO_LIMIT
+    if not text.isdigit():
+        raise UsageError(f"{GZIP_RATIO_VARIABLE}={text!r}: expected a whole number "
+                         "(0 for no cap)")
+    return int(text)
+
+
+def gzip_unpacked_limit(fh: IO[bytes]) -> int | None:
+    """The most bytes ``fh`` may unpack to: None for a plain file or with the cap lifted."""
+    ratio = gzip_ratio_limit()
+    if not isinstance(fh, gzip.GzipFile) or ratio == 0:
+        return None
+    return max(GZIP_FLOOR_BYTES, ratio * os.fstat(fh.fileno()).st_size)
+
+
+def _gzip_bomb(path: str | Path, limit: int, line: int | None) -> InputError:
+    return InputError(f"gzip data unpacks to more than {_size(limit)}, over "
+                      f"{gzip_ratio_limit()} times its compressed size (a decompression "
+                      f"bomb?); set {GZIP_RATIO_VARIABLE} to allow more", path=path, line=line)
+
+
+def _blank_run(path: str | Path, line: int, limit: int) -> InputError:
+    return InputError(f"more than {limit:,} blank lines in a row (from line "
+                      f"{line - limit})", path=path, line=line)
+
+
 def iter_text_lines(
     path: str | Path,
     max_line_bytes: int | None = TEXT_LINE_LIMIT,
@@ -268,18 +415,23 @@ def iter_text_lines(
     start: int = 0,
     end: int | None = None,
     first_line: int = 1,
+    max_blank_run: int | None = BLANK_RUN_LIMIT,
 ) -> Iterator[tuple[int, str]]:
     """Yield ``(line_number, text)`` for each line, decoded as strict UTF-8.
 
     Bad bytes and lines over ``max_line_bytes`` (by default :data:`TEXT_LINE_LIMIT`; None
     for no cap) raise :class:`InputError` naming the line and the byte offset; a damaged gzip
-    stream is reported the same way. The line ending is removed.
+    stream is reported the same way, and so are gzip data that unpack past
+    :func:`gzip_unpacked_limit` and more than ``max_blank_run`` lines of only whitespace in
+    a row. The line ending is removed.
     ``start``/``end`` (byte offsets at line starts, uncompressed files only) read one shard,
     numbering its lines from ``first_line``.
     """
     offset = start
     number = first_line - 1
+    blanks = 0
     with open_binary(path) as fh:
+        unpacked = gzip_unpacked_limit(fh)
         if start:
             fh.seek(start)
         while end is None or offset < end:
@@ -299,7 +451,55 @@ def iter_text_lines(
             except UnicodeDecodeError as exc:
                 raise _bad_utf8(path, number, raw, exc, offset) from None
             offset += len(raw)
+            if unpacked is not None and offset > unpacked:
+                raise _gzip_bomb(path, unpacked, number)
+            if text.isspace():  # stops at the first other character: cheap on real lines
+                blanks += 1
+                if max_blank_run is not None and blanks > max_blank_run:
+                    raise _blank_run(path, number, max_blank_run)
+            else:
+                blanks = 0
             yield number, text.rstrip("\r\n")
+
+
+def inflate(path: str | Path, dst: IO[bytes], max_line_bytes: int | None,
+            max_blank_run: int | None = BLANK_RUN_LIMIT) -> int:
+    """Unpack the gzip file ``path`` into ``dst`` in large blocks; returns the bytes written.
+
+    Every fault is reported exactly as :func:`iter_text_lines` reports it, line included
+    (the one-process reader): on a damaged stream, past the unpacked limit, or after a run
+    of more than ``max_blank_run`` bare line breaks, the file is read again that way, up to
+    the fault, to name it.
+    """
+    written = 0
+    run = 0  # bare line breaks in a row, across blocks: a run of k holds k - 1 blank lines
+    with open_binary(path) as src:
+        limit = gzip_unpacked_limit(src)
+        while True:
+            try:
+                block = src.read(1 << 20)
+            except (OSError, EOFError, zlib.error):
+                break
+            if not block:
+                return written
+            written += len(block)
+            if limit is not None and written > limit:
+                break
+            if max_blank_run is not None:
+                lead = len(block) - len(block.lstrip(b"\n"))
+                if run + lead > max_blank_run + 1:
+                    break
+                run = run + lead if lead == len(block) \
+                    else len(block) - len(block.rstrip(b"\n"))
+            view = memoryview(block)
+            while view:  # an unbuffered file may take part of a block (a disk filling up)
+                taken = dst.write(view)
+                if not taken:
+                    raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+                view = view[taken:]
+    for _ in iter_text_lines(path, max_line_bytes, max_blank_run=max_blank_run):
+        pass
+    raise InputError("cannot read compressed data", path=path)  # the reader found it fine
 
 
 def _size(n: int) -> str:

@@ -177,7 +177,7 @@ class RecordParser:
             raise InputError("reference needed (in the file or with --refs)",
                              path=path, line=number, field="reference")
         if self.convention.factor != 1.0:
-            _convert(utt, self.convention.factor)
+            _convert(path, number, utt, self.convention.factor)
         return utt
 
 
@@ -378,12 +378,24 @@ def _check_chars(path: str | Path, number: int, field: str, text: str,
                          path=path, line=number, field=field)
 
 
-def _convert(utt: Utterance, factor: float) -> None:
-    for hyp in utt["hypotheses"]:
+def _convert(path: str, number: int, utt: Utterance, factor: float) -> None:
+    """Scale the scores to natural-log likelihoods; a score that leaves the range of a float
+    on the way (log base 1e300 times -1e307) is refused, naming its line and field."""
+    for i, hyp in enumerate(utt["hypotheses"]):
         hyp["acoustic"] = hyp["acoustic"] * factor
+        if not math.isfinite(hyp["acoustic"]):
+            raise _overflow(path, number, f"hypotheses[{i}].acoustic", factor)
         feats = hyp.get("features")
         if feats:
             hyp["features"] = {k: v * factor for k, v in feats.items()}
+            for k, v in hyp["features"].items():
+                if not math.isfinite(v):
+                    raise _overflow(path, number, f"hypotheses[{i}].features.{k}", factor)
+
+
+def _overflow(path: str, number: int, field: str, factor: float) -> InputError:
+    return InputError(f"score out of range once converted to natural log (times {factor:.6g})",
+                      path=path, line=number, field=field)
 
 
 def one_best(utt: Utterance) -> Hypothesis:

@@ -14,10 +14,13 @@ from __future__ import annotations
 
 import array
 import contextlib
+import ctypes
 import logging
 import os
-import shutil
-import tempfile
+import signal
+import sys
+import threading
+import time
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass
@@ -28,12 +31,14 @@ import numpy as np
 
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
-    TMP_PREFIX,
     atomic_outputs,
+    disk_full_error,
+    inflate,
+    is_disk_full,
     is_gzip_file,
     iter_text_lines,
     line_shards,
-    open_binary,
+    scratch_folder,
 )
 from rescore.listcheck import ListStats
 from rescore.nbest import (
@@ -74,6 +79,7 @@ class ShardTask:
     features: tuple[str, ...]
     batch_size: int
     display_path: str
+    target: str = ""  # the output the shard is for, named when its disk fills
 
 
 @dataclass(frozen=True)
@@ -139,20 +145,72 @@ def run_shard(task: ShardTask) -> ShardResult:
 
     # shard outputs live in the run's scratch folder, which the main process removes on any
     # failure; only the joined output is written atomically (and synced to disk)
-    with contextlib.ExitStack() as stack:
-        fh = stack.enter_context(open(task.out, "w", encoding="utf-8", newline="\n"))
-        tsv: IO[str] | None = None
-        if task.tsv is not None:
-            tsv = stack.enter_context(open(task.tsv, "w", encoding="utf-8", newline="\n"))
-        for batch in batches(records(), task.batch_size):
-            scored, batch_stats = rescore_batch(batch, path=task.display_path, lms=lms,
-                                                features=task.features, weights=task.weights)
-            stats += batch_stats
-            counts += write_scored(scored, fh, tsv, path=task.display_path,
-                                   lines=[line for line, _ in batch])
+    try:
+        with contextlib.ExitStack() as stack:
+            fh = stack.enter_context(open(task.out, "w", encoding="utf-8", newline="\n"))
+            tsv: IO[str] | None = None
+            if task.tsv is not None:
+                tsv = stack.enter_context(open(task.tsv, "w", encoding="utf-8", newline="\n"))
+            for batch in batches(records(), task.batch_size):
+                scored, batch_stats = rescore_batch(batch, path=task.display_path, lms=lms,
+                                                    features=task.features,
+                                                    weights=task.weights)
+                stats += batch_stats
+                counts += write_scored(scored, fh, tsv, path=task.display_path,
+                                       lines=[line for line, _ in batch])
+    except OSError as exc:  # closing the files flushes them: it may fail the same way
+        if not is_disk_full(exc):
+            raise
+        # the bytes the run holds beside the output: every shard so far, and the input
+        # inflated from gzip
+        raise disk_full_error(exc, task.target or task.out, _bytes_in(Path(task.out).parent)) \
+            from None
     return ShardResult(np.frombuffer(lines, dtype=np.int64).copy(),
                        np.frombuffer(digests, dtype=np.int64).copy(),
                        np.frombuffer(has_ref, dtype=np.bool_).copy(), counts, stats)
+
+
+PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
+WATCH_SECONDS = 1.0
+
+
+def _die_with_parent(parent: int) -> None:
+    """Worker initializer: end this worker when the main process ends, however it ends.
+
+    A main process killed with SIGKILL runs no clean-up, and the pool's workers would go on
+    (they block on a queue that nobody feeds; SIGTERM then reaches only the dead parent's
+    pid). On Linux the kernel is asked to send SIGKILL to the worker when its parent dies
+    (``prctl(PR_SET_PDEATHSIG)``): immediate, and it costs nothing while the parent lives.
+    The signal follows the parent *thread* that forked the worker; the pool forks its
+    workers from the thread that submits, the main thread here, which lives as long as the
+    process. Elsewhere, or if prctl fails, a daemon thread checks the parent pid every
+    second and exits the worker when it changes. Both check once after arming, for a parent
+    that died before.
+    """
+    armed = False
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(OSError, AttributeError):
+            libc = ctypes.CDLL(None, use_errno=True)
+            armed = libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0) == 0
+    if os.getppid() != parent:
+        os._exit(1)
+    if not armed:
+        threading.Thread(target=_watch_parent, args=(parent,), daemon=True,
+                         name="rescore-parent-watch").start()
+
+
+def _watch_parent(parent: int) -> None:
+    while os.getppid() == parent:
+        time.sleep(WATCH_SECONDS)
+    os._exit(1)
+
+
+def _bytes_in(folder: Path) -> int:
+    total = 0
+    for part in folder.iterdir():
+        with contextlib.suppress(OSError):  # the main process deletes shards once joined
+            total += part.stat().st_size
+    return total
 
 
 class _Runner:
@@ -165,7 +223,8 @@ class _Runner:
         if cluster is not None:
             self._client = self._stack.enter_context(_dask_client(cluster, workers))
         else:
-            self._pool = self._stack.enter_context(ProcessPoolExecutor(max_workers=workers))
+            self._pool = self._stack.enter_context(ProcessPoolExecutor(
+                max_workers=workers, initializer=_die_with_parent, initargs=(os.getpid(),)))
 
     def map(self, fn: Callable[[ShardTask], ShardResult], tasks: Sequence[ShardTask]
             ) -> Iterator[ShardResult]:
@@ -233,17 +292,37 @@ def apply_sharded(
     """Rescore ``path`` into ``out`` with shards; returns (utterances, what was written,
     the lists' score counts, shards). The input is cut into at most ``4 * workers``
     shards of at least ``shard_bytes`` each (default :data:`MIN_SHARD_BYTES`)."""
-    folder = out.parent if str(out.parent) else Path(".")
-    scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{out.name}.{os.getpid()}.shards.",
-                                    dir=folder))
+    with scratch_folder(out, "shards") as scratch:
+        return _apply_in(scratch, path, out, models=models, weights=weights,
+                         features=features, text_path=text_path, refs_path=refs_path,
+                         convention=convention, header_line=header_line, limits=limits,
+                         batch_size=batch_size, workers=workers, cluster=cluster,
+                         require_references=require_references, progress=progress,
+                         shard_bytes=shard_bytes)
+
+
+def _apply_in(
+    scratch: Path, path: Path, out: Path, *, models: Sequence[tuple[str, str]],
+    weights: Weights, features: Sequence[str], text_path: Path | None,
+    refs_path: Path | None, convention: ScoreConvention, header_line: int,
+    limits: ReadLimits, batch_size: int, workers: int, cluster: str | None,
+    require_references: bool, progress: Callable[[int], None] | None,
+    shard_bytes: int | None,
+) -> tuple[int, WriteCounts, ListStats, int]:
     runner: _Runner | None = None
     try:
         source = path
         if is_gzip_file(path):
-            # gzip cannot be split by byte range: inflate once into the scratch folder
+            # gzip cannot be split by byte range: inflate once into the scratch folder,
+            # under the same caps and with the same errors as the one-process reader
             source = scratch / "input.jsonl"
-            with open_binary(path) as src, open(source, "wb") as dst:
-                shutil.copyfileobj(src, dst, 1 << 20)
+            with open(source, "wb", buffering=0) as dst:  # unbuffered: nothing left to flush
+                try:
+                    inflate(path, dst, limits.max_line_bytes)
+                except OSError as exc:
+                    if not is_disk_full(exc):
+                        raise
+                    raise disk_full_error(exc, out, os.fstat(dst.fileno()).st_size) from None
         parts = max(1, workers) * 4
         shards = line_shards(source, parts,
                              MIN_SHARD_BYTES if shard_bytes is None else shard_bytes)
@@ -255,6 +334,7 @@ def apply_sharded(
             refs_path=None if refs_path is None else str(refs_path),
             require_references=require_references, models=tuple(models), weights=weights,
             features=tuple(features), batch_size=batch_size, display_path=str(path),
+            target=str(out),
         ) for i, (a, b, first) in enumerate(shards)]
         log.info("%d shards of %s for %s", len(tasks), source,
                  f"cluster {cluster}" if cluster else f"{workers} worker processes")
@@ -295,7 +375,6 @@ def apply_sharded(
     finally:
         if runner is not None:
             runner.close()
-        shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _append(part: Path, dst: IO[bytes]) -> int:

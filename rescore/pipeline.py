@@ -19,7 +19,14 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import AccountingError, InputError, UsageError
-from rescore.ioutil import LineCounter, TextSink, atomic_outputs, count_lines, sha256_file
+from rescore.ioutil import (
+    LineCounter,
+    TextSink,
+    atomic_outputs,
+    count_lines,
+    sha256_file,
+    write_texts_atomic,
+)
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.nbest import (
     DEFAULT_LIMITS,
@@ -538,12 +545,12 @@ def tune_file(
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
     prov = provenance(data=[path], models=models, extra=result.search_record())
-    tuning.write_weights(weights_path, result.weights, prov)
+    files = {weights_path: tuning.weights_text(weights_path, result.weights, prov)}
     if analysis_path is not None:
         import json
 
-        from rescore.ioutil import write_text_atomic
-
-        write_text_atomic(analysis_path, json.dumps(result.to_dict() | {"provenance": prov},
-                                                    indent=2) + "\n")
+        files[analysis_path] = json.dumps(result.to_dict() | {"provenance": prov},
+                                          indent=2) + "\n"
+    # the weights and their analysis appear together or not at all (a full disk, a kill)
+    write_texts_atomic(files)
     return TuneOutcome(result, prov, stats.warnings(costs=_read_as_costs(path, costs)))

@@ -1309,11 +1309,15 @@ def read_weights_models(path: str | Path) -> dict[str, str]:
 
 def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:
     """Write a weights file atomically (nothing appears at ``path`` on failure)."""
+    write_text_atomic(path, weights_text(path, weights, provenance))
+
+
+def weights_text(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> str:
+    """The text of the weights file to be written at ``path`` (named in its errors)."""
     body = _weights_dict(weights)
     for key in _WEIGHT_KEYS:
         _number(body[key], str(path), key)
     for name, value in body["features"].items():
         _number(value, str(path), f"features.{name}")
-    text = json.dumps({**body, "provenance": dict(provenance)}, indent=2, sort_keys=False,
+    return json.dumps({**body, "provenance": dict(provenance)}, indent=2, sort_keys=False,
                       allow_nan=False) + "\n"
-    write_text_atomic(path, text)

@@ -4,15 +4,39 @@ from __future__ import annotations
 
 import logging
 import sys
+from typing import Any
 
 import typer
+from typer.core import TyperGroup
 
 from rescore import __version__
 from rescore.cli._common import install_signal_handlers, state
 from rescore.process import avoid_huge_pages, keep_freed_memory
 
+
+class _Commands(TyperGroup):
+    """The root group. Path arguments are not checked for access by the parser: an
+    unreadable input is the reader's to report, as one ``error: PATH: permission denied``
+    line and exit 1 like a missing file, not as a usage error (exit 2)."""
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        _leave_access_to_readers(self)
+
+
+def _leave_access_to_readers(command: Any) -> None:
+    # typer keeps each parameter's settings (``readable`` among them) in its descriptor
+    for param in getattr(command, "params", []):
+        info: Any = getattr(getattr(param, "type_descriptor", None), "parameter_info", None)
+        if getattr(info, "readable", False):
+            info.readable = False
+    for sub in getattr(command, "commands", {}).values():
+        _leave_access_to_readers(sub)
+
+
 app = typer.Typer(
     name="rescore",
+    cls=_Commands,
     help="Rescore recognizer N-best lists with n-gram language models, tune weights, report WER.",
     no_args_is_help=True,
     pretty_exceptions_enable=False,

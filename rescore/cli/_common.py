@@ -19,6 +19,7 @@ from rich.console import Console
 from rich.table import Table
 
 from rescore.errors import RescoreError
+from rescore.ioutil import DISK_FULL, disk_full_error
 from rescore.progress import Report
 
 P = ParamSpec("P")
@@ -75,14 +76,32 @@ def guarded(fn: Callable[P, R]) -> Callable[P, R]:
             raise fail(f"{what}; no output was written", 130) from None
         except MemoryError:
             raise fail("out of memory; try a smaller batch or fewer workers") from None
+        except OSError as exc:
+            if state.debug:
+                raise
+            if exc.errno in DISK_FULL or exc.filename is not None:
+                raise fail(_os_message(exc)) from None
+            raise fail(_internal(exc)) from None
         except Exception as exc:
             if state.debug:
                 raise
-            raise fail(
-                f"internal error ({type(exc).__name__}: {exc}); rerun with --debug and report it"
-            ) from None
+            raise fail(_internal(exc)) from None
 
     return wrapper
+
+
+def _internal(exc: BaseException) -> str:
+    return f"internal error ({type(exc).__name__}: {exc}); rerun with --debug and report it"
+
+
+def _os_message(exc: OSError) -> str:
+    """An error of the system on a named file (unreadable, full disk the writers did not
+    see first): ``PATH: what is wrong``, as an input error would read."""
+    path = exc.filename if exc.filename is not None else "output"
+    if exc.errno in DISK_FULL:
+        return str(disk_full_error(exc, path, 0)).replace(" (0 bytes written)", "")
+    reason = (exc.strerror or type(exc).__name__).lower()
+    return f"{path}: {reason}"
 
 
 def _noop(amount: float = 1) -> None:

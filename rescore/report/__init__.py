@@ -8,6 +8,7 @@ or an interruption leaves no partial set behind.
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 
 from rescore.errors import InputError
@@ -47,13 +48,20 @@ def write_report(report: Report, out_dir: str | Path) -> list[Path]:
     folder = Path(out_dir)
     if folder.exists() and not folder.is_dir():
         raise InputError("is a file, expected a folder for the report", path=folder)
+    created = not folder.exists()
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot create the report folder ({exc.strerror})",
                          path=folder) from None
     written = [folder / name for name in FILES]
-    write_texts_atomic(dict(zip(written, (contents[name] for name in FILES), strict=True)))
+    try:
+        write_texts_atomic(dict(zip(written, (contents[name] for name in FILES), strict=True)))
+    except BaseException:
+        if created:  # a folder made for this report goes with it (a full disk, Ctrl-C)
+            with contextlib.suppress(OSError):
+                folder.rmdir()
+        raise
     return written
 
 

@@ -41,3 +41,22 @@ def test_encode_block_known_and_unknown_words() -> None:
     ids, counts = encode_block(vocab, normalise_block(b"Pump bay\n\nventilation <s> valve"))
     assert ids.tolist() == [3, 5, 4, UNK_ID, UNK_ID]
     assert counts.tolist() == [2, 0, 3]
+
+
+@settings(max_examples=200)
+@given(st.lists(st.lists(st.lists(_word, max_size=6), max_size=5), min_size=1, max_size=4))
+def test_first_pass_of_blocks_counts_as_the_word_lists(blocks: list[list[list[str]]]) -> None:
+    # the rule is first_pass over the sentences (non-blank lines' word lists): the same
+    # words with the same counts, the same sentence lengths, and a body that names the
+    # same word at every position (provisional ids may be numbered otherwise)
+    from rescore.lm.vocab import first_pass, first_pass_blocks
+
+    cleans = [normalise_block("\n".join(" ".join(line) for line in lines).encode("utf-8"))
+              for lines in blocks]
+    sentences = [s for c in cleans for s in clean_words(c) if s]
+    words, counts, body, lengths = first_pass(sentences)
+    b_words, b_counts, b_body, b_lengths = first_pass_blocks(cleans)
+    assert dict(zip(b_words, b_counts.tolist(), strict=True)) == \
+        dict(zip(words, counts.tolist(), strict=True))
+    assert [b_words[i] for i in b_body] == [words[i] for i in body]
+    assert b_lengths.tolist() == lengths.tolist()

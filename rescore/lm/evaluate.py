@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from itertools import islice, pairwise
 from pathlib import Path
@@ -13,11 +13,11 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from rescore.errors import InputError
-from rescore.ioutil import atomic_output, iter_text_blocks
+from rescore.ioutil import atomic_output
+from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.model import NGramModel
 from rescore.lm.vocab import UNK_ID, encode_block, stream_from_lengths
-from rescore.text import clean_words, normalise_block
+from rescore.text import clean_words
 
 LN10 = math.log(10.0)
 BATCH = 50_000  # sentences scored per vectorised call
@@ -206,62 +206,3 @@ def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
                     yield sc
 
         return summarise(written())
-
-
-class Corpus(Iterator[list[str]]):
-    """One normalised sentence per non-blank line of each file (.gz read transparently).
-
-    Iterate for the sentences' word lists, or take :meth:`blocks` (once, instead) for
-    whole blocks of lines in their clean form (:func:`rescore.text.normalise_block`).
-    ``progress`` is called with the number of lines read since its last call (after each
-    block, a few hundred thousand lines at most). Text with no word at all is refused with
-    an :class:`InputError` once it has been read.
-    """
-
-    def __init__(self, paths: Sequence[str | Path],
-                 progress: Callable[[int], None] | None = None) -> None:
-        self.paths = paths
-        self.progress = progress
-        self._sentences: Iterator[list[str]] | None = None
-
-    def blocks(self) -> Iterator[tuple[int, bytes]]:
-        """``(first line number, clean block)`` for runs of whole lines of each file."""
-        any_words = False
-        for path in self.paths:
-            for first_line, data in iter_text_blocks(path):
-                clean = normalise_block(data)
-                any_words = any_words or bool(clean.strip(b" \n"))
-                yield first_line, clean
-                if self.progress is not None:
-                    self.progress(data.count(b"\n") + 1)
-        if not any_words:  # nothing to train on or measure: say so rather than give a void model
-            raise InputError("no sentences (every line is blank or has no words)",
-                             path=", ".join(str(p) for p in self.paths) or None)
-
-    def _each_sentence(self) -> Iterator[list[str]]:
-        for _, clean in self.blocks():
-            words = clean_words(clean)
-            flat, bounds = words.flat, words.bounds.tolist()
-            for a, b in pairwise(bounds):
-                if b > a:
-                    yield flat[a:b]
-
-    def __iter__(self) -> Corpus:
-        return self
-
-    def __next__(self) -> list[str]:
-        if self._sentences is None:
-            self._sentences = self._each_sentence()
-        return next(self._sentences)
-
-
-def read_corpus(paths: str | Path | Iterable[str | Path], *,
-                progress: Callable[[int], None] | None = None) -> Corpus:
-    """One normalised sentence per non-blank line of each file (.gz read transparently).
-
-    ``progress`` is called with the number of lines read since its last call. See
-    :class:`Corpus`.
-    """
-    if isinstance(paths, (str, Path)):
-        paths = [paths]
-    return Corpus(list(paths), progress)

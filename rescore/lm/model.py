@@ -11,6 +11,7 @@ import numpy.typing as npt
 
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
+from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
@@ -22,6 +23,7 @@ from rescore.lm.vocab import (
     choose_words,
     encode,
     first_pass,
+    first_pass_blocks,
     remap,
     stream_from_lengths,
 )
@@ -93,7 +95,11 @@ class NGramModel:
         order by order.
         """
         self._check_settings()
-        words, counts, body, lengths = first_pass(sentences)
+        if isinstance(sentences, Corpus):  # text from files: whole blocks to ids at once
+            words, counts, body, lengths = first_pass_blocks(
+                clean for _, clean in sentences.blocks())
+        else:
+            words, counts, body, lengths = first_pass(sentences)
         vocab = Vocabulary.from_words(
             choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
                          min_count=self.min_count)

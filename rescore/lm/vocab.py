@@ -19,7 +19,7 @@ import numpy.typing as npt
 
 from rescore.errors import UsageError
 from rescore.lm.hashindex import build_slots, lookup_values, slot_keys
-from rescore.text import Words, block_words, word_counts
+from rescore.text import BlockWords, Words, block_words, word_counts
 
 BOS, EOS, UNK = "<s>", "</s>", "<unk>"
 BOS_ID, EOS_ID, UNK_ID = 0, 1, 2
@@ -98,31 +98,39 @@ class PackedWords:
         return cls(slot_keys(slots, keys), ids.astype(np.int32))
 
 
+def _by_dict(clean: bytes, starts: I64, lengths: I64) -> npt.NDArray[np.bool_]:
+    """The words that a packed key does not identify: the long ones and any with a NUL."""
+    long = lengths > PACKED_BYTES
+    if b"\0" in clean:  # a NUL is never a separator: it lies inside the word begun before
+        nul = np.flatnonzero(np.frombuffer(clean, dtype=np.uint8) == 0)
+        long[np.searchsorted(starts, nul, side="right") - 1] = True
+    return long
+
+
+def _strings(clean: bytes, found: BlockWords, which: I64) -> list[str]:
+    return [clean[a:b].decode("utf-8") for a, b in
+            zip(found.starts[which].tolist(), found.ends[which].tolist(), strict=True)]
+
+
 def encode_block(vocab: Vocabulary, clean: bytes) -> tuple[I32, I64]:
     """The ids of the words of a clean block (see :func:`rescore.text.normalise_block`) and
     the number of words on each of its lines; unknown words (and the literal ``<s>`` and
     ``</s>``) are ``<unk>``, as in :func:`encode`.
 
-    Short words go through the vectorised index, the rest (a few per cent of English
-    tokens) through the vocabulary's dict: no str is made for a short word.
+    Short words go through the vectorised index, the rest (the longer words, fewer in
+    most text) through the vocabulary's dict: no str is made for a short word.
     """
     found = block_words(clean)
     lengths = found.ends - found.starts
     packed = vocab.packed
-    if b"\0" in clean:
-        long = np.ones(len(lengths), dtype=bool)
-        ids = np.full(len(lengths), UNK_ID, dtype=np.int32)
-    else:
-        # every word packed (a long one's key is only its first 8 bytes), then the long
-        # ones' ids set right below
-        ids = lookup_values(packed.held, packed.ids, _packed_at(clean, found.starts, lengths),
-                            UNK_ID)
-        long = lengths > PACKED_BYTES
-    rest = np.flatnonzero(long)
+    # every word packed (a long one's key is only its first 8 bytes), then the dict's
+    # words' ids set right below
+    ids = lookup_values(packed.held, packed.ids, _packed_at(clean, found.starts, lengths),
+                        UNK_ID)
+    rest = np.flatnonzero(_by_dict(clean, found.starts, lengths))
     if rest.size:
         get = vocab.index.get
-        ids[rest] = [get(clean[a:b].decode("utf-8"), UNK_ID) for a, b in
-                     zip(found.starts[rest].tolist(), found.ends[rest].tolist(), strict=True)]
+        ids[rest] = [get(w, UNK_ID) for w in _strings(clean, found, rest)]
     ids[ids <= EOS_ID] = UNK_ID
     return ids, found.counts
 
@@ -194,6 +202,49 @@ def first_pass(sentences: Iterable[Sequence[str]]) -> tuple[list[str], I64, I32,
     counts = np.bincount(ids, minlength=len(words)).astype(np.int64)
     lens = np.frombuffer(lengths, dtype=np.int64).copy() if len(lengths) else np.zeros(0, np.int64)
     return words, counts, ids, lens
+
+
+def first_pass_blocks(blocks: Iterable[bytes]) -> tuple[list[str], I64, I32, I64]:
+    """As :func:`first_pass`, over clean blocks of text (empty lines are no sentences).
+
+    A block's short words are told apart by their packed keys, as numpy operations: one
+    dict probe per distinct key a block holds, not per word. The provisional ids come in
+    another order than :func:`first_pass` gives; nothing downstream depends on it
+    (:func:`choose_words` orders by count, then by the word).
+    """
+    provisional: dict[str, int] = {w: i for i, w in enumerate(SPECIALS)}
+    by_key: dict[int, int] = {}
+    bodies: list[I32] = []
+    all_lengths: list[I64] = []
+    for clean in blocks:
+        found = block_words(clean)
+        lengths = found.ends - found.starts
+        ids = np.empty(len(lengths), dtype=np.int32)
+        by_dict = _by_dict(clean, found.starts, lengths)
+        short = np.flatnonzero(~by_dict)
+        if short.size:
+            keys, first, inverse = np.unique(_packed_at(clean, found.starts[short],
+                                                        lengths[short]),
+                                             return_index=True, return_inverse=True)
+            known = [by_key.get(k, -1) for k in keys.tolist()]
+            for j in [j for j, got in enumerate(known) if got < 0]:
+                at = short[first[j]]
+                word = clean[int(found.starts[at]):int(found.ends[at])].decode("utf-8")
+                # the same word may be in the dict already if it is one of SPECIALS
+                known[j] = provisional.setdefault(word, len(provisional))
+                by_key[int(keys[j])] = known[j]
+            ids[short] = np.array(known, dtype=np.int32)[inverse]
+        rest = np.flatnonzero(by_dict)
+        if rest.size:
+            ids[rest] = [provisional.setdefault(w, len(provisional))
+                         for w in _strings(clean, found, rest)]
+        bodies.append(ids)
+        all_lengths.append(found.counts[found.counts > 0])
+    words = list(provisional)
+    body = np.concatenate(bodies) if bodies else np.zeros(0, dtype=np.int32)
+    counts = np.bincount(body, minlength=len(words)).astype(np.int64)
+    lens = np.concatenate(all_lengths) if all_lengths else np.zeros(0, dtype=np.int64)
+    return words, counts, body, lens
 
 
 def choose_words(

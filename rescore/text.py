@@ -101,34 +101,17 @@ class Words(Sequence[list[str]]):
         return np.diff(self.bounds)
 
 
-# str.split() separates words at these ASCII characters
-_ASCII_SPACE = np.array([chr(c).isspace() for c in range(128)], dtype=bool)
-
-
-def _word_bounds(data: bytes, n_texts: int) -> npt.NDArray[np.int64]:
-    """Offsets of each line's first word among all words of ``data`` (lines split at
-    ``\\n``), counted as ``str.split`` counts them, as numpy operations over the bytes."""
-    b = np.frombuffer(data, dtype=np.uint8)
-    space = _ASCII_SPACE[b]
-    begins = ~space
-    begins[1:] &= space[:-1]  # a word begins after a space or at the start
-    starts = np.flatnonzero(begins)
-    line_ends = np.append(np.flatnonzero(b == 10), len(b))
-    bounds = np.zeros(n_texts + 1, dtype=np.int64)
-    bounds[1:] = np.searchsorted(starts, line_ends)
-    return bounds
-
-
 def tokens_many(texts: Sequence[str]) -> Sequence[list[str]]:
-    """``tokens`` of each text. A batch of plain ASCII words (the common case) is split in
-    one pass into :class:`Words`; anything else text by text."""
+    """``tokens`` of each text. A batch is normalised in one pass as a block of lines
+    (:func:`normalise_block`) into :class:`Words`; a batch with a line break inside a
+    text (or a lone surrogate, which has no UTF-8 form) text by text."""
     joined = "\n".join(texts)
-    if texts and joined.isascii() and _ASCII_PUNCT.search(joined) is None and \
-            joined.count("\n") == len(texts) - 1:
-        low = joined.lower()
-        words = Words(low.split(), _word_bounds(low.encode("ascii"), len(texts)))
-        if int(words.bounds[-1]) == len(words.flat):
-            return words
+    if texts and joined.count("\n") == len(texts) - 1:
+        try:
+            data = joined.encode("utf-8")
+        except UnicodeEncodeError:
+            return [tokens(text) for text in texts]
+        return clean_words(normalise_block(data))
     return [tokens(text) for text in texts]
 
 
@@ -155,17 +138,17 @@ def _ascii_block_table() -> bytes:
 
 
 _ASCII_BLOCK = _ascii_block_table()
-_NON_ASCII = re.compile("[^\x00-\x7f]")
+_ASCII_BYTES = bytes(range(128))
 
 
-def _unicode_block_table(text: str) -> dict[int, int]:
-    """``str.translate`` table for ``text`` (already lowercased): the ASCII rules, and for
-    each non-ASCII character in it that is punctuation or white space, a space."""
-    table = {c: _SPACE for c in range(128) if _ASCII_BLOCK[c] == _SPACE and c != _SPACE}
-    for ch in set(_NON_ASCII.findall(text)):
+def _space_out_non_ascii(data: bytes) -> bytes:
+    """Each non-ASCII character of UTF-8 ``data`` that is punctuation or white space
+    replaced by a space (one ``bytes.replace`` per distinct such character: UTF-8 is
+    self-synchronising, so a character's bytes match only where that character is)."""
+    for ch in set(data.translate(None, _ASCII_BYTES).decode("utf-8")):
         if ch.isspace() or unicodedata.category(ch).startswith("P"):
-            table[ord(ch)] = _SPACE
-    return table
+            data = data.replace(ch.encode("utf-8"), b" ")
+    return data
 
 
 def _strip_word_edges(data: bytes) -> bytes:
@@ -216,7 +199,9 @@ def _clean_unicode(data: bytes) -> bytes:
     # composes with nothing, neither cased nor case-ignorable), so a whole block normalises
     # as its lines do one by one
     text = unicodedata.normalize("NFC", data.decode("utf-8")).lower().replace("\u2019", "'")
-    return text.translate(_unicode_block_table(text)).encode("utf-8")
+    # the ASCII rules act on the ASCII bytes of UTF-8 (every byte of a multibyte
+    # character is 128 or more); lower() has left no ASCII capital to change
+    return _space_out_non_ascii(text.encode("utf-8").translate(_ASCII_BLOCK))
 
 
 _SEPARATOR = np.zeros(256, dtype=bool)

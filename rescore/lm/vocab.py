@@ -223,16 +223,14 @@ def first_pass_blocks(blocks: Iterable[bytes]) -> tuple[list[str], I64, I32, I64
         by_dict = _by_dict(clean, found.starts, lengths)
         short = np.flatnonzero(~by_dict)
         if short.size:
-            keys, first, inverse = np.unique(_packed_at(clean, found.starts[short],
-                                                        lengths[short]),
-                                             return_index=True, return_inverse=True)
+            keys, inverse = np.unique(_packed_at(clean, found.starts[short], lengths[short]),
+                                      return_inverse=True)
             known = [by_key.get(k, -1) for k in keys.tolist()]
-            for j in [j for j, got in enumerate(known) if got < 0]:
-                at = short[first[j]]
-                word = clean[int(found.starts[at]):int(found.ends[at])].decode("utf-8")
-                # the same word may be in the dict already if it is one of SPECIALS
-                known[j] = provisional.setdefault(word, len(provisional))
-                by_key[int(keys[j])] = known[j]
+            for j, key in enumerate(keys.tolist()):
+                if known[j] < 0:  # a new word: its bytes are its key's, zeros dropped
+                    word = key.to_bytes(PACKED_BYTES, "little").rstrip(b"\0").decode("utf-8")
+                    # a SPECIAL may be in the dict already
+                    known[j] = by_key[key] = provisional.setdefault(word, len(provisional))
             ids[short] = np.array(known, dtype=np.int32)[inverse]
         rest = np.flatnonzero(by_dict)
         if rest.size:

@@ -94,7 +94,8 @@ def stages(model_path: Path, text: Path) -> list[tuple[str, float]]:
     """Seconds of each stage of `lm perplexity` on ``text``, run one after another here."""
     out: list[tuple[str, float]] = []
     t = time.perf_counter()
-    subprocess.run([sys.executable, "-c", "import rescore.cli"], check=True)
+    subprocess.run([sys.executable, "-c", "import rescore.cli"], check=True, cwd=text.parent,
+                   env={**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)})
     out.append(("interpreter start and imports (a separate process)", time.perf_counter() - t))
     t = time.perf_counter()
     model = load_model(model_path)
@@ -125,6 +126,9 @@ def stages(model_path: Path, text: Path) -> list[tuple[str, float]]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--quick", action="store_true", help="300,000 words, a few seconds")
+    ap.add_argument("--against", type=Path, metavar="DIR",
+                    help="also time the process with the package of another checkout (a "
+                         "before / after in the same run)")
     args = ap.parse_args()
     like_the_command_line()
     n_words = 300_000 if args.quick else 3_000_000
@@ -149,16 +153,23 @@ def main() -> None:
                str(native), str(text)]
         env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 
-        def process() -> dict[str, Any]:
-            done = subprocess.run(cmd, check=True, capture_output=True, text=True, env=env)
+        def process(code: dict[str, str] = env) -> dict[str, Any]:
+            # run from the scratch folder: `python -m` puts the working folder first on
+            # the path, ahead of PYTHONPATH
+            done = subprocess.run(cmd, check=True, capture_output=True, text=True, env=code,
+                                  cwd=tmpdir)
             result: dict[str, Any] = json.loads(done.stdout)
             return result
+
+        other = None if args.against is None else \
+            {**os.environ, "PYTHONPATH": str(args.against.resolve())}
 
         logp, bow = arpa_dicts(arpa)
         loop = dict_loop(logp, bow, ORDER)
         # interleaved, so that a burst of load from another job falls on both alike
         t_proc: list[float] = []
         t_loop: list[float] = []
+        t_other: list[float] = []
         got: dict[str, Any] = {}
         slow = 0.0
         for _ in range(runs):
@@ -166,6 +177,10 @@ def main() -> None:
             t_proc.append(t)
             t, slow = median_of(lambda: loop(held), 1)
             t_loop.append(t)
+            if other is not None:
+                t, theirs = median_of(lambda: process(other), 1)
+                assert theirs == got, "the other checkout's figures differ"
+                t_other.append(t)
         assert abs(got["log10_prob"] - slow) <= 1e-6 * abs(slow), "dict loop disagrees"
         assert got["tokens"] == n_tokens
         proc, base = statistics.median(t_proc), statistics.median(t_loop)
@@ -175,6 +190,10 @@ def main() -> None:
         print(f"plain dict back-off loop (the loop alone): {base:.2f} s median of {runs} = "
               f"{n_tokens / base / 1e6:.2f} M tokens/s")
         print(f"ratio (process / loop, token rates): {ratio:.1f}x {target(ratio, '>=', 5)}")
+        if t_other:
+            theirs_t = statistics.median(t_other)
+            print(f"the process with {args.against}: {theirs_t:.2f} s median of {runs}, "
+                  f"ratio to the loop {base / theirs_t:.1f}x (same figures printed)")
         print("stages of `lm perplexity`, one run each:")
         for name, seconds in stages(native, text):
             print(f"  {name:52s} {seconds:6.3f} s")

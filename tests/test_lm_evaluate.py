@@ -92,3 +92,17 @@ def test_text_read_from_file_scores_as_its_word_lists(tmp_path: Path, closed: bo
     numbered = [(n, tokens(t)) for n, t in enumerate(lines, start=1) if tokens(t)]
     assert [(g["line"], g["text"]) for g in got] == [(n, " ".join(w)) for n, w in numbered]
     assert [g["log10_prob"] for g in got] == list(want.sentence_log10)
+
+
+def test_partly_read_corpus_scores_only_what_is_left(tmp_path: Path) -> None:
+    # a Corpus is an iterator: once its first sentence is taken, the rest is what remains,
+    # so it must not be re-read from the file's start as blocks
+    from rescore.lm import read_corpus
+
+    path = tmp_path / "probe.txt"
+    path.write_text("pump two off\nvent bay\nbay three open\n", encoding="utf-8")
+    model = NGramModel(order=2).fit(TRAIN)
+    corpus = read_corpus(path)
+    assert next(corpus) == ["pump", "two", "off"]
+    assert perplexity(model, corpus) == perplexity(model, [["vent", "bay"],
+                                                           ["bay", "three", "open"]])

@@ -31,9 +31,17 @@ class Corpus(Iterator[list[str]]):
         self.paths = paths
         self.progress = progress
         self._sentences: Iterator[list[str]] | None = None
+        self._started = False
+
+    @property
+    def unread(self) -> bool:
+        """True until the sentences or the blocks are first asked for: the blocks are
+        read from the files' start, so only an unread corpus gives its text as blocks."""
+        return self._sentences is None and not self._started
 
     def blocks(self) -> Iterator[tuple[int, bytes]]:
         """``(first line number, clean block)`` for runs of whole lines of each file."""
+        self._started = True
         any_words = False
         for path in self.paths:
             for first_line, data in iter_text_blocks(path):

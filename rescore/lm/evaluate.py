@@ -118,8 +118,9 @@ def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> Perplex
     """
     per_sentence: list[F64] = []
     n_tokens = n_oov = n_words = 0
-    batches = _text_batches(model, sentences) if isinstance(sentences, Corpus) else \
-        _batches(model, sentences)
+    batches: Iterator[_Batch | _TextBatch] = _batches(model, sentences)
+    if isinstance(sentences, Corpus) and sentences.unread:
+        batches = _text_batches(model, sentences)
     for b in batches:
         n_words += int(b.words.sum())
         n_oov += int(b.oov.sum())

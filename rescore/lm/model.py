@@ -95,7 +95,8 @@ class NGramModel:
         order by order.
         """
         self._check_settings()
-        if isinstance(sentences, Corpus):  # text from files: whole blocks to ids at once
+        # text from files, not yet read: whole blocks to ids at once
+        if isinstance(sentences, Corpus) and sentences.unread:
             words, counts, body, lengths = first_pass_blocks(
                 clean for _, clean in sentences.blocks())
         else:

@@ -315,7 +315,8 @@ def iter_text_blocks(
 ) -> Iterator[tuple[int, bytes]]:
     """Yield ``(first line number, data)`` for runs of whole lines, valid UTF-8.
 
-    ``data`` holds the lines of about ``block_bytes`` of the file, separated by ``\\n``
+    ``data`` holds the lines of about ``block_bytes`` of the file (the first blocks
+    smaller, from 64 KiB doubling, so that progress shows early), separated by ``\\n``
     (the last line's ``\\n`` removed; a carriage return before it is kept, for the reader
     to treat as the white space it is). Lines are numbered, checked and refused exactly as
     :func:`iter_text_lines` does: a block with a problem (bad bytes, an over-long line, a
@@ -325,11 +326,13 @@ def iter_text_blocks(
     number = 1  # of the pending block's first line
     offset = 0  # of the pending block's first byte (uncompressed)
     rest = b""
+    size = min(block_bytes, 1 << 16)
     with open_binary(path) as fh:
         gzipped = isinstance(fh, gzip.GzipFile)
         while True:
             try:
-                chunk = fh.read(block_bytes)
+                chunk = fh.read(size)
+                size = min(2 * size, block_bytes)
             except (OSError, EOFError, zlib.error):
                 break  # the line-by-line reader names the line
             buf = rest + chunk if rest else chunk

@@ -18,6 +18,8 @@ from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import IO, Any, Literal, Protocol, cast, overload
 
+import numpy as np
+
 from rescore.errors import InputError, OutputError, UsageError
 
 GZIP_MAGIC = b"\x1f\x8b"
@@ -500,6 +502,74 @@ def inflate(path: str | Path, dst: IO[bytes], max_line_bytes: int | None,
     for _ in iter_text_lines(path, max_line_bytes, max_blank_run=max_blank_run):
         pass
     raise InputError("cannot read compressed data", path=path)  # the reader found it fine
+
+
+TEXT_BLOCK_BYTES = 4 << 20  # a block of whole lines: large enough that per-block work is noise
+
+
+def iter_text_blocks(
+    path: str | Path,
+    max_line_bytes: int | None = TEXT_LINE_LIMIT,
+    *,
+    block_bytes: int = TEXT_BLOCK_BYTES,
+) -> Iterator[tuple[int, bytes]]:
+    """Yield ``(first line number, data)`` for runs of whole lines, valid UTF-8.
+
+    ``data`` holds the lines of about ``block_bytes`` of the file (the first blocks
+    smaller, from 64 KiB doubling, so that progress shows early), separated by ``\\n``
+    (the last line's ``\\n`` removed; a carriage return before it is kept, for the reader
+    to treat as the white space it is). Lines are numbered, checked and refused exactly as
+    :func:`iter_text_lines` does: a block with a problem (bad bytes, an over-long line, a
+    damaged gzip stream) is read again line by line from its first line, which raises the
+    same error at the same line.
+    """
+    number = 1  # of the pending block's first line
+    offset = 0  # of the pending block's first byte (uncompressed)
+    rest = b""
+    size = min(block_bytes, 1 << 16)
+    with open_binary(path) as fh:
+        gzipped = isinstance(fh, gzip.GzipFile)
+        while True:
+            try:
+                chunk = fh.read(size)
+                size = min(2 * size, block_bytes)
+            except (OSError, EOFError, zlib.error):
+                break  # the line-by-line reader names the line
+            buf = rest + chunk if rest else chunk
+            if not buf:
+                return
+            cut = buf.rfind(b"\n")
+            if chunk and cut < 0:
+                if max_line_bytes is not None and len(buf) > max_line_bytes + 1:
+                    break
+                rest = buf  # one line longer than a block: read on
+                continue
+            data, rest = (buf, b"") if not chunk else (buf[:cut], buf[cut + 1:])
+            if not _block_ok(data, max_line_bytes):
+                break
+            yield number, data
+            number += data.count(b"\n") + 1
+            offset += len(data) + 1
+            if not chunk:
+                return
+    # the rare case of a problem: the line reader from the block's first line on
+    yield from ((n, line.encode("utf-8")) for n, line in iter_text_lines(
+        path, max_line_bytes, start=0 if gzipped else offset, first_line=1 if gzipped else number)
+        if n >= number)
+
+
+def _block_ok(data: bytes, max_line_bytes: int | None) -> bool:
+    if max_line_bytes is not None and len(data) > max_line_bytes:
+        ends = np.flatnonzero(np.frombuffer(data, dtype=np.uint8) == 10)
+        if int(np.diff(ends, prepend=-1, append=len(data)).max()) - 1 > max_line_bytes:
+            return False
+    if data.isascii():
+        return True
+    try:
+        data.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
 
 
 def _size(n: int) -> str:

@@ -7,6 +7,8 @@ import os
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from rescore.errors import InputError
 from rescore.ioutil import TMP_PREFIX, atomic_output, iter_text_lines
@@ -139,3 +141,45 @@ def test_a_set_refuses_the_same_file_twice(tmp_path: Path) -> None:
             atomic_outputs([tmp_path / "a.txt", tmp_path / "." / "a.txt"]):
         pass
     assert list(tmp_path.iterdir()) == []
+
+
+_LINE_BYTES = st.lists(st.sampled_from([b"a", b"bc", b" ", b"\r", b"\n", b"\n", b"\xc3\xa9",
+                                        b"\xff", b"\xc3", b"x" * 7]), max_size=40).map(b"".join)
+
+
+@settings(max_examples=300)
+@given(_LINE_BYTES, st.sampled_from([4, 9, 64]), st.sampled_from([None, 6, 12]),
+       st.booleans())
+def test_text_blocks_hold_the_lines_of_the_line_reader(
+        data: bytes, block: int, cap: int | None, gz: bool) -> None:
+    # the rule is iter_text_lines: the same lines, numbers and line endings (a \r before
+    # \n kept in blocks, stripped by lines: compare without it) and the same error, at the
+    # same line, with bad UTF-8, over-long lines and tiny blocks
+    import tempfile
+
+    from rescore.ioutil import iter_text_blocks
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / ("t.txt.gz" if gz else "t.txt")
+        path.write_bytes(gzip.compress(data) if gz else data)
+
+        def lines() -> list[tuple[int, str]]:
+            return list(iter_text_lines(path, cap))
+
+        def from_blocks() -> list[tuple[int, str]]:
+            out = []
+            for first, chunk in iter_text_blocks(path, cap, block_bytes=block):
+                out += [(first + i, line.decode("utf-8").rstrip("\r"))
+                        for i, line in enumerate(chunk.split(b"\n"))]
+            return out
+
+        try:
+            want: list[tuple[int, str]] | tuple[str, int | None] = \
+                [(n, t.rstrip("\r")) for n, t in lines()]
+        except InputError as exc:
+            want = (str(exc), exc.line)
+        try:
+            got: list[tuple[int, str]] | tuple[str, int | None] = from_blocks()
+        except InputError as exc:
+            got = (str(exc), exc.line)
+        assert got == want

@@ -12,8 +12,9 @@ from click.testing import Result
 from typer.testing import CliRunner
 
 from rescore.cli import app
-from rescore.lm import NGramModel, load_model, save_model, store
+from rescore.lm import NGramModel, load_model, read_corpus, save_model, store
 from rescore.lm.fingerprint import fingerprint, overlap, sentence_hash, union
+from rescore.text import tokens
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "fixtures" / "demo"
@@ -168,3 +169,20 @@ def test_arpa_model_is_not_checked_and_says_so(tmp_path: Path) -> None:
     data = json.loads(res.stdout)["overlap"]
     assert data["unchecked"] == [str(arpa)] and data["models"] == [] and data["share"] is None
     assert f"warning: no training-text fingerprint in {arpa}" in res.stderr
+
+
+def test_fingerprint_from_text_blocks_equals_the_one_from_word_lists(tmp_path: Path) -> None:
+    # A model fitted on files reads them as clean blocks; one fitted on word lists sees the
+    # sentences themselves. The fingerprint is defined on the sentences (each one's words
+    # joined by one space), so both routes must give the same hashes, including for lines
+    # whose spacing and punctuation normalisation changes, and for lines with no word.
+    lines = ["Pump  ON, bay three!", "", "  vent  42 % open ", "-- ...", "pump on bay three"]
+    path = tmp_path / "t.txt"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    from_blocks = NGramModel(order=2).fit(read_corpus([path]))
+    from_lists = NGramModel(order=2).fit([tokens(x) for x in lines if tokens(x)])
+    expected = fingerprint([tokens(x) for x in lines if tokens(x)])  # lines 1 and 5 are one sentence: 2 distinct
+    assert from_blocks.sentence_hashes is not None and from_lists.sentence_hashes is not None
+    assert len(expected) == 2
+    np.testing.assert_array_equal(from_blocks.sentence_hashes, expected)
+    np.testing.assert_array_equal(from_lists.sentence_hashes, expected)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
@@ -68,3 +69,40 @@ def test_sentence_scores_of_empty_text_refused_without_output(tmp_path: Path) ->
     with pytest.raises(InputError, match="no sentences"):
         write_sentence_scores(model, empty, tmp_path / "scores.jsonl")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["empty.txt"]
+
+
+@pytest.mark.parametrize("closed", [False, True])
+def test_text_read_from_file_scores_as_its_word_lists(tmp_path: Path, closed: bool) -> None:
+    # a corpus read from a file is scored from its bytes straight to ids; the rule is the
+    # same text as word lists (one sentence per non-blank line, normalised by tokens())
+    from rescore.lm import read_corpus
+    from rescore.lm.evaluate import write_sentence_scores
+    from rescore.text import tokens
+
+    lines = ["Pump TWO off.", "", "vent four, open <unk>", "  ", "bay", "re-seed 'pump'",
+             "Pump\u2019s b\u00e4y three"] * 40
+    path = tmp_path / "probe.txt"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    model = NGramModel(order=3, closed_vocab=closed).fit(TRAIN * 5)
+    want = perplexity(model, [tokens(t) for t in lines if tokens(t)])
+    assert perplexity(model, read_corpus(path)) == want
+    scores = tmp_path / "scores.jsonl"
+    assert write_sentence_scores(model, path, scores) == want
+    got = [json.loads(row) for row in scores.read_text(encoding="utf-8").splitlines()]
+    numbered = [(n, tokens(t)) for n, t in enumerate(lines, start=1) if tokens(t)]
+    assert [(g["line"], g["text"]) for g in got] == [(n, " ".join(w)) for n, w in numbered]
+    assert [g["log10_prob"] for g in got] == list(want.sentence_log10)
+
+
+def test_partly_read_corpus_scores_only_what_is_left(tmp_path: Path) -> None:
+    # a Corpus is an iterator: once its first sentence is taken, the rest is what remains,
+    # so it must not be re-read from the file's start as blocks
+    from rescore.lm import read_corpus
+
+    path = tmp_path / "probe.txt"
+    path.write_text("pump two off\nvent bay\nbay three open\n", encoding="utf-8")
+    model = NGramModel(order=2).fit(TRAIN)
+    corpus = read_corpus(path)
+    assert next(corpus) == ["pump", "two", "off"]
+    assert perplexity(model, corpus) == perplexity(model, [["vent", "bay"],
+                                                           ["bay", "three", "open"]])

@@ -28,6 +28,7 @@ from rescore.report.load import reference_sentences
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
+
     return None if path is None else read_refs(path)
 
 

@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.evaluate import (
     PerplexityResult,
     SentenceScore,
     perplexity,
-    read_corpus,
     sentence_scores,
     summarise,
     write_sentence_scores,
@@ -53,6 +53,7 @@ def load_model(path: str | Path) -> NGramModel:
 
 __all__ = [
     "METHODS",
+    "Corpus",
     "NGramModel",
     "PerplexityResult",
     "SentenceScore",

@@ -4,19 +4,20 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from itertools import islice, tee
+from itertools import islice, pairwise
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
-from rescore.errors import InputError
-from rescore.ioutil import atomic_output, iter_text_lines
+from rescore.ioutil import atomic_output
+from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.model import NGramModel
-from rescore.text import tokens
+from rescore.lm.vocab import UNK_ID, encode_block, stream_from_lengths
+from rescore.text import clean_words
 
 LN10 = math.log(10.0)
 BATCH = 50_000  # sentences scored per vectorised call
@@ -110,16 +111,58 @@ def _result(log10s: F64, n_tokens: int, n_oov: int, n_words: int) -> PerplexityR
 
 
 def perplexity(model: NGramModel, sentences: Iterable[Sequence[str]]) -> PerplexityResult:
-    """Score ``sentences`` (normalised token lists) in batches and sum up."""
+    """Score ``sentences`` (normalised token lists) in batches and sum up.
+
+    Text read by :func:`read_corpus` is scored block by block straight from its bytes to
+    ids, no word list made (the same figures, faster).
+    """
     per_sentence: list[F64] = []
     n_tokens = n_oov = n_words = 0
-    for b in _batches(model, sentences):
+    batches: Iterator[_Batch | _TextBatch] = _batches(model, sentences)
+    if isinstance(sentences, Corpus) and sentences.unread:
+        batches = _text_batches(model, sentences)
+    for b in batches:
         n_words += int(b.words.sum())
         n_oov += int(b.oov.sum())
         n_tokens += int(b.tokens.sum())
         per_sentence.append(b.log10)
     log10s = np.concatenate(per_sentence) if per_sentence else np.zeros(0)
     return _result(log10s, n_tokens, n_oov, n_words)
+
+
+@dataclass(frozen=True)
+class _TextBatch:
+    """One block of a text, scored: per sentence (non-blank line) its ``line`` number, and
+    the figures of :class:`_Batch`; ``clean`` and ``counts`` give back its words."""
+
+    lines: I64
+    log10: F64
+    words: I64
+    tokens: I64
+    oov: I64
+    clean: bytes
+    counts: I64
+
+    def texts(self) -> list[str]:
+        """Each sentence's normalised words, joined by single spaces."""
+        words = clean_words(self.clean)
+        flat, bounds = words.flat, words.bounds.tolist()
+        return [" ".join(flat[a:b]) for a, b in pairwise(bounds) if b > a]
+
+
+def _text_batches(model: NGramModel, corpus: Corpus) -> Iterator[_TextBatch]:
+    vocab = model.vocab_
+    for first_line, clean in corpus.blocks():
+        ids, counts = encode_block(vocab, clean)
+        sentences = np.flatnonzero(counts)
+        words = counts[sentences]
+        stream = stream_from_lengths(ids, words)
+        logp = model.stream_logprob(stream)
+        # each word's sentence, for the unknown words' count per sentence
+        unknown = np.repeat(np.arange(len(words)), words)[ids == UNK_ID]
+        oov = np.bincount(unknown, minlength=len(words)).astype(np.int64)
+        tokens = words + 1 - (oov if model.closed_vocab else 0)
+        yield _TextBatch(sentences + first_line, logp / LN10, words, tokens, oov, clean, counts)
 
 
 def sentence_scores(model: NGramModel, sentences: Iterable[Sequence[str]]
@@ -150,54 +193,17 @@ def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
     Each line holds the sentence's ``line`` in ``text`` (blank lines are skipped, as in
     :func:`read_corpus`) and the keys of :meth:`SentenceScore.to_dict`. Returns the totals.
     """
-    numbered, again = tee(read_corpus_lines(text))
-    scores = sentence_scores(model, (words for _, words in numbered))
 
     with atomic_output(out) as fh:
 
         def written() -> Iterator[SentenceScore]:
-            for (line, _), sc in zip(again, scores, strict=True):
-                fh.write(json.dumps({"line": line, **sc.to_dict()}, ensure_ascii=False,
-                                    allow_nan=False) + "\n")
-                yield sc
+            for b in _text_batches(model, read_corpus(text)):
+                for i, (line, words) in enumerate(zip(b.lines.tolist(), b.texts(),
+                                                      strict=True)):
+                    sc = SentenceScore(words, int(b.words[i]), int(b.tokens[i]),
+                                       int(b.oov[i]), float(b.log10[i]))
+                    fh.write(json.dumps({"line": line, **sc.to_dict()}, ensure_ascii=False,
+                                        allow_nan=False) + "\n")
+                    yield sc
 
-        result = summarise(written())
-        if not result.sentences:  # as read_corpus: no void figures, and no output file
-            raise InputError("no sentences (every line is blank or has no words)", path=text)
-        return result
-
-
-def read_corpus(paths: str | Path | Iterable[str | Path], *,
-                progress: Callable[[int], None] | None = None) -> Iterator[list[str]]:
-    """One normalised sentence per non-blank line of each file (.gz read transparently).
-
-    ``progress`` is called with the number of lines read since its last call (every few
-    thousand lines and at the end of each file).
-    """
-    if isinstance(paths, (str, Path)):
-        paths = [paths]
-    paths = list(paths)
-    sentences = 0
-    for path in paths:
-        number = reported = 0
-        for number, line in iter_text_lines(path):
-            words = tokens(line)
-            if words:
-                sentences += 1
-                yield words
-            if progress is not None and number - reported >= 4096:
-                progress(number - reported)
-                reported = number
-        if progress is not None and number > reported:
-            progress(number - reported)
-    if not sentences:  # nothing to train on or measure: say so rather than give a void model
-        raise InputError("no sentences (every line is blank or has no words)",
-                         path=", ".join(str(p) for p in paths) or None)
-
-
-def read_corpus_lines(path: str | Path) -> Iterator[tuple[int, list[str]]]:
-    """``(line number, normalised words)`` for each non-blank line of one file."""
-    for number, line in iter_text_lines(path):
-        words = tokens(line)
-        if words:
-            yield number, words
+        return summarise(written())

@@ -63,6 +63,29 @@ class Recorder:
             else np.zeros(0, np.uint64)
 
 
+class BlockRecorder:
+    """Hashes each sentence of the clean blocks an iterable yields as they pass.
+
+    A clean block (:func:`rescore.text.normalise_block`) holds one sentence a line, its
+    words separated by one or more spaces; a line with no word is no sentence.
+    """
+
+    def __init__(self, blocks: Iterable[bytes]) -> None:
+        self._blocks = blocks
+        self._hashes = array("Q")
+
+    def __iter__(self) -> Iterator[bytes]:
+        digest = xxhash.xxh3_64_intdigest
+        for block in self._blocks:
+            self._hashes.extend(digest(b" ".join(words)) for line in block.split(b"\n")
+                                if (words := line.split()))
+            yield block
+
+    def result(self) -> U64:
+        return np.unique(np.frombuffer(self._hashes, dtype=np.uint64)) if self._hashes \
+            else np.zeros(0, np.uint64)
+
+
 def union(parts: Sequence[U64 | None]) -> U64 | None:
     """The fingerprint of the joined texts; None unless every part has one (a partial
     fingerprint would under-count a leak)."""

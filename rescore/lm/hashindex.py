@@ -112,3 +112,30 @@ def lookup_slotted(slots: I32, held: U64, queries: U64) -> I64:
             more = ~hit & (got != NO_KEY)
             pending, q, where = pending[more], q[more], where[more]
     return result
+
+
+def lookup_values(held: U64, values: I32, queries: U64, missing: int) -> I32:
+    """``values[slot]`` of each query's slot, or ``missing`` where absent, given ``held =
+    slot_keys(slots, keys)`` and ``values`` one per slot: as :func:`lookup_slotted`, one
+    gather fewer (the value is read from the slot it was found in)."""
+    bits = len(held).bit_length() - 1
+    mask = len(held) - 1
+    where = _home(queries, bits)
+    got = held[where]
+    out = values[where]
+    miss = got != queries
+    if not miss.any():
+        return out
+    out[miss] = missing
+    pending = np.flatnonzero(miss & (got != NO_KEY))
+    q = queries[pending]
+    where = where[pending]
+    while pending.size:
+        where = (where + 1) & mask
+        got = held[where]
+        hit = got == q
+        if hit.any():
+            out[pending[hit]] = values[where[hit]]
+        more = ~hit & (got != NO_KEY)
+        pending, q, where = pending[more], q[more], where[more]
+    return out

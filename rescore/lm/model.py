@@ -11,8 +11,9 @@ import numpy.typing as npt
 
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
+from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
-from rescore.lm.fingerprint import Recorder
+from rescore.lm.fingerprint import BlockRecorder, Recorder
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
@@ -23,6 +24,7 @@ from rescore.lm.vocab import (
     choose_words,
     encode,
     first_pass,
+    first_pass_blocks,
     remap,
     stream_from_lengths,
 )
@@ -97,8 +99,14 @@ class NGramModel:
         order by order.
         """
         self._check_settings()
-        recorder = Recorder(sentences)
-        words, counts, body, lengths = first_pass(recorder)
+        # text from files, not yet read: whole blocks to ids at once
+        if isinstance(sentences, Corpus) and sentences.unread:
+            blocks = BlockRecorder(clean for _, clean in sentences.blocks())
+            words, counts, body, lengths = first_pass_blocks(blocks)
+            recorder: BlockRecorder | Recorder = blocks
+        else:
+            recorder = Recorder(sentences)
+            words, counts, body, lengths = first_pass(recorder)
         vocab = Vocabulary.from_words(
             choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
                          min_count=self.min_count)
@@ -191,22 +199,30 @@ class NGramModel:
 
     def _score(self, sentences: Sequence[Sequence[str]]) -> tuple[F64, Stream, int]:
         """Per-position log-probabilities (NaN where not scored), the stream, OOV count."""
+        stream, oov = encode(self._fitted().vocab, sentences)
+        return self._score_stream(stream), stream, oov
+
+    def _score_stream(self, stream: Stream) -> F64:
         tables = self._fitted()
-        stream, oov = encode(tables.vocab, sentences)
         floor = stream.starts[stream.sentence_of]
         logp = tables.score_stream(stream.tokens, floor)
         skip = stream.tokens == BOS_ID
         if self.closed_vocab:
             skip |= stream.tokens == UNK_ID
         logp[skip] = np.nan
-        return logp, stream, oov
+        return logp
 
     def logprob(self, sentences: Sequence[Sequence[str]]) -> F64:
         """Natural-log probability of each whole sentence, ``</s>`` included; shape (n,)."""
-        logp, stream, _ = self._score(sentences)
+        return self.stream_logprob(encode(self._fitted().vocab, sentences)[0])
+
+    def stream_logprob(self, stream: Stream) -> F64:
+        """As :meth:`logprob`, for sentences already turned into ids (a
+        :class:`~rescore.lm.vocab.Stream` of this model's vocabulary)."""
+        logp = self._score_stream(stream)
         scored = ~np.isnan(logp)
         sums = np.bincount(stream.sentence_of[scored], weights=logp[scored],
-                           minlength=len(sentences))
+                           minlength=stream.n_sentences)
         return sums.astype(np.float64)
 
     def token_logprobs(self, sentences: Sequence[Sequence[str]]) -> list[F64]:

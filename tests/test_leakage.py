@@ -181,7 +181,8 @@ def test_fingerprint_from_text_blocks_equals_the_one_from_word_lists(tmp_path: P
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
     from_blocks = NGramModel(order=2).fit(read_corpus([path]))
     from_lists = NGramModel(order=2).fit([tokens(x) for x in lines if tokens(x)])
-    expected = fingerprint([tokens(x) for x in lines if tokens(x)])  # lines 1 and 5 are one sentence: 2 distinct
+    # lines 1 and 5 are one sentence: 2 distinct
+    expected = fingerprint([tokens(x) for x in lines if tokens(x)])
     assert from_blocks.sentence_hashes is not None and from_lists.sentence_hashes is not None
     assert len(expected) == 2
     np.testing.assert_array_equal(from_blocks.sentence_hashes, expected)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Iterable, Sequence
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -12,6 +13,7 @@ import numpy.typing as npt
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.counts import count_ngrams, window_floor
+from rescore.lm.external import CorpusCounts, count_external
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
@@ -86,34 +88,55 @@ class NGramModel:
     # --- fitting --------------------------------------------------------------------------
 
     def fit(self, sentences: Iterable[Sequence[str]], *,
-            progress: Report | None = None) -> NGramModel:
+            progress: Report | None = None, memory: int | None = None,
+            scratch: str | Path | None = None) -> NGramModel:
         """Learn from token lists (already normalised; ``<s>`` and ``</s>`` are added here).
 
         ``progress`` (see :mod:`rescore.progress`) hears of the counting and smoothing,
-        order by order.
+        order by order. With ``memory`` (bytes), counting keeps within about that much
+        memory whatever the size of the text, spilling sorted runs to a private folder
+        under ``scratch`` (default: the system's temporary folder) and merging them; the
+        model is the same, byte for byte. The finished count tables and the estimation
+        still need memory in proportion to the number of distinct n-grams.
         """
         self._check_settings()
+        if memory is not None:
+            counted = count_external(sentences, self.order, self._choose_vocab,
+                                     closed_vocab=self.closed_vocab, memory=memory,
+                                     scratch=scratch, progress=progress)
+            return self.fit_counts(counted, progress=progress)
         words, counts, body, lengths = first_pass(sentences)
-        vocab = Vocabulary.from_words(
-            choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
-                         min_count=self.min_count)
-        )
+        vocab = self._choose_vocab(words, counts)
         stream = stream_from_lengths(remap(words, vocab)[body], lengths)
         floor = window_floor(stream, self.closed_vocab)
         counting = Steps(progress, "counting n-grams", self.order)
         ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab),
                                     progress=counting)
         counting.finish()
+        return self.fit_counts(CorpusCounts(
+            vocab, ngram_counts, len(lengths), len(body),
+            int(np.count_nonzero(stream.tokens == UNK_ID)), 0), progress=progress)
+
+    def _choose_vocab(self, words: Sequence[str], counts: npt.NDArray[np.int64]) -> Vocabulary:
+        return Vocabulary.from_words(
+            choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
+                         min_count=self.min_count)
+        )
+
+    def fit_counts(self, counted: CorpusCounts, *, progress: Report | None = None
+                   ) -> NGramModel:
+        """Learn from n-gram counts already made (by the external or the cluster counter)."""
+        self._check_settings()
         tables, meta = estimate(
-            ngram_counts, make_smoother(self.method, self.k), vocab,
+            counted.tables, make_smoother(self.method, self.k), counted.vocab,
             closed_vocab=self.closed_vocab, cutoffs=self.cutoffs, prune=self.prune,
             progress=progress,
         )
         self._set_fitted(tables, {
             **meta,
-            "training_sentences": len(lengths),
-            "training_words": len(body),
-            "training_oov": int(np.count_nonzero(stream.tokens == UNK_ID)),
+            "training_sentences": counted.sentences,
+            "training_words": counted.words,
+            "training_oov": counted.oov,
         })
         return self
 

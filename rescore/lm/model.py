@@ -13,7 +13,8 @@ import numpy.typing as npt
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.counts import count_ngrams, window_floor
-from rescore.lm.external import CorpusCounts, count_external
+from rescore.lm.external import CorpusCounts, count_external, default_memory
+from rescore.lm.sharded import count_on_cluster
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
@@ -116,6 +117,26 @@ class NGramModel:
         return self.fit_counts(CorpusCounts(
             vocab, ngram_counts, len(lengths), len(body),
             int(np.count_nonzero(stream.tokens == UNK_ID)), 0), progress=progress)
+
+    def fit_on_cluster(self, paths: Sequence[str | Path], cluster: str, *,
+                       memory: int | None = None, scratch: str | Path | None = None,
+                       workers: int | None = None, progress: Report | None = None
+                       ) -> NGramModel:
+        """Learn from text files whose n-grams are counted on a Dask cluster.
+
+        ``cluster`` is a scheduler's address (every worker must see ``paths`` under the
+        same names) or ``"local"`` for ``workers`` processes on this machine (default:
+        one per core). The shards' counts are merged here within about ``memory`` bytes
+        (default: half the memory available) in a folder under ``scratch``; the model is
+        the same, byte for byte, as :meth:`fit` on :func:`rescore.lm.read_corpus` of the
+        files.
+        """
+        self._check_settings()
+        counted = count_on_cluster(
+            paths, self.order, self._choose_vocab, closed_vocab=self.closed_vocab,
+            cluster=cluster, memory=default_memory() if memory is None else memory,
+            scratch=scratch, workers=workers, progress=progress)
+        return self.fit_counts(counted, progress=progress)
 
     def _choose_vocab(self, words: Sequence[str], counts: npt.NDArray[np.int64]) -> Vocabulary:
         return Vocabulary.from_words(

@@ -6,7 +6,7 @@ the vocabulary exactly as an in-memory build does. The id stream is then counted
 chunk, each chunk small enough for the memory budget, by the same :func:`count_ngrams`.
 Chunks end at sentence ends, and no n-gram crosses a sentence, so the counts of the whole
 text are the sums of the chunks' counts. Each order's distinct n-grams of a chunk are
-written as one sorted run: keys of their word ids (raw ``tofile`` arrays, no pickle) and
+written as one sorted run: keys of their word ids (raw arrays, no pickle) and
 counts. The runs of each order are merged block by block, and each n-gram's suffix id is
 found by binary search among the merged keys of the order below, which gives the tables of
 :func:`count_ngrams` over the whole stream, so the model is byte-identical.
@@ -30,7 +30,7 @@ from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from itertools import chain, islice
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import numpy as np
 import numpy.typing as npt
@@ -252,12 +252,22 @@ class Run:
     dtype: np.dtype[Any]
 
 
+def _create(path: Path) -> BinaryIO:
+    """A new scratch file (the one place they are opened, so a test can fill the disk)."""
+    return open(path, "xb")
+
+
+def _write(fh: BinaryIO, array: npt.NDArray[Any]) -> None:
+    # file.write, not ndarray.tofile: tofile reports a full disk as an OSError without errno
+    fh.write(np.ascontiguousarray(array).data.cast("B"))
+
+
 def write_run(folder: Path, name: str, keys: Keys, counts: I64) -> Run:
     run = Run(folder / f"{name}.keys", folder / f"{name}.counts", len(keys), keys.dtype)
-    with open(run.keys, "wb") as fh:
-        keys.tofile(fh)
-    with open(run.counts, "wb") as fh:
-        counts.astype(np.int64, copy=False).tofile(fh)
+    with _create(run.keys) as fh:
+        _write(fh, keys)
+    with _create(run.counts) as fh:
+        _write(fh, counts.astype(np.int64, copy=False))
     return run
 
 
@@ -350,13 +360,13 @@ def _first_pass_to_disk(sentences: Iterable[Sequence[str]], folder: Path) -> _Fi
     tokens = 0
     source = iter(sentences)
     path = folder / "ids"
-    with open(path, "wb") as fh:
+    with _create(path) as fh:
         while block := list(islice(source, SENTENCES_PER_BLOCK)):
             lens = np.fromiter(map(len, block), dtype=np.int64, count=len(block))
             n = int(lens.sum())
             ids = np.fromiter(map(provisional.__getitem__, chain.from_iterable(block)),
                               dtype=np.int32, count=n)
-            ids.tofile(fh)
+            _write(fh, ids)
             grown = np.bincount(ids, minlength=len(provisional))
             grown[:len(counts)] += counts
             counts = grown

@@ -121,7 +121,7 @@ class _Pending:
     def __init__(self, target: Path, mode: str) -> None:
         check_output_path(target)
         folder = target.parent if str(target.parent) else Path(".")
-        _remove_stale_temporaries(folder, target.name)
+        remove_stale_temporaries(folder, target.name)
         self.target = target
         fd, self.tmp_name = tempfile.mkstemp(
             prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.", dir=folder)
@@ -195,7 +195,7 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
-def _remove_stale_temporaries(folder: Path, name: str) -> None:
+def remove_stale_temporaries(folder: Path, name: str) -> None:
     """Delete temporaries of ``name`` left by a killed run (their writer's pid is gone)."""
     prefix = f"{TMP_PREFIX}{name}."
     for leftover in folder.glob(f"{TMP_PREFIX}*"):

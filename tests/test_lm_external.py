@@ -327,3 +327,17 @@ def test_cluster_through_the_command_line_and_its_errors(corpus: Path, tmp_path:
     assert result.exit_code == 1
     assert result.stderr == (f"error: {bad}:2: invalid UTF-8 byte 0xff at byte offset 15\n")
     assert not (tmp_path / "c.lm").exists()
+
+
+def test_a_killed_build_leaves_a_folder_that_the_next_build_removes(tmp_path: Path) -> None:
+    # a folder named for a process that no longer exists (a child that has exited), and
+    # one of this live process, which must stay
+    child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                           capture_output=True, text=True, check=True)
+    dead = tmp_path / f"{TMP_PREFIX}lm-counts.{child.stdout.strip()}.abc"
+    live = tmp_path / f"{TMP_PREFIX}lm-counts.{os.getpid()}.xyz"
+    for folder in (dead, live):
+        folder.mkdir()
+        (folder / "run00000.2.keys").write_bytes(b"\0" * 8)
+    NGramModel(2).fit(SENTS[:100], memory=TINY, scratch=tmp_path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == [live.name]

@@ -36,7 +36,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import TMP_PREFIX
+from rescore.ioutil import TMP_PREFIX, remove_stale_temporaries
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary, remap, stream_from_lengths
 from rescore.progress import Report, Steps
@@ -122,8 +122,11 @@ _FULL_DISK = (errno.ENOSPC, errno.EDQUOT)
 def scratch_folder(parent: str | Path | None, purpose: str) -> Iterator[Path]:
     """A private folder under ``parent`` (default: the system's temporary folder), removed
     with everything in it however the block ends (an error, Ctrl-C, or SIGTERM turned into
-    an exception). A full disk becomes one :class:`InputError` naming the folder."""
+    an exception). A full disk becomes one :class:`InputError` naming the folder. Folders
+    of the same purpose left by a killed build (their process is gone) are removed first."""
     base = Path(tempfile.gettempdir() if parent is None else parent)
+    if base.is_dir():
+        remove_stale_temporaries(base, purpose)
     try:
         folder = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{purpose}.{os.getpid()}.",
                                        dir=base))

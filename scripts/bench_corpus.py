@@ -72,6 +72,40 @@ def build(text: Path, out: Path, *extra: str, must: bool = True) -> tuple[float,
     return wall, usage.ru_maxrss / 1e6  # kilobytes on Linux
 
 
+# Counting alone, in its own process, with the peak resident memory (VmHWM) read just before
+# the runs are merged: the part that --memory bounds (reading, the vocabulary, counting the
+# chunks, writing the runs; when the text fits in one chunk, the whole in-memory count); and
+# at the end, with the merged count tables of the whole text
+COUNT_ONLY = """
+import sys
+from rescore.lm import NGramModel, external, read_corpus
+from rescore.process import avoid_huge_pages, keep_freed_memory
+avoid_huge_pages()
+keep_freed_memory()
+def hwm():
+    with open("/proc/self/status") as fh:
+        return next(int(l.split()[1]) * 1024 for l in fh if l.startswith("VmHWM:"))
+seen = {}
+real = external.merge_all
+def merge_all(*args, **kwargs):
+    seen["before"] = hwm()
+    return real(*args, **kwargs)
+external.merge_all = merge_all
+c = external.count_external(read_corpus(sys.argv[1]), 4, NGramModel(4)._choose_vocab,
+                            closed_vocab=False, memory=int(sys.argv[2]), scratch=sys.argv[3])
+print(seen.get("before", hwm()), hwm(), c.runs, sum(len(t) for t in c.tables))
+"""
+
+
+def count_only(text: Path, memory: int, scratch: Path) -> tuple[float, float, float, int]:
+    """Seconds, GB before the merge, GB at the end, and runs of counting alone."""
+    t0 = time.perf_counter()
+    out = subprocess.run([sys.executable, "-c", COUNT_ONLY, str(text), str(memory),
+                          str(scratch)], capture_output=True, text=True, check=True).stdout
+    before, end, runs, _ = (int(x) for x in out.split())
+    return time.perf_counter() - t0, before / 1e9, end / 1e9, runs
+
+
 def measure(text: Path, out: Path, repeats: int, *extra: str) -> tuple[float, float, str]:
     runs = [build(text, out, *extra) for _ in range(repeats)]
     digest = hashlib.sha256(out.read_bytes()).hexdigest()
@@ -128,11 +162,17 @@ def main() -> None:
                   f"byte-identical")
 
         if args.large:
-            peaks = {}
+            peaks, counting = {}, {}
             large = args.large_words
             for words in (10_000_000, large):
                 big = tmp / f"corpus{words // 1_000_000}M.txt"
                 big_size = write_text(big, words)
+                c_t, c_before, c_end, c_runs = count_only(big, 4 << 30, scratch)
+                counting[words] = c_before
+                print(f"{words / 1e6:g} M words, counting alone with a 4 GiB budget: "
+                      f"{c_t / 60:.1f} min, {c_runs} sorted runs (0: in memory), peak "
+                      f"{c_before:.2f} GB before the merge, {c_end:.2f} GB with the merged "
+                      "count tables", flush=True)
                 wall, peak = build(big, tmp / "large.lm", "--memory", "4G",
                                    "--scratch", str(scratch), must=False)
                 peaks[words] = peak
@@ -148,7 +188,11 @@ def main() -> None:
                              "of peak per n-gram")
                 print(line, flush=True)
             ratio = peaks[large] / peaks[10_000_000]
-            print(f"peak {large / 1e6:g} M / peak 10 M: {ratio:.2f} {target(ratio, '<', 1.2)}")
+            print(f"whole build, peak {large / 1e6:g} M / peak 10 M: {ratio:.2f} "
+                  f"{target(ratio, '<', 1.2)}")
+            ratio = counting[large] / counting[10_000_000]
+            print(f"counting before the merge, peak {large / 1e6:g} M / peak 10 M: "
+                  f"{ratio:.2f} {target(ratio, '<', 1.2)}")
 
 
 if __name__ == "__main__":

@@ -173,7 +173,7 @@ class _Pending:
     def __init__(self, target: Path, mode: str) -> None:
         check_output_path(target)
         folder = target.parent if str(target.parent) else Path(".")
-        _remove_stale_temporaries(folder, target.name)
+        remove_stale_temporaries(folder, target.name)
         self.target = target
         fd, self.tmp_name = tempfile.mkstemp(
             prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.", dir=folder)
@@ -284,7 +284,7 @@ def _lock_free(path: Path) -> bool:
     return True
 
 
-def _remove_stale_temporaries(folder: Path, name: str) -> None:
+def remove_stale_temporaries(folder: Path, name: str) -> None:
     """Delete temporaries and scratch folders of ``name`` left by a killed run.
 
     Both signs must agree: nobody holds the leftover's lock, and no process of its pid runs
@@ -309,10 +309,10 @@ def scratch_folder(target: Path, label: str) -> Iterator[Path]:
 
     The run holds the ``flock`` of the folder's lock file for its whole life; a run killed
     with SIGKILL leaves the folder, and the next run writing the same output removes it
-    once it can take that lock (see :func:`_remove_stale_temporaries`).
+    once it can take that lock (see :func:`remove_stale_temporaries`).
     """
     folder = target.parent if str(target.parent) else Path(".")
-    _remove_stale_temporaries(folder, target.name)
+    remove_stale_temporaries(folder, target.name)
     scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.{label}.",
                                     dir=folder))
     try:

@@ -29,7 +29,8 @@ from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
-from rescore.errors import InputError, UsageError
+from rescore.cluster import dask_client
+from rescore.errors import InputError
 from rescore.ioutil import (
     atomic_outputs,
     disk_full_error,
@@ -221,7 +222,7 @@ class _Runner:
         self._client: Any = None
         self._pool: ProcessPoolExecutor | None = None
         if cluster is not None:
-            self._client = self._stack.enter_context(_dask_client(cluster, workers))
+            self._client = self._stack.enter_context(dask_client(cluster, workers))
         else:
             self._pool = self._stack.enter_context(ProcessPoolExecutor(
                 max_workers=workers, initializer=_die_with_parent, initargs=(os.getpid(),)))
@@ -247,39 +248,6 @@ class _Runner:
 
     def close(self) -> None:
         self._stack.close()
-
-
-@contextlib.contextmanager
-def _dask_client(address: str, workers: int) -> Iterator[Any]:
-    try:
-        import distributed
-    except ImportError:
-        raise UsageError("--cluster needs dask.distributed: pip install 'rescore[cluster]'") \
-            from None
-    import dask
-
-    Client: Any = distributed.Client
-    LocalCluster: Any = distributed.LocalCluster
-    with dask.config.set({"distributed.worker.daemon": False,
-                          "logging.distributed": "error"}):
-        if address == "local":
-            cluster = LocalCluster(n_workers=max(workers, 1), threads_per_worker=1,
-                                   processes=True, host="127.0.0.1", dashboard_address=None)
-            client = Client(cluster)
-            try:
-                yield client
-            finally:
-                client.close()
-                cluster.close()
-        else:
-            try:
-                client = Client(address, timeout="20s")
-            except OSError as exc:
-                raise UsageError(f"--cluster {address}: cannot connect ({exc})") from None
-            try:
-                yield client
-            finally:
-                client.close()
 
 
 def apply_sharded(

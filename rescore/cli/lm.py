@@ -18,6 +18,7 @@ from rescore.lm import (
     save_model,
     write_sentence_scores,
 )
+from rescore.lm.external import MIN_MEMORY, default_memory, parse_size
 from rescore.progress import Steps
 from rescore.text import tokens
 
@@ -31,6 +32,18 @@ def _cutoffs(text: str | None) -> list[int] | None:
         raise UsageError(
             f"--cutoffs must be comma-separated whole numbers, one per order from 2, got {text!r}"
         ) from None
+
+
+def _memory_size(text: str) -> int:
+    try:
+        size = parse_size(text)
+    except UsageError as exc:
+        exc.field = "--memory"
+        raise
+    if size < MIN_MEMORY:
+        raise UsageError(f"at least {MIN_MEMORY >> 10}K is needed, got {text!r}",
+                         field="--memory")
+    return size
 
 
 def _lines(paths: list[Path]) -> int | None:
@@ -56,6 +69,20 @@ _Closed = Annotated[bool, typer.Option("--closed-vocab", help="Leave unknown wor
 _K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
 _Cutoffs = Annotated[str | None, typer.Option("--cutoffs", help="Least count per order from 2.")]
 _Prune = Annotated[float | None, typer.Option("--prune", help="Entropy-pruning threshold.")]
+_Memory = Annotated[str | None, typer.Option(
+    "--memory", metavar="SIZE",
+    help="Memory for counting, e.g. 4G or 500M; a larger text is counted in sorted runs on "
+         "disk and merged (same model). Default: half the memory available at the start.")]
+_Cluster = Annotated[str | None, typer.Option(
+    "--cluster", metavar="ADDRESS|local",
+    help="Count shards of the text on a Dask cluster: a scheduler address (tcp://HOST:PORT; "
+         "every worker must see the text files under the same paths), or 'local' for a "
+         "cluster of --workers processes on this machine. Same model as a local build.")]
+_Workers = Annotated[int | None, typer.Option(
+    "--workers", min=1, help="With --cluster local: worker processes (default: one per core).")]
+_Scratch = Annotated[Path | None, typer.Option(
+    "--scratch", metavar="DIR", help="Folder for the sorted runs (default: the system's "
+    "temporary folder); removed when the build ends.")]
 
 
 @guarded
@@ -71,17 +98,28 @@ def build(
     k: _K = 1.0,
     cutoffs: _Cutoffs = None,
     prune: _Prune = None,
+    memory: _Memory = None,
+    scratch: _Scratch = None,
+    cluster: _Cluster = None,
+    workers: _Workers = None,
 ) -> None:
     """Train an n-gram language model."""
     check_output_path(output)
+    budget = default_memory() if memory is None else _memory_size(memory)
     model = NGramModel(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
     )
-    lines = _lines(text) if bars_shown() else None
+    lines = _lines(text) if bars_shown() and cluster is None else None
+    if workers is not None and cluster != "local":
+        raise UsageError("--workers goes with --cluster local", field="--workers")
     with stages(f"lm build ({len(text)} file{'s' if len(text) > 1 else ''})") as report:
-        model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
-                  progress=report)
+        if cluster is not None:
+            model.fit_on_cluster(text, cluster, memory=budget, scratch=scratch,
+                                 workers=workers, progress=report)
+        else:
+            model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
+                      progress=report, memory=budget, scratch=scratch)
     save_model(model, output)
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "

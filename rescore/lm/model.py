@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from collections.abc import Iterable, Sequence
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -13,7 +15,9 @@ from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
+from rescore.lm.external import CorpusCounts, count_external, default_memory
 from rescore.lm.fingerprint import BlockRecorder, Recorder
+from rescore.lm.sharded import count_on_cluster
 from rescore.lm.smoothing import METHODS, make_smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
@@ -92,43 +96,87 @@ class NGramModel:
     # --- fitting --------------------------------------------------------------------------
 
     def fit(self, sentences: Iterable[Sequence[str]], *,
-            progress: Report | None = None) -> NGramModel:
+            progress: Report | None = None, memory: int | None = None,
+            scratch: str | Path | None = None) -> NGramModel:
         """Learn from token lists (already normalised; ``<s>`` and ``</s>`` are added here).
 
         ``progress`` (see :mod:`rescore.progress`) hears of the counting and smoothing,
-        order by order.
+        order by order. With ``memory`` (bytes), counting keeps within about that much
+        memory whatever the size of the text, spilling sorted runs to a private folder
+        under ``scratch`` (default: the system's temporary folder) and merging them; the
+        model is the same, byte for byte. The finished count tables and the estimation
+        still need memory in proportion to the number of distinct n-grams.
         """
         self._check_settings()
+        if memory is not None:
+            recorder = Recorder(sentences)
+            counted = count_external(recorder, self.order, self._choose_vocab,
+                                     closed_vocab=self.closed_vocab, memory=memory,
+                                     scratch=scratch, progress=progress)
+            return self.fit_counts(dataclasses.replace(
+                counted, sentence_hashes=recorder.result()), progress=progress)
         # text from files, not yet read: whole blocks to ids at once
         if isinstance(sentences, Corpus) and sentences.unread:
             blocks = BlockRecorder(clean for _, clean in sentences.blocks())
             words, counts, body, lengths = first_pass_blocks(blocks)
-            recorder: BlockRecorder | Recorder = blocks
+            hashes = blocks.result
         else:
             recorder = Recorder(sentences)
             words, counts, body, lengths = first_pass(recorder)
-        vocab = Vocabulary.from_words(
-            choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
-                         min_count=self.min_count)
-        )
+            hashes = recorder.result
+        vocab = self._choose_vocab(words, counts)
         stream = stream_from_lengths(remap(words, vocab)[body], lengths)
         floor = window_floor(stream, self.closed_vocab)
         counting = Steps(progress, "counting n-grams", self.order)
         ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab),
                                     progress=counting)
         counting.finish()
+        return self.fit_counts(CorpusCounts(
+            vocab, ngram_counts, len(lengths), len(body),
+            int(np.count_nonzero(stream.tokens == UNK_ID)), 0, hashes()), progress=progress)
+
+    def fit_on_cluster(self, paths: Sequence[str | Path], cluster: str, *,
+                       memory: int | None = None, scratch: str | Path | None = None,
+                       workers: int | None = None, progress: Report | None = None
+                       ) -> NGramModel:
+        """Learn from text files whose n-grams are counted on a Dask cluster.
+
+        ``cluster`` is a scheduler's address (every worker must see ``paths`` under the
+        same names) or ``"local"`` for ``workers`` processes on this machine (default:
+        one per core). The shards' counts are merged here within about ``memory`` bytes
+        (default: half the memory available) in a folder under ``scratch``; the model is
+        the same, byte for byte, as :meth:`fit` on :func:`rescore.lm.read_corpus` of the
+        files.
+        """
+        self._check_settings()
+        counted = count_on_cluster(
+            paths, self.order, self._choose_vocab, closed_vocab=self.closed_vocab,
+            cluster=cluster, memory=default_memory() if memory is None else memory,
+            scratch=scratch, workers=workers, progress=progress)
+        return self.fit_counts(counted, progress=progress)
+
+    def _choose_vocab(self, words: Sequence[str], counts: npt.NDArray[np.int64]) -> Vocabulary:
+        return Vocabulary.from_words(
+            choose_words(words, counts, given=self.vocab, max_vocab=self.max_vocab,
+                         min_count=self.min_count)
+        )
+
+    def fit_counts(self, counted: CorpusCounts, *, progress: Report | None = None
+                   ) -> NGramModel:
+        """Learn from n-gram counts already made (by the external or the cluster counter)."""
+        self._check_settings()
         tables, meta = estimate(
-            ngram_counts, make_smoother(self.method, self.k), vocab,
+            counted.tables, make_smoother(self.method, self.k), counted.vocab,
             closed_vocab=self.closed_vocab, cutoffs=self.cutoffs, prune=self.prune,
             progress=progress,
         )
         self._set_fitted(tables, {
             **meta,
-            "training_sentences": len(lengths),
-            "training_words": len(body),
-            "training_oov": int(np.count_nonzero(stream.tokens == UNK_ID)),
+            "training_sentences": counted.sentences,
+            "training_words": counted.words,
+            "training_oov": counted.oov,
         })
-        self.sentence_hashes = recorder.result()
+        self.sentence_hashes = counted.sentence_hashes
         return self
 
     def _set_fitted(self, tables: BackoffTables, extra: dict[str, Any]) -> None:

@@ -1,0 +1,464 @@
+"""Counting the n-grams of a corpus larger than memory: sorted runs on disk, then merged.
+
+The text is read once. Each word gets a provisional id on first sight; the ids and each
+sentence's length go to a scratch folder while the words' counts are added up, which fixes
+the vocabulary exactly as an in-memory build does. The id stream is then counted chunk by
+chunk, each chunk small enough for the memory budget, by the same :func:`count_ngrams`.
+Chunks end at sentence ends, and no n-gram crosses a sentence, so the counts of the whole
+text are the sums of the chunks' counts. Each order's distinct n-grams of a chunk are
+written as one sorted run: keys of their word ids (raw arrays, no pickle) and
+counts. The runs of each order are merged block by block, and each n-gram's suffix id is
+found by binary search among the merged keys of the order below, which gives the tables of
+:func:`count_ngrams` over the whole stream, so the model is byte-identical.
+
+A key orders n-grams as the tables do (reversed lexicographic order of the word ids): when
+``order * bits(V)`` fits in 64 bits it packs the words into one uint64 (last word in the
+high bits), otherwise it is a byte string of the word ids as big-endian uint32, last word
+first, which numpy sorts and searches byte by byte.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import os
+import re
+import shutil
+import tempfile
+from collections import defaultdict
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass
+from itertools import chain, islice
+from pathlib import Path
+from typing import Any, BinaryIO
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.errors import InputError, UsageError
+from rescore.ioutil import TMP_PREFIX, remove_stale_temporaries
+from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
+from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary, remap, stream_from_lengths
+from rescore.progress import Report, Steps
+
+I32 = npt.NDArray[np.int32]
+I64 = npt.NDArray[np.int64]
+Keys = npt.NDArray[Any]  # uint64 or fixed-width bytes
+
+# Peak bytes of memory per token of a chunk while count_ngrams counts a 4-gram (the padded
+# stream, its sentence index and floors, the window keys and their runs), measured on the
+# 10-million-word Zipfian text of scripts/bench_lm.py: 1.6 GB for 10 M tokens, 0.35 GB for
+# 2 M. A chunk takes at most COUNTING_SHARE of the budget; the rest is for the merge's
+# blocks and the counts already merged.
+BYTES_PER_TOKEN = 180
+COUNTING_SHARE = 0.6
+MIN_CHUNK_TOKENS = 1 << 8
+SENTENCES_PER_BLOCK = 1 << 14  # sentences tokenised between two writes of the first pass
+MIN_MEMORY = 64 << 10  # tiny budgets are for tests: many runs from a small text
+MIN_DEFAULT_MEMORY = 64 << 20
+DEFAULT_MEMORY_SHARE = 0.5
+_SIZE = re.compile(r"\s*(\d+(?:\.\d+)?)\s*([kmgt]?)(?:i?b)?\s*", re.IGNORECASE)
+_UNITS = {"": 1, "k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}
+
+
+def parse_size(text: str) -> int:
+    """Bytes in ``text``: a number with an optional unit K, M, G or T (powers of 1024),
+    e.g. ``4G``, ``500M``, ``1.5g``, ``2GiB``; a bare number is bytes."""
+    match = _SIZE.fullmatch(text)
+    if match is None:
+        raise UsageError(f"memory size {text!r} is not a number with an optional unit "
+                         "K, M, G or T (e.g. 4G, 500M)")
+    return int(float(match.group(1)) * _UNITS[match.group(2).lower()])
+
+
+def available_memory() -> int | None:
+    """The kernel's estimate of memory available to a new process (Linux), else None."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def default_memory() -> int:
+    """The budget when none is given: half the memory available at the start (Linux's
+    MemAvailable), else half the physical memory, and never under 64 MiB."""
+    avail = available_memory()
+    if avail is None:
+        try:
+            avail = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+        except (ValueError, OSError, AttributeError):
+            avail = 4 << 30
+    return max(MIN_DEFAULT_MEMORY, int(avail * DEFAULT_MEMORY_SHARE))
+
+
+def chunk_tokens(memory: int) -> int:
+    """Tokens of the padded stream counted at once under a budget of ``memory`` bytes."""
+    return max(MIN_CHUNK_TOKENS, int(memory * COUNTING_SHARE) // BYTES_PER_TOKEN)
+
+
+@dataclass(frozen=True)
+class CorpusCounts:
+    """What counting a corpus gives the estimator: the vocabulary, every order's table and
+    the training statistics recorded in the model's metadata."""
+
+    vocab: Vocabulary
+    tables: list[OrderCounts]
+    sentences: int
+    words: int
+    oov: int
+    runs: int  # sorted runs written to disk (0: counted in memory in one piece)
+    # the fingerprint of the training sentences (see rescore.lm.fingerprint); None: not taken
+    sentence_hashes: npt.NDArray[np.uint64] | None = None
+
+
+# --- the scratch folder ---------------------------------------------------------------------
+
+_FULL_DISK = (errno.ENOSPC, errno.EDQUOT)
+
+
+@contextlib.contextmanager
+def scratch_folder(parent: str | Path | None, purpose: str) -> Iterator[Path]:
+    """A private folder under ``parent`` (default: the system's temporary folder), removed
+    with everything in it however the block ends (an error, Ctrl-C, or SIGTERM turned into
+    an exception). A full disk becomes one :class:`InputError` naming the folder. Folders
+    of the same purpose left by a killed build (their process is gone) are removed first."""
+    base = Path(tempfile.gettempdir() if parent is None else parent)
+    if base.is_dir():
+        remove_stale_temporaries(base, purpose)
+    try:
+        folder = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{purpose}.{os.getpid()}.",
+                                       dir=base))
+    except FileNotFoundError:
+        raise InputError("scratch folder not found", path=base) from None
+    except NotADirectoryError:
+        raise InputError("scratch path is not a folder", path=base) from None
+    except PermissionError:
+        raise InputError("permission denied for the scratch folder", path=base) from None
+    try:
+        yield folder
+    except OSError as exc:
+        if exc.errno in _FULL_DISK:
+            raise InputError(
+                "no space left on device for the counting runs; free some space or choose "
+                "a scratch folder on a larger disk", path=base) from None
+        raise
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+# --- keys of n-grams ------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class KeyCodec:
+    """Keys of the n-grams of every order of one model (see the module's docstring)."""
+
+    order: int
+    vocab_size: int
+
+    @property
+    def bits(self) -> int:
+        return max(int(self.vocab_size).bit_length(), 1)
+
+    @property
+    def packed(self) -> bool:
+        return self.order * self.bits <= 64
+
+    def dtype(self, k: int) -> np.dtype[Any]:
+        return np.dtype(np.uint64) if self.packed else np.dtype(f"S{4 * k}")
+
+    def unigrams(self) -> Keys:
+        ids = np.arange(self.vocab_size, dtype=np.int64)
+        return ids.astype(np.uint64) if self.packed else _be32(ids).view("S4").ravel()
+
+    def extend(self, suffix_keys: Keys, first: I64) -> Keys:
+        """Keys of the n-grams ``first + suffix`` (``suffix_keys`` one order lower)."""
+        if self.packed:
+            return (suffix_keys << np.uint64(self.bits)) | first.astype(np.uint64)
+        n, width = len(first), suffix_keys.dtype.itemsize
+        out = np.empty((n, width + 4), dtype=np.uint8)
+        out[:, :width] = suffix_keys.view(np.uint8).reshape(n, width)
+        out[:, width:] = _be32(first)
+        return out.view(f"S{width + 4}").ravel()
+
+    def split(self, keys: Keys) -> tuple[Keys, I64]:
+        """The inverse of :meth:`extend`: the suffixes' keys and the first words."""
+        if self.packed:
+            return keys >> np.uint64(self.bits), (keys & np.uint64((1 << self.bits) - 1)
+                                                  ).view(np.int64)
+        n, width = len(keys), keys.dtype.itemsize
+        raw = keys.view(np.uint8).reshape(n, width)
+        first = np.ascontiguousarray(raw[:, width - 4:]).view(">u4").ravel().astype(np.int64)
+        return np.ascontiguousarray(raw[:, :width - 4]).view(f"S{width - 4}").ravel(), first
+
+    def from_words(self, words: I32) -> Keys:
+        """Keys of n-grams given as rows of word ids ``w1 .. wk``."""
+        n, k = words.shape
+        if self.packed:
+            keys = np.zeros(n, dtype=np.uint64)
+            for j in range(k):
+                keys |= words[:, j].astype(np.uint64) << np.uint64(self.bits * j)
+            return keys
+        return np.ascontiguousarray(words[:, ::-1]).astype(">u4").view(f"S{4 * k}").ravel()
+
+    def keys_of(self, tables: Sequence[OrderCounts]) -> list[Keys]:
+        """Each order's keys of count tables (sorted, as the tables are)."""
+        keys = [self.unigrams()]
+        for k in range(2, len(tables) + 1):
+            t = tables[k - 1]
+            keys.append(self.extend(keys[k - 2][t.suffix], t.first))
+        return keys
+
+    def tables_of(self, unigram_counts: I64, keys: Sequence[Keys], counts: Sequence[I64]
+                  ) -> list[OrderCounts]:
+        """Count tables from each order's merged keys and counts (index 0: orders >= 2)."""
+        v = self.vocab_size
+        tables = [OrderCounts(np.zeros(v, np.int64), np.arange(v, dtype=np.int64),
+                              unigram_counts)]
+        below = self.unigrams()
+        for k_keys, k_counts in zip(keys, counts, strict=True):
+            suffix_keys, first = self.split(k_keys)
+            suffix = np.searchsorted(below, suffix_keys).astype(np.int64)
+            del suffix_keys
+            tables.append(OrderCounts(suffix, first, k_counts))
+            below = k_keys
+        return tables
+
+
+def _be32(ids: npt.NDArray[np.integer[Any]]) -> npt.NDArray[np.uint8]:
+    return ids.astype(">u4").view(np.uint8).reshape(len(ids), 4)
+
+
+def sum_duplicates(keys: Keys, counts: I64) -> tuple[Keys, I64]:
+    """Sorted distinct keys and the sum of the counts of each."""
+    if not len(keys):
+        return keys, counts
+    perm = np.argsort(keys, kind="stable")
+    keys, counts = keys[perm], counts[perm]
+    flag = np.empty(len(keys), dtype=bool)
+    flag[0] = True
+    np.not_equal(keys[1:], keys[:-1], out=flag[1:])
+    starts = np.flatnonzero(flag)
+    return keys[starts], np.add.reduceat(counts, starts)
+
+
+# --- runs on disk ----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Run:
+    """One sorted run of one order: distinct keys and their counts, two raw files."""
+
+    keys: Path
+    counts: Path
+    length: int
+    dtype: np.dtype[Any]
+
+
+def _create(path: Path) -> BinaryIO:
+    """A new scratch file (the one place they are opened, so a test can fill the disk)."""
+    return open(path, "xb")
+
+
+def _write(fh: BinaryIO, array: npt.NDArray[Any]) -> None:
+    # file.write, not ndarray.tofile: tofile reports a full disk as an OSError without errno
+    fh.write(np.ascontiguousarray(array).data.cast("B"))
+
+
+def write_run(folder: Path, name: str, keys: Keys, counts: I64) -> Run:
+    run = Run(folder / f"{name}.keys", folder / f"{name}.counts", len(keys), keys.dtype)
+    with _create(run.keys) as fh:
+        _write(fh, keys)
+    with _create(run.counts) as fh:
+        _write(fh, counts.astype(np.int64, copy=False))
+    return run
+
+
+class _Reader:
+    """A run read block by block (explicit reads, so nothing stays mapped in memory)."""
+
+    def __init__(self, run: Run, block: int) -> None:
+        self.run = run
+        self.block = block
+        self.pos = 0  # entries read from the files
+        self.keys: Keys = np.zeros(0, dtype=run.dtype)
+        self.counts: I64 = np.zeros(0, dtype=np.int64)
+
+    @property
+    def more_on_disk(self) -> bool:
+        return self.pos < self.run.length
+
+    def refill(self) -> None:
+        if len(self.keys) or not self.more_on_disk:
+            return
+        n = min(self.block, self.run.length - self.pos)
+        self.keys = np.fromfile(self.run.keys, dtype=self.run.dtype, count=n,
+                                offset=self.pos * self.run.dtype.itemsize)
+        self.counts = np.fromfile(self.run.counts, dtype=np.int64, count=n,
+                                  offset=self.pos * 8)
+        self.pos += n
+
+    def take_through(self, cut: Any | None) -> tuple[Keys, I64]:
+        """The buffered entries with keys up to ``cut`` (all of them when None)."""
+        n = len(self.keys) if cut is None else int(np.searchsorted(self.keys, cut, "right"))
+        out = self.keys[:n], self.counts[:n]
+        self.keys, self.counts = self.keys[n:], self.counts[n:]
+        return out
+
+
+def merge_runs(runs: Sequence[Run], block: int) -> tuple[Keys, I64]:
+    """The distinct keys of all ``runs`` (each sorted and distinct) and their summed counts.
+
+    Each step takes, from every run's buffer, the entries up to the smallest last buffered
+    key among the runs that have more on disk: no later entry of any run can sort before
+    it, so each step's keys are complete and follow the previous step's.
+    """
+    readers = [_Reader(r, block) for r in runs]
+    out_keys: list[Keys] = []
+    out_counts: list[I64] = []
+    while True:
+        for r in readers:
+            r.refill()
+        live = [r for r in readers if len(r.keys)]
+        if not live:
+            break
+        bounds = [r.keys[-1] for r in live if r.more_on_disk]
+        cut = min(bounds) if bounds else None
+        pieces = [r.take_through(cut) for r in live]
+        keys, counts = sum_duplicates(np.concatenate([p[0] for p in pieces]),
+                                      np.concatenate([p[1] for p in pieces]))
+        out_keys.append(keys)
+        out_counts.append(counts)
+    dtype = runs[0].dtype if runs else np.dtype(np.uint64)
+    if not out_keys:
+        return np.zeros(0, dtype=dtype), np.zeros(0, dtype=np.int64)
+    return np.concatenate(out_keys), np.concatenate(out_counts)
+
+
+def merge_block(memory: int, runs: int) -> int:
+    """Entries read from each run at a time: a fifth of the budget over all runs' buffers
+    and their concatenation (about 40 bytes an entry with the sort's temporaries)."""
+    return max(1 << 12, int(memory * 0.2) // (40 * max(runs, 1)))
+
+
+# --- the first pass: provisional ids to disk --------------------------------------------------
+
+@dataclass(frozen=True)
+class _FirstPass:
+    words: list[str]
+    counts: I64
+    ids: Path
+    lengths: I64
+    tokens: int
+
+
+def _first_pass_to_disk(sentences: Iterable[Sequence[str]], folder: Path) -> _FirstPass:
+    """As :func:`rescore.lm.vocab.first_pass`, but the id body goes to ``folder/ids``."""
+    provisional: defaultdict[str, int] = defaultdict()
+    provisional.default_factory = provisional.__len__  # a new word gets the next id
+    for special in SPECIALS:
+        provisional[special]
+    counts = np.zeros(0, dtype=np.int64)
+    lengths: list[I64] = []
+    tokens = 0
+    source = iter(sentences)
+    path = folder / "ids"
+    with _create(path) as fh:
+        while block := list(islice(source, SENTENCES_PER_BLOCK)):
+            lens = np.fromiter(map(len, block), dtype=np.int64, count=len(block))
+            n = int(lens.sum())
+            ids = np.fromiter(map(provisional.__getitem__, chain.from_iterable(block)),
+                              dtype=np.int32, count=n)
+            _write(fh, ids)
+            grown = np.bincount(ids, minlength=len(provisional))
+            grown[:len(counts)] += counts
+            counts = grown
+            lengths.append(lens)
+            tokens += n
+    counts = np.pad(counts, (0, len(provisional) - len(counts)))
+    return _FirstPass(list(provisional), counts.astype(np.int64), path,
+                      np.concatenate(lengths) if lengths else np.zeros(0, np.int64), tokens)
+
+
+def count_external(
+    sentences: Iterable[Sequence[str]],
+    order: int,
+    choose: Callable[[Sequence[str], I64], Vocabulary],
+    *,
+    closed_vocab: bool,
+    memory: int,
+    scratch: str | Path | None = None,
+    progress: Report | None = None,
+) -> CorpusCounts:
+    """Count ``sentences`` within about ``memory`` bytes, spilling runs to ``scratch``.
+
+    ``choose(words, counts)`` picks the vocabulary from the provisional words and their
+    counts (as ``NGramModel.fit`` does). When the whole stream fits in one chunk, it is
+    counted in memory and no run is written.
+    """
+    if memory < MIN_MEMORY:
+        raise UsageError(f"the memory budget must be at least {MIN_MEMORY >> 10} KiB, "
+                         f"got {memory} bytes")
+    with scratch_folder(scratch, "lm-counts") as folder:
+        first = _first_pass_to_disk(sentences, folder)
+        vocab = choose(first.words, first.counts)
+        table = remap(first.words, vocab)
+        oov = int(first.counts[table == UNK_ID].sum())
+        v = len(vocab)
+        padded = first.lengths + 2
+        ends = np.cumsum(padded)
+        limit = chunk_tokens(memory)
+        # chunk j holds the sentences before cuts[j + 1]; each at least one sentence
+        cuts = [0] if len(ends) else [0, 0]
+        while cuts[-1] < len(ends):
+            start = 0 if cuts[-1] == 0 else int(ends[cuts[-1] - 1])
+            nxt = int(np.searchsorted(ends, start + limit, "right"))
+            cuts.append(max(nxt, cuts[-1] + 1))
+        n_chunks = len(cuts) - 1
+        counting = Steps(progress, "counting n-grams", n_chunks * order)
+        codec = KeyCodec(order, v)
+        unigrams = np.zeros(v, dtype=np.int64)
+        runs: list[list[Run]] = [[] for _ in range(order - 1)]
+        body_at = np.concatenate([[0], np.cumsum(first.lengths)])
+        whole: list[OrderCounts] | None = None
+        for j in range(n_chunks):
+            a, b = cuts[j], cuts[j + 1]
+            ids = np.fromfile(first.ids, dtype=np.int32, count=int(body_at[b] - body_at[a]),
+                              offset=int(body_at[a]) * 4)
+            stream = stream_from_lengths(table[ids], first.lengths[a:b])
+            del ids
+            floor = window_floor(stream, closed_vocab)
+            tables = count_ngrams(stream.tokens, floor, order, v, progress=counting)
+            del stream, floor
+            if n_chunks == 1:
+                whole = tables
+                break
+            unigrams += tables[0].count
+            for k, keys in enumerate(codec.keys_of(tables)[1:], start=2):
+                runs[k - 2].append(write_run(folder, f"run{j:05d}.{k}", keys,
+                                             tables[k - 1].count))
+            del tables
+        counting.finish()
+        if whole is None:
+            whole = merge_all(codec, unigrams, runs, memory, progress)
+    return CorpusCounts(vocab, whole, len(first.lengths), first.tokens, oov,
+                        0 if n_chunks == 1 else n_chunks)
+
+
+def merge_all(codec: KeyCodec, unigrams: I64, runs: list[list[Run]], memory: int,
+              progress: Report | None) -> list[OrderCounts]:
+    """Merge each order's runs (index 0: order 2) into the count tables."""
+    merging = Steps(progress, "merging sorted runs", len(runs))
+    keys: list[Keys] = []
+    counts: list[I64] = []
+    for order_runs in runs:
+        k_keys, k_counts = merge_runs(order_runs, merge_block(memory, len(order_runs)))
+        for run in order_runs:  # free the disk as soon as an order is merged
+            run.keys.unlink()
+            run.counts.unlink()
+        keys.append(k_keys)
+        counts.append(k_counts)
+        merging()
+    return codec.tables_of(unigrams, keys, counts)

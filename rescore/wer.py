@@ -12,7 +12,7 @@ from typing import Any, Literal
 
 import jiwer
 import numpy as np
-from rapidfuzz.distance import Levenshtein
+from rapidfuzz.distance import Indel, Levenshtein
 
 # every command refuses a reference set without words: its WER, errors over zero words,
 # is undefined (one rule for wer, check, tune and report)
@@ -177,7 +177,108 @@ def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[An
             ops.extend(WordOp("delete", ref[k], None) for k in range(r0, r1))
         else:
             ops.extend(WordOp("insert", None, hyp[k]) for k in range(h0, h1))
-    return Alignment(tuple(ops))
+    return Alignment(tuple(_prefer_similar(ops)))
+
+
+# --- tie-break: substitute the words that look alike ------------------------------------
+#
+# jiwer returns one minimum-edit alignment; where a substitution and an insertion (or a
+# deletion) cost the same it may pair the wrong words ("croissant -> aunt" with "cross"
+# inserted). The post-pass below only re-pairs words inside a run of errors between two
+# hits, so every count jiwer gave stays as it was:
+#
+# * In a minimum-edit alignment, a run of consecutive non-hit steps covering r reference
+#   and y hypothesis words holds exactly min(r, y) substitutions and either only
+#   deletions or only insertions: were there fewer, pairing one more deleted word with one
+#   more inserted word would cost one edit less.
+# * Any order-preserving choice of which min(r, y) words of the longer side are
+#   substituted therefore keeps that run's substitutions, deletions and insertions, and
+#   leaves the hits (outside the run) untouched; so the alignment keeps its cost and every
+#   count. (Pairing two equal words would be a hit and a cheaper alignment, so it never
+#   happens; it is refused all the same.)
+# * Among those choices we take the one with the largest sum of character similarities of
+#   the substituted pairs (rapidfuzz's normalised Indel similarity, 1 - indel distance /
+#   total characters), and keep jiwer's own pairing unless another is strictly more alike.
+# Runs where both sides have the same length, or one side is empty, have one pairing only
+# and are passed through; those with a choice are rare, so the pass costs little.
+
+_SIMILARITY_EPS = 1e-9
+
+
+def _prefer_similar(ops: list[WordOp]) -> list[WordOp]:
+    out: list[WordOp] = []
+    start = 0
+    n = len(ops)
+    while start < n:
+        if ops[start].kind == "equal":
+            out.append(ops[start])
+            start += 1
+            continue
+        end = start
+        while end < n and ops[end].kind != "equal":
+            end += 1
+        out.extend(_repair_run(ops[start:end]))
+        start = end
+    return out
+
+
+def _repair_run(run: list[WordOp]) -> list[WordOp]:
+    refs = [op.ref for op in run if op.ref is not None]
+    hyps = [op.hyp for op in run if op.hyp is not None]
+    if len(refs) == len(hyps) or not refs or not hyps:
+        return run
+    swap = len(refs) > len(hyps)  # deletions: pair each hypothesis word with a reference word
+    short, long = (hyps, refs) if swap else (refs, hyps)
+    sim = [[-1.0 if a == b else float(Indel.normalized_similarity(a, b)) for b in long]
+           for a in short]
+    original = sum(sim[k][long_index] for k, long_index in enumerate(
+        _pairing_of(run, swap)))
+    chosen = _best_pairing(sim, len(short), len(long))
+    if sum(sim[k][j] for k, j in enumerate(chosen)) <= original + _SIMILARITY_EPS:
+        return run
+    paired = dict(zip(chosen, range(len(short)), strict=True))
+    rebuilt: list[WordOp] = []
+    for j, word in enumerate(long):
+        k = paired.get(j)
+        if k is None:
+            rebuilt.append(WordOp("delete", word, None) if swap else WordOp("insert", None, word))
+        elif swap:
+            rebuilt.append(WordOp("substitute", word, short[k]))
+        else:
+            rebuilt.append(WordOp("substitute", short[k], word))
+    return rebuilt
+
+
+def _pairing_of(run: list[WordOp], swap: bool) -> list[int]:
+    """Index into the longer side of each substituted word of the shorter side."""
+    out: list[int] = []
+    j = 0
+    for op in run:
+        if op.kind == "substitute":
+            out.append(j)
+        if (op.ref if swap else op.hyp) is not None:
+            j += 1
+    return out
+
+
+def _best_pairing(sim: list[list[float]], n_short: int, n_long: int) -> list[int]:
+    """Increasing indices into the longer side, one per word of the shorter side, with the
+    largest total similarity (dynamic programme over prefixes, O(n_short * n_long))."""
+    neg = float("-inf")
+    # best[k][j]: the first k short words paired within the first j long words
+    best = [[0.0] * (n_long + 1)] + [[neg] * (n_long + 1) for _ in range(n_short)]
+    for k in range(1, n_short + 1):
+        row, prev, s = best[k], best[k - 1], sim[k - 1]
+        for j in range(k, n_long + 1):
+            row[j] = max(row[j - 1], prev[j - 1] + s[j - 1])
+    chosen: list[int] = []
+    k, j = n_short, n_long
+    while k > 0:
+        if best[k - 1][j - 1] + sim[k - 1][j - 1] >= best[k][j - 1]:
+            chosen.append(j - 1)
+            k -= 1
+        j -= 1
+    return chosen[::-1]
 
 
 def align_many(

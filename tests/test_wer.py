@@ -105,3 +105,65 @@ def test_cer_counts_spaces_between_words() -> None:
     result = corpus_cer([["ab", "c"]], [["abd", "c"]])
     assert (result.insertions, result.reference_chars) == (1, 4)
     assert result.cer == pytest.approx(jiwer.cer("ab c", "abd c"), abs=TOL)
+
+
+# --- tie-break among minimum-edit alignments: substitute the words that look alike -------
+
+def ops_of(ref: str, hyp: str) -> list[tuple[str, str | None, str | None]]:
+    return [(op.kind, op.ref, op.hyp) for op in align(w(ref), w(hyp)).ops]
+
+
+def test_tie_break_substitutes_the_similar_word_before_an_insertion() -> None:
+    # jiwer 4.0 aligns this as  two  *      croissant  please
+    #                           two  cross  aunt       please   (insert, then substitute)
+    # Both cost 2 (one substitution, one insertion); the one a person writes is
+    #                           two  croissant  *     please
+    #                           two  cross      aunt  please
+    # Indel similarity, 1 - (len a + len b - 2 * longest common subsequence) / (len a + len b):
+    # croissant/cross: "cross" is a subsequence of "croissant", 1 - (9 + 5 - 10) / 14 = 0.714;
+    # croissant/aunt: common subsequence "ant", 1 - (9 + 4 - 6) / 13 = 0.462. So "cross".
+    jiwer_ops = jiwer.process_words("two croissant please", "two cross aunt please")
+    assert [c.type for c in jiwer_ops.alignments[0]] == ["equal", "insert", "substitute",
+                                                           "equal"]
+    assert ops_of("two croissant please", "two cross aunt please") == [
+        ("equal", "two", "two"), ("substitute", "croissant", "cross"),
+        ("insert", None, "aunt"), ("equal", "please", "please")]
+
+
+def test_tie_break_substitutes_the_similar_word_beside_a_deletion() -> None:
+    # by hand: ref "vent bay three", hyp "bays": no hit is possible, so one substitution and
+    # two deletions in any minimum alignment (cost 3). Candidates for the substitution:
+    # vent/bays and three/bays share no letter (similarity 0), bay/bays 1 - (3 + 4 - 6) / 7
+    # = 0.857. So:
+    #   vent  bay   three
+    #   *     bays  *
+    assert ops_of("vent bay three", "bays") == [
+        ("delete", "vent", None), ("substitute", "bay", "bays"), ("delete", "three", None)]
+
+
+def test_tie_break_keeps_jiwer_when_no_pairing_is_more_alike() -> None:
+    # by hand: "row", "ec" and "to" share no letter with "bay" or "lamp": every pairing scores 0,
+    # so jiwer's own alignment is kept unchanged, step for step
+    ref, hyp = w("bay lamp"), w("row ec to")
+    chunks = jiwer.process_words(" ".join(ref), " ".join(hyp)).alignments[0]
+    expected = [c.type for c in chunks for _ in range(max(c.ref_end_idx - c.ref_start_idx,
+                                                           c.hyp_end_idx - c.hyp_start_idx))]
+    assert [op.kind for op in align(ref, hyp).ops] == expected
+
+
+SIMILAR_VOCAB = ["bay", "bays", "row", "rows", "pump", "pumps", "vent", "went", "for",
+                 "four", "fort", "on", "one"]
+similar_words = st.lists(st.sampled_from(SIMILAR_VOCAB), max_size=12)
+
+
+@given(similar_words, similar_words)
+def test_tie_break_never_changes_a_count(ref: list[str], hyp: list[str]) -> None:
+    # source: jiwer.process_words (reference library): the re-paired alignment has exactly
+    # jiwer's substitutions, deletions, insertions and hits, and still spells out both sides
+    al = align(ref, hyp)
+    assert al.reference == ref and al.hypothesis == hyp
+    assert al.errors == plain_edit_distance(ref, hyp)
+    if ref:
+        out = jiwer.process_words(" ".join(ref), " ".join(hyp) if hyp else "")
+        assert al.counts() == (out.substitutions, out.deletions, out.insertions, out.hits)
+    assert all((op.ref == op.hyp) == (op.kind == "equal") for op in al.ops)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
+from itertools import pairwise
 from typing import Any, Literal
 
 import jiwer
@@ -167,6 +168,17 @@ class Alignment:
 
 
 def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[Any]) -> Alignment:
+    ops = _jiwer_ops(ref, hyp, chunks)
+    # only a substitution beside an insertion or a deletion leaves a choice of pairs
+    types = [c.type for c in chunks]
+    if any(a != b and "substitute" in (a, b) and "equal" not in (a, b)
+           for a, b in pairwise(types)):
+        ops = _prefer_similar(ops)
+    return Alignment(tuple(ops))
+
+
+def _jiwer_ops(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[Any]) -> list[WordOp]:
+    """jiwer's alignment chunks spelt out word by word, as jiwer chose them."""
     ops: list[WordOp] = []
     for c in chunks:
         r0, r1, h0, h1 = c.ref_start_idx, c.ref_end_idx, c.hyp_start_idx, c.hyp_end_idx
@@ -177,7 +189,7 @@ def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[An
             ops.extend(WordOp("delete", ref[k], None) for k in range(r0, r1))
         else:
             ops.extend(WordOp("insert", None, hyp[k]) for k in range(h0, h1))
-    return Alignment(tuple(_prefer_similar(ops)))
+    return ops
 
 
 # --- tie-break: substitute the words that look alike ------------------------------------

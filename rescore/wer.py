@@ -113,16 +113,26 @@ def corpus_wer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> 
 
 # --- word-level alignments and character error rate -------------------------------------
 
-OpKind = Literal["equal", "substitute", "delete", "insert"]
+OpKind = Literal["equal", "substitute", "delete", "insert", "equivalent", "optional"]
 
 
 @dataclass(frozen=True)
 class WordOp:
-    """One step of an alignment: ``ref`` is None for an insertion, ``hyp`` for a deletion."""
+    """One step of an alignment: ``ref`` is None for an insertion, ``hyp`` for a deletion.
+
+    Under scoring rules (:mod:`rescore.align`) two more kinds occur: ``equivalent``, where
+    ``ref`` and ``hyp`` are spellings of one equivalence group (each may be a phrase, its
+    words joined by single spaces), and ``optional``, an optional reference word the
+    hypothesis left out (``hyp`` None). Both are correct words: every reference word of
+    theirs counts as a hit.
+    """
 
     kind: OpKind
     ref: str | None
     hyp: str | None
+
+
+_CORRECT = ("equal", "equivalent", "optional")
 
 
 @dataclass(frozen=True)
@@ -136,7 +146,8 @@ class Alignment:
 
     @property
     def hits(self) -> int:
-        return self._count("equal")
+        return sum(1 if op.kind != "equivalent" else op.ref.count(" ") + 1
+                   for op in self.ops if op.kind in _CORRECT and op.ref is not None)
 
     @property
     def substitutions(self) -> int:
@@ -152,15 +163,17 @@ class Alignment:
 
     @property
     def errors(self) -> int:
-        return len(self.ops) - self.hits
+        return sum(1 for op in self.ops if op.kind not in _CORRECT)
 
     @property
     def reference(self) -> list[str]:
-        return [op.ref for op in self.ops if op.ref is not None]
+        return [w for op in self.ops if op.ref is not None
+                for w in (op.ref.split(" ") if op.kind == "equivalent" else (op.ref,))]
 
     @property
     def hypothesis(self) -> list[str]:
-        return [op.hyp for op in self.ops if op.hyp is not None]
+        return [w for op in self.ops if op.hyp is not None
+                for w in (op.hyp.split(" ") if op.kind == "equivalent" else (op.hyp,))]
 
     def counts(self) -> tuple[int, int, int, int]:
         """(substitutions, deletions, insertions, hits), the order of :func:`align_counts`."""

@@ -342,7 +342,8 @@ def counts_from_alignments(alignments: Sequence[Alignment]) -> UtteranceCounts:
 
 @dataclass(frozen=True)
 class CerResult:
-    """Corpus character error rate over the normalised text, spaces between words included."""
+    """Corpus character error rate over the normalised text (spaces between words included
+    unless asked otherwise, see :func:`corpus_cer`)."""
 
     cer: float
     substitutions: int
@@ -355,12 +356,19 @@ class CerResult:
         return asdict(self)
 
 
-def corpus_cer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> CerResult:
-    """Character errors of ``" ".join(words)`` on both sides, summed over the corpus."""
+def corpus_cer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]], *,
+               spaces: bool = True) -> CerResult:
+    """Character errors of ``" ".join(words)`` on both sides, summed over the corpus.
+
+    ``spaces=False`` is the character unit for scripts written without word spaces: the
+    words are joined with nothing between them, so a space is never a character to get
+    right or wrong (``jiwer.cer`` of ``"".join(words)`` on both sides).
+    """
     if len(refs) != len(hyps):
         raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
     s = d = i = h = 0
-    pairs = [(" ".join(r), " ".join(y)) for r, y in zip(refs, hyps, strict=True)]
+    sep = " " if spaces else ""
+    pairs = [(sep.join(r), sep.join(y)) for r, y in zip(refs, hyps, strict=True)]
     full = [(r, y) for r, y in pairs if r and y]
     for r, y in pairs:
         if not r:

@@ -26,9 +26,16 @@ import unicodedata
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+)
 
 from rescore.errors import InputError
 
@@ -64,6 +71,31 @@ def normalise_words(text: str, steps: Sequence[Step] = DEFAULT_STEPS,
     return [w for w in (word.strip(strip) for word in text.split()) if w]
 
 
+def _one_token(entry: str) -> str:
+    if not entry or len(entry.split()) != 1:
+        raise ValueError(f"{entry!r} must be one token (no spaces)")
+    return entry
+
+
+def _one_mark(mark: str) -> str:
+    if len(mark) != 1 or not unicodedata.category(mark).startswith("P"):
+        raise ValueError(f"{mark!r} is not one punctuation character")
+    return mark
+
+
+def _group(group: tuple[str, ...]) -> tuple[str, ...]:
+    if len(group) < 2:
+        raise ValueError(f"{list(group)} needs at least two spellings")
+    if any(not spelling.split() for spelling in group):
+        raise ValueError("a spelling is empty")
+    return group
+
+
+Token = Annotated[str, AfterValidator(_one_token)]
+Mark = Annotated[str, AfterValidator(_one_mark)]
+Group = Annotated[tuple[str, ...], AfterValidator(_group)]
+
+
 class ScoringRules(BaseModel):
     """The scoring rules of one file (all keys optional; see the module docstring)."""
 
@@ -71,10 +103,10 @@ class ScoringRules(BaseModel):
 
     name: str | None = Field(default=None, min_length=1, max_length=64)
     normalise: tuple[Step, ...] = DEFAULT_STEPS
-    keep_punctuation: tuple[str, ...] = ()
-    equivalent: tuple[tuple[str, ...], ...] = ()
-    optional: tuple[str, ...] = ()
-    ignore: tuple[str, ...] = ()
+    keep_punctuation: tuple[Mark, ...] = ()
+    equivalent: tuple[Group, ...] = ()
+    optional: tuple[Token, ...] = ()
+    ignore: tuple[Token, ...] = ()
 
     @field_validator("normalise")
     @classmethod
@@ -83,30 +115,6 @@ class ScoringRules(BaseModel):
         if twice:
             raise ValueError(f"step listed twice: {', '.join(twice)}")
         return steps
-
-    @field_validator("keep_punctuation")
-    @classmethod
-    def _single_marks(cls, marks: tuple[str, ...]) -> tuple[str, ...]:
-        for mark in marks:
-            if len(mark) != 1 or not unicodedata.category(mark).startswith("P"):
-                raise ValueError(f"{mark!r} is not one punctuation character")
-        return marks
-
-    @field_validator("equivalent")
-    @classmethod
-    def _groups(cls, groups: tuple[tuple[str, ...], ...]) -> tuple[tuple[str, ...], ...]:
-        for k, group in enumerate(groups):
-            if len(group) < 2:
-                raise ValueError(f"group {k} ({list(group)}) needs at least two spellings")
-        return groups
-
-    @field_validator("optional", "ignore")
-    @classmethod
-    def _one_token_each(cls, entries: tuple[str, ...]) -> tuple[str, ...]:
-        for entry in entries:
-            if not entry or len(entry.split()) != 1:
-                raise ValueError(f"{entry!r} must be one token (no spaces)")
-        return entries
 
     def words(self, text: str) -> list[str]:
         """The scored tokens of ``text``: ignored tokens dropped, then the normalisation."""
@@ -151,10 +159,14 @@ def parse_rules(data: bytes, path: str | Path = "<rules>") -> RulesFile:
     try:
         table = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        found = re.search(r"\(at line (\d+), column (\d+)\)", str(exc))
-        message = re.sub(r"\s*\(at line \d+, column \d+\)", "", str(exc))
+        found = re.search(r"\(at line (\d+), column \d+\)", str(exc))
+        line = int(found.group(1)) if found else None
+        if line is None and "(at end of document)" in str(exc):
+            line = max(1, len(text.splitlines()))
+        message = re.sub(r"\s*\(at (line \d+, column \d+|end of document)\)", "",
+                         str(exc))
         raise InputError(f"not valid TOML: {message}", path=path, field="toml",
-                         line=int(found.group(1)) if found else None) from None
+                         line=line) from None
     try:
         rules = ScoringRules.model_validate(table)
     except ValidationError as exc:

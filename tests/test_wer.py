@@ -7,6 +7,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from rescore.text import tokens
 from rescore.wer import (
     align,
     align_counts,
@@ -167,3 +168,35 @@ def test_tie_break_never_changes_a_count(ref: list[str], hyp: list[str]) -> None
         out = jiwer.process_words(" ".join(ref), " ".join(hyp) if hyp else "")
         assert al.counts() == (out.substitutions, out.deletions, out.insertions, out.hits)
     assert all((op.ref == op.hyp) == (op.kind == "equal") for op in al.ops)
+
+
+# --- the character unit: CER with spaces dropped ----------------------------------------
+
+# CJK ideographs and kana, Thai (with its combining vowel and tone marks), Latin and digits,
+# and spaces, so that mixed-script strings and word breaks occur
+SCRIPTS = "東京都の天気は晴れです日本語ภาษาไทยสวัสดีครับ่้ัabcé12 "
+scripted = st.text(alphabet=st.sampled_from(SCRIPTS), max_size=24)
+
+
+@given(st.lists(st.tuples(scripted, scripted), min_size=1, max_size=6))
+def test_cer_without_spaces_equals_jiwer(pairs: list[tuple[str, str]]) -> None:
+    # source: jiwer.cer (reference library) over the normalised strings with spaces removed
+    from_text = [(tokens(r), tokens(h)) for r, h in pairs]
+    kept = [(r, h) for r, h in from_text if r]  # jiwer refuses an empty reference
+    if not kept:
+        return
+    refs = [r for r, _ in kept]
+    hyps = [h for _, h in kept]
+    got = corpus_cer(refs, hyps, spaces=False)
+    expected = jiwer.cer(["".join(r) for r in refs], ["".join(h) for h in hyps])
+    assert got.cer == pytest.approx(expected, abs=TOL)
+    assert got.reference_chars == sum(len("".join(r)) for r in refs)
+
+
+def test_cer_without_spaces_ignores_where_words_break() -> None:
+    # by hand: the same characters cut into words differently are no error at all in the
+    # character unit ("東京 都" vs "東 京都"); with spaces counted, the moved space is 2 edits
+    # (jiwer.cer("東京 都", "東 京都") = 2/4)
+    assert corpus_cer([["東京", "都"]], [["東", "京都"]], spaces=False).cer == 0.0
+    assert corpus_cer([["東京", "都"]], [["東", "京都"]]).cer == pytest.approx(
+        jiwer.cer("東京 都", "東 京都"), abs=TOL)

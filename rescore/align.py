@@ -3,7 +3,11 @@ optional words and ignored tokens (the rules themselves are read in :mod:`rescor
 
 Without rules that change the alignment, :func:`align_with_rules` is
 :func:`rescore.wer.align_many` itself (jiwer underneath), so results stay exactly today's.
-With them, one dynamic programme per utterance over the normalised tokens, with steps:
+With them, ignored tokens are removed from both sides; an utterance that no other rule
+touches (no optional word in its reference, no spelling of a group on both sides) is then
+aligned by :func:`~rescore.wer.align_many` too, so rules change only the utterances they
+apply to (and cost little time on the rest). The others get one dynamic programme over the
+normalised tokens, with steps:
 
 =============  =================================  ======  ===============================
 step           consumes (reference, hypothesis)    errors  counted as
@@ -34,7 +38,9 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+import numpy as np
 from rapidfuzz.distance import Indel
+from rapidfuzz.process import cdist
 
 from rescore.rules import ScoringRules
 from rescore.wer import Alignment, WordOp, align_many
@@ -53,6 +59,7 @@ class CompiledRules:
     longest: int
     optional: frozenset[str]
     ignore: frozenset[str]
+    first_words: frozenset[str]
 
     @classmethod
     def of(cls, rules: ScoringRules) -> CompiledRules:
@@ -65,7 +72,8 @@ class CompiledRules:
                     phrases[words] = gid
         optional = frozenset(w for entry in rules.optional for w in rules.normalised(entry))
         return cls(phrases=phrases, longest=max(map(len, phrases), default=0),
-                   optional=optional, ignore=frozenset(rules.ignore))
+                   optional=optional, ignore=frozenset(rules.ignore),
+                   first_words=frozenset(p[0] for p in phrases))
 
     def _spans(self, words: Sequence[str]) -> list[list[tuple[int, int]]]:
         """For each position, the (length, group) of every phrase that starts there."""
@@ -79,6 +87,21 @@ class CompiledRules:
                     out[i].append((n, gid))
         return out
 
+    def kept(self, words: Sequence[str]) -> list[str]:
+        """``words`` without the ignored tokens."""
+        return [w for w in words if w not in self.ignore]
+
+    def touches(self, ref: Sequence[str], hyp: Sequence[str]) -> bool:
+        """Whether a rule can apply: an optional reference word, or a spelling of some
+        group on each side (ignored tokens already removed)."""
+        if any(w in self.optional for w in ref):
+            return True
+        if not self.phrases:
+            return False
+        firsts = self.first_words
+        return any(w in firsts for w in ref) and any(w in firsts for w in hyp) and \
+            any(self._spans(ref)) and any(self._spans(hyp))
+
     def align(self, ref: Sequence[str], hyp: Sequence[str]) -> Alignment:
         """The alignment of one hypothesis against its reference under these rules."""
         r = [w for w in ref if w not in self.ignore]
@@ -89,6 +112,9 @@ class CompiledRules:
         back: list[list[tuple[int, int, WordOp] | None]] = [[None] * (m + 1)
                                                              for _ in range(n + 1)]
         cost[0][0] = _START
+        # every pair's character similarity at once (rapidfuzz, in C)
+        sims = cdist(r, h, scorer=Indel.normalized_similarity, dtype=np.float64).tolist() \
+            if n and m else []
 
         def relax(i: int, j: int, ni: int, nj: int, c: _Cost, op: WordOp) -> None:
             if c < cost[ni][nj]:
@@ -104,8 +130,7 @@ class CompiledRules:
                         relax(i, j, i + 1, j + 1, (e, neg_hits - 1, neg_sim),
                               WordOp("equal", a, b))
                     else:
-                        sim = float(Indel.normalized_similarity(a, b))
-                        relax(i, j, i + 1, j + 1, (e + 1, neg_hits, neg_sim - sim),
+                        relax(i, j, i + 1, j + 1, (e + 1, neg_hits, neg_sim - sims[i][j]),
                               WordOp("substitute", a, b))
                 if i < n:
                     if r[i] in self.optional:
@@ -145,4 +170,18 @@ def align_with_rules(
     if len(refs) != len(hyps):
         raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
     compiled = CompiledRules.of(rules)
-    return [compiled.align(r, h) for r, h in zip(refs, hyps, strict=True)]
+    out: list[Alignment | None] = [None] * len(refs)
+    plain: list[int] = []
+    kept_r: list[list[str]] = []
+    kept_h: list[list[str]] = []
+    for k, (ref, hyp) in enumerate(zip(refs, hyps, strict=True)):
+        r, h = compiled.kept(ref), compiled.kept(hyp)
+        if compiled.touches(r, h):
+            out[k] = compiled.align(r, h)
+        else:
+            plain.append(k)
+            kept_r.append(r)
+            kept_h.append(h)
+    for k, al in zip(plain, align_many(kept_r, kept_h), strict=True):
+        out[k] = al
+    return [al for al in out if al is not None]

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import jiwer
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from rapidfuzz.distance import Levenshtein
 
+from rescore.nbest import read_nbest
 from rescore.text import tokens
 from rescore.wer import (
     align,
@@ -200,3 +204,28 @@ def test_cer_without_spaces_ignores_where_words_break() -> None:
     assert corpus_cer([["東京", "都"]], [["東", "京都"]], spaces=False).cer == 0.0
     assert corpus_cer([["東京", "都"]], [["東", "京都"]]).cer == pytest.approx(
         jiwer.cer("東京 都", "東 京都"), abs=TOL)
+
+
+@pytest.mark.parametrize("name", ["warehouse_espeak.jsonl", "warehouse_flite.jsonl"])
+def test_tie_break_keeps_jiwer_counts_on_recognizer_lists(sample_dir: Path, name: str) -> None:
+    # source: jiwer.process_words (reference library) on every hypothesis of real lists
+    refs: list[list[str]] = []
+    hyps: list[list[str]] = []
+    for utt in read_nbest(sample_dir / name):
+        for h in utt["hypotheses"]:
+            if utt.get("reference") and h["text"]:
+                refs.append(tokens(utt["reference"]))
+                hyps.append(tokens(h["text"]))
+    pairs = [(r, h) for r, h in zip(refs, hyps, strict=True) if r and h]
+    out = jiwer.process_words([" ".join(r) for r, _ in pairs], [" ".join(h) for _, h in pairs])
+    als = align_many([r for r, _ in pairs], [h for _, h in pairs])
+    got = counts_from_alignments(als)
+    for k, (s, d, i, hits) in enumerate(zip(got.substitutions, got.deletions, got.insertions,
+                                            got.hits, strict=True)):
+        ref, hyp = pairs[k]
+        assert als[k].reference == ref and als[k].hypothesis == hyp
+        assert (s + d + i) == Levenshtein.distance(ref, hyp)
+        assert s + d + hits == len(ref)
+    assert (int(got.substitutions.sum()), int(got.deletions.sum()),
+            int(got.insertions.sum()), int(got.hits.sum())) == (
+        out.substitutions, out.deletions, out.insertions, out.hits)

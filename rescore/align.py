@@ -67,8 +67,7 @@ class CompiledRules:
         for gid, group in enumerate(rules.equivalent):
             for spelling in group:
                 words = tuple(rules.normalised(spelling))
-                # a spelling in two groups joins them: the later group wins its phrases
-                if words:
+                if words:  # a spelling is in one group only (ScoringRules checks)
                     phrases[words] = gid
         optional = frozenset(w for entry in rules.optional for w in rules.normalised(entry))
         return cls(phrases=phrases, longest=max(map(len, phrases), default=0),

@@ -35,6 +35,7 @@ from pydantic import (
     Field,
     ValidationError,
     field_validator,
+    model_validator,
 )
 
 from rescore.errors import InputError
@@ -115,6 +116,18 @@ class ScoringRules(BaseModel):
         if twice:
             raise ValueError(f"step listed twice: {', '.join(twice)}")
         return steps
+
+    @model_validator(mode="after")
+    def _one_group_per_spelling(self) -> ScoringRules:
+        seen: dict[tuple[str, ...], int] = {}
+        for k, group in enumerate(self.equivalent):
+            for spelling in group:
+                words = tuple(self.normalised(spelling))
+                if seen.get(words, k) != k:
+                    raise ValueError(f"equivalent: {' '.join(words)!r} is in groups "
+                                     f"{seen[words]} and {k}; merge them into one")
+                seen[words] = k
+        return self
 
     def words(self, text: str) -> list[str]:
         """The scored tokens of ``text``: ignored tokens dropped, then the normalisation."""
@@ -198,6 +211,9 @@ def _first_error(exc: ValidationError) -> tuple[str, str, str]:
     if first["type"] == "extra_forbidden":
         msg = ("unknown key; expected one of name, normalise, keep_punctuation, "
                "equivalent, optional, ignore")
+    elif not loc and re.match(r"^\w+: ", msg):  # a check across entries names its key
+        key, msg = msg.split(": ", 1)
+        field = key
     elif first["type"] == "literal_error":
         msg = f"unknown step {first['input']!r}; expected one of {', '.join(DEFAULT_STEPS)}"
     return field or "rules", msg, key

@@ -67,6 +67,9 @@ def test_empty_file_is_the_plain_rule() -> None:
     (b"optional = ['uh huh']\n", "team.toml:1: optional[0]: 'uh huh' must be one token"),
     (b"keep_punctuation = ['ab']\n",
      "team.toml:1: keep_punctuation[0]: 'ab' is not one punctuation character"),
+    # "OK" and "ok" are one spelling after lowercasing: two groups would be ambiguous
+    (b"equivalent = [['ok', 'okay'], ['OK', 'k']]\n",
+     "team.toml:1: equivalent: 'ok' is in groups 0 and 1; merge them into one"),
     (b"ignore = 'noise'\n", "team.toml:1: ignore: Input should be a valid tuple"),
 ])
 def test_errors_name_file_line_and_key(data: bytes, expected: str) -> None:

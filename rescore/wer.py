@@ -8,11 +8,12 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
+from itertools import pairwise
 from typing import Any, Literal
 
 import jiwer
 import numpy as np
-from rapidfuzz.distance import Levenshtein
+from rapidfuzz.distance import Indel, Levenshtein
 
 # every command refuses a reference set without words: its WER, errors over zero words,
 # is undefined (one rule for wer, check, tune and report)
@@ -112,16 +113,26 @@ def corpus_wer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> 
 
 # --- word-level alignments and character error rate -------------------------------------
 
-OpKind = Literal["equal", "substitute", "delete", "insert"]
+OpKind = Literal["equal", "substitute", "delete", "insert", "equivalent", "optional"]
 
 
 @dataclass(frozen=True)
 class WordOp:
-    """One step of an alignment: ``ref`` is None for an insertion, ``hyp`` for a deletion."""
+    """One step of an alignment: ``ref`` is None for an insertion, ``hyp`` for a deletion.
+
+    Under scoring rules (:mod:`rescore.align`) two more kinds occur: ``equivalent``, where
+    ``ref`` and ``hyp`` are spellings of one equivalence group (each may be a phrase, its
+    words joined by single spaces), and ``optional``, an optional reference word the
+    hypothesis left out (``hyp`` None). Both are correct words: every reference word of
+    theirs counts as a hit.
+    """
 
     kind: OpKind
     ref: str | None
     hyp: str | None
+
+
+_CORRECT = ("equal", "equivalent", "optional")
 
 
 @dataclass(frozen=True)
@@ -135,7 +146,8 @@ class Alignment:
 
     @property
     def hits(self) -> int:
-        return self._count("equal")
+        return sum(1 if op.kind != "equivalent" else op.ref.count(" ") + 1
+                   for op in self.ops if op.kind in _CORRECT and op.ref is not None)
 
     @property
     def substitutions(self) -> int:
@@ -151,15 +163,17 @@ class Alignment:
 
     @property
     def errors(self) -> int:
-        return len(self.ops) - self.hits
+        return sum(1 for op in self.ops if op.kind not in _CORRECT)
 
     @property
     def reference(self) -> list[str]:
-        return [op.ref for op in self.ops if op.ref is not None]
+        return [w for op in self.ops if op.ref is not None
+                for w in (op.ref.split(" ") if op.kind == "equivalent" else (op.ref,))]
 
     @property
     def hypothesis(self) -> list[str]:
-        return [op.hyp for op in self.ops if op.hyp is not None]
+        return [w for op in self.ops if op.hyp is not None
+                for w in (op.hyp.split(" ") if op.kind == "equivalent" else (op.hyp,))]
 
     def counts(self) -> tuple[int, int, int, int]:
         """(substitutions, deletions, insertions, hits), the order of :func:`align_counts`."""
@@ -167,6 +181,17 @@ class Alignment:
 
 
 def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[Any]) -> Alignment:
+    ops = _jiwer_ops(ref, hyp, chunks)
+    # only a substitution beside an insertion or a deletion leaves a choice of pairs
+    types = [c.type for c in chunks]
+    if any(a != b and "substitute" in (a, b) and "equal" not in (a, b)
+           for a, b in pairwise(types)):
+        ops = _prefer_similar(ops)
+    return Alignment(tuple(ops))
+
+
+def _jiwer_ops(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[Any]) -> list[WordOp]:
+    """jiwer's alignment chunks spelt out word by word, as jiwer chose them."""
     ops: list[WordOp] = []
     for c in chunks:
         r0, r1, h0, h1 = c.ref_start_idx, c.ref_end_idx, c.hyp_start_idx, c.hyp_end_idx
@@ -177,7 +202,108 @@ def _ops_from_chunks(ref: Sequence[str], hyp: Sequence[str], chunks: Sequence[An
             ops.extend(WordOp("delete", ref[k], None) for k in range(r0, r1))
         else:
             ops.extend(WordOp("insert", None, hyp[k]) for k in range(h0, h1))
-    return Alignment(tuple(ops))
+    return ops
+
+
+# --- tie-break: substitute the words that look alike ------------------------------------
+#
+# jiwer returns one minimum-edit alignment; where a substitution and an insertion (or a
+# deletion) cost the same it may pair the wrong words ("croissant -> aunt" with "cross"
+# inserted). The post-pass below only re-pairs words inside a run of errors between two
+# hits, so every count jiwer gave stays as it was:
+#
+# * In a minimum-edit alignment, a run of consecutive non-hit steps covering r reference
+#   and y hypothesis words holds exactly min(r, y) substitutions and either only
+#   deletions or only insertions: were there fewer, pairing one more deleted word with one
+#   more inserted word would cost one edit less.
+# * Any order-preserving choice of which min(r, y) words of the longer side are
+#   substituted therefore keeps that run's substitutions, deletions and insertions, and
+#   leaves the hits (outside the run) untouched; so the alignment keeps its cost and every
+#   count. (Pairing two equal words would be a hit and a cheaper alignment, so it never
+#   happens; it is refused all the same.)
+# * Among those choices we take the one with the largest sum of character similarities of
+#   the substituted pairs (rapidfuzz's normalised Indel similarity, 1 - indel distance /
+#   total characters), and keep jiwer's own pairing unless another is strictly more alike.
+# Runs where both sides have the same length, or one side is empty, have one pairing only
+# and are passed through; those with a choice are rare, so the pass costs little.
+
+_SIMILARITY_EPS = 1e-9
+
+
+def _prefer_similar(ops: list[WordOp]) -> list[WordOp]:
+    out: list[WordOp] = []
+    start = 0
+    n = len(ops)
+    while start < n:
+        if ops[start].kind == "equal":
+            out.append(ops[start])
+            start += 1
+            continue
+        end = start
+        while end < n and ops[end].kind != "equal":
+            end += 1
+        out.extend(_repair_run(ops[start:end]))
+        start = end
+    return out
+
+
+def _repair_run(run: list[WordOp]) -> list[WordOp]:
+    refs = [op.ref for op in run if op.ref is not None]
+    hyps = [op.hyp for op in run if op.hyp is not None]
+    if len(refs) == len(hyps) or not refs or not hyps:
+        return run
+    swap = len(refs) > len(hyps)  # deletions: pair each hypothesis word with a reference word
+    short, long = (hyps, refs) if swap else (refs, hyps)
+    sim = [[-1.0 if a == b else float(Indel.normalized_similarity(a, b)) for b in long]
+           for a in short]
+    original = sum(sim[k][long_index] for k, long_index in enumerate(
+        _pairing_of(run, swap)))
+    chosen = _best_pairing(sim, len(short), len(long))
+    if sum(sim[k][j] for k, j in enumerate(chosen)) <= original + _SIMILARITY_EPS:
+        return run
+    paired = dict(zip(chosen, range(len(short)), strict=True))
+    rebuilt: list[WordOp] = []
+    for j, word in enumerate(long):
+        k = paired.get(j)
+        if k is None:
+            rebuilt.append(WordOp("delete", word, None) if swap else WordOp("insert", None, word))
+        elif swap:
+            rebuilt.append(WordOp("substitute", word, short[k]))
+        else:
+            rebuilt.append(WordOp("substitute", short[k], word))
+    return rebuilt
+
+
+def _pairing_of(run: list[WordOp], swap: bool) -> list[int]:
+    """Index into the longer side of each substituted word of the shorter side."""
+    out: list[int] = []
+    j = 0
+    for op in run:
+        if op.kind == "substitute":
+            out.append(j)
+        if (op.ref if swap else op.hyp) is not None:
+            j += 1
+    return out
+
+
+def _best_pairing(sim: list[list[float]], n_short: int, n_long: int) -> list[int]:
+    """Increasing indices into the longer side, one per word of the shorter side, with the
+    largest total similarity (dynamic programme over prefixes, O(n_short * n_long))."""
+    neg = float("-inf")
+    # best[k][j]: the first k short words paired within the first j long words
+    best = [[0.0] * (n_long + 1)] + [[neg] * (n_long + 1) for _ in range(n_short)]
+    for k in range(1, n_short + 1):
+        row, prev, s = best[k], best[k - 1], sim[k - 1]
+        for j in range(k, n_long + 1):
+            row[j] = max(row[j - 1], prev[j - 1] + s[j - 1])
+    chosen: list[int] = []
+    k, j = n_short, n_long
+    while k > 0:
+        if best[k - 1][j - 1] + sim[k - 1][j - 1] >= best[k][j - 1]:
+            chosen.append(j - 1)
+            k -= 1
+        j -= 1
+    return chosen[::-1]
 
 
 def align_many(
@@ -216,7 +342,8 @@ def counts_from_alignments(alignments: Sequence[Alignment]) -> UtteranceCounts:
 
 @dataclass(frozen=True)
 class CerResult:
-    """Corpus character error rate over the normalised text, spaces between words included."""
+    """Corpus character error rate over the normalised text (spaces between words included
+    unless asked otherwise, see :func:`corpus_cer`)."""
 
     cer: float
     substitutions: int
@@ -229,12 +356,19 @@ class CerResult:
         return asdict(self)
 
 
-def corpus_cer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]]) -> CerResult:
-    """Character errors of ``" ".join(words)`` on both sides, summed over the corpus."""
+def corpus_cer(refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]], *,
+               spaces: bool = True) -> CerResult:
+    """Character errors of ``" ".join(words)`` on both sides, summed over the corpus.
+
+    ``spaces=False`` is the character unit for scripts written without word spaces: the
+    words are joined with nothing between them, so a space is never a character to get
+    right or wrong (``jiwer.cer`` of ``"".join(words)`` on both sides).
+    """
     if len(refs) != len(hyps):
         raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
     s = d = i = h = 0
-    pairs = [(" ".join(r), " ".join(y)) for r, y in zip(refs, hyps, strict=True)]
+    sep = " " if spaces else ""
+    pairs = [(sep.join(r), sep.join(y)) for r, y in zip(refs, hyps, strict=True)]
     full = [(r, y) for r, y in pairs if r and y]
     for r, y in pairs:
         if not r:

@@ -64,6 +64,8 @@ class NGramModel:
         self.closed_vocab = closed_vocab
         self.cutoffs = None if cutoffs is None else list(cutoffs)
         self.prune = prune
+        # training-sentence fingerprints (sorted uint64) stored beside the model, or None
+        self.sentence_hashes: npt.NDArray[np.uint64] | None = None
         self._checksum: str | None = None
 
     # --- settings -------------------------------------------------------------------------
@@ -173,10 +175,16 @@ class NGramModel:
             from rescore.lm.store import content_parts
 
             digest = hashlib.sha256()
-            for part in content_parts(self._fitted(), self.metadata_):
+            for part in content_parts(self._fitted(), self.metadata_, self.extras()):
                 digest.update(part)
             self._checksum = digest.hexdigest()
         return self._checksum
+
+    def extras(self) -> dict[str, npt.NDArray[Any]]:
+        """The named arrays a native file stores beside the model (``extra.NAME``)."""
+        if self.sentence_hashes is None:
+            return {}
+        return {"sentence_hashes": self.sentence_hashes}
 
     # --- scoring --------------------------------------------------------------------------
 

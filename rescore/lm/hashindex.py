@@ -142,11 +142,12 @@ class BucketIndex:
     bounds and compares the few ``rest`` values in it, one batched round per position.
     """
 
-    __slots__ = ("_mask", "_mult", "bits", "rest", "shift", "starts")
+    __slots__ = ("_mask", "_mult", "bits", "duplicates", "rest", "shift", "starts")
 
     def __init__(self, bits: int, shift: int, starts: npt.NDArray[Any],
                  rest: npt.NDArray[Any]) -> None:
         self.bits, self.shift, self.starts, self.rest = bits, shift, starts, rest
+        self.duplicates = False  # set by build: some key was given more than once
         self._mask = np.uint64((1 << bits) - 1) if bits < 64 else np.uint64(0xFFFFFFFFFFFFFFFF)
         self._mult = np.uint64(_multiplier(bits))
 
@@ -174,7 +175,9 @@ class BucketIndex:
         np.cumsum(np.bincount(bucket, minlength=1 << b), out=starts[1:])
         rest_type = np.uint32 if shift <= 32 else np.uint64
         rest = (h & np.uint64((1 << shift) - 1)).astype(rest_type)
-        return cls(bits, shift, starts, rest), perm.astype(np.int64)
+        index = cls(bits, shift, starts, rest)
+        index.duplicates = bool(len(h) > 1 and np.any(h[1:] == h[:-1]))
+        return index, perm.astype(np.int64)
 
     def __len__(self) -> int:
         return len(self.rest)

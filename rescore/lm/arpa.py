@@ -324,7 +324,7 @@ def _build(vocab: Vocabulary, mats: list[I64], probs: list[F64], bows: list[F64]
 # match, a damaged gzip stream...) hands the file to the exact reader, which reads any
 # valid file and names the line of any error.
 
-BLOCK_BYTES = 4 << 20
+BLOCK_BYTES = 2 << 20
 WORD_BYTES = 16  # words up to this length are matched as two integers, longer ones by a dict
 _LOW = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [(1 << 64) - 1], dtype=np.uint64)
 _NUMBER_BYTES = np.zeros(256, dtype=bool)
@@ -400,10 +400,16 @@ class _Order:
 
     def __init__(self, k: int, count: int, top: bool) -> None:
         self.k, self.count, self.top, self.filled = k, count, top, 0
-        self.words = np.empty((count, k), dtype=np.int32) if k > 1 else None
+        # the key of each n-gram (its suffix's id x vocabulary size + its first word)
+        self.keys = np.empty(count, dtype=np.uint64) if k > 1 else None
         self.prob = np.empty(count, dtype=np.float64)
         self.bow = None if top else np.zeros(count, dtype=np.float64)
         self.unigrams: list[bytes] = []
+
+    def take_keys(self) -> npt.NDArray[np.uint64]:
+        keys, self.keys = self.keys, None
+        assert keys is not None
+        return keys
 
 
 class _FastReader:
@@ -543,10 +549,31 @@ class _FastReader:
                     raise _Slow
                 tok_start = np.stack([w_start, spaces + 1], axis=1)
                 tok_end = np.stack([spaces, w_end], axis=1)
-            assert order.words is not None
-            order.words[at:at + n] = self.word_ids(padded, block, tok_start.reshape(-1),
-                                                   tok_end.reshape(-1)).reshape(n, k)
+            assert order.keys is not None
+            words = self.word_ids(padded, block, tok_start.reshape(-1),
+                                  tok_end.reshape(-1)).reshape(n, k)
+            order.keys[at:at + n] = self.key_of(words)
         order.filled += n
+
+    def key_of(self, words: npt.NDArray[np.int32]) -> npt.NDArray[np.uint64]:
+        """Each row's key: its suffix found order by order in the tables made so far."""
+        assert self.vocab is not None
+        k = words.shape[1]
+        v = np.uint64(len(self.vocab))
+        suffix = words[:, k - 1].astype(np.int64)
+        for j in range(2, k):
+            index = self.index[j - 1]
+            assert index is not None
+            key = suffix.astype(np.uint64)
+            key *= v
+            key += words[:, k - j].astype(np.uint64)
+            suffix = index.find(key)
+            if np.any(suffix < 0):
+                raise _Slow  # a suffix the file does not list: the exact reader adds it
+        key = suffix.astype(np.uint64)
+        key *= v
+        key += words[:, 0].astype(np.uint64)
+        return key
 
     # -- words to ids -----------------------------------------------------------------------
 
@@ -637,33 +664,22 @@ class _FastReader:
         self.current = None
 
     def add_order(self, order: _Order) -> None:
-        assert self.vocab is not None and order.words is not None
-        k, words = order.k, order.words
-        v = np.uint64(len(self.vocab))
-        suffix = words[:, k - 1].astype(np.int64)
-        for j in range(2, k):
-            index = self.index[j - 1]
-            assert index is not None
-            key = suffix.astype(np.uint64)
-            key *= v
-            key += words[:, k - j].astype(np.uint64)
-            suffix = index.find(key)
-            if np.any(suffix < 0):
-                raise _Slow  # a suffix the file does not list: the exact reader adds it
-        key = suffix.astype(np.uint64)
-        del suffix
-        key *= v
-        key += words[:, 0].astype(np.uint64)
-        order.words = None
-        del words
-        index, perm = hashindex.BucketIndex.build(key, len(self.logp[k - 2]) * int(v))
-        del key
+        assert self.vocab is not None and order.keys is not None
+        space = len(self.logp[order.k - 2]) * len(self.vocab)
+        keys = order.take_keys()
+        index, perm = hashindex.BucketIndex.build(keys, space, overwrite=True)
         if index.duplicates:
             raise _Slow  # an n-gram listed twice: the exact reader names both lines
         self.index.append(index)
-        self.logp.append(_ln10(order.prob[perm]))
+        # the arrays given up are reused: the keys' memory takes the probabilities, the
+        # read probabilities' memory the back-off weights
+        logp = np.take(order.prob, perm, out=keys.view(np.float64))
+        self.logp.append(_ln10(logp))
         if order.bow is not None:
-            self.bow.append(_ln10(order.bow[perm]))
+            bow = np.take(order.bow, perm, out=order.prob)
+            self.bow.append(_ln10(bow))
+            order.bow = None
+        order.prob = np.zeros(0)
 
     def tables(self) -> BackoffTables:
         if self.state != "end" or self.vocab is None:

@@ -157,27 +157,44 @@ class BucketIndex:
         return max(1, (max(key_space, 1) - 1).bit_length())
 
     @classmethod
-    def build(cls, keys: U64, key_space: int) -> tuple[BucketIndex, I64]:
-        """The index of ``keys`` (unique, each below ``key_space``) and the permutation that
-        puts them (and anything stored beside them) in its order: ``keys[perm]``."""
+    def build(cls, keys: U64, key_space: int, *, overwrite: bool = False
+              ) -> tuple[BucketIndex, I64]:
+        """The index of ``keys`` (each below ``key_space``) and the permutation that puts
+        them (and anything stored beside them) in its order: ``keys[perm]``. A key given
+        twice sets ``duplicates``. ``overwrite`` lets the hashes replace ``keys`` in place
+        (less memory; the caller gives the array up)."""
         bits = cls.key_bits(key_space)
         b = min(bucket_bits(len(keys)), bits)
         shift = bits - b
         mask = np.uint64((1 << bits) - 1) if bits < 64 else np.uint64(0xFFFFFFFFFFFFFFFF)
         with np.errstate(over="ignore"):
-            h = keys * np.uint64(_multiplier(bits))
+            if overwrite:
+                h = keys
+                h *= np.uint64(_multiplier(bits))
+            else:
+                h = keys * np.uint64(_multiplier(bits))
         h &= mask
-        perm = np.argsort(h, kind="stable")
-        h = h[perm]
         count_type = np.uint32 if len(keys) < (1 << 32) else np.uint64
-        bucket = (h >> np.uint64(shift)).astype(np.int64)
-        starts = np.zeros((1 << b) + 1, dtype=count_type)
-        np.cumsum(np.bincount(bucket, minlength=1 << b), out=starts[1:])
+        del keys
+        perm = np.argsort(h)  # introsort: no buffer beside the result (equal keys: any order)
+        # the rests in sorted order, a slice at a time (no sorted copy of every hash)
         rest_type = np.uint32 if shift <= 32 else np.uint64
-        rest = (h & np.uint64((1 << shift) - 1)).astype(rest_type)
+        rest = np.empty(len(h), dtype=rest_type)
+        low = np.uint64((1 << shift) - 1)
+        duplicates = False
+        step = 1 << 20
+        for at in range(0, len(h), step):
+            part = h[perm[max(at - 1, 0):at + step]]
+            duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
+            part &= low
+            rest[at:at + step] = part[1:] if at else part
+        h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
+        starts = np.zeros((1 << b) + 1, dtype=count_type)
+        np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
+        del h
         index = cls(bits, shift, starts, rest)
-        index.duplicates = bool(len(h) > 1 and np.any(h[1:] == h[:-1]))
-        return index, perm.astype(np.int64)
+        index.duplicates = duplicates
+        return index, perm.astype(np.int64, copy=False)
 
     def __len__(self) -> int:
         return len(self.rest)

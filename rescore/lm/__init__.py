@@ -45,7 +45,7 @@ def load_model(path: str | Path, *, verify: bool = False) -> NGramModel:
     ``verify`` adds, for a native file, the structural checks that read every value (see
     :func:`rescore.lm.store.load_file`); the cheap ones always run.
     """
-    if is_arpa_name(path):
+    if is_arpa_name(path) or str(path) == "-":  # standard input: ARPA text
         from rescore.lm import arpa
 
         tables, meta = arpa.read(path)

@@ -213,6 +213,8 @@ class BucketIndex:
         rest that is not smaller than its own; the first round runs over the whole batch,
         later rounds over the queries still scanning.
         """
+        if not len(self.rest):
+            return np.full(len(queries), EMPTY, dtype=np.int64)
         h = self._hash(queries)
         bucket = (h >> np.uint64(self.shift)).astype(np.intp)
         want = (h & np.uint64((1 << self.shift) - 1)).astype(self.rest.dtype)

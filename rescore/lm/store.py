@@ -69,6 +69,8 @@ class Loaded:
     metadata: dict[str, Any]
     sha256: str
     extras: dict[str, np.ndarray[Any, Any]]
+    version: int = FORMAT_VERSION
+    size: int = 0  # bytes of the file
 
 
 def _le(arr: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
@@ -290,7 +292,7 @@ def load_file(path: str | Path, *, verify: bool = False) -> Loaded:
         raise bad_file(path, f"inconsistent contents ({exc})") from None
     except RecursionError:  # pragma: no cover - the depth is checked before parsing
         raise bad_file(path, "header nested too deeply") from None
-    return Loaded(tables, metadata, sha, extras)
+    return Loaded(tables, metadata, sha, extras, int(version), len(data))
 
 
 def _view_arrays(data: mmap.mmap, directory: Any, start: int, end: int
@@ -314,8 +316,9 @@ def _view_arrays(data: mmap.mmap, directory: Any, start: int, end: int
                 or not all(isinstance(d, int) and not isinstance(d, bool) and d >= 0
                            for d in shape)):
             raise ValueError(f"array {name} shape {shape!r}")
-        if (not isinstance(offset, int) or isinstance(offset, bool) or offset < at
-                or offset % ALIGN):
+        # the layout is canonical: each array starts at the first aligned offset after the
+        # one before it, so an offset moved elsewhere (into another array) is refused
+        if not isinstance(offset, int) or isinstance(offset, bool) or offset != at + _pad(at):
             raise ValueError(f"array {name} offset {offset!r}")
         dtype = np.dtype(dtype_str)
         nbytes = shape[0] * dtype.itemsize

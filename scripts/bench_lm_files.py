@@ -91,11 +91,11 @@ def count_queries(model: NGramModel, sents: list[list[str]]) -> int:
         seen[0] += len(q)
         return find(self, k, q)
 
-    BackoffTables.find = counting  # type: ignore[method-assign]
+    BackoffTables.find = counting  # type: ignore[method-assign,assignment]
     try:
         model.logprob(sents)
     finally:
-        BackoffTables.find = find  # type: ignore[method-assign]
+        BackoffTables.find = find  # type: ignore[method-assign,assignment]
     return seen[0]
 
 

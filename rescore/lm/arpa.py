@@ -30,6 +30,7 @@ from rescore.ioutil import atomic_output, iter_text_lines, open_binary
 from rescore.lm import hashindex
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
+from rescore.process import give_back_freed_memory
 
 F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]
@@ -660,6 +661,7 @@ class _FastReader:
             self.meta = {"method": "arpa", "closed_vocab": UNK_ID not in unigram_ids,
                          "bos_listed": BOS_ID in unigram_ids}
         else:
+            give_back_freed_memory()  # the blocks' temporaries: the peak comes next
             self.add_order(order)
         self.current = None
 

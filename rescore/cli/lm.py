@@ -56,6 +56,14 @@ _Closed = Annotated[bool, typer.Option("--closed-vocab", help="Leave unknown wor
 _K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
 _Cutoffs = Annotated[str | None, typer.Option("--cutoffs", help="Least count per order from 2.")]
 _Prune = Annotated[float | None, typer.Option("--prune", help="Entropy-pruning threshold.")]
+_Quantize = Annotated[int | None, typer.Option(
+    "--quantize", metavar="BITS",
+    help="Store probabilities and weights as 8- or 16-bit codes (lossy, smaller).")]
+
+
+def _check_bits(bits: int | None) -> None:
+    if bits is not None and bits not in (8, 16):
+        raise UsageError(f"--quantize takes 8 or 16 bits, got {bits}")
 
 
 @guarded
@@ -71,8 +79,10 @@ def build(
     k: _K = 1.0,
     cutoffs: _Cutoffs = None,
     prune: _Prune = None,
+    quantize: _Quantize = None,
 ) -> None:
     """Train an n-gram language model."""
+    _check_bits(quantize)
     check_output_path(output)
     model = NGramModel(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
@@ -82,6 +92,8 @@ def build(
     with stages(f"lm build ({len(text)} file{'s' if len(text) > 1 else ''})") as report:
         model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
                   progress=report)
+    if quantize is not None:
+        model.quantize(quantize)
     save_model(model, output)
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "
@@ -127,10 +139,15 @@ def convert(
     target: Annotated[Path, typer.Argument(metavar="OUT", help="Model to write (by file ending).")],
     verify: Annotated[bool, typer.Option(
         "--verify", help="Check every value of a native input first (as lm check).")] = False,
+    quantize: _Quantize = None,
 ) -> None:
     """Convert a model between ARPA text and the native file."""
+    _check_bits(quantize)
     check_output_path(target)
-    save_model(load_model(source, verify=verify), target)
+    model = load_model(source, verify=verify)
+    if quantize is not None:
+        model.quantize(quantize)
+    save_model(model, target)
     info(f"wrote {target}")
 
 

@@ -44,7 +44,7 @@ import xxhash
 from rescore.errors import ModelFileError
 from rescore.ioutil import atomic_output
 from rescore.lm.hashindex import BucketIndex
-from rescore.lm.tables import BackoffTables
+from rescore.lm.tables import BackoffTables, Coded
 from rescore.lm.vocab import SPECIALS, Vocabulary
 
 MAGIC = b"RSCRLM\x00\n"
@@ -92,12 +92,20 @@ def _arrays(tables: BackoffTables, extras: Mapping[str, np.ndarray[Any, Any]] | 
             out.append((f"start{k}", idx.starts))
             out.append((f"rest{k}", idx.rest))
             index.append({"order": k, "bits": idx.bits, "shift": idx.shift})
-        out.append((f"logp{k}", tables.logp[k - 1]))
+        out += _values(f"logp{k}", tables.logp[k - 1])
         if k < tables.order:
-            out.append((f"bow{k}", tables.bow[k - 1]))
+            out += _values(f"bow{k}", tables.bow[k - 1])
     for name in sorted(extras or {}):
         out.append((EXTRA + name, np.asarray((extras or {})[name]).reshape(-1)))
     return [(n, _le(a)) for n, a in out], index
+
+
+def _values(name: str, values: Any) -> list[tuple[str, np.ndarray[Any, Any]]]:
+    """A table's arrays: float64 values, or a quantized table's codes and code book."""
+    if isinstance(values, Coded):
+        return [(name, values.codes), (name.replace("logp", "logpbook").replace(
+            "bow", "bowbook"), values.book)]
+    return [(name, values)]
 
 
 def _legacy_arrays(tables: BackoffTables) -> list[tuple[str, np.ndarray[Any, Any]]]:
@@ -354,6 +362,7 @@ def _compact_tables(order: int, arrays: dict[str, np.ndarray[Any, Any]], index_p
     v = len(vocab)
     known = {"vocab"} | {f"logp{k}" for k in range(1, order + 1)} \
         | {f"bow{k}" for k in range(1, order)} \
+        | {f"logpbook{k}" for k in range(2, order + 1)} | {f"bowbook{k}" for k in range(2, order)} \
         | {f"{a}{k}" for k in range(2, order + 1) for a in ("start", "rest")}
     stray = [n for n in arrays if n not in known and not n.startswith(EXTRA)]
     if stray:
@@ -384,9 +393,9 @@ def _compact_tables(order: int, arrays: dict[str, np.ndarray[Any, Any]], index_p
             raise ValueError(f"order {k} bucket starts")
         if n > 1 << 40:
             raise ValueError(f"order {k} count")
-        logp.append(_want(arrays, f"logp{k}", ("<f8",), n))
+        logp.append(_table(arrays, f"logp{k}", n))
         if k < order:
-            bow.append(_want(arrays, f"bow{k}", ("<f8",), n))
+            bow.append(_table(arrays, f"bow{k}", n))
         if verify:
             problem = idx.check()
             if problem is None and not idx.check_unique():
@@ -400,13 +409,32 @@ def _compact_tables(order: int, arrays: dict[str, np.ndarray[Any, Any]], index_p
     return tables
 
 
+def _table(arrays: dict[str, np.ndarray[Any, Any]], name: str, n: int) -> Any:
+    """A table of ``n`` float64 values, or (quantized) ``n`` codes and a full code book."""
+    arr = _want(arrays, name, ("<f8", "|u1", "<u2"), n)
+    if arr.dtype.str == "<f8":
+        return arr
+    book_name = name.replace("logp", "logpbook").replace("bow", "bowbook")
+    book = _want(arrays, book_name, ("<f8",))
+    if not 1 <= len(book) <= 1 << (8 * arr.dtype.itemsize):
+        raise ValueError(f"array {book_name} holds {len(book)} values")
+    return Coded(arr, book)  # a code past the book reads its last entry; --verify refuses it
+
+
 def _check_values(tables: BackoffTables) -> None:
     """Probabilities are numbers <= 0 (``-inf``: zero), back-off weights finite."""
+    def plain(values: Any) -> np.ndarray[Any, Any]:
+        if isinstance(values, Coded):
+            if len(values.codes) and int(values.codes.max()) >= len(values.book):
+                raise ValueError("a code past its code book")
+            return values.book
+        return np.asarray(values)
+
     for k in range(1, tables.order + 1):
-        p = tables.logp[k - 1]
+        p = plain(tables.logp[k - 1])
         if not bool(np.all(p <= 0)):  # NaN fails the comparison too
             raise ValueError(f"order {k} probabilities: NaN or above 1")
-        if k < tables.order and not bool(np.all(np.isfinite(tables.bow[k - 1]))):
+        if k < tables.order and not bool(np.all(np.isfinite(plain(tables.bow[k - 1])))):
             raise ValueError(f"order {k} back-off weights: not finite")
 
 

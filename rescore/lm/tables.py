@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -28,6 +29,33 @@ F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]
 I32 = npt.NDArray[np.int32]
 U64 = npt.NDArray[np.uint64]
+
+
+class Coded:
+    """A table kept as small integer codes into a code book (see :mod:`rescore.lm.quantize`):
+    indexed like the float64 array it stands for, it gives the book's values."""
+
+    __slots__ = ("book", "codes")
+
+    def __init__(self, codes: npt.NDArray[Any], book: F64) -> None:
+        self.codes, self.book = codes, book
+
+    def __getitem__(self, index: Any) -> F64:
+        # clipped: a code past the book (a crafted file) reads its last entry, never memory
+        # outside it
+        out: F64 = self.book.take(self.codes[index], mode="clip")
+        return out
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def values(self) -> F64:
+        out: F64 = self.book.take(self.codes, mode="clip")
+        return out
+
+    def as_table(self) -> F64:
+        """This object typed as the float64 table it stands for (it is indexed the same)."""
+        return self  # type: ignore[return-value]
 
 
 @dataclass(frozen=True)

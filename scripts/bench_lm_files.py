@@ -8,7 +8,9 @@ baseline measured in the same run on the same file:
 - ARPA import (``lm convert model.arpa model.lm``, a whole process, wall time and peak
   memory): against the exact line-by-line reader in a process of its own;
 - the native file: bytes per n-gram, load time and look-ups per second of format 3 against
-  format 2 (the previous format, written by ``store.save_legacy``).
+  format 2 (the previous format, written by ``store.save_legacy``);
+- ``--quantize 8`` and ``16``: bytes per n-gram and the relative change of held-out
+  perplexity against the exact model.
 
 Medians of 3 runs (5 for loading); a baseline slower than 20 s is timed once and says so.
 ``--quick`` runs a 300,000-word version (the targets are for the full size).
@@ -147,6 +149,21 @@ def main() -> None:
               f"{target(queries / t_new / 1e6, '>=', 5)}, format 2 "
               f"{queries / t_old / 1e6:.1f} M/s (medians of 3); ratio {t_old / t_new:.2f}x "
               f"(the same scores, bit for bit)")
+
+        # quantized copies: size and held-out perplexity against the exact model
+        tokens = sum(len(s) + 1 for s in held)
+        exact_ppl = float(np.exp(-a.sum() / tokens))
+        for bits in (8, 16):
+            qpath = Path(tmp) / f"q{bits}.lm"
+            save_model(NGramModel.from_tables(model.tables_, model.metadata_).quantize(bits),
+                       qpath)
+            q_ppl = float(np.exp(-load_model(qpath).logprob(held).sum() / tokens))
+            change = q_ppl / exact_ppl - 1
+            q_per = qpath.stat().st_size / n
+            print(f"--quantize {bits}: {q_per:.2f} bytes per n-gram {target(q_per, '<=', 10)}; "
+                  f"held-out perplexity {q_ppl:.3f} against {exact_ppl:.3f} exact: "
+                  f"{100 * change:+.3f} % "
+                  + (target(abs(100 * change), '<=', 1) if bits == 8 else ""))
 
         # ARPA export
         lines = Path(tmp) / "lines.arpa"

@@ -67,3 +67,18 @@ def keep_freed_memory() -> bool:
         return False
     return bool(libc.mallopt(_M_MMAP_MAX, 0)) and bool(
         libc.mallopt(_M_TRIM_THRESHOLD, KEEP_FREED_BYTES))
+
+
+def give_back_freed_memory() -> bool:
+    """Return the freed heap memory that :func:`keep_freed_memory` keeps to the system now
+    (glibc's ``malloc_trim``), before a step whose peak matters more than its speed.
+    Returns whether glibc did so; elsewhere nothing happens."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(None)
+    except OSError:
+        return False
+    if not hasattr(libc, "gnu_get_libc_version") or not hasattr(libc, "malloc_trim"):
+        return False
+    return bool(libc.malloc_trim(0))

@@ -159,12 +159,12 @@ def test_other_format_version_is_refused_clearly(saved: tuple[NGramModel, Path])
     # as a wrong model; only the version differs here, the checksums are valid.
     _, path = saved
     original = path.read_bytes()
-    assert _with_version(original, 2) == original  # the rebuild changes nothing else
-    path.write_bytes(_with_version(original, 3))
+    assert _with_version(original, 3) == original  # the rebuild changes nothing else
+    path.write_bytes(_with_version(original, 4))
     with pytest.raises(ModelFileError) as info:
         load_model(path)
-    assert str(info.value) == (f"{path}: not a valid rescore model file: format version 3, "
-                               "this program reads 1 and 2")
+    assert str(info.value) == (f"{path}: not a valid rescore model file: format version 4, "
+                               "this program reads 1, 2 and 3")
 
 
 def _mapping_of(arr: np.ndarray) -> object:
@@ -183,7 +183,9 @@ def test_loaded_arrays_are_zero_copy_views_of_the_file_mapping(
 
     _, path = saved
     tables = load_model(path).tables_
-    arrays = [*tables.logp, *tables.bow, *tables.keys[1:], *tables.slots[1:]]
+    assert tables.index is not None
+    arrays = [*tables.logp, *tables.bow, *(i.starts for i in tables.index[1:] if i),
+              *(i.rest for i in tables.index[1:] if i)]
     mapping = _mapping_of(arrays[0])
     assert isinstance(mapping, mmap.mmap)
     whole = np.frombuffer(mapping, dtype=np.uint8)
@@ -218,35 +220,34 @@ def test_loading_never_unpickles(saved: tuple[NGramModel, Path],
     assert load_model(path).checksum == model.checksum
 
 
-def test_format_1_without_held_keys_still_reads_the_same(saved: tuple[NGramModel, Path],
-                                                        tmp_path: Path) -> None:
-    # format 1 (before the held keys were stored) is read, deriving them on first use;
-    # the file is rebuilt here as format 1 wrote it: the same arrays less held{k}
+def test_formats_1_and_2_still_read_the_same(saved: tuple[NGramModel, Path],
+                                             tmp_path: Path) -> None:
+    # format 2 (sorted keys, hash slots and the key held in each slot) and format 1 (the
+    # same less the held keys, a CRC-32 trailer) are still read, as those releases wrote
+    # them: the same probabilities for every n-gram as the format 3 file
     from rescore.lm import store
 
     model, path = saved
     tables = model.tables_
-    arrays = [(n, a) for n, a in store._arrays(tables) if not n.startswith("held")]
-    old = tmp_path / "v1.lm"
-    real_arrays = store._arrays
-    try:
-        store._arrays = lambda t: arrays  # type: ignore[assignment]
-        store.save(tables, {"method": "mkn"}, old)
-    finally:
-        store._arrays = real_arrays
-    old.write_bytes(_with_version(old.read_bytes(), 1))  # format 1's trailer: CRC-32
-    assert old.read_bytes()[8:12] == (1).to_bytes(4, "little")
-    v1, _, _ = store.load(old)
+    old1, old2 = tmp_path / "v1.lm", tmp_path / "v2.lm"
+    store.save_legacy(tables, {"method": "mkn"}, old1, version=1)
+    old1.write_bytes(_with_version(old1.read_bytes(), 1))  # format 1's trailer: CRC-32
+    store.save_legacy(tables, {"method": "mkn"}, old2, version=2)
+    assert old1.read_bytes()[8:12] == (1).to_bytes(4, "little")
+    assert old2.read_bytes()[8:12] == (2).to_bytes(4, "little")
+    v1, _, _ = store.load(old1)
+    v2, _, _ = store.load(old2)
+    v3, _, _ = store.load(path)
     assert not v1._held  # nothing given: derived on first use
-    assert np.array_equal(v1.score_ngrams(np.array([[-1, 3, 4]])),
-                          tables.score_ngrams(np.array([[-1, 3, 4]])))
-    v2, _, _ = store.load(path)
     assert set(v2._held) == set(range(2, tables.order + 1))  # given by the file
+    probe = np.array([[-1, 3, 4], [3, 4, 5], [0, 3, 1], [5, 5, 5]])
+    for other in (v1, v2):
+        assert np.array_equal(other.score_ngrams(probe), v3.score_ngrams(probe))
     for k in range(2, tables.order + 1):
         assert np.array_equal(v1.held_keys(k), v2.held_keys(k))
     # format 1's own check (CRC-32) still guards it
-    damaged = bytearray(old.read_bytes())
+    damaged = bytearray(old1.read_bytes())
     damaged[len(damaged) // 2] ^= 0x40
-    old.write_bytes(bytes(damaged))
+    old1.write_bytes(bytes(damaged))
     with pytest.raises(ModelFileError, match="checksum mismatch"):
-        store.load(old)
+        store.load(old1)

@@ -83,6 +83,14 @@ _Workers = Annotated[int | None, typer.Option(
 _Scratch = Annotated[Path | None, typer.Option(
     "--scratch", metavar="DIR", help="Folder for the sorted runs (default: the system's "
     "temporary folder); removed when the build ends.")]
+_Quantize = Annotated[int | None, typer.Option(
+    "--quantize", metavar="BITS",
+    help="Store probabilities and weights as 8- or 16-bit codes (lossy, smaller).")]
+
+
+def _check_bits(bits: int | None) -> None:
+    if bits is not None and bits not in (8, 16):
+        raise UsageError(f"--quantize takes 8 or 16 bits, got {bits}")
 
 
 @guarded
@@ -102,8 +110,10 @@ def build(
     scratch: _Scratch = None,
     cluster: _Cluster = None,
     workers: _Workers = None,
+    quantize: _Quantize = None,
 ) -> None:
     """Train an n-gram language model."""
+    _check_bits(quantize)
     check_output_path(output)
     budget = default_memory() if memory is None else _memory_size(memory)
     model = NGramModel(
@@ -120,6 +130,8 @@ def build(
         else:
             model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
                       progress=report, memory=budget, scratch=scratch)
+    if quantize is not None:
+        model.quantize(quantize)
     save_model(model, output)
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "
@@ -160,12 +172,52 @@ def perplexity_cmd(
 
 @guarded
 def convert(
-    source: Annotated[Path, typer.Argument(metavar="IN", help="Model to read.")],
+    source: Annotated[Path, typer.Argument(
+        metavar="IN", help="Model to read (.arpa/.arpa.gz or '-' for ARPA text on stdin).")],
     target: Annotated[Path, typer.Argument(metavar="OUT", help="Model to write (by file ending).")],
+    verify: Annotated[bool, typer.Option(
+        "--verify", help="Check every value of a native input first (as lm check).")] = False,
+    quantize: _Quantize = None,
 ) -> None:
     """Convert a model between ARPA text and the native file."""
-    save_model(load_model(source), target)
+    _check_bits(quantize)
+    check_output_path(target)
+    model = load_model(source, verify=verify)
+    if quantize is not None:
+        model.quantize(quantize)
+    save_model(model, target)
     info(f"wrote {target}")
+
+
+@guarded
+def check_cmd(
+    model_path: Annotated[Path, typer.Argument(metavar="MODEL", help="Native or ARPA model.")],
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
+) -> None:
+    """Check a model file completely: structure, sizes, every probability and weight."""
+    from rescore.lm import is_arpa_name, store
+
+    if is_arpa_name(model_path) or str(model_path) == "-":
+        model = load_model(model_path)
+        tables, version, size, sha = model.tables_, None, None, None
+    else:
+        got = store.load_file(model_path, verify=True)
+        tables, version, size, sha = got.tables, got.version, got.size, got.sha256
+    counts = tables.n_ngrams()
+    result = {"ok": True, "format_version": version, "order": tables.order,
+              "ngrams": counts, "bytes": size,
+              "bytes_per_ngram": None if size is None else size / max(sum(counts), 1),
+              "sha256": sha}
+    if as_json:
+        emit_json(result)
+        return
+    table(None, ["measure", "value"], [
+        ("checked", "every array and value: no problem found"),
+        ("format version", "ARPA text" if version is None else version),
+        ("order", tables.order),
+        *((f"{k}-grams", n) for k, n in enumerate(counts, start=1)),
+        *(() if size is None else (("bytes per n-gram", f"{size / max(sum(counts), 1):.2f}"),)),
+    ])
 
 
 def _weights(text: str | None) -> list[float] | None:
@@ -225,3 +277,4 @@ def register(app: typer.Typer, lm_app: typer.Typer) -> None:
     lm_app.command("perplexity")(perplexity_cmd)
     lm_app.command("mix")(mix)
     lm_app.command("convert")(convert)
+    lm_app.command("check")(check_cmd)

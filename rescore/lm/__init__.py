@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
+
 from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.evaluate import (
     PerplexityResult,
@@ -33,22 +35,31 @@ def save_model(model: NGramModel, path: str | Path) -> None:
     else:
         from rescore.lm import store
 
-        digest = store.save(model._fitted(), model.metadata_, path,
-                            {"sentence_hashes": model.sentence_hashes})
+        digest = store.save(model._fitted(), model.metadata_, path, model.extras())
         model._checksum = digest
 
 
-def load_model(path: str | Path) -> NGramModel:
-    """Read a model written by :func:`save_model` or any valid ARPA file, by its name."""
-    if is_arpa_name(path):
+def load_model(path: str | Path, *, verify: bool = False) -> NGramModel:
+    """Read a model written by :func:`save_model` or any valid ARPA file, by its name.
+
+    ``verify`` adds, for a native file, the structural checks that read every value (see
+    :func:`rescore.lm.store.load_file`); the cheap ones always run.
+    """
+    if is_arpa_name(path) or str(path) == "-":  # standard input: ARPA text
         from rescore.lm import arpa
 
         tables, meta = arpa.read(path)
         return NGramModel.from_tables(tables, meta)
     from rescore.lm import store
 
-    tables, meta, digest, optional = store.load_with_optional(path)
-    return NGramModel.from_tables(tables, meta, digest, optional["sentence_hashes"])
+    got = store.load_file(path, verify=verify)
+    model = NGramModel.from_tables(got.tables, got.metadata, got.sha256)
+    hashes = got.extras.get("sentence_hashes")
+    if hashes is not None:
+        if hashes.dtype != np.dtype("<u8"):
+            raise store.bad_file(path, "extra.sentence_hashes is not uint64")
+        model.sentence_hashes = hashes
+    return model
 
 
 __all__ = [

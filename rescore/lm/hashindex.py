@@ -8,6 +8,8 @@ per key.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import numpy.typing as npt
 
@@ -139,3 +141,163 @@ def lookup_values(held: U64, values: I32, queries: U64, missing: int) -> I32:
         more = ~hit & (got != NO_KEY)
         pending, q, where = pending[more], q[more], where[more]
     return out
+
+
+# --- the compact index of the native file (format 3) --------------------------------------
+
+def _multiplier(bits: int) -> int:
+    """An odd multiplier below ``2**bits``: multiplying by it modulo ``2**bits`` permutes
+    ``[0, 2**bits)`` (an odd number is invertible modulo a power of two)."""
+    return (int(_GOLDEN) & ((1 << bits) - 1)) | 1
+
+
+def bucket_bits(n_keys: int) -> int:
+    """Buckets for ``n_keys``: the largest power of two at most ``n_keys / 2`` (2 to 4 keys
+    per bucket on average), at least 1."""
+    return max(0, max(n_keys, 1).bit_length() - 2)
+
+
+class BucketIndex:
+    """Unique keys below ``2**bits``, held as their hashes in sorted order.
+
+    The hash ``h = key * A mod 2**bits`` (``A`` odd) is a permutation of the key space, so it
+    loses nothing and can be undone. Sorted by ``h``, the keys fall into ``2**b`` buckets by
+    their top ``b`` bits; ``starts[j]`` is the position of bucket ``j``'s first key and
+    ``rest`` holds only the low ``bits - b`` bits of each hash (4 bytes when that is 32 or
+    fewer bits), so a key costs its share of ``starts`` (1 to 2 bytes) plus ``rest``, and
+    the position of a key in this order is the n-gram's id. Looking up reads the bucket's
+    bounds and compares the few ``rest`` values in it, one batched round per position.
+    """
+
+    __slots__ = ("_mask", "_mult", "bits", "duplicates", "rest", "shift", "starts")
+
+    def __init__(self, bits: int, shift: int, starts: npt.NDArray[Any],
+                 rest: npt.NDArray[Any]) -> None:
+        self.bits, self.shift, self.starts, self.rest = bits, shift, starts, rest
+        self.duplicates = False  # set by build: some key was given more than once
+        self._mask = np.uint64((1 << bits) - 1) if bits < 64 else np.uint64(0xFFFFFFFFFFFFFFFF)
+        self._mult = np.uint64(_multiplier(bits))
+
+    @staticmethod
+    def key_bits(key_space: int) -> int:
+        """Bits of a key below ``key_space`` (at least 1)."""
+        return max(1, (max(key_space, 1) - 1).bit_length())
+
+    @classmethod
+    def build(cls, keys: U64, key_space: int, *, overwrite: bool = False
+              ) -> tuple[BucketIndex, I64]:
+        """The index of ``keys`` (each below ``key_space``) and the permutation that puts
+        them (and anything stored beside them) in its order: ``keys[perm]``. A key given
+        twice sets ``duplicates``. ``overwrite`` lets the hashes replace ``keys`` in place
+        (less memory; the caller gives the array up)."""
+        bits = cls.key_bits(key_space)
+        b = min(bucket_bits(len(keys)), bits)
+        shift = bits - b
+        mask = np.uint64((1 << bits) - 1) if bits < 64 else np.uint64(0xFFFFFFFFFFFFFFFF)
+        with np.errstate(over="ignore"):
+            if overwrite:
+                h = keys
+                h *= np.uint64(_multiplier(bits))
+            else:
+                h = keys * np.uint64(_multiplier(bits))
+        h &= mask
+        count_type = np.uint32 if len(keys) < (1 << 32) else np.uint64
+        del keys
+        perm = np.argsort(h)  # introsort: no buffer beside the result (equal keys: any order)
+        # the rests in sorted order, a slice at a time (no sorted copy of every hash)
+        rest_type = np.uint32 if shift <= 32 else np.uint64
+        rest = np.empty(len(h), dtype=rest_type)
+        low = np.uint64((1 << shift) - 1)
+        duplicates = False
+        step = 1 << 20
+        for at in range(0, len(h), step):
+            part = h[perm[max(at - 1, 0):at + step]]
+            duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
+            part &= low
+            rest[at:at + step] = part[1:] if at else part
+        h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
+        starts = np.zeros((1 << b) + 1, dtype=count_type)
+        np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
+        del h
+        index = cls(bits, shift, starts, rest)
+        index.duplicates = duplicates
+        return index, perm.astype(np.int64, copy=False)
+
+    def __len__(self) -> int:
+        return len(self.rest)
+
+    def _hash(self, queries: U64) -> U64:
+        with np.errstate(over="ignore"):
+            h = queries * self._mult
+        h &= self._mask
+        return h
+
+    def find(self, queries: U64) -> I64:
+        """Position of each query among the keys, or -1 (queries must be below
+        ``2**bits``; the key of a listed context and a word always is).
+
+        The rests of a bucket are in increasing order, so a query's scan stops at the first
+        rest that is not smaller than its own; the first round runs over the whole batch,
+        later rounds over the queries still scanning.
+        """
+        if not len(self.rest):
+            return np.full(len(queries), EMPTY, dtype=np.int64)
+        h = self._hash(queries)
+        bucket = (h >> np.uint64(self.shift)).astype(np.intp)
+        want = (h & np.uint64((1 << self.shift) - 1)).astype(self.rest.dtype)
+        at = self.starts[bucket].astype(np.intp)
+        end = self.starts[bucket + 1].astype(np.intp)
+        rest = self.rest
+        got = rest.take(at, mode="clip")  # an empty last bucket points one past the end
+        hit = (got == want) & (at < end)
+        result = np.where(hit, at, EMPTY).astype(np.int64, copy=False)
+        at += 1
+        pending = np.flatnonzero((got < want) & (at < end))
+        at, end, want = at[pending], end[pending], want[pending]
+        while pending.size:
+            got = rest[at]
+            hit = got == want
+            if hit.any():
+                result[pending[hit]] = at[hit]
+            at += 1
+            more = (got < want) & (at < end)
+            pending, at, end, want = pending[more], at[more], end[more], want[more]
+        return result
+
+    def _counts(self) -> I64:
+        s = self.starts.astype(np.int64)
+        return s[1:] - s[:-1]
+
+    def keys(self) -> U64:
+        """Every key, in the index's order (derived: bucket number, rest, inverse hash)."""
+        n_buckets = len(self.starts) - 1
+        counts = self._counts()
+        h = np.repeat(np.arange(n_buckets, dtype=np.uint64), counts) << np.uint64(self.shift)
+        h |= self.rest.astype(np.uint64)
+        inverse = np.uint64(pow(int(self._mult), -1, 1 << self.bits))
+        with np.errstate(over="ignore"):
+            h *= inverse
+        h &= self._mask
+        return h
+
+    def check(self) -> str | None:
+        """What is structurally wrong with the arrays (None when nothing): counts, order."""
+        n = len(self.rest)
+        s = self.starts
+        if not 1 <= self.bits <= 64 or not 0 <= self.shift <= self.bits:
+            return "key width"
+        if len(s) != (1 << (self.bits - self.shift)) + 1 or int(s[0]) != 0 or int(s[-1]) != n:
+            return "bucket starts"
+        if n and (np.any(s[1:] < s[:-1])):
+            return "bucket starts out of order"
+        if self.shift < 64 and n and int(self.rest.max()) >> self.shift:
+            return "hash rests too wide"
+        return None
+
+    def check_unique(self) -> bool:
+        """Whether the hashes are strictly increasing (the keys unique); reads every key."""
+        counts = self._counts()
+        h = np.repeat(np.arange(len(self.starts) - 1, dtype=np.uint64),
+                      counts) << np.uint64(self.shift)
+        h |= self.rest.astype(np.uint64)
+        return bool(np.all(h[1:] > h[:-1]))

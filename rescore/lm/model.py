@@ -237,11 +237,29 @@ class NGramModel:
             from rescore.lm.store import content_parts
 
             digest = hashlib.sha256()
-            for part in content_parts(self._fitted(), self.metadata_,
-                                      {"sentence_hashes": self.sentence_hashes}):
+            for part in content_parts(self._fitted(), self.metadata_, self.extras()):
                 digest.update(part)
             self._checksum = digest.hexdigest()
         return self._checksum
+
+    def quantize(self, bits: int) -> NGramModel:
+        """Keep the probabilities and back-off weights of every order from 2 as ``bits``-bit
+        codes into per-order code books (8 or 16; see :mod:`rescore.lm.quantize`): a smaller,
+        lossy model that scores with the book values from now on."""
+        from rescore.lm.quantize import quantize
+
+        tables = quantize(self._fitted(), bits)
+        meta = {key: val for key, val in self.metadata_.items()
+                if key not in {"method", "order", "k", "closed_vocab", "vocab_size", "ngrams",
+                               "cutoffs", "prune"}}
+        self._set_fitted(tables, {**meta, "quantized_bits": bits})
+        return self
+
+    def extras(self) -> dict[str, npt.NDArray[Any]]:
+        """The named arrays a native file stores beside the model (``extra.NAME``)."""
+        if self.sentence_hashes is None:
+            return {}
+        return {"sentence_hashes": self.sentence_hashes}
 
     # --- scoring --------------------------------------------------------------------------
 

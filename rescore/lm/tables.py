@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -30,6 +31,33 @@ I32 = npt.NDArray[np.int32]
 U64 = npt.NDArray[np.uint64]
 
 
+class Coded:
+    """A table kept as small integer codes into a code book (see :mod:`rescore.lm.quantize`):
+    indexed like the float64 array it stands for, it gives the book's values."""
+
+    __slots__ = ("book", "codes")
+
+    def __init__(self, codes: npt.NDArray[Any], book: F64) -> None:
+        self.codes, self.book = codes, book
+
+    def __getitem__(self, index: Any) -> F64:
+        # clipped: a code past the book (a crafted file) reads its last entry, never memory
+        # outside it
+        out: F64 = self.book.take(self.codes[index], mode="clip")
+        return out
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def values(self) -> F64:
+        out: F64 = self.book.take(self.codes, mode="clip")
+        return out
+
+    def as_table(self) -> F64:
+        """This object typed as the float64 table it stands for (it is indexed the same)."""
+        return self  # type: ignore[return-value]
+
+
 @dataclass(frozen=True)
 class BackoffTables:
     """``logp[k-1]``, ``bow[k-1]``, ``keys[k-1]``, ``slots[k-1]`` describe order ``k``."""
@@ -39,8 +67,15 @@ class BackoffTables:
     bow: list[F64]  # orders 1 .. N-1
     keys: list[U64]  # keys[0] is empty: unigram ids are word ids
     slots: list[I32]
+    # the compact form (as the native file stores it): per order k >= 2, ``index[k-1]``
+    # holds the keys and the n-grams of that order are in its order; keys and slots are
+    # then empty lists
+    index: list[hashindex.BucketIndex | None] | None = None
     # per order, the key held in each hash slot; derived on first use, never stored
     _held: dict[int, U64] = field(default_factory=dict, init=False, repr=False, compare=False)
+    # the compact form of these tables, made once (saving and the checksum both need it)
+    _compact: list[BackoffTables] = field(default_factory=list, init=False, repr=False,
+                                          compare=False)
 
     @property
     def order(self) -> int:
@@ -55,7 +90,50 @@ class BackoffTables:
 
     def find(self, k: int, queries: U64) -> I64:
         """Index among the order-``k`` n-grams of each key, or -1."""
+        if self.index is not None:
+            index = self.index[k - 1]
+            assert index is not None
+            return index.find(queries)
         return hashindex.lookup_slotted(self.slots[k - 1], self.held_keys(k), queries)
+
+    def keys_of(self, k: int) -> U64:
+        """The key of each order-``k`` n-gram, in id order (derived in the compact form)."""
+        if self.index is not None:
+            index = self.index[k - 1]
+            assert index is not None
+            return index.keys()
+        return self.keys[k - 1]
+
+    def key_space(self, k: int) -> int:
+        """An upper bound of the order-``k`` keys: (order ``k - 1`` n-grams) x vocabulary."""
+        return len(self.logp[k - 2]) * self.vsize
+
+    def compact(self) -> BackoffTables:
+        """These tables in the compact form of the native file (the same model: every
+        look-up gives the same probability; only the n-gram ids of orders from 2 change)."""
+        if self.index is not None:
+            return self
+        if not self._compact:
+            self._compact.append(self._to_compact())
+        return self._compact[0]
+
+    def _to_compact(self) -> BackoffTables:
+        v = np.uint64(self.vsize)
+        logp, bow = [self.logp[0]], [self.bow[0]] if self.order > 1 else []
+        index: list[hashindex.BucketIndex | None] = [None]
+        new_id: I64 | None = None  # old id -> new id of the order below
+        for k in range(2, self.order + 1):
+            keys = self.keys[k - 1]
+            if new_id is not None:
+                keys = new_id[(keys // v).astype(np.int64)].astype(np.uint64) * v + keys % v
+            idx, perm = hashindex.BucketIndex.build(keys, self.key_space(k))
+            index.append(idx)
+            logp.append(np.ascontiguousarray(self.logp[k - 1][perm]))
+            if k < self.order:
+                bow.append(np.ascontiguousarray(self.bow[k - 1][perm]))
+                new_id = np.empty(len(perm), dtype=np.int64)
+                new_id[perm] = np.arange(len(perm), dtype=np.int64)
+        return BackoffTables(self.vocab, logp, bow, [], [], index)
 
     def held_keys(self, k: int) -> U64:
         """The key held in each hash slot of order ``k`` (derived once, or given by the
@@ -86,7 +164,7 @@ class BackoffTables:
         return ids.astype(np.uint64) * np.uint64(self.vsize) + first.astype(np.uint64)
 
     def suffix_first(self, k: int) -> tuple[I64, I64]:
-        keys = self.keys[k - 1]
+        keys = self.keys_of(k)
         v = np.uint64(self.vsize)
         return (keys // v).astype(np.int64), (keys % v).astype(np.int64)
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -59,7 +60,7 @@ def test_min_risk_matches_plain_loop_on_random_lists() -> None:
     offsets = np.concatenate([[0], np.cumsum(sizes)])
     totals = rng.normal(0.0, 1.0, size=len(hyps))
     got = decide(hyps, offsets, totals, scale=1.3, rule="min-risk").rows
-    for u, (a, b) in enumerate(zip(offsets[:-1], offsets[1:], strict=True)):
+    for u, (a, b) in enumerate(itertools.pairwise(offsets)):
         p = np.exp(1.3 * totals[a:b])
         p /= p.sum()
         want = plain_min_risk(hyps[a:b], p.tolist())

@@ -36,7 +36,7 @@ def test_word_correct_counts_jiwer_hits() -> None:
 def test_word_correct_marks_the_right_words() -> None:
     # by hand: "the cat sat" against output "a cat sat down": a wrong, cat and sat right,
     # down inserted
-    assert word_correct("the cat sat".split(), "a cat sat down".split()).tolist() == [
+    assert word_correct(["the", "cat", "sat"], ["a", "cat", "sat", "down"]).tolist() == [
         False, True, True, False]
 
 
@@ -129,7 +129,7 @@ def test_isotonic_calibration_fits_monotone_and_round_trips() -> None:
     means = np.bincount(inverse, weights=right) / counts
     want = isotonic_regression(means, weights=counts.astype(float)).x
     np.testing.assert_allclose(cal.transform(xs), want, rtol=1e-10, atol=1e-12)
-    assert np.all(np.diff(cal.y) >= 0) and 0.0 <= cal.y[0] and cal.y[-1] <= 1.0
+    assert np.all(np.diff(cal.y) >= 0) and cal.y[0] >= 0.0 and cal.y[-1] <= 1.0
     again = IsotonicCalibration.from_dict(cal.to_dict())
     np.testing.assert_array_equal(again.transform(conf), cal.transform(conf))
     # calibrated on the same words, ECE falls and NCE rises

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -21,7 +22,7 @@ def test_posteriors_match_scipy_softmax_per_list() -> None:
     offsets = np.concatenate([[0], np.cumsum(sizes)])
     totals = rng.normal(-2000.0, 30.0, size=int(offsets[-1]))
     got = posteriors(totals, offsets, 0.37)
-    for a, b in zip(offsets[:-1], offsets[1:], strict=True):
+    for a, b in itertools.pairwise(offsets):
         np.testing.assert_allclose(got[a:b], softmax(0.37 * totals[a:b]), rtol=1e-12)
 
 
@@ -65,7 +66,7 @@ def _direct_log_likelihood(totals: np.ndarray, offsets: np.ndarray, errors: np.n
                            s: float) -> float:
     # from the definition: log of the posterior mass on the fewest-error rows, list by list
     out = 0.0
-    for a, b in zip(offsets[:-1], offsets[1:], strict=True):
+    for a, b in itertools.pairwise(offsets):
         t, e = s * totals[a:b], errors[a:b]
         out += logsumexp(t[e == e.min()]) - logsumexp(t)
     return float(out)

@@ -23,7 +23,7 @@ import numpy as np
 from rescore.decode.network import consensus_words
 from rescore.decode.posterior import posteriors
 from rescore.decode.risk import min_risk_rows
-from rescore.decode.words import Codebook, aligned_equal
+from rescore.decode.words import Codebook, edits
 from rescore.scoring import segment_argmax
 
 Rule = Literal["best", "min-risk", "consensus"]
@@ -51,12 +51,15 @@ class Decision:
 def word_posteriors(codes: Sequence[str], post: np.ndarray, pivot: int) -> np.ndarray:
     """Posterior of each word of hypothesis ``pivot`` (an index into ``codes``): the summed
     posterior of the hypotheses that hold that word at the aligned position."""
-    conf = np.zeros(len(codes[pivot]), dtype=np.float64)
     target = codes[pivot]
-    for other, p in zip(codes, post.tolist(), strict=True):
-        for a, b in aligned_equal(target, other):
-            conf[a:b] += p
-    return conf
+    weights = post.tolist()
+    # every hypothesis holds every pivot word except where it replaces or deletes one
+    conf = [float(sum(weights))] * len(target)
+    for other, p in zip(codes, weights, strict=True):
+        for tag, i, _ in edits(target, other):
+            if tag != "insert":
+                conf[i] -= p
+    return np.clip(np.array(conf, dtype=np.float64), 0.0, 1.0)
 
 
 def decide(hypotheses: Sequence[Sequence[str]], offsets: np.ndarray, totals: np.ndarray,
@@ -106,6 +109,5 @@ def decide(hypotheses: Sequence[Sequence[str]], offsets: np.ndarray, totals: np.
             a, b = int(offsets[u]), int(offsets[u + 1])
             r = int(rows[u])
             words.append(tuple(hypotheses[r]))
-            conf = np.minimum(word_posteriors(codes[a:b], post[a:b], r - a), 1.0)
-            confs.append(tuple(conf.tolist()))
+            confs.append(tuple(word_posteriors(codes[a:b], post[a:b], r - a).tolist()))
     return Decision(rule=rule, rows=rows, words=tuple(words), confidences=tuple(confs))

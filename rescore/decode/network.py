@@ -24,9 +24,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from rapidfuzz.distance import Levenshtein
 
-from rescore.decode.words import Codebook
+from rescore.decode.words import Codebook, edits
 
 EMPTY = ""
 
@@ -52,32 +51,52 @@ class ConfusionNetwork:
         return words, confidences
 
 
-def _coded_bins(pivot: str, codes: Sequence[str], post: np.ndarray,
-                ) -> tuple[list[dict[str, float]], dict[tuple[int, int], dict[str, float]]]:
-    slots: list[dict[str, float]] = [{c: 0.0} for c in pivot]
-    gaps: dict[tuple[int, int], dict[str, float]] = {}
-    for other, p in zip(codes, post.tolist(), strict=True):
-        for block in Levenshtein.opcodes(pivot, other):
-            i, i2, j, j2 = block.src_start, block.src_end, block.dest_start, block.dest_end
-            tag = block.tag
-            if tag == "equal" or tag == "replace":
-                for t in range(i2 - i):
-                    b = slots[i + t]
-                    w = other[j + t]
-                    b[w] = b.get(w, 0.0) + p
-            elif tag == "delete":
-                for t in range(i, i2):
-                    b = slots[t]
-                    b[EMPTY] = b.get(EMPTY, 0.0) + p
-            elif tag == "insert":
-                for k in range(j2 - j):
-                    b = gaps.setdefault((i, k), {EMPTY: 0.0})
-                    w = other[j + k]
-                    b[w] = b.get(w, 0.0) + p
-    total = float(post.sum())
-    for b in gaps.values():
-        b[EMPTY] = total - sum(b.values())
+Bins = tuple[list[dict[str, float]], dict[int, list[dict[str, float]]]]
+
+
+def _coded_bins(pivot: str, codes: Sequence[str], post: np.ndarray) -> Bins:
+    """Slot bins (one per pivot position) and insertion bins (per gap, in order) of coded
+    words; the first key of a slot is the pivot's word, of an insertion bin the empty word,
+    so that ``max`` over keys breaks ties by the module's rule."""
+    weights = post.tolist()
+    total = float(sum(weights))
+    # every hypothesis holds the pivot's word in a slot unless it replaces or deletes it
+    removed = [0.0] * len(pivot)
+    rivals: dict[int, dict[str, float]] = {}
+    gaps: dict[int, list[dict[str, float]]] = {}
+    for other, p in zip(codes, weights, strict=True):
+        gap, k = -1, 0
+        for tag, i, j in edits(pivot, other):
+            if tag == "insert":
+                if i != gap:
+                    gap, k = i, 0
+                bins = gaps.setdefault(i, [])
+                if k == len(bins):
+                    bins.append({EMPTY: 0.0})
+                b, w = bins[k], other[j]
+                b[w] = b.get(w, 0.0) + p
+                k += 1
+            else:
+                removed[i] += p
+                b = rivals.setdefault(i, {})
+                w = other[j] if tag == "replace" else EMPTY
+                b[w] = b.get(w, 0.0) + p
+    slots = [{c: total - removed[i], **rivals.get(i, {})} for i, c in enumerate(pivot)]
+    for bins in gaps.values():
+        for b in bins:
+            b[EMPTY] = total - sum(b.values())
     return slots, gaps
+
+
+def _ordered(pivot: str, bins: Bins) -> list[tuple[bool, dict[str, float]]]:
+    """``(is_slot, bin)`` in output order: each gap's insertion bins before its slot."""
+    slots, gaps = bins
+    out: list[tuple[bool, dict[str, float]]] = []
+    for i in range(len(pivot) + 1):
+        out.extend((False, b) for b in gaps.get(i, ()))
+        if i < len(pivot):
+            out.append((True, slots[i]))
+    return out
 
 
 def build_network(hypotheses: Sequence[Sequence[str]], post: np.ndarray,
@@ -85,28 +104,25 @@ def build_network(hypotheses: Sequence[Sequence[str]], post: np.ndarray,
     """The confusion network of one list (words per hypothesis, posteriors summing to 1)."""
     book = codebook or Codebook()
     codes = book.encode_many(hypotheses)
-    return _network(codes, np.asarray(post, dtype=np.float64), book)
-
-
-def _network(codes: Sequence[str], post: np.ndarray, book: Codebook) -> ConfusionNetwork:
+    post = np.asarray(post, dtype=np.float64)
     pivot = codes[int(np.argmax(post))]
-    slots, gaps = _coded_bins(pivot, codes, post)
-    bins: list[dict[str, float]] = []
-    slot: list[bool] = []
-    by_gap: dict[int, list[tuple[int, dict[str, float]]]] = {}
-    for (g, k), b in gaps.items():
-        by_gap.setdefault(g, []).append((k, b))
-    for i in range(len(pivot) + 1):
-        for _, b in sorted(by_gap.get(i, []), key=lambda kb: kb[0]):
-            bins.append({(book.word(c) if c else EMPTY): v for c, v in b.items()})
-            slot.append(False)
-        if i < len(pivot):
-            bins.append({(book.word(c) if c else EMPTY): v for c, v in slots[i].items()})
-            slot.append(True)
-    return ConfusionNetwork(bins=tuple(bins), slot=tuple(slot))
+    ordered = _ordered(pivot, _coded_bins(pivot, codes, post))
+    return ConfusionNetwork(
+        bins=tuple({(book.word(c) if c else EMPTY): v for c, v in b.items()}
+                   for _, b in ordered),
+        slot=tuple(is_slot for is_slot, _ in ordered))
 
 
 def consensus_words(codes: Sequence[str], post: np.ndarray, book: Codebook,
                     ) -> tuple[list[str], list[float]]:
-    """Consensus words of one coded list and their bin posteriors."""
-    return _network(codes, post, book).best()
+    """Consensus words of one coded list and their bin posteriors (as
+    ``build_network(...).best()``, without spelling out the losing words)."""
+    pivot = codes[int(np.argmax(post))]
+    words: list[str] = []
+    confidences: list[float] = []
+    for _, b in _ordered(pivot, _coded_bins(pivot, codes, post)):
+        code = max(b, key=b.__getitem__)
+        if code != EMPTY:
+            words.append(book.word(code))
+            confidences.append(min(b[code], 1.0))  # rounding can pass 1
+    return words, confidences

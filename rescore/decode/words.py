@@ -8,6 +8,7 @@ those strings are then word edit distances and word alignments.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import cast
 
 from rapidfuzz.distance import Levenshtein
 
@@ -34,8 +35,11 @@ class Codebook:
         return code
 
     def encode(self, words: Sequence[str]) -> str:
-        get = self._code.get
-        return "".join([get(w) or self._new(w) for w in words])
+        try:
+            return "".join(map(self._code.__getitem__, words))
+        except KeyError:  # a new word: the slower path, once per distinct word
+            get = self._code.get
+            return "".join([get(w) or self._new(w) for w in words])
 
     def encode_many(self, lists: Sequence[Sequence[str]]) -> list[str]:
         return [self.encode(words) for words in lists]
@@ -47,8 +51,13 @@ class Codebook:
         return [self._word[c] for c in codes]
 
 
-def aligned_equal(pivot: str, other: str) -> list[tuple[int, int]]:
-    """``(start, stop)`` ranges of ``pivot`` positions matched to the same word in ``other``
-    by one minimum-edit alignment (rapidfuzz's choice among equally short ones)."""
-    return [(b.src_start, b.src_end) for b in Levenshtein.opcodes(pivot, other)
-            if b.tag == "equal"]
+def edits(pivot: str, other: str) -> list[tuple[str, int, int]]:
+    """``(tag, pivot position, other position)`` of one minimum-edit alignment of ``other``
+    to ``pivot`` (rapidfuzz's choice among equally short ones); tags ``replace``,
+    ``delete`` (a pivot word ``other`` lacks) and ``insert`` (a word of ``other`` before
+    pivot position ``i``, or at the end when ``i == len(pivot)``). Every pivot position no
+    ``replace`` or ``delete`` names is matched to the same word in ``other``."""
+    if pivot == other:
+        return []
+    # as_list gives plain (tag, src, dest) tuples at run time; the stubs call them Editop
+    return cast("list[tuple[str, int, int]]", Levenshtein.editops(pivot, other).as_list())

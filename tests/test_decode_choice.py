@@ -152,3 +152,35 @@ def test_best_rule_keeps_the_top_score_and_earliest_tie() -> None:
     # "y" is held by h2 alone: its posterior e^2 / (e^1 + 2 e^2)
     want = math.exp(2) / (math.exp(1) + 2 * math.exp(2))
     assert got.confidences[0][0] == pytest.approx(want, rel=1e-12)
+
+
+def test_insertions_go_to_the_gap_before_the_next_pivot_word() -> None:
+    # by hand: pivot "a b" (p=.6); "a x y b" (p=.4) inserts x and y between a and b:
+    # slot a {a: 1}, gap bins {x: .4, empty: .6} and {y: .4, empty: .6}, slot b {b: 1}
+    net = build_network(_split(["a b", "a x y b"]), np.array([0.6, 0.4]))
+    assert net.slot == (True, False, False, True)
+    assert net.bins[1] == pytest.approx({EMPTY: 0.6, "x": 0.4})
+    assert net.bins[2] == pytest.approx({EMPTY: 0.6, "y": 0.4})
+    assert net.bins[0] == pytest.approx({"a": 1.0}) and net.bins[3] == pytest.approx({"b": 1.0})
+    # with the inserting hypothesis heavier, it is the pivot and the others' gap is a
+    # deletion: "a x y b" (p=.6) against "a b" (p=.4): slots x and y {word: .6, empty: .4}
+    got = decide(_split(["a b", "a x y b"]), np.array([0, 2]), np.log([0.4, 0.6]),
+                 scale=1.0, rule="consensus")
+    assert got.texts() == ["a x y b"]
+    np.testing.assert_allclose(got.confidences[0], [1.0, 0.6, 0.6, 1.0], rtol=1e-12)
+
+
+def test_consensus_agrees_with_the_full_network_on_random_lists() -> None:
+    # the fast path spells out only the winners; it must give build_network(...).best()
+    rng = np.random.default_rng(12)
+    vocab = [f"w{i}" for i in range(5)]
+    for _ in range(30):
+        n = int(rng.integers(1, 8))
+        hyps = [[vocab[k] for k in rng.integers(0, 5, size=rng.integers(0, 6))]
+                for _ in range(n)]
+        totals = rng.normal(size=n)
+        got = decide(hyps, np.array([0, n]), totals, scale=1.0, rule="consensus")
+        post = np.exp(totals - totals.max())
+        words, conf = build_network(hyps, post / post.sum()).best()
+        assert list(got.words[0]) == words
+        np.testing.assert_allclose(got.confidences[0], conf, rtol=1e-9)

@@ -94,6 +94,9 @@ def test_consensus_on_hand_worked_three_hypotheses() -> None:
     assert "the cat sat" not in CONSENSUS_HYPS
     np.testing.assert_allclose(got.confidences[0], [0.6, 0.7, 0.7], rtol=1e-12)
     assert got.rows.tolist() == [-1]
+    pairs = got.word_confidences(0)
+    assert [w for w, _ in pairs] == ["the", "cat", "sat"]
+    assert [c for _, c in pairs] == pytest.approx([0.6, 0.7, 0.7], abs=1e-12)
 
 
 def test_confusion_network_bins_on_hand_example() -> None:

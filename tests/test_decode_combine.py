@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -10,7 +11,7 @@ import pytest
 from rescore.decode.choice import decide
 from rescore.decode.combine import combine_lists
 from rescore.errors import InputError
-from rescore.nbest import Utterance
+from rescore.nbest import Utterance, iter_nbest, write_nbest
 from rescore.text import tokens
 
 
@@ -38,6 +39,21 @@ def test_duplicates_merge_and_missing_scores_take_the_list_floor() -> None:
     assert [h["acoustic"] for h in utt["hypotheses"]] == [-15.0, -18.5, -18.5]
     assert utt["reference"] == "open vent"
     assert got.partial == ()
+
+
+def test_merged_lists_are_valid_nbest_records(tmp_path: Path) -> None:
+    # the merged records must pass the project's own strict N-best reader (the contract's
+    # format: finite scores, no unknown keys)
+    a = [_utt("u1", [("go", -3.0), ("stop", -4.0)], reference="go", meta={"s": 1})]
+    b = [_utt("u1", [("go now", -2.0)])]
+    a[0]["hypotheses"][0]["features"] = {"first_pass_lm": -7.0}
+    path = tmp_path / "merged.jsonl"
+    write_nbest(path, combine_lists([("A", a), ("B", b)]).utterances)
+    (back,) = [u for _, u in iter_nbest(path, require_references=True)]
+    assert [h["text"] for h in back["hypotheses"]] == ["go", "stop", "go now"]
+    # "stop" lacks A's first_pass_lm: the list floor, -7 (the only value A gave)
+    assert back["hypotheses"][1]["features"]["first_pass_lm:A"] == -7.0
+    assert back["meta"] == {"s": 1}
 
 
 def test_features_are_named_per_system_and_within_system_duplicates_keep_the_best() -> None:

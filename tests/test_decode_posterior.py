@@ -60,6 +60,8 @@ def test_fit_scale_hand_case_is_log_of_the_odds() -> None:
     assert not fit.at_bound
     # its likelihood: 3 log(3/4) + log(1/4)
     assert fit.log_likelihood == pytest.approx(3 * math.log(0.75) + math.log(0.25), abs=1e-9)
+    record = fit.to_dict()
+    assert record["scale"] == fit.scale and record["bounds"] == [1e-4, 1e2]
 
 
 def _direct_log_likelihood(totals: np.ndarray, offsets: np.ndarray, errors: np.ndarray,

@@ -47,6 +47,10 @@ class Decision:
     def texts(self) -> list[str]:
         return [" ".join(w) for w in self.words]
 
+    def word_confidences(self, u: int) -> list[list[str | float]]:
+        """``[[word, posterior], ...]`` of list ``u``: the rescored output's field."""
+        return [[w, c] for w, c in zip(self.words[u], self.confidences[u], strict=True)]
+
 
 def word_posteriors(codes: Sequence[str], post: np.ndarray, pivot: int) -> np.ndarray:
     """Posterior of each word of hypothesis ``pivot`` (an index into ``codes``): the summed

@@ -87,6 +87,12 @@ class ScaleFit:
     utterances: int
     method: str = "max-likelihood-of-oracle, log-grid + golden section"
 
+    def to_dict(self) -> dict[str, object]:
+        """Plain values for a weights file's provenance."""
+        return {"scale": self.scale, "log_likelihood": self.log_likelihood,
+                "bounds": list(self.bounds), "at_bound": self.at_bound,
+                "utterances": self.utterances, "method": self.method}
+
 
 def oracle_log_likelihood(totals: np.ndarray, offsets: np.ndarray, errors: np.ndarray,
                           scale: float) -> float:

@@ -101,3 +101,10 @@ def test_fit_scale_flags_a_bound() -> None:
     fit = fit_posterior_scale(totals, np.array([0, 2, 4]), np.array([0, 1, 0, 2]),
                               bounds=(0.01, 10.0))
     assert fit.at_bound and fit.scale == pytest.approx(10.0)
+
+
+def test_fit_scale_refuses_no_lists_and_bad_bounds() -> None:
+    with pytest.raises(ValueError, match="no lists"):
+        fit_posterior_scale(np.zeros(0), np.array([0]), np.zeros(0, dtype=int))
+    with pytest.raises(ValueError, match="bounds"):
+        fit_posterior_scale(np.zeros(2), np.array([0, 2]), np.array([0, 1]), bounds=(1.0, 0.5))

@@ -133,6 +133,11 @@ def fit_posterior_scale(totals: np.ndarray, offsets: np.ndarray, errors: np.ndar
     Returns
     -------
     ScaleFit
+
+    Raises
+    ------
+    ValueError
+        For bad bounds, mismatched shapes or no lists at all.
     """
     totals = np.asarray(totals, dtype=np.float64)
     offsets = np.asarray(offsets, dtype=np.int64)
@@ -144,8 +149,7 @@ def fit_posterior_scale(totals: np.ndarray, offsets: np.ndarray, errors: np.ndar
     if len(errors) != len(totals):
         raise ValueError(f"{len(errors)} error counts for {len(totals)} hypotheses")
     if len(totals) == 0:
-        return ScaleFit(scale=1.0, log_likelihood=0.0, bounds=bounds, at_bound=False,
-                        utterances=0)
+        raise ValueError("no lists to fit the posterior scale on")
 
     def objective(log_s: float) -> float:
         return oracle_log_likelihood(totals, offsets, errors, math.exp(log_s))

@@ -16,8 +16,9 @@ from rescore import pipeline
 from rescore.errors import InputError
 from rescore.ioutil import write_text_atomic
 from rescore.nbest import iter_nbest, one_best
-from rescore.scoring import LM, oracle_rows
+from rescore.scoring import oracle_rows
 from rescore.text import tokens
+from rescore.weights import LM, read_weights
 from rescore.wer import corpus_wer
 
 BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
@@ -74,7 +75,7 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     progress("rescoring test.jsonl")
     rescored = out / "test.rescored.jsonl"
     pipeline.apply_file(data / "test.jsonl", rescored, models=models,
-                        weights=pipeline.read_weights(weights_path),
+                        weights=read_weights(weights_path),
                         text_path=out / "test.best.tsv")
 
     before, after, oracle = _test_wers(data / "test.jsonl", rescored, models)
@@ -154,7 +155,7 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
             ).to_dict()
             rescored = out / f"test.{tag}.rescored.jsonl"
             pipeline.apply_file(data / "test.jsonl", rescored, models=models,
-                                weights=pipeline.read_weights(weights_path))
+                                weights=read_weights(weights_path))
             wer = pipeline.wer_file(rescored).to_dict()
             written += [weights_path, rescored]
         rows.append({

@@ -49,7 +49,7 @@ from rescore.nbest import (
     id_digest,
     read_refs,
 )
-from rescore.scoring import Weights
+from rescore.weights import Weights
 
 if TYPE_CHECKING:
     from rescore.pipeline import WriteCounts

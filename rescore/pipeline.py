@@ -40,17 +40,15 @@ from rescore.nbest import (
 )
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
-    ACOUSTIC,
-    LM,
     FeatureMatrix,
     LanguageModel,
-    Weights,
     build_matrix,
     lm_column,
     oracle_rows,
     segment_argmax,
 )
 from rescore.text import NORMALISATION, tokens
+from rescore.weights import ACOUSTIC, LM, Weights, read_weights_models, weights_text
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
@@ -106,12 +104,6 @@ def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
     return out
 
 
-def read_weights(path: str | Path) -> Weights:
-    from rescore.tune import read_weights as _read
-
-    return _read(path)
-
-
 @dataclass(frozen=True)
 class OtherModel:
     """A model given for weights that were tuned with another (``--allow-other-model``)."""
@@ -139,8 +131,6 @@ def check_models(weights_path: str | Path, models: Mapping[str, NamedModel], *,
     record. A model the weights do not record (or a weights file without provenance) is
     not compared.
     """
-    from rescore.tune import read_weights_models
-
     recorded = read_weights_models(weights_path)
     other = tuple(OtherModel(name, str(m.path), m.sha256, recorded[name])
                   for name, m in models.items()
@@ -545,7 +535,7 @@ def tune_file(
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
     prov = provenance(data=[path], models=models, extra=result.search_record())
-    files = {weights_path: tuning.weights_text(weights_path, result.weights, prov)}
+    files = {weights_path: weights_text(weights_path, result.weights, prov)}
     if analysis_path is not None:
         import json
 

@@ -11,7 +11,7 @@ matrix-vector product and a segmented argmax, ties going to the earlier hypothes
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
@@ -19,39 +19,8 @@ import numpy as np
 from rescore.errors import InputError
 from rescore.nbest import Utterance
 from rescore.text import tokens, tokens_many, word_counts
+from rescore.weights import ACOUSTIC, LM, WORDS, Weights
 from rescore.wer import word_errors
-
-ACOUSTIC = "acoustic"
-LM = "lm"
-WORDS = "words"
-
-
-@dataclass(frozen=True)
-class Weights:
-    """The weights of the combined score (the contract's weights file, less provenance)."""
-
-    acoustic_scale: float = 1.0
-    lm_weight: float = 0.0
-    insertion_penalty: float = 0.0
-    features: Mapping[str, float] = field(default_factory=dict)
-
-    def vector(self, names: tuple[str, ...]) -> np.ndarray:
-        """The weight of each column named in ``names`` (a feature absent here weighs 0)."""
-        fixed = {ACOUSTIC: self.acoustic_scale, LM: self.lm_weight, WORDS: self.insertion_penalty}
-        return np.array(
-            [fixed[n] if n in fixed else float(self.features.get(n, 0.0)) for n in names],
-            dtype=np.float64,
-        )
-
-    @classmethod
-    def from_vector(cls, names: tuple[str, ...], vector: np.ndarray) -> Weights:
-        values = dict(zip(names, (float(v) for v in vector), strict=True))
-        return cls(
-            acoustic_scale=values.pop(ACOUSTIC, 1.0),
-            lm_weight=values.pop(LM, 0.0),
-            insertion_penalty=values.pop(WORDS, 0.0),
-            features=values,
-        )
 
 
 @dataclass(frozen=True)

@@ -19,29 +19,18 @@ penalty multiplies the word count and is added to the total).
 
 from __future__ import annotations
 
-import json
 import logging
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
 from rescore.progress import Advance, Report, Steps
-from rescore.scoring import (
-    ACOUSTIC,
-    LM,
-    WORDS,
-    FeatureMatrix,
-    Weights,
-    choose,
-    oracle_rows,
-    segment_argmax,
-)
+from rescore.scoring import FeatureMatrix, choose, oracle_rows, segment_argmax
+from rescore.weights import ACOUSTIC, LM, WORDS, Weights
 from rescore.wer import UNDEFINED_WER
 
 log = logging.getLogger(__name__)
@@ -88,7 +77,7 @@ class Fold:
 
     def to_dict(self) -> dict[str, Any]:
         return {"utterances": self.utterances, "reference_words": self.reference_words,
-                "errors": self.errors, "wer": self.wer, **_weights_dict(self.weights)}
+                "errors": self.errors, "wer": self.wer, **self.weights.to_dict()}
 
 
 @dataclass(frozen=True)
@@ -1228,96 +1217,3 @@ def grid_edge_warning(sides: Sequence[str], *, why: str = "") -> str | None:
     return (f"the fewest-errors region touches the grid's "
             f"{', '.join(_SIDE_LABELS[s] for s in sides)}{reason}, so the best weights may "
             f"lie beyond it; widen {' and '.join(options)}")
-
-
-# --------------------------------------------------------------------------- weights file
-
-_WEIGHT_KEYS = ("acoustic_scale", "lm_weight", "insertion_penalty")
-_FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
-
-
-def _weights_dict(weights: Weights) -> dict[str, Any]:
-    return {"acoustic_scale": weights.acoustic_scale, "lm_weight": weights.lm_weight,
-            "insertion_penalty": weights.insertion_penalty, "features": dict(weights.features)}
-
-
-def _number(value: object, path: str, name: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise InputError(f"expected a number, got {json.dumps(value)}", path=path, field=name)
-    if not math.isfinite(value):
-        raise InputError("must be a finite number", path=path, field=name)
-    return float(value)
-
-
-def _reject_constant(token: str) -> float:
-    raise ValueError(f"{token} is not a number in JSON")
-
-
-def read_weights(path: str | Path) -> Weights:
-    """Read a weights file, strictly: unknown keys, non-numbers and NaN are errors."""
-    where = str(path)
-    try:
-        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
-    except ValueError as exc:  # NaN or Infinity
-        raise InputError(str(exc), path=where) from None
-    if not isinstance(data, dict):
-        raise InputError("expected a JSON object", path=where)
-    unknown = sorted(set(data) - set(_FILE_KEYS))
-    if unknown:
-        raise InputError(f"unknown key; expected {', '.join(_FILE_KEYS)}", path=where,
-                         field=unknown[0])
-    for key in _WEIGHT_KEYS:
-        if key not in data:
-            raise InputError("missing", path=where, field=key)
-    values = {key: _number(data[key], where, key) for key in _WEIGHT_KEYS}
-    raw = data.get("features", {})
-    if not isinstance(raw, dict):
-        raise InputError("expected an object of feature weights", path=where, field="features")
-    feats: dict[str, float] = {}
-    for name, value in raw.items():
-        if name in (ACOUSTIC, LM, WORDS):
-            raise InputError(f"{name!r} is a reserved column, not a feature", path=where,
-                             field=f"features.{name}")
-        feats[name] = _number(value, where, f"features.{name}")
-    if "provenance" in data and not isinstance(data["provenance"], dict):
-        raise InputError("expected an object", path=where, field="provenance")
-    return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
-                   insertion_penalty=values["insertion_penalty"], features=feats)
-
-
-def read_weights_models(path: str | Path) -> dict[str, str]:
-    """The SHA-256 of each model the weights were tuned with, by name, as the weights
-    file's provenance records them (empty when it records none)."""
-    where = str(path)
-    try:
-        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
-    except ValueError as exc:
-        raise InputError(str(exc), path=where) from None
-    prov = data.get("provenance") if isinstance(data, dict) else None
-    models = prov.get("models") if isinstance(prov, dict) else None
-    if not isinstance(models, dict):
-        return {}
-    out = {}
-    for name, record in models.items():
-        digest = record.get("sha256") if isinstance(record, dict) else None
-        if not isinstance(digest, str):
-            raise InputError("expected the model's sha256 as a string", path=where,
-                             field=f"provenance.models.{name}.sha256")
-        out[str(name)] = digest
-    return out
-
-
-def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:
-    """Write a weights file atomically (nothing appears at ``path`` on failure)."""
-    write_text_atomic(path, weights_text(path, weights, provenance))
-
-
-def weights_text(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> str:
-    """The text of the weights file to be written at ``path`` (named in its errors)."""
-    body = _weights_dict(weights)
-    for key in _WEIGHT_KEYS:
-        _number(body[key], str(path), key)
-    for name, value in body["features"].items():
-        _number(value, str(path), f"features.{name}")
-    return json.dumps({**body, "provenance": dict(provenance)}, indent=2, sort_keys=False,
-                      allow_nan=False) + "\n"

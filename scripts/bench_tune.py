@@ -35,8 +35,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchkit import like_the_command_line
 
-from rescore.scoring import FeatureMatrix, Weights, choose
+from rescore.scoring import FeatureMatrix, choose
 from rescore.tune import cross_validate, exact_search, grid_search, tune
+from rescore.weights import Weights
 from rescore.wer import word_errors
 
 # the size the targets are stated for, and the time limit of the 4-weight search

@@ -18,7 +18,7 @@ from rescore import parallel, pipeline
 from rescore.errors import AccountingError, RescoreError
 from rescore.ioutil import TextSink
 from rescore.nbest import Utterance
-from rescore.scoring import Weights
+from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
 TWO = FIXTURES / "nbest_two_utterances.jsonl"

@@ -19,7 +19,7 @@ import pytest
 
 from rescore import pipeline
 from rescore.lm import NGramModel, read_corpus, save_model
-from rescore.scoring import Weights
+from rescore.weights import Weights
 from tests.bulk import write_bulk
 
 ROOT = Path(__file__).resolve().parent.parent

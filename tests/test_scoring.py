@@ -9,7 +9,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from rescore.nbest import iter_nbest
-from rescore.scoring import Weights, build_matrix, choose, oracle_rows, segment_argmax
+from rescore.scoring import build_matrix, choose, oracle_rows, segment_argmax
+from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
 

@@ -17,18 +17,10 @@ from hypothesis import strategies as st
 
 from rescore import tune as tuning
 from rescore.errors import InputError, UsageError
-from rescore.scoring import FeatureMatrix, Weights, choose
+from rescore.scoring import FeatureMatrix, choose
 from rescore.text import tokens
-from rescore.tune import (
-    exact_search,
-    grid_search,
-    line_errors,
-    parse_grid,
-    plateau_centre,
-    read_weights,
-    tune,
-    write_weights,
-)
+from rescore.tune import exact_search, grid_search, line_errors, parse_grid, plateau_centre, tune
+from rescore.weights import Weights, read_weights, write_weights
 from rescore.wer import word_errors
 from tests.conftest import FIXTURES, run
 

@@ -25,6 +25,7 @@ from rescore.errors import UsageError
 from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
 from rescore.report.load import reference_sentences
+from rescore.weights import read_weights
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -118,7 +119,7 @@ def apply(
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
-    w = pipeline.read_weights(weights)
+    w = read_weights(weights)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:

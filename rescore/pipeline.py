@@ -43,9 +43,10 @@ from rescore.scoring import (
     FeatureMatrix,
     LanguageModel,
     build_matrix,
+    choose,
     lm_column,
     oracle_rows,
-    segment_argmax,
+    totals,
 )
 from rescore.text import NORMALISATION, tokens
 from rescore.weights import ACOUSTIC, LM, Weights, read_weights_models, weights_text
@@ -373,27 +374,22 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
     the sign and order counts of their acoustic scores."""
     m = build_matrix(batch, path=path, lms=lms, features=features).matrix
-    vector = _weight_vector(weights, m)
-    total = m.values @ vector
-    best = segment_argmax(total, m.offsets) - m.offsets[:-1]
+    total = totals(m, weights)
+    best = choose(m, weights, total)
     # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
     words = m.values[:, m.names.index("words")].astype(np.int64).tolist()
-    totals = total.tolist()
+    scores = total.tolist()
     hyps = [hyp for _, utt in batch for hyp in utt["hypotheses"]]
     if LM in m.names:
-        for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, totals,
+        for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, scores,
                                  strict=True):
             hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
     else:
-        for hyp, w, t in zip(hyps, words, totals, strict=True):
+        for hyp, w, t in zip(hyps, words, scores, strict=True):
             hyp["words"], hyp["total"] = w, t
     for (_, utt), b in zip(batch, best.tolist(), strict=True):
         utt["best"] = b
     return [utt for _, utt in batch], score_stats(m.column(ACOUSTIC), m.offsets)
-
-
-def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
-    return weights.vector(m.names)
 
 
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,

@@ -103,14 +103,36 @@ def segment_argmax(scores: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     return np.minimum.reduceat(candidates, starts, axis=0)
 
 
-def totals(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
-    return np.asarray(matrix.values @ weights.vector(matrix.names))
+# --- the choice kernel: apply, tune and the report's depth curve all choose through here
+
+def totals(matrix: FeatureMatrix, weights: Weights | np.ndarray) -> np.ndarray:
+    """The combined score of every row; ``weights`` may be a vector over ``matrix.names``."""
+    vector = weights.vector(matrix.names) if isinstance(weights, Weights) else weights
+    return np.asarray(matrix.values @ vector)
 
 
-def choose(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
+def chosen_rows(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+                scores: np.ndarray | None = None) -> np.ndarray:
+    """Global row of the chosen hypothesis of every utterance: the highest total, the
+    earlier hypothesis on ties. ``scores`` are the :func:`totals` when already at hand."""
+    return segment_argmax(totals(matrix, weights) if scores is None else scores,
+                          matrix.offsets)
+
+
+def choose(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+           scores: np.ndarray | None = None) -> np.ndarray:
     """Index within its list of the chosen hypothesis of every utterance."""
-    rows = segment_argmax(totals(matrix, weights), matrix.offsets)
-    return np.asarray(rows - matrix.offsets[:-1])
+    return np.asarray(chosen_rows(matrix, weights, scores) - matrix.offsets[:-1])
+
+
+def chosen_errors(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+                  errors: np.ndarray | None = None) -> int:
+    """Word errors of the chosen hypotheses against the references (``errors`` per row,
+    ``matrix.errors`` by default)."""
+    errors = matrix.errors if errors is None else errors
+    if errors is None:
+        raise ValueError("errors need references")
+    return int(errors[chosen_rows(matrix, weights)].sum())
 
 
 def oracle_rows(matrix: FeatureMatrix) -> np.ndarray:

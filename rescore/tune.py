@@ -29,7 +29,7 @@ import numpy as np
 
 from rescore.errors import InputError, UsageError
 from rescore.progress import Advance, Report, Steps
-from rescore.scoring import FeatureMatrix, choose, oracle_rows, segment_argmax
+from rescore.scoring import FeatureMatrix, chosen_errors, oracle_rows, segment_argmax
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
 from rescore.wer import UNDEFINED_WER
 
@@ -295,12 +295,6 @@ def _column_index(matrix: FeatureMatrix, name: str) -> int:
     return matrix.names.index(name)
 
 
-def _errors_at(matrix: FeatureMatrix, weights: Weights) -> int:
-    assert matrix.errors is not None
-    rows = choose(matrix, weights) + matrix.offsets[:-1]
-    return int(matrix.errors[rows].sum())
-
-
 def _first_errors(matrix: FeatureMatrix) -> int:
     assert matrix.errors is not None
     return int(matrix.errors[matrix.offsets[:-1]].sum())
@@ -315,7 +309,7 @@ def _result(matrix: FeatureMatrix, weights: Weights, search: str, tuned: tuple[s
             surface: Surface | None, settings: Mapping[str, Any]) -> TuneResult:
     _, words = _check_matrix(matrix)
     # dev errors from the same choice ``apply`` makes, so the two can never disagree
-    errors = _errors_at(matrix, weights)
+    errors = chosen_errors(matrix, weights)
     return TuneResult(
         weights=weights, dev_errors=errors, dev_wer=errors / words,
         baseline_wer=_first_errors(matrix) / words, oracle_wer=_oracle_errors(matrix) / words,
@@ -774,13 +768,13 @@ def _line_move(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray, d: np.n
     ends = ((1, low), (2, high)) if np.count_nonzero(d) == 1 else ()
     for rank, end in ends:
         if math.isfinite(end):
-            candidates.append((_errors_of_vector(matrix, errors, w + end * d), rank, end))
+            candidates.append((chosen_errors(matrix, w + end * d, errors), rank, end))
     found, _, step = min(candidates)
     if found > current:
         return w, current
     trial = w + step * d
     trial[idx] = np.clip(trial[idx], lo, hi)
-    actual = _errors_of_vector(matrix, errors, trial)
+    actual = chosen_errors(matrix, trial, errors)
     # the check guards against rounding at near-ties
     return (trial, actual) if actual <= current else (w, current)
 
@@ -791,7 +785,7 @@ def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
     """Exact line searches along each tuned coordinate, sweep after sweep; when a sweep
     gains nothing, as many random directions; stop when those gain nothing either."""
     w = w.copy()
-    current = _errors_of_vector(matrix, errors, w)
+    current = chosen_errors(matrix, w, errors)
     width = len(matrix.names)
     axes = []
     for k in idx:
@@ -813,11 +807,6 @@ def _coordinate_ascent(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray,
         if current >= before:
             break
     return w, current
-
-
-def _errors_of_vector(matrix: FeatureMatrix, errors: np.ndarray, w: np.ndarray) -> int:
-    rows = segment_argmax(matrix.values @ w, matrix.offsets)
-    return int(errors[rows].sum())
 
 
 def exact_search(
@@ -997,7 +986,7 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
                               lm_column, steps, bounds).weights
         test_m = matrix.subset(held)
         words = int(matrix.ref_words[held].sum())
-        errs = _errors_at(test_m, weights)
+        errs = chosen_errors(test_m, weights)
         out.append(Fold(utterances=len(held), reference_words=words, errors=errs,
                         wer=errs / words if words else float("nan"), weights=weights))
     total_e = sum(f.errors for f in out)
@@ -1017,7 +1006,7 @@ def depth_table(matrix: FeatureMatrix, weights: Weights) -> tuple[DepthRow, ...]
         rows.append(DepthRow(
             depth=k, label="all" if k == deepest else str(k),
             one_best_wer=_first_errors(part) / words,
-            tuned_wer=_errors_at(part, weights) / words,
+            tuned_wer=chosen_errors(part, weights) / words,
             oracle_wer=_oracle_errors(part) / words,
         ))
     return tuple(rows)

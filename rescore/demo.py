@@ -191,7 +191,7 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,
             provenance: dict[str, Any], model: Path) -> list[Path]:
     from rescore.lm import load_model
-    from rescore.lm.fingerprint import overlap_summary
+    from rescore.lm.overlap import overlap_summary
     from rescore.report import build_report, load_system, write_report
     from rescore.report.load import weights_provenance
 

@@ -14,7 +14,7 @@ from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
 
 if TYPE_CHECKING:
-    from rescore.lm.fingerprint import OverlapSummary
+    from rescore.lm.overlap import OverlapSummary
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
@@ -64,7 +64,7 @@ def leakage(models: list[tuple[str, Path]], references: list[list[str]],
             threshold: float) -> OverlapSummary:
     """The overlap of the references with the named models' training text."""
     from rescore.lm import load_model
-    from rescore.lm.fingerprint import overlap_summary
+    from rescore.lm.overlap import overlap_summary
 
     return overlap_summary([(name, load_model(path)) for name, path in models], references,
                            threshold=threshold)

@@ -15,7 +15,7 @@ import numpy as np
 
 from rescore import __version__
 from rescore.errors import InputError
-from rescore.lm.fingerprint import OverlapSummary
+from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
@@ -266,7 +266,7 @@ def build_report(
     hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
     of critical words counted apart (default: the built-in numbers and negations; see
     :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
-    language models' training text (:func:`rescore.lm.fingerprint.overlap_summary`); above
+    language models' training text (:func:`rescore.lm.overlap.overlap_summary`); above
     its threshold the report warns first of all.
     """
     if tuning is not None and not isinstance(tuning, Tuning):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from rescore.lm import arpa, store
 from rescore.lm.evaluate import (
     PerplexityResult,
     SentenceScore,
@@ -27,12 +28,8 @@ def is_arpa_name(path: str | Path) -> bool:
 def save_model(model: NGramModel, path: str | Path) -> None:
     """Write ``model`` atomically: ARPA text for a ``.arpa``/``.arpa.gz`` name, else native."""
     if is_arpa_name(path):
-        from rescore.lm import arpa
-
         arpa.write(model._fitted(), path, closed_vocab=model.closed_vocab)
     else:
-        from rescore.lm import store
-
         digest = store.save(model._fitted(), model.metadata_, path,
                             {"sentence_hashes": model.sentence_hashes})
         model._checksum = digest
@@ -41,12 +38,8 @@ def save_model(model: NGramModel, path: str | Path) -> None:
 def load_model(path: str | Path) -> NGramModel:
     """Read a model written by :func:`save_model` or any valid ARPA file, by its name."""
     if is_arpa_name(path):
-        from rescore.lm import arpa
-
         tables, meta = arpa.read(path)
         return NGramModel.from_tables(tables, meta)
-    from rescore.lm import store
-
     tables, meta, digest, optional = store.load_with_optional(path)
     return NGramModel.from_tables(tables, meta, digest, optional["sentence_hashes"])
 

@@ -14,6 +14,7 @@ from rescore.lm.backoff import estimate
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.fingerprint import Recorder
 from rescore.lm.smoothing import METHODS, make_smoother
+from rescore.lm.store import content_parts
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
     BOS_ID,
@@ -178,8 +179,6 @@ class NGramModel:
     def checksum(self) -> str:
         """sha256 of the model's content, equal to the one its native file carries."""
         if self._checksum is None:
-            from rescore.lm.store import content_parts
-
             digest = hashlib.sha256()
             for part in content_parts(self._fitted(), self.metadata_,
                                       {"sentence_hashes": self.sentence_hashes}):

@@ -127,7 +127,7 @@ def report(
     )
     from rescore.report.critical import classes_with_terms, read_terms
     from rescore.report.load import weights_provenance
-    from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
+    from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
 
     classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)

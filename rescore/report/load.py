@@ -10,7 +10,7 @@ from typing import Any
 from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines, sha256_file
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
-from rescore.report.model import Pair
+from rescore.report.build import Pair
 from rescore.text import tokens
 from rescore.weights import read_weights
 

@@ -20,6 +20,7 @@ from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
 from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
+from rescore.report.rows import UtteranceRow
 from rescore.significance import (
     BootstrapResult,
     MatchedPairsResult,
@@ -32,7 +33,6 @@ from rescore.significance import (
 )
 from rescore.text import NORMALISATION, tokens
 from rescore.wer import (
-    Alignment,
     CerResult,
     WerResult,
     align_many,
@@ -131,27 +131,6 @@ class Difference:
 
     def to_dict(self) -> dict[str, float | None]:
         return dict(vars(self))
-
-
-@dataclass(frozen=True)
-class UtteranceRow:
-    id: str
-    reference_words: int
-    before: Alignment
-    after: Alignment
-    meta: Mapping[str, Any]
-
-    @property
-    def before_errors(self) -> int:
-        return self.before.errors
-
-    @property
-    def after_errors(self) -> int:
-        return self.after.errors
-
-    @property
-    def change(self) -> int:
-        return self.after.errors - self.before.errors
 
 
 @dataclass(frozen=True)

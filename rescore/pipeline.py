@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import itertools
+import json
 import logging
 from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
@@ -18,6 +19,7 @@ from typing import Any
 import numpy as np
 
 from rescore import __version__
+from rescore import tune as tuning
 from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
@@ -406,8 +408,6 @@ def tune_file(
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
     """
-    from rescore import tune as tuning
-
     extra_lms = [lm_column(n) for n in models if n != LM]
     main_lm = LM if LM in models else None
     box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)
@@ -431,8 +431,6 @@ def tune_file(
     prov = provenance(data=[path], models=models, extra=result.search_record())
     files = {weights_path: weights_text(weights_path, result.weights, prov)}
     if analysis_path is not None:
-        import json
-
         files[analysis_path] = json.dumps(result.to_dict() | {"provenance": prov},
                                           indent=2) + "\n"
     # the weights and their analysis appear together or not at all (a full disk, a kill)

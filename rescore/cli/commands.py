@@ -9,6 +9,7 @@ from typing import Annotated
 
 import typer
 
+from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
 from rescore.cli.options import (
@@ -242,8 +243,6 @@ def demo(
     as_json: JsonOpt = False,
 ) -> None:
     """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
-    from rescore import demo as demo_lib
-
     result = demo_lib.run_demo(out, data_dir=data, progress=info)
     if as_json:
         emit_json(result.summary)

@@ -18,6 +18,7 @@ from rescore.lm import (
     save_model,
     write_sentence_scores,
 )
+from rescore.lm.mix import mix_models
 from rescore.progress import Steps
 from rescore.text import tokens
 
@@ -154,8 +155,6 @@ def mix(
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Interpolate language models; weights by EM on in-domain text; write one merged model."""
-    from rescore.lm.mix import mix_models
-
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
     check_output_path(output)

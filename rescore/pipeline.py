@@ -18,7 +18,6 @@ from typing import Any
 
 import numpy as np
 
-from rescore import __version__
 from rescore import tune as tuning
 from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
 from rescore.errors import InputError, UsageError
@@ -49,6 +48,7 @@ from rescore.scoring import (
     oracle_rows,
 )
 from rescore.text import NORMALISATION, tokens
+from rescore.version import __version__
 from rescore.weights import ACOUSTIC, LM, Weights, read_weights_models, weights_text
 from rescore.wer import (
     UNDEFINED_WER,
@@ -145,7 +145,7 @@ def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
     return {name: m.model for name, m in models.items()}
 
 
-def _check_weighted(weights: Weights, models: Mapping[str, NamedModel]) -> list[str]:
+def check_weighted(weights: Weights, models: Mapping[str, object]) -> list[str]:
     """File features the weights use; an LM weight without a model is an error."""
     features = [k for k, v in weights.features.items() if v != 0.0 and not k.startswith("lm:")]
     needed = {LM} if weights.lm_weight != 0.0 else set()
@@ -246,7 +246,7 @@ def apply_file(
     parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
     the output is the same byte for byte.
     """
-    features = _check_weighted(weights, models)
+    features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
         if refs is not None and refs_path is None:
             raise UsageError("parallel runs take references as a file path (refs_path)")

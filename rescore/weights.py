@@ -83,7 +83,31 @@ def _reject_constant(token: str) -> float:
 
 
 def read_weights(path: str | Path) -> Weights:
-    """Read a weights file, strictly: unknown keys, non-numbers and NaN are errors."""
+    """Read a weights file, strictly: unknown keys, non-numbers and NaN are errors.
+
+    Parameters
+    ----------
+    path : str or Path
+        The weights file (as ``rescore tune`` writes it).
+
+    Returns
+    -------
+    Weights
+        The weights (the file's provenance is not part of them).
+
+    Raises
+    ------
+    InputError
+        A key unknown or missing, a value not a finite number, or bad JSON.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "w.json"
+    >>> write_weights(path, Weights(lm_weight=9.0), {})
+    >>> read_weights(path).lm_weight
+    9.0
+    """
     where = str(path)
     try:
         data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
@@ -141,7 +165,33 @@ def read_weights_models(path: str | Path) -> dict[str, str]:
 
 
 def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:
-    """Write a weights file atomically (nothing appears at ``path`` on failure)."""
+    """Write a weights file atomically (nothing appears at ``path`` on failure).
+
+    Parameters
+    ----------
+    path : str or Path
+        Where to write.
+    weights : Weights
+        The weights.
+    provenance : mapping
+        How they were made (package version, data and model checksums, search).
+
+    Returns
+    -------
+    None
+
+    Raises
+    ------
+    InputError
+        A weight that is not a finite number.
+    OutputError
+        The file could not be written whole.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> write_weights(pathlib.Path(tempfile.mkdtemp()) / "w.json", Weights(), {"note": "x"})
+    """
     write_text_atomic(path, weights_text(path, weights, provenance))
 
 

@@ -9,10 +9,10 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from rescore import __version__
 from rescore.cli import commands, lm, report
 from rescore.cli._common import install_signal_handlers, state
 from rescore.process import avoid_huge_pages, keep_freed_memory
+from rescore.version import __version__
 
 
 class _Commands(TyperGroup):

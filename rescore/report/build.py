@@ -13,7 +13,6 @@ from typing import Any
 
 import numpy as np
 
-from rescore import __version__
 from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
@@ -32,6 +31,7 @@ from rescore.significance import (
     wilcoxon_signed_rank,
 )
 from rescore.text import NORMALISATION, tokens
+from rescore.version import __version__
 from rescore.wer import (
     CerResult,
     WerResult,

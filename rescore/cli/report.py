@@ -8,6 +8,7 @@ from typing import Annotated, Any
 
 import typer
 
+from rescore import pipeline
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
@@ -116,6 +117,9 @@ def report(
         "(repeatable). Default: the models the --weights file records, where they still are.",
         show_default=False)] = None,
     warn_overlap: WarnOverlapOpt = "1%",
+    allow_other_model: Annotated[bool, typer.Option(
+        "--allow-other-model", help="With --weights and --lm: go on (with a warning) when a "
+        "model's SHA-256 differs from the one the weights were tuned with.")] = False,
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
@@ -124,6 +128,11 @@ def report(
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
+    if weights is not None and lm:
+        # the models named as apply names them (MODEL, or NAME=MODEL), refused like there
+        given = pipeline.load_lms([str(p) for p in lm])
+        for other in pipeline.check_models(weights, given, allow_other=allow_other_model):
+            info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)

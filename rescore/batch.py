@@ -19,6 +19,8 @@ from rescore.scoring import LanguageModel, build_matrix, choose, totals
 from rescore.text import tokens
 from rescore.weights import ACOUSTIC, LM, Weights
 
+DEFAULT_BATCH = 2000  # records read, scored and written together (memory stays flat)
+
 
 def batches(items: Iterator[tuple[int, Utterance]], size: int
             ) -> Iterator[list[tuple[int, Utterance]]]:

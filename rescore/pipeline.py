@@ -19,7 +19,14 @@ from typing import Any
 import numpy as np
 
 from rescore import tune as tuning
-from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
+from rescore.batch import (
+    DEFAULT_BATCH,
+    WriteCounts,
+    batches,
+    check_accounting,
+    rescore_batch,
+    write_scored,
+)
 from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
     LineCounter,
@@ -183,7 +190,7 @@ class CheckResult:
 
 def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
                log_base: float | None = None, costs: bool | None = None,
-               batch_size: int = 2000) -> CheckResult:
+               batch_size: int = DEFAULT_BATCH) -> CheckResult:
     depths: Counter[int] = Counter()
     n_utt = n_hyp = 0
     errors_1 = errors_o = words = 0
@@ -236,7 +243,7 @@ def apply_file(
     path: Path, out: Path, *, models: Mapping[str, NamedModel], weights: Weights,
     text_path: Path | None = None, refs: Mapping[str, str] | None = None,
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
-    batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
+    batch_size: int = DEFAULT_BATCH, workers: int = 1, cluster: str | None = None,
     limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
     shard_bytes: int | None = None,
 ) -> ApplyResult:
@@ -294,7 +301,7 @@ def apply_file(
 
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
              log_base: float | None = None, costs: bool | None = None,
-             batch_size: int = 2000) -> WerResult:
+             batch_size: int = DEFAULT_BATCH) -> WerResult:
     """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat)."""
     totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
     n_utt = n_scored = 0
@@ -367,7 +374,7 @@ def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Seque
     called with the number of utterances of each batch scored."""
     parts: list[FeatureMatrix] = []
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
-                                     require_references=True), 2000):
+                                     require_references=True), DEFAULT_BATCH):
         parts.append(build_matrix(batch, path=str(path), lms=_models(models),
                                   features=features, with_errors=True).matrix)
         if progress is not None:

@@ -11,6 +11,7 @@ import typer
 
 from rescore import demo as demo_lib
 from rescore import pipeline
+from rescore.batch import DEFAULT_BATCH
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
 from rescore.cli.options import (
     BatchOpt,
@@ -49,7 +50,7 @@ WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           costs: CostsOpt = None, as_json: JsonOpt = False,
-          batch_size: BatchOpt = 2000,
+          batch_size: BatchOpt = DEFAULT_BATCH,
           lm: Annotated[list[Path] | None, typer.Option(
               "--lm", help="Count the references found verbatim in this LM's training text "
               "(repeatable).", show_default=False)] = None,
@@ -105,7 +106,7 @@ def apply(
     text: Annotated[Path | None, typer.Option(
         "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
-    batch_size: BatchOpt = 2000,
+    batch_size: BatchOpt = DEFAULT_BATCH,
     workers: Annotated[int, typer.Option(
         "--workers", min=1, help="Worker processes on this machine.")] = 1,
     cluster: Annotated[str | None, typer.Option(
@@ -142,7 +143,7 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
-    batch_size: BatchOpt = 2000,
+    batch_size: BatchOpt = DEFAULT_BATCH,
 ) -> None:
     """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
     if (nbest is None) == (hyps is None):

@@ -26,6 +26,7 @@ import numpy.typing as npt
 from rescore.errors import ModelFileError
 from rescore.ioutil import atomic_output, iter_text_lines
 from rescore.lm import hashindex
+from rescore.lm.model import MAX_ORDER
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
 
@@ -34,7 +35,6 @@ I64 = npt.NDArray[np.int64]
 LOG10E = 1.0 / math.log(10.0)
 ZERO = -99.0  # log10 of "never"
 NUDGED_ZERO = "-99.0000001"  # a real probability that would otherwise print as -99
-MAX_ORDER = 6
 MAX_LINE_BYTES = 1 << 20  # an n-gram line is a few words and numbers; refuse runaway lines
 # bounded digit runs: int() of thousands of digits raises ValueError, not our error
 _NGRAM_LINE = re.compile(r"^ngram\s+([0-9]{1,6})\s*=\s*([0-9]{1,15})$")

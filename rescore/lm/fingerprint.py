@@ -21,7 +21,8 @@ import numpy as np
 import numpy.typing as npt
 import xxhash
 
-U64 = npt.NDArray[np.uint64]
+from rescore.arrays import U64
+
 BYTES_PER_SENTENCE = 8
 
 

@@ -25,14 +25,12 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.arrays import F64, I64
 from rescore.errors import UsageError
 from rescore.lm import fingerprint, hashindex
 from rescore.lm.model import NGramModel
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary
-
-F64 = npt.NDArray[np.float64]
-I64 = npt.NDArray[np.int64]
 
 
 def union_vocabulary(models: Sequence[NGramModel]) -> Vocabulary:

@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.arrays import F64
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.counts import count_ngrams, window_floor
@@ -29,7 +30,6 @@ from rescore.lm.vocab import (
 )
 from rescore.progress import Report, Steps
 
-F64 = npt.NDArray[np.float64]
 MAX_ORDER = 6
 
 

@@ -4,11 +4,12 @@ The whole job from Python::
 
     import rescore
     model = rescore.build_model(Path("train.txt"))
-    result = rescore.tune("dev.jsonl", lm=model)
+    result = rescore.tune_weights("dev.jsonl", lm=model)
     rescored = rescore.apply("test.jsonl", result.weights, lm=model)
-    print(rescore.wer(rescored).wer)
+    print(rescore.word_error_rate(rescored).wer)
 
-Each name below has its own documentation (``help(rescore.tune)``).
+Each name below has its own documentation (``help(rescore.tune_weights)``); the names differ from
+the subpackages ``rescore.tune``, ``rescore.report`` and ``rescore.wer`` on purpose.
 """
 
 from rescore.api import (
@@ -17,10 +18,10 @@ from rescore.api import (
     build_model,
     load_model,
     read_nbest,
-    report,
+    release_report,
     save_model,
-    tune,
-    wer,
+    tune_weights,
+    word_error_rate,
 )
 from rescore.errors import (
     GateError,
@@ -50,9 +51,9 @@ __all__ = [
     "load_model",
     "read_nbest",
     "read_weights",
-    "report",
+    "release_report",
     "save_model",
-    "tune",
-    "wer",
+    "tune_weights",
+    "word_error_rate",
     "write_weights",
 ]

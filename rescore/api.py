@@ -160,7 +160,7 @@ def read_nbest(path: str | Path, *, refs: str | Path | Mapping[str, str] | None 
     return [u for _, u in iter_nbest(path, refs=_refs(refs))]
 
 
-def tune(nbest: NBest, *, lm: LanguageModel | str | Path | None = None,
+def tune_weights(nbest: NBest, *, lm: LanguageModel | str | Path | None = None,
          search: str | None = None, features: Sequence[str] = (),
          weights_path: str | Path | None = None, **options: Any) -> TuneResult:
     """Tune the LM weight and insertion penalty (and feature weights) on a dev set.
@@ -198,7 +198,7 @@ def tune(nbest: NBest, *, lm: LanguageModel | str | Path | None = None,
 
     Examples
     --------
-    >>> result = tune("fixtures/demo/dev.jsonl", lm=model)  # doctest: +SKIP
+    >>> result = tune_weights("fixtures/demo/dev.jsonl", lm=model)  # doctest: +SKIP
     >>> result.weights.lm_weight  # doctest: +SKIP
     """
     model = _model(lm)
@@ -223,7 +223,7 @@ def apply(nbest: NBest, weights: Weights, *, lm: LanguageModel | str | Path | No
         The N-best lists (a file, or utterances from :func:`read_nbest`; these are
         filled in place).
     weights : Weights
-        The weights, e.g. ``tune(...).weights`` or :func:`read_weights`.
+        The weights, e.g. ``tune_weights(...).weights`` or :func:`read_weights`.
     lm : NGramModel, str or Path, optional
         The language model, needed when the weights give it weight.
 
@@ -291,7 +291,7 @@ def apply_file(nbest: str | Path, out: str | Path, weights: Weights, *,
                                workers=workers)
 
 
-def wer(nbest_or_references: NBest | Sequence[str],
+def word_error_rate(nbest_or_references: NBest | Sequence[str],
         hypotheses: Sequence[str] | None = None) -> WerResult:
     """Corpus word error rate, text normalised as everywhere in rescore.
 
@@ -317,7 +317,7 @@ def wer(nbest_or_references: NBest | Sequence[str],
 
     Examples
     --------
-    >>> wer(["the pump is on"], ["the pump on"]).wer
+    >>> word_error_rate(["the pump is on"], ["the pump on"]).wer
     0.25
     """
     if hypotheses is not None:
@@ -335,7 +335,7 @@ def wer(nbest_or_references: NBest | Sequence[str],
                       [tokens(one_best(u)["text"]) for _, u in items])
 
 
-def report(before: str | Path, after: str | Path, *, out_dir: str | Path | None = None,
+def release_report(before: str | Path, after: str | Path, *, out_dir: str | Path | None = None,
            refs: str | Path | Mapping[str, str] | None = None, **options: Any) -> Report:
     """Compare two systems on the same utterances: WER, CER, significance, breakdowns.
 
@@ -365,7 +365,7 @@ def report(before: str | Path, after: str | Path, *, out_dir: str | Path | None 
 
     Examples
     --------
-    >>> r = report("test.jsonl", "test.rescored.jsonl")  # doctest: +SKIP
+    >>> r = release_report("test.jsonl", "test.rescored.jsonl")  # doctest: +SKIP
     >>> r.after.wer < r.before.wer  # doctest: +SKIP
     """
     ref_map = _refs(refs)

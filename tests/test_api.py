@@ -56,12 +56,12 @@ def test_wer_of_texts_against_jiwer() -> None:
     jiwer = pytest.importorskip("jiwer")
     refs, hyps = ["the pump is on", "vent open"], ["the pump on", "vent is open"]
     # jiwer: 1 deletion + 1 insertion over 6 reference words
-    assert rescore.wer(refs, hyps).wer == pytest.approx(jiwer.wer(refs, hyps))
+    assert rescore.word_error_rate(refs, hyps).wer == pytest.approx(jiwer.wer(refs, hyps))
 
 
 def test_parameter_error_names_the_parameter() -> None:
     with pytest.raises(rescore.ParameterError) as caught:
-        rescore.wer(["a b"], ["a", "b"])
+        rescore.word_error_rate(["a b"], ["a", "b"])
     assert caught.value.field == "hypotheses"
     assert isinstance(caught.value, ValueError)
 
@@ -81,12 +81,12 @@ def test_apply_in_memory_matches_apply_file(tmp_path: Path) -> None:
 
 def test_tune_writes_nothing_unless_asked(tmp_path: Path) -> None:
     before = set(tmp_path.iterdir())
-    result = rescore.tune(DEMO / "dev.jsonl", lm=rescore.build_model("bay one\nbay two"),
+    result = rescore.tune_weights(DEMO / "dev.jsonl", lm=rescore.build_model("bay one\nbay two"),
                           folds=0)
     assert set(tmp_path.iterdir()) == before
-    rescore.tune(DEMO / "dev.jsonl", folds=0, weights_path=tmp_path / "w.json")
+    rescore.tune_weights(DEMO / "dev.jsonl", folds=0, weights_path=tmp_path / "w.json")
     assert rescore.read_weights(tmp_path / "w.json").insertion_penalty == pytest.approx(
-        rescore.tune(DEMO / "dev.jsonl", folds=0).weights.insertion_penalty)
+        rescore.tune_weights(DEMO / "dev.jsonl", folds=0).weights.insertion_penalty)
     assert result.weights.acoustic_scale == 1.0
 
 
@@ -97,3 +97,16 @@ def test_every_public_name_is_documented(name: str) -> None:
     if callable(getattr(rescore, name)) and not isinstance(getattr(rescore, name), type):
         for part in ("Parameters", "Returns", "Raises", "Examples"):
             assert part in doc, f"{name}: no {part} section"
+
+
+def test_public_names_leave_the_subpackages_reachable() -> None:
+    # a function named like a subpackage would replace it as an attribute of rescore
+    # (``rescore.report.html`` would then fail); the API's names differ from them
+    import types
+
+    import rescore.report
+    import rescore.tune
+    import rescore.wer
+
+    for module in (rescore.report, rescore.tune, rescore.wer):
+        assert isinstance(module, types.ModuleType)

@@ -9,15 +9,22 @@ from __future__ import annotations
 import json
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from itertools import islice
 from pathlib import Path
 from typing import Any
 
 from rescore import pipeline
 from rescore.errors import InputError
 from rescore.ioutil import write_text_atomic
+from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
+from rescore.lm.mix import mix_models
+from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
-from rescore.scoring import LM, oracle_rows
+from rescore.report import build_report, load_system, write_report
+from rescore.report.load import weights_provenance
+from rescore.scoring import oracle_rows
 from rescore.text import tokens
+from rescore.weights import LM, read_weights
 from rescore.wer import corpus_wer
 
 BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
@@ -45,8 +52,6 @@ def _silent(message: str) -> None:
 
 def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
              progress: Callable[[str], None] = _silent) -> DemoResult:
-    from rescore.lm import NGramModel, perplexity, read_corpus, save_model
-
     data = BUNDLED if data_dir is None else Path(data_dir)
     for name in FILES:
         if not (data / name).is_file():
@@ -74,7 +79,7 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     progress("rescoring test.jsonl")
     rescored = out / "test.rescored.jsonl"
     pipeline.apply_file(data / "test.jsonl", rescored, models=models,
-                        weights=pipeline.read_weights(weights_path),
+                        weights=read_weights(weights_path),
                         text_path=out / "test.best.tsv")
 
     before, after, oracle = _test_wers(data / "test.jsonl", rescored, models)
@@ -110,11 +115,6 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
     general model alone, the small in-domain model alone, their EM mixture (merged), both
     as log-linear features, and the full logbook model for reference.
     """
-    from itertools import islice
-
-    from rescore.lm import NGramModel, read_corpus, save_model
-    from rescore.lm.mix import mix_models
-
     progress(f"building a {order}-gram background LM from {data / 'background.txt'}")
     background = NGramModel(order=order).fit(read_corpus([data / "background.txt"]))
     progress(f"building a {order}-gram LM from the first {ADAPT_SENTENCES} logbook sentences")
@@ -154,7 +154,7 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
             ).to_dict()
             rescored = out / f"test.{tag}.rescored.jsonl"
             pipeline.apply_file(data / "test.jsonl", rescored, models=models,
-                                weights=pipeline.read_weights(weights_path))
+                                weights=read_weights(weights_path))
             wer = pipeline.wer_file(rescored).to_dict()
             written += [weights_path, rescored]
         rows.append({
@@ -189,11 +189,6 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,
             provenance: dict[str, Any], model: Path) -> list[Path]:
-    from rescore.lm import load_model
-    from rescore.lm.fingerprint import overlap_summary
-    from rescore.report import build_report, load_system, write_report
-    from rescore.report.load import weights_provenance
-
     before_pairs = load_system(before)
     # the test references against the tuned model's training text (the leakage check)
     overlap = overlap_summary([(model.name, load_model(model))],

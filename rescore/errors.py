@@ -73,3 +73,10 @@ class GateError(RescoreError):
     """A release gate was breached (``rescore report --max-wer/--max-regression``)."""
 
     exit_code = 3
+
+
+class ParameterError(RescoreError, ValueError):
+    """A Python argument out of its range or of the wrong kind; ``field`` is the
+    parameter's name (the command line shows its own flag name instead)."""
+
+    exit_code = 2

@@ -25,10 +25,11 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, TYPE_CHECKING, Any
+from typing import IO, Any
 
 import numpy as np
 
+from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
 from rescore.cluster import dask_client
 from rescore.errors import InputError
 from rescore.ioutil import (
@@ -42,6 +43,7 @@ from rescore.ioutil import (
     scratch_folder,
 )
 from rescore.listcheck import ListStats
+from rescore.lm import load_model
 from rescore.nbest import (
     IdLedger,
     ReadLimits,
@@ -50,10 +52,7 @@ from rescore.nbest import (
     id_digest,
     read_refs,
 )
-from rescore.scoring import Weights
-
-if TYPE_CHECKING:
-    from rescore.pipeline import WriteCounts
+from rescore.weights import Weights
 
 log = logging.getLogger(__name__)
 
@@ -103,8 +102,6 @@ def _models(specs: tuple[tuple[str, str], ...]) -> dict[str, Any]:
     if not specs:
         return {}
     if specs not in _MODEL_CACHE:
-        from rescore.lm import load_model
-
         _MODEL_CACHE[specs] = {name: load_model(path) for name, path in specs}
     return _MODEL_CACHE[specs]
 
@@ -119,8 +116,6 @@ def _refs(path: str | None) -> dict[str, str] | None:
 
 def run_shard(task: ShardTask) -> ShardResult:
     """Rescore one shard into its own output file (runs inside a worker)."""
-    from rescore.pipeline import WriteCounts, batches, rescore_batch, write_scored
-
     parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
                           task.require_references, task.limits)
     lms = _models(task.models)
@@ -309,8 +304,6 @@ def _apply_in(
         refs = None if refs_path is None else read_refs(refs_path)
         ledger = IdLedger(str(path), refs)
         runner = _Runner(workers, cluster)
-        from rescore.pipeline import WriteCounts, check_accounting  # pipeline imports us
-
         total = 0
         counts, stats = WriteCounts(), ListStats()
 

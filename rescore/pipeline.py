@@ -8,49 +8,55 @@ from __future__ import annotations
 
 import functools
 import itertools
+import json
 import logging
 from collections import Counter
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from rescore import __version__
-from rescore.errors import AccountingError, InputError, UsageError
+from rescore import tune as tuning
+from rescore.batch import (
+    DEFAULT_BATCH,
+    WriteCounts,
+    batches,
+    check_accounting,
+    rescore_batch,
+    write_scored,
+)
+from rescore.errors import InputError, UsageError
 from rescore.ioutil import (
     LineCounter,
-    TextSink,
     atomic_outputs,
     count_lines,
     sha256_file,
     write_texts_atomic,
 )
 from rescore.listcheck import ListStats, score_stats, text_stats
+from rescore.lm import load_model
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
-    Utterance,
-    dumps,
     iter_nbest,
     one_best,
     read_convention,
     read_refs,
 )
+from rescore.parallel import apply_sharded
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
-    ACOUSTIC,
-    LM,
     FeatureMatrix,
     LanguageModel,
-    Weights,
     build_matrix,
     lm_column,
     oracle_rows,
-    segment_argmax,
 )
 from rescore.text import NORMALISATION, tokens
+from rescore.version import __version__
+from rescore.weights import ACOUSTIC, LM, Weights, read_weights_models, weights_text
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
@@ -82,8 +88,6 @@ class NamedModel:
 
     @functools.cached_property
     def model(self) -> LanguageModel:
-        from rescore.lm import load_model
-
         return load_model(self.path)
 
     @functools.cached_property
@@ -104,12 +108,6 @@ def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
             raise UsageError(f"--lm: the name {name!r} is given twice")
         out[name] = NamedModel(name, Path(path))
     return out
-
-
-def read_weights(path: str | Path) -> Weights:
-    from rescore.tune import read_weights as _read
-
-    return _read(path)
 
 
 @dataclass(frozen=True)
@@ -139,8 +137,6 @@ def check_models(weights_path: str | Path, models: Mapping[str, NamedModel], *,
     record. A model the weights do not record (or a weights file without provenance) is
     not compared.
     """
-    from rescore.tune import read_weights_models
-
     recorded = read_weights_models(weights_path)
     other = tuple(OtherModel(name, str(m.path), m.sha256, recorded[name])
                   for name, m in models.items()
@@ -156,17 +152,7 @@ def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
     return {name: m.model for name, m in models.items()}
 
 
-def batches(items: Iterator[tuple[int, Utterance]], size: int
-            ) -> Iterator[list[tuple[int, Utterance]]]:
-    """Consecutive lists of at most ``size`` records."""
-    while True:
-        batch = list(itertools.islice(items, size))
-        if not batch:
-            return
-        yield batch
-
-
-def _check_weighted(weights: Weights, models: Mapping[str, NamedModel]) -> list[str]:
+def check_weighted(weights: Weights, models: Mapping[str, object]) -> list[str]:
     """File features the weights use; an LM weight without a model is an error."""
     features = [k for k, v in weights.features.items() if v != 0.0 and not k.startswith("lm:")]
     needed = {LM} if weights.lm_weight != 0.0 else set()
@@ -204,7 +190,7 @@ class CheckResult:
 
 def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
                log_base: float | None = None, costs: bool | None = None,
-               batch_size: int = 2000) -> CheckResult:
+               batch_size: int = DEFAULT_BATCH) -> CheckResult:
     depths: Counter[int] = Counter()
     n_utt = n_hyp = 0
     errors_1 = errors_o = words = 0
@@ -253,23 +239,11 @@ class ApplyResult:
     warnings: tuple[str, ...] = ()
 
 
-@dataclass(frozen=True)
-class WriteCounts:
-    """What :func:`write_scored` wrote: 1-best changed from the first hypothesis, and
-    chosen hypotheses without words."""
-
-    changed: int = 0
-    empty: int = 0
-
-    def __add__(self, other: WriteCounts) -> WriteCounts:
-        return WriteCounts(self.changed + other.changed, self.empty + other.empty)
-
-
 def apply_file(
     path: Path, out: Path, *, models: Mapping[str, NamedModel], weights: Weights,
     text_path: Path | None = None, refs: Mapping[str, str] | None = None,
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
-    batch_size: int = 2000, workers: int = 1, cluster: str | None = None,
+    batch_size: int = DEFAULT_BATCH, workers: int = 1, cluster: str | None = None,
     limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
     shard_bytes: int | None = None,
 ) -> ApplyResult:
@@ -279,10 +253,8 @@ def apply_file(
     parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
     the output is the same byte for byte.
     """
-    features = _check_weighted(weights, models)
+    features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
-        from rescore.parallel import apply_sharded
-
         if refs is not None and refs_path is None:
             raise UsageError("parallel runs take references as a file path (refs_path)")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
@@ -327,88 +299,9 @@ def apply_file(
                        stats.warnings(costs=_read_as_costs(path, costs)))
 
 
-def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
-    """Every utterance read is accounted for: ``done`` (``what``) must equal ``read``."""
-    if done != read:
-        raise AccountingError(f"{read} utterances read but {done} {what} (a defect: please "
-                              "report it)", path=path)
-
-
-def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None, *,
-                 path: str = "", lines: Sequence[int] = ()) -> WriteCounts:
-    """Write rescored records (and their 1-best text); returns how many changed 1-best
-    and how many chose a hypothesis without words.
-
-    ``path`` and ``lines`` (the records' line numbers) name an id that the ``id<TAB>text``
-    file cannot hold.
-    """
-    if tsv is not None:
-        _check_tsv_ids(scored, path, lines)
-    fh.write("".join(dumps(utt) + "\n" for utt in scored))
-    if tsv is not None:
-        tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
-                          for utt in scored))
-    changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
-    # ``words`` is set on every hypothesis by rescore_batch; records written as they were
-    # read may lack it, and then the text is counted
-    empty = sum(1 for utt in scored if not one_best(utt).get("words", len(tokens(
-        one_best(utt)["text"]))))
-    return WriteCounts(changed, empty)
-
-
-def _check_tsv_ids(scored: Sequence[Utterance], path: str, lines: Sequence[int]) -> None:
-    ids = "".join(utt["id"] for utt in scored)
-    if "\t" not in ids and "\n" not in ids and "\r" not in ids:
-        return
-    for i, utt in enumerate(scored):
-        if any(c in utt["id"] for c in "\t\n\r"):
-            raise InputError("contains a tab or line break, which an id<TAB>text file "
-                             "(--text) cannot hold", path=path or None,
-                             line=lines[i] if i < len(lines) else None, field="id")
-
-
-def _one_line(text: str) -> str:
-    # a tab or line break inside the text would split its 'id<TAB>text' line; normalisation
-    # reads each as a space, so the words and the WER are unchanged
-    return text.translate(_TSV_BREAKS) if "\t" in text or "\n" in text or "\r" in text \
-        else text
-
-
-_TSV_BREAKS = str.maketrans("\t\n\r", "   ")
-
-
-def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
-                  lms: Mapping[str, LanguageModel], features: Sequence[str],
-                  weights: Weights) -> tuple[list[Utterance], ListStats]:
-    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
-    the sign and order counts of their acoustic scores."""
-    m = build_matrix(batch, path=path, lms=lms, features=features).matrix
-    vector = _weight_vector(weights, m)
-    total = m.values @ vector
-    best = segment_argmax(total, m.offsets) - m.offsets[:-1]
-    # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
-    words = m.values[:, m.names.index("words")].astype(np.int64).tolist()
-    totals = total.tolist()
-    hyps = [hyp for _, utt in batch for hyp in utt["hypotheses"]]
-    if LM in m.names:
-        for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, totals,
-                                 strict=True):
-            hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
-    else:
-        for hyp, w, t in zip(hyps, words, totals, strict=True):
-            hyp["words"], hyp["total"] = w, t
-    for (_, utt), b in zip(batch, best.tolist(), strict=True):
-        utt["best"] = b
-    return [utt for _, utt in batch], score_stats(m.column(ACOUSTIC), m.offsets)
-
-
-def _weight_vector(weights: Weights, m: FeatureMatrix) -> np.ndarray:
-    return weights.vector(m.names)
-
-
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
              log_base: float | None = None, costs: bool | None = None,
-             batch_size: int = 2000) -> WerResult:
+             batch_size: int = DEFAULT_BATCH) -> WerResult:
     """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat)."""
     totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
     n_utt = n_scored = 0
@@ -481,7 +374,7 @@ def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Seque
     called with the number of utterances of each batch scored."""
     parts: list[FeatureMatrix] = []
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
-                                     require_references=True), 2000):
+                                     require_references=True), DEFAULT_BATCH):
         parts.append(build_matrix(batch, path=str(path), lms=_models(models),
                                   features=features, with_errors=True).matrix)
         if progress is not None:
@@ -522,8 +415,6 @@ def tune_file(
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
     """
-    from rescore import tune as tuning
-
     extra_lms = [lm_column(n) for n in models if n != LM]
     main_lm = LM if LM in models else None
     box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)
@@ -545,10 +436,8 @@ def tune_file(
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
     prov = provenance(data=[path], models=models, extra=result.search_record())
-    files = {weights_path: tuning.weights_text(weights_path, result.weights, prov)}
+    files = {weights_path: weights_text(weights_path, result.weights, prov)}
     if analysis_path is not None:
-        import json
-
         files[analysis_path] = json.dumps(result.to_dict() | {"provenance": prov},
                                           indent=2) + "\n"
     # the weights and their analysis appear together or not at all (a full disk, a kill)

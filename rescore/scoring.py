@@ -11,7 +11,7 @@ matrix-vector product and a segmented argmax, ties going to the earlier hypothes
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
@@ -19,39 +19,8 @@ import numpy as np
 from rescore.errors import InputError
 from rescore.nbest import Utterance
 from rescore.text import tokens, tokens_many, word_counts
+from rescore.weights import ACOUSTIC, LM, WORDS, Weights
 from rescore.wer import word_errors
-
-ACOUSTIC = "acoustic"
-LM = "lm"
-WORDS = "words"
-
-
-@dataclass(frozen=True)
-class Weights:
-    """The weights of the combined score (the contract's weights file, less provenance)."""
-
-    acoustic_scale: float = 1.0
-    lm_weight: float = 0.0
-    insertion_penalty: float = 0.0
-    features: Mapping[str, float] = field(default_factory=dict)
-
-    def vector(self, names: tuple[str, ...]) -> np.ndarray:
-        """The weight of each column named in ``names`` (a feature absent here weighs 0)."""
-        fixed = {ACOUSTIC: self.acoustic_scale, LM: self.lm_weight, WORDS: self.insertion_penalty}
-        return np.array(
-            [fixed[n] if n in fixed else float(self.features.get(n, 0.0)) for n in names],
-            dtype=np.float64,
-        )
-
-    @classmethod
-    def from_vector(cls, names: tuple[str, ...], vector: np.ndarray) -> Weights:
-        values = dict(zip(names, (float(v) for v in vector), strict=True))
-        return cls(
-            acoustic_scale=values.pop(ACOUSTIC, 1.0),
-            lm_weight=values.pop(LM, 0.0),
-            insertion_penalty=values.pop(WORDS, 0.0),
-            features=values,
-        )
 
 
 @dataclass(frozen=True)
@@ -134,14 +103,36 @@ def segment_argmax(scores: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     return np.minimum.reduceat(candidates, starts, axis=0)
 
 
-def totals(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
-    return np.asarray(matrix.values @ weights.vector(matrix.names))
+# --- the choice kernel: apply, tune and the report's depth curve all choose through here
+
+def totals(matrix: FeatureMatrix, weights: Weights | np.ndarray) -> np.ndarray:
+    """The combined score of every row; ``weights`` may be a vector over ``matrix.names``."""
+    vector = weights.vector(matrix.names) if isinstance(weights, Weights) else weights
+    return np.asarray(matrix.values @ vector)
 
 
-def choose(matrix: FeatureMatrix, weights: Weights) -> np.ndarray:
+def chosen_rows(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+                scores: np.ndarray | None = None) -> np.ndarray:
+    """Global row of the chosen hypothesis of every utterance: the highest total, the
+    earlier hypothesis on ties. ``scores`` are the :func:`totals` when already at hand."""
+    return segment_argmax(totals(matrix, weights) if scores is None else scores,
+                          matrix.offsets)
+
+
+def choose(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+           scores: np.ndarray | None = None) -> np.ndarray:
     """Index within its list of the chosen hypothesis of every utterance."""
-    rows = segment_argmax(totals(matrix, weights), matrix.offsets)
-    return np.asarray(rows - matrix.offsets[:-1])
+    return np.asarray(chosen_rows(matrix, weights, scores) - matrix.offsets[:-1])
+
+
+def chosen_errors(matrix: FeatureMatrix, weights: Weights | np.ndarray,
+                  errors: np.ndarray | None = None) -> int:
+    """Word errors of the chosen hypotheses against the references (``errors`` per row,
+    ``matrix.errors`` by default)."""
+    errors = matrix.errors if errors is None else errors
+    if errors is None:
+        raise ValueError("errors need references")
+    return int(errors[chosen_rows(matrix, weights)].sum())
 
 
 def oracle_rows(matrix: FeatureMatrix) -> np.ndarray:

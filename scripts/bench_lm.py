@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from benchkit import like_the_command_line
+from benchkit import like_the_command_line, median_time
 
 from rescore.lm import NGramModel, load_model
 from rescore.lm.counts import count_ngrams, window_floor
@@ -35,15 +35,6 @@ VOCAB = 50_000
 SEED = 20240611
 REPEATS = 3
 SINGLE_RUN_OVER = 20.0  # seconds: a baseline slower than this is timed once
-
-
-def median_time(fn: Callable[[], Any], repeats: int) -> tuple[float, Any]:
-    times, out = [], None
-    for _ in range(repeats):
-        t = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times), out
 
 
 def baseline_time(fn: Callable[[], Any]) -> tuple[float, Any, str]:

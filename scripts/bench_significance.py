@@ -6,13 +6,10 @@ Prints medians over repeats and the ratio, both measured in this run.
 
 from __future__ import annotations
 
-import statistics
 import sys
-import time
-from collections.abc import Callable
 
 import numpy as np
-from benchkit import like_the_command_line
+from benchkit import like_the_command_line, median_seconds
 
 from rescore.significance import paired_bootstrap
 
@@ -28,15 +25,6 @@ def plain(before: list[int], after: list[int], words: list[int], resamples: int,
         w = sum(words[i] for i in idx)
         wins += sum(after[i] for i in idx) < sum(before[i] for i in idx) and w > 0
     return wins / resamples
-
-
-def median_seconds(fn: Callable[[], object], repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
 
 
 def main(argv: list[str]) -> int:

@@ -25,7 +25,6 @@ import argparse
 import statistics
 import sys
 import time
-from collections.abc import Callable
 from pathlib import Path
 
 import jiwer
@@ -33,10 +32,11 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from benchkit import like_the_command_line
+from benchkit import like_the_command_line, median_seconds
 
-from rescore.scoring import FeatureMatrix, Weights, choose
+from rescore.scoring import FeatureMatrix, choose
 from rescore.tune import cross_validate, exact_search, grid_search, tune
+from rescore.weights import Weights
 from rescore.wer import word_errors
 
 # the size the targets are stated for, and the time limit of the 4-weight search
@@ -98,15 +98,6 @@ def make_set(n_utt: int, depth: int, seed: int = 0) -> tuple[FeatureMatrix, list
     return matrix, refs, hyps
 
 
-def median_time(fn: Callable[[], object], repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
-
-
 def realigning_point(matrix: FeatureMatrix, refs: list[str], hyps: list[str],
                      weights: Weights) -> int:
     chosen = choose(matrix, weights) + matrix.offsets[:-1]
@@ -140,7 +131,7 @@ def main() -> None:
 
     lm_grid, pen_grid = np.linspace(0, 30, 100), np.linspace(-20, 20, 100)
     result = grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid)
-    fast = median_time(lambda: grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid),
+    fast = median_seconds(lambda: grid_search(matrix, lm_grid=lm_grid, penalty_grid=pen_grid),
                        repeats)
     rng = np.random.default_rng(1)
     probe = [(int(rng.integers(100)), int(rng.integers(100))) for _ in range(3)]
@@ -163,7 +154,7 @@ def main() -> None:
 
     tuned = ("lm", "words", "f1", "f2")
     found = exact_search(matrix, tune=tuned, start=Weights())
-    exact = median_time(lambda: exact_search(matrix, tune=tuned, start=Weights()), repeats)
+    exact = median_seconds(lambda: exact_search(matrix, tune=tuned, start=Weights()), repeats)
     print(f"exact search over 4 weights (bare exact_search from the zero point): median "
           f"{exact:.2f} s; {found.dev_errors} errors, WER {found.dev_wer:.4f} (grid best "
           f"{result.dev_errors}); baseline WER {found.baseline_wer:.4f}, oracle "
@@ -174,7 +165,7 @@ def main() -> None:
     full = tune(matrix, features=features, folds=0)
     if full.search != "exact" or set(full.tuned) != set(tuned):
         raise SystemExit(f"tune ran {full.search} over {full.tuned}, not exact over {tuned}")
-    t_full = median_time(lambda: tune(matrix, features=features, folds=0), repeats)
+    t_full = median_seconds(lambda: tune(matrix, features=features, folds=0), repeats)
     print(f"full tune over 4 weights, folds=0 (what 'rescore tune --feature f1 --feature f2 "
           f"--folds 0' runs: grid start, exact search from {full.settings['starts']} starts, "
           f"{full.settings['restarts']} restarts, depth table): median {t_full:.2f} s; "

@@ -18,7 +18,7 @@ from rescore import parallel, pipeline
 from rescore.errors import AccountingError, RescoreError
 from rescore.ioutil import TextSink
 from rescore.nbest import Utterance
-from rescore.scoring import Weights
+from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
 TWO = FIXTURES / "nbest_two_utterances.jsonl"
@@ -90,7 +90,8 @@ class _InProcessRunner:
 def test_parallel_apply_notices_a_record_lost_in_a_shard(tmp_path: Path,
                                                          monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(parallel, "_Runner", _InProcessRunner)
-    monkeypatch.setattr(pipeline, "write_scored", _drop_last(pipeline.write_scored))
+    # the worker's own name of the batch writer (rescore.batch, imported by parallel)
+    monkeypatch.setattr(parallel, "write_scored", _drop_last(parallel.write_scored))
     out = tmp_path / "out.jsonl"
     with pytest.raises(AccountingError, match="2 utterances read but 1 lines in the joined"):
         pipeline.apply_file(TWO, out, models={}, weights=WEIGHTS, workers=2,

@@ -189,7 +189,7 @@ def test_fuzz_native_model_reader(data: bytes) -> None:
 @FUZZ
 @given(st.one_of(_mutations(WEIGHTS_SEED), st.binary(max_size=200)))
 def test_fuzz_weights_reader(data: bytes) -> None:
-    from rescore.tune import read_weights
+    from rescore.weights import read_weights
 
     fuzz_reader(read_weights, WEIGHTS_SEED, ".json")(data)
 

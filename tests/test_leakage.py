@@ -13,7 +13,8 @@ from typer.testing import CliRunner
 
 from rescore.cli import app
 from rescore.lm import NGramModel, load_model, read_corpus, save_model, store
-from rescore.lm.fingerprint import fingerprint, overlap, sentence_hash, union
+from rescore.lm.fingerprint import fingerprint, sentence_hash, union
+from rescore.lm.overlap import overlap
 from rescore.text import tokens
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -11,8 +11,7 @@ import numpy as np
 import pytest
 
 from rescore.lm import NGramModel, load_model, read_corpus, save_model
-from rescore.lm.merge import merge
-from rescore.lm.mix import Mixture, estimate_weights, mix_logprobs, mix_models
+from rescore.lm.mix import Mixture, estimate_weights, merge, mix_logprobs, mix_models
 from tests.conftest import FIXTURES, run
 
 DEMO = FIXTURES / "demo"

@@ -10,7 +10,7 @@ import pytest
 
 from rescore import pipeline
 from rescore.errors import InputError
-from rescore.scoring import Weights
+from rescore.weights import Weights
 
 WEIGHTS = Weights(1.0, 0.0, 0.7, {"first_pass_lm": 4.0})
 LM_WEIGHTS = Weights(1.0, 9.0, 2.0, {"first_pass_lm": 0.5})

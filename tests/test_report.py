@@ -20,8 +20,8 @@ from rescore.report import (
     with_gate,
     write_report,
 )
+from rescore.report.build import CAUTION, Surface, Tuning
 from rescore.report.html import marked_words
-from rescore.report.model import CAUTION, Surface, Tuning
 from rescore.report.plots import chosen_cell, colour_limits
 from rescore.text import NORMALISATION
 from rescore.wer import align
@@ -300,7 +300,7 @@ def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
 ])
 def test_probability_at_the_resolution_of_the_resamples(value: float, resamples: int,
                                                         shown: str) -> None:
-    from rescore.report.text import share_of_resamples
+    from rescore.report.wording import share_of_resamples
 
     assert share_of_resamples(value, resamples) == shown
 

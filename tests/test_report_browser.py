@@ -33,7 +33,7 @@ from typing import Any
 import pytest
 
 from rescore.report import Pair, build_report, write_report
-from rescore.report.model import CAUTION
+from rescore.report.build import CAUTION
 from rescore.text import tokens
 from tests.conftest import run
 

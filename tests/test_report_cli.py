@@ -314,3 +314,30 @@ def test_terms_option_adds_a_class(tmp_path: Path, nbest_pair: tuple[Path, Path]
     assert res.stderr.strip() == (f"error: {bad}:1: term: no words left after "
                                   "normalisation in '...'")
     assert not (tmp_path / "rep2").exists()
+
+
+def test_report_refuses_a_model_other_than_the_weights_were_tuned_with(
+        tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
+    # as apply does: the weights file records the model's SHA-256; a different model given
+    # with --lm is an error (exit 1, no report) unless --allow-other-model
+    from rescore.lm import NGramModel, save_model
+
+    model = tmp_path / "m.lm"
+    save_model(NGramModel(2).fit([["bay", "one"], ["bay", "two"]]), model)
+    weights = tmp_path / "weights.json"
+    recorded = "0" * 64  # no file hashes to 64 zeros
+    weights.write_text(json.dumps({
+        "acoustic_scale": 1.0, "lm_weight": 0.5, "insertion_penalty": 0.0,
+        "provenance": {"models": {"lm": {"path": "elsewhere.lm", "sha256": recorded}}}}))
+    base = ["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
+            "--resamples", "50", "--weights", weights, "--lm", model]
+    res = invoke([*base, "-o", tmp_path / "rep"])
+    assert res.exit_code == 1
+    assert res.stderr.startswith(f"error: {weights}: provenance.models.lm.sha256: ")
+    assert recorded in res.stderr and sha256_file(model) in res.stderr
+    assert "--allow-other-model" in res.stderr
+    assert not (tmp_path / "rep").exists()
+    res = invoke([*base, "-o", tmp_path / "rep2", "--allow-other-model"])
+    assert res.exit_code == 0, res.output
+    assert "(--allow-other-model)" in res.stderr
+    assert (tmp_path / "rep2" / "report.json").is_file()

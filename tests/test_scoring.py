@@ -5,11 +5,20 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
 from rescore.nbest import iter_nbest
-from rescore.scoring import Weights, build_matrix, choose, oracle_rows, segment_argmax
+from rescore.scoring import (
+    FeatureMatrix,
+    build_matrix,
+    choose,
+    chosen_errors,
+    oracle_rows,
+    segment_argmax,
+)
+from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
 
@@ -70,3 +79,36 @@ def test_recognizer_weights_reproduce_its_first_choice(sample_dir: Path) -> None
         assert (choose(m, w) == 0).all()
         # and the rule is not vacuous: acoustics alone choose otherwise somewhere
         assert (choose(m, Weights()) != 0).any()
+
+
+def _plain_choice(values: np.ndarray, offsets: np.ndarray, vector: np.ndarray) -> list[int]:
+    """The rule spelled out: per list, the first hypothesis with the highest total."""
+    out = []
+    for u in range(len(offsets) - 1):
+        best, best_total = 0, -np.inf
+        for h, row in enumerate(range(offsets[u], offsets[u + 1])):
+            total = sum(float(v) * float(w) for v, w in zip(values[row], vector, strict=True))
+            if total > best_total:
+                best, best_total = h, total
+        out.append(best)
+    return out
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_choice_kernel_matches_the_plain_rule_on_random_lists(seed: int) -> None:
+    # small integers make equal totals (ties) common, so the earlier-wins rule is exercised;
+    # the plain loop sums in the same order as the product of a row of 3, so equal is equal
+    rng = np.random.default_rng(seed)
+    sizes = rng.integers(1, 8, size=int(rng.integers(1, 40)))
+    offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    values = rng.integers(-3, 4, size=(int(offsets[-1]), 3)).astype(np.float64)
+    errors = rng.integers(0, 5, size=int(offsets[-1])).astype(np.int64)
+    matrix = FeatureMatrix(names=("acoustic", "lm", "words"), values=values, offsets=offsets,
+                           ids=tuple(str(i) for i in range(len(sizes))), errors=errors)
+    weights = Weights(float(rng.integers(0, 3)), float(rng.integers(-2, 3)),
+                      float(rng.integers(-2, 3)))
+    expected = _plain_choice(values, offsets, weights.vector(matrix.names))
+    assert choose(matrix, weights).tolist() == expected
+    assert choose(matrix, weights.vector(matrix.names)).tolist() == expected
+    assert chosen_errors(matrix, weights) == sum(
+        int(errors[offsets[u] + h]) for u, h in enumerate(expected))

@@ -15,20 +15,21 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from rescore import tune as tuning
 from rescore.errors import InputError, UsageError
-from rescore.scoring import FeatureMatrix, Weights, choose
+from rescore.scoring import FeatureMatrix, choose
 from rescore.text import tokens
 from rescore.tune import (
+    driver,
     exact_search,
+    grid,
     grid_search,
     line_errors,
     parse_grid,
     plateau_centre,
-    read_weights,
     tune,
-    write_weights,
 )
+from rescore.tune import line as line_search
+from rescore.weights import Weights, read_weights, write_weights
 from rescore.wer import word_errors
 from tests.conftest import FIXTURES, run
 
@@ -160,8 +161,8 @@ def test_grid_layouts_agree(matrix: FeatureMatrix) -> None:
     errors = np.asarray(matrix.errors)
     args = (matrix, errors, matrix.column("acoustic"), matrix.column("lm"),
             matrix.column("words"), np.linspace(0, 5, 6), np.linspace(-4, 4, 9))
-    padded = tuning._grid_errors(*args, layout="padded")
-    ragged = tuning._grid_errors(*args, layout="ragged")
+    padded = grid._grid_errors(*args, layout="padded")
+    ragged = grid._grid_errors(*args, layout="ragged")
     np.testing.assert_array_equal(padded, ragged)
 
 
@@ -236,7 +237,7 @@ def test_exact_curve_matches_brute_force_between_breaks(
     d = dict(zip(NAMES, direction, strict=True))
     curve = line_errors(matrix, begin, d)
     assert matrix.errors is not None
-    bounded = tuning._envelope_curve(matrix.values @ begin.vector(NAMES),
+    bounded = line_search._envelope_curve(matrix.values @ begin.vector(NAMES),
                                      matrix.values @ np.array(direction), matrix.offsets,
                                      matrix.errors, -5.0, 7.0)
     b = curve.breaks
@@ -352,7 +353,7 @@ def test_cross_validation_sums_held_out_errors_over_all_words() -> None:
     assert cv.reference_words == int(matrix.ref_words.sum())
     assert cv.wer == cv.errors / cv.reference_words
     # each fold's errors are those of its own weights on its held-out utterances
-    for fold, held in zip(cv.folds, tuning._folds(53, 5, 0), strict=True):
+    for fold, held in zip(cv.folds, driver._folds(53, 5, 0), strict=True):
         assert fold.errors == slow_errors(matrix.subset(held), fold.weights)
 
 

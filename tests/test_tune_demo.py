@@ -8,8 +8,9 @@ import pytest
 
 from rescore import pipeline
 from rescore.lm import NGramModel, read_corpus, save_model
-from rescore.scoring import FeatureMatrix, Weights, choose
+from rescore.scoring import FeatureMatrix, choose
 from rescore.tune import exact_search, grid_search, tune
+from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
 DEMO = FIXTURES / "demo"

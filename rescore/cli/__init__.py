@@ -9,9 +9,10 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from rescore import __version__
+from rescore.cli import commands, lm, report
 from rescore.cli._common import install_signal_handlers, state
 from rescore.process import avoid_huge_pages, keep_freed_memory
+from rescore.version import __version__
 
 
 class _Commands(TyperGroup):
@@ -69,10 +70,9 @@ def _root(
 
 
 def _register() -> None:
-    # Each module adds its commands to the app it is given; imported here, not at the top,
-    # so that the composition stays in this one function.
-    from rescore.cli import commands, lm, report
-
+    # Each module adds its commands to the app it is given; the composition is this one
+    # function. (Importing them lazily would save nothing: ``rescore --help`` lists every
+    # command, so all three are imported on every run.)
     commands.register(app, lm_app)
     lm.register(app, lm_app)
     report.register(app, lm_app)

@@ -16,7 +16,20 @@ from typing import Any, ParamSpec, TypeVar
 
 import typer
 from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    ProgressColumn,
+    SpinnerColumn,
+    Task,
+    TaskProgressColumn,
+    TextColumn,
+    TimeElapsedColumn,
+    TimeRemainingColumn,
+)
 from rich.table import Table
+from rich.text import Text
 
 from rescore.errors import RescoreError
 from rescore.ioutil import DISK_FULL, disk_full_error
@@ -114,20 +127,6 @@ def bars_shown() -> bool:
 
 
 def _bar() -> Any:
-    from rich.progress import (
-        BarColumn,
-        MofNCompleteColumn,
-        Progress,
-        ProgressColumn,
-        SpinnerColumn,
-        Task,
-        TaskProgressColumn,
-        TextColumn,
-        TimeElapsedColumn,
-        TimeRemainingColumn,
-    )
-    from rich.text import Text
-
     class RateColumn(ProgressColumn):
         def render(self, task: Task) -> Text:
             return Text(f"{task.speed:,.0f}/s" if task.speed else "")

@@ -9,7 +9,9 @@ from typing import Annotated
 
 import typer
 
+from rescore import demo as demo_lib
 from rescore import pipeline
+from rescore.batch import DEFAULT_BATCH
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
 from rescore.cli.options import (
     BatchOpt,
@@ -25,6 +27,7 @@ from rescore.errors import UsageError
 from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
 from rescore.report.load import reference_sentences
+from rescore.weights import read_weights
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -48,7 +51,7 @@ WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           costs: CostsOpt = None, as_json: JsonOpt = False,
-          batch_size: BatchOpt = 2000,
+          batch_size: BatchOpt = DEFAULT_BATCH,
           lm: Annotated[list[Path] | None, typer.Option(
               "--lm", help="Count the references found verbatim in this LM's training text "
               "(repeatable).", show_default=False)] = None,
@@ -104,7 +107,7 @@ def apply(
     text: Annotated[Path | None, typer.Option(
         "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
-    batch_size: BatchOpt = 2000,
+    batch_size: BatchOpt = DEFAULT_BATCH,
     workers: Annotated[int, typer.Option(
         "--workers", min=1, help="Worker processes on this machine.")] = 1,
     cluster: Annotated[str | None, typer.Option(
@@ -119,7 +122,7 @@ def apply(
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
-    w = pipeline.read_weights(weights)
+    w = read_weights(weights)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
@@ -141,7 +144,7 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
-    batch_size: BatchOpt = 2000,
+    batch_size: BatchOpt = DEFAULT_BATCH,
 ) -> None:
     """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
     if (nbest is None) == (hyps is None):
@@ -242,8 +245,6 @@ def demo(
     as_json: JsonOpt = False,
 ) -> None:
     """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
-    from rescore import demo as demo_lib
-
     result = demo_lib.run_demo(out, data_dir=data, progress=info)
     if as_json:
         emit_json(result.summary)

@@ -12,13 +12,16 @@ from rescore.errors import UsageError
 from rescore.ioutil import check_output_path, count_lines, iter_text_lines
 from rescore.lm import (
     NGramModel,
+    is_arpa_name,
     load_model,
     perplexity,
     read_corpus,
     save_model,
+    store,
     write_sentence_scores,
 )
 from rescore.lm.external import MIN_MEMORY, default_memory, parse_size
+from rescore.lm.mix import mix_models
 from rescore.progress import Steps
 from rescore.text import tokens
 
@@ -195,8 +198,6 @@ def check_cmd(
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Check a model file completely: structure, sizes, every probability and weight."""
-    from rescore.lm import is_arpa_name, store
-
     if is_arpa_name(model_path) or str(model_path) == "-":
         model = load_model(model_path)
         tables, version, size, sha = model.tables_, None, None, None
@@ -244,8 +245,6 @@ def mix(
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Interpolate language models; weights by EM on in-domain text; write one merged model."""
-    from rescore.lm.mix import mix_models
-
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
     check_output_path(output)

@@ -4,17 +4,29 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any
+from typing import Annotated, Any
 
 import typer
 
+from rescore import pipeline
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
 from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
-
-if TYPE_CHECKING:
-    from rescore.lm.fingerprint import OverlapSummary
+from rescore.lm import load_model
+from rescore.lm.overlap import OverlapSummary, overlap_summary
+from rescore.nbest import read_refs
+from rescore.report import (
+    build_report,
+    gate_failures,
+    load_system,
+    tuning_from_dict,
+    with_gate,
+    write_report,
+)
+from rescore.report.critical import classes_with_terms, read_terms
+from rescore.report.load import weights_provenance
+from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
@@ -63,9 +75,6 @@ def _leak_models(lm: list[Path] | None, weights: Path | None) -> list[tuple[str,
 def leakage(models: list[tuple[str, Path]], references: list[list[str]],
             threshold: float) -> OverlapSummary:
     """The overlap of the references with the named models' training text."""
-    from rescore.lm import load_model
-    from rescore.lm.fingerprint import overlap_summary
-
     return overlap_summary([(name, load_model(path)) for name, path in models], references,
                            threshold=threshold)
 
@@ -108,6 +117,9 @@ def report(
         "(repeatable). Default: the models the --weights file records, where they still are.",
         show_default=False)] = None,
     warn_overlap: WarnOverlapOpt = "1%",
+    allow_other_model: Annotated[bool, typer.Option(
+        "--allow-other-model", help="With --weights and --lm: go on (with a warning) when a "
+        "model's SHA-256 differs from the one the weights were tuned with.")] = False,
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
@@ -116,19 +128,11 @@ def report(
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
-    from rescore.nbest import read_refs
-    from rescore.report import (
-        build_report,
-        gate_failures,
-        load_system,
-        tuning_from_dict,
-        with_gate,
-        write_report,
-    )
-    from rescore.report.critical import classes_with_terms, read_terms
-    from rescore.report.load import weights_provenance
-    from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
-
+    if weights is not None and lm:
+        # the models named as apply names them (MODEL, or NAME=MODEL), refused like there
+        given = pipeline.load_lms([str(p) for p in lm])
+        for other in pipeline.check_models(weights, given, allow_other=allow_other_model):
+            info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)

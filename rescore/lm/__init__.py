@@ -6,6 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
+from rescore.lm import arpa, store
 from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.evaluate import (
     PerplexityResult,
@@ -29,12 +30,8 @@ def is_arpa_name(path: str | Path) -> bool:
 def save_model(model: NGramModel, path: str | Path) -> None:
     """Write ``model`` atomically: ARPA text for a ``.arpa``/``.arpa.gz`` name, else native."""
     if is_arpa_name(path):
-        from rescore.lm import arpa
-
         arpa.write(model._fitted(), path, closed_vocab=model.closed_vocab)
     else:
-        from rescore.lm import store
-
         digest = store.save(model._fitted(), model.metadata_, path, model.extras())
         model._checksum = digest
 
@@ -46,12 +43,8 @@ def load_model(path: str | Path, *, verify: bool = False) -> NGramModel:
     :func:`rescore.lm.store.load_file`); the cheap ones always run.
     """
     if is_arpa_name(path) or str(path) == "-":  # standard input: ARPA text
-        from rescore.lm import arpa
-
         tables, meta = arpa.read(path)
         return NGramModel.from_tables(tables, meta)
-    from rescore.lm import store
-
     got = store.load_file(path, verify=verify)
     model = NGramModel.from_tables(got.tables, got.metadata, got.sha256)
     hashes = got.extras.get("sentence_hashes")

@@ -17,6 +17,9 @@ from __future__ import annotations
 
 import math
 import re
+import shutil
+import sys
+import tempfile
 import warnings
 import zlib
 from pathlib import Path
@@ -28,6 +31,7 @@ import numpy.typing as npt
 from rescore.errors import ModelFileError, RescoreError
 from rescore.ioutil import atomic_output, iter_text_lines, open_binary
 from rescore.lm import hashindex
+from rescore.lm.model import MAX_ORDER
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
@@ -37,7 +41,6 @@ I64 = npt.NDArray[np.int64]
 LOG10E = 1.0 / math.log(10.0)
 ZERO = -99.0  # log10 of "never"
 NUDGED_ZERO = "-99.0000001"  # a real probability that would otherwise print as -99
-MAX_ORDER = 6
 MAX_LINE_BYTES = 1 << 20  # an n-gram line is a few words and numbers; refuse runaway lines
 # bounded digit runs: int() of thousands of digits raises ValueError, not our error
 _NGRAM_LINE = re.compile(r"^ngram\s+([0-9]{1,6})\s*=\s*([0-9]{1,15})$")
@@ -358,10 +361,6 @@ def read(path: str | Path) -> tuple[BackoffTables, dict[str, Any]]:
 
 
 def _read_stdin() -> tuple[BackoffTables, dict[str, Any]]:
-    import shutil
-    import sys
-    import tempfile
-
     with tempfile.NamedTemporaryFile(prefix="rescore-stdin-", suffix=".arpa") as tmp:
         shutil.copyfileobj(sys.stdin.buffer, tmp, 1 << 20)
         tmp.flush()

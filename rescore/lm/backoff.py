@@ -20,16 +20,13 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.arrays import F64, I64, B
 from rescore.lm import hashindex
 from rescore.lm.counts import OrderCounts
 from rescore.lm.smoothing import OrderStats, Smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
 from rescore.progress import Report, Steps
-
-F64 = npt.NDArray[np.float64]
-I64 = npt.NDArray[np.int64]
-B = npt.NDArray[np.bool_]
 
 
 @dataclass

@@ -11,14 +11,17 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.arrays import F64
 from rescore.errors import UsageError
 from rescore.lm.backoff import estimate
 from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.external import CorpusCounts, count_external, default_memory
 from rescore.lm.fingerprint import BlockRecorder, Recorder
+from rescore.lm.quantize import quantize
 from rescore.lm.sharded import count_on_cluster
 from rescore.lm.smoothing import METHODS, make_smoother
+from rescore.lm.store import content_parts
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import (
     BOS_ID,
@@ -34,7 +37,6 @@ from rescore.lm.vocab import (
 )
 from rescore.progress import Report, Steps
 
-F64 = npt.NDArray[np.float64]
 MAX_ORDER = 6
 
 
@@ -234,8 +236,6 @@ class NGramModel:
     def checksum(self) -> str:
         """sha256 of the model's content, equal to the one its native file carries."""
         if self._checksum is None:
-            from rescore.lm.store import content_parts
-
             digest = hashlib.sha256()
             for part in content_parts(self._fitted(), self.metadata_, self.extras()):
                 digest.update(part)
@@ -246,8 +246,6 @@ class NGramModel:
         """Keep the probabilities and back-off weights of every order from 2 as ``bits``-bit
         codes into per-order code books (8 or 16; see :mod:`rescore.lm.quantize`): a smaller,
         lossy model that scores with the book values from now on."""
-        from rescore.lm.quantize import quantize
-
         tables = quantize(self._fitted(), bits)
         meta = {key: val for key, val in self.metadata_.items()
                 if key not in {"method", "order", "k", "closed_vocab", "vocab_size", "ngrams",

@@ -20,13 +20,9 @@ from dataclasses import dataclass
 from typing import ClassVar
 
 import numpy as np
-import numpy.typing as npt
 
+from rescore.arrays import F64, I64, B
 from rescore.errors import UsageError
-
-F64 = npt.NDArray[np.float64]
-I64 = npt.NDArray[np.int64]
-B = npt.NDArray[np.bool_]
 
 
 @dataclass(frozen=True)

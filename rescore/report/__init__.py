@@ -13,10 +13,7 @@ from pathlib import Path
 
 from rescore.errors import InputError
 from rescore.ioutil import write_texts_atomic
-from rescore.report.json import render_json
-from rescore.report.load import is_nbest_file, load_system
-from rescore.report.markdown import render_markdown
-from rescore.report.model import (
+from rescore.report.build import (
     DEFAULT_RESAMPLES,
     DEFAULT_SEED,
     Difference,
@@ -29,6 +26,9 @@ from rescore.report.model import (
     tuning_from_dict,
     with_gate,
 )
+from rescore.report.json_file import render_json
+from rescore.report.load import is_nbest_file, load_system
+from rescore.report.markdown import render_markdown
 
 FILES = ("report.json", "report.md", "report.html")
 

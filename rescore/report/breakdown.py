@@ -6,12 +6,10 @@ import json
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
+from rescore.report.rows import UtteranceRow
 from rescore.wer import Alignment
-
-if TYPE_CHECKING:
-    from rescore.report.model import UtteranceRow
 
 TOP = 15
 CHANGED = 10

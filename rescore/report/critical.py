@@ -23,15 +23,13 @@ import re
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines
+from rescore.report.rows import UtteranceRow
 from rescore.text import tokens
 from rescore.wer import Alignment
-
-if TYPE_CHECKING:
-    from rescore.report.model import UtteranceRow
 
 _UNITS = (
     "zero", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine", "ten",

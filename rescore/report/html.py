@@ -14,9 +14,10 @@ from collections.abc import Iterable, Sequence
 from html import escape
 
 from rescore.report import plots
-from rescore.report import text as t
+from rescore.report import wording as t
 from rescore.report.breakdown import Confusions
-from rescore.report.model import Report, UtteranceRow
+from rescore.report.build import Report
+from rescore.report.rows import UtteranceRow
 from rescore.wer import Alignment
 
 _CSS = """

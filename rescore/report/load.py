@@ -10,8 +10,9 @@ from typing import Any
 from rescore.errors import InputError
 from rescore.ioutil import iter_text_lines, sha256_file
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
-from rescore.report.model import Pair
+from rescore.report.build import Pair
 from rescore.text import tokens
+from rescore.weights import read_weights
 
 
 def is_nbest_file(path: str | Path) -> bool:
@@ -76,10 +77,6 @@ def weights_provenance(path: str | Path) -> dict[str, Any]:
     The file is read with the tuner's strict reader, so a report never records weights
     that ``rescore apply`` would refuse.
     """
-    from rescore.tune import read_weights
-
-    weights = read_weights(path)
-    return {"file": str(path), "sha256": sha256_file(path),
-            "acoustic_scale": weights.acoustic_scale, "lm_weight": weights.lm_weight,
-            "insertion_penalty": weights.insertion_penalty,
-            "features": dict(sorted(weights.features.items()))}
+    weights = read_weights(path).to_dict()
+    return {"file": str(path), "sha256": sha256_file(path), **weights,
+            "features": dict(sorted(weights["features"].items()))}

@@ -5,9 +5,9 @@ from __future__ import annotations
 import html
 from collections.abc import Sequence
 
-from rescore.report import text as t
+from rescore.report import wording as t
 from rescore.report.breakdown import Confusions
-from rescore.report.model import Report
+from rescore.report.build import Report
 
 
 def _cell(value: object) -> str:

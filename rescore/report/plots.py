@@ -19,7 +19,7 @@ matplotlib.use("Agg")
 from matplotlib import rc_context
 from matplotlib.figure import Figure
 
-from rescore.report.model import Report, Surface, Tuning
+from rescore.report.build import Report, Surface, Tuning
 
 _BEFORE = "#8a8f98"
 _AFTER = "#2f7d4f"

@@ -7,8 +7,8 @@ import math
 from typing import Any
 
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
-from rescore.report.model import CAUTION as CAUTION  # the writers' footer text
-from rescore.report.model import Report
+from rescore.report.build import CAUTION as CAUTION  # the writers' footer text
+from rescore.report.build import Report
 
 TITLE = "Release report: WER before and after rescoring"
 

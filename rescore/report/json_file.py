@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from rescore.report.model import Report
+from rescore.report.build import Report
 
 
 def render_json(report: Report) -> str:

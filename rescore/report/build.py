@@ -13,13 +13,13 @@ from typing import Any
 
 import numpy as np
 
-from rescore import __version__
 from rescore.errors import InputError
-from rescore.lm.fingerprint import OverlapSummary
+from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
 from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
+from rescore.report.rows import UtteranceRow
 from rescore.significance import (
     BootstrapResult,
     MatchedPairsResult,
@@ -31,8 +31,8 @@ from rescore.significance import (
     wilcoxon_signed_rank,
 )
 from rescore.text import NORMALISATION, tokens
+from rescore.version import __version__
 from rescore.wer import (
-    Alignment,
     CerResult,
     WerResult,
     align_many,
@@ -131,27 +131,6 @@ class Difference:
 
     def to_dict(self) -> dict[str, float | None]:
         return dict(vars(self))
-
-
-@dataclass(frozen=True)
-class UtteranceRow:
-    id: str
-    reference_words: int
-    before: Alignment
-    after: Alignment
-    meta: Mapping[str, Any]
-
-    @property
-    def before_errors(self) -> int:
-        return self.before.errors
-
-    @property
-    def after_errors(self) -> int:
-        return self.after.errors
-
-    @property
-    def change(self) -> int:
-        return self.after.errors - self.before.errors
 
 
 @dataclass(frozen=True)
@@ -266,7 +245,7 @@ def build_report(
     hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
     of critical words counted apart (default: the built-in numbers and negations; see
     :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
-    language models' training text (:func:`rescore.lm.fingerprint.overlap_summary`); above
+    language models' training text (:func:`rescore.lm.overlap.overlap_summary`); above
     its threshold the report warns first of all.
     """
     if tuning is not None and not isinstance(tuning, Tuning):

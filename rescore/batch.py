@@ -1,0 +1,118 @@
+"""One batch of N-best records through the choice kernel to the output files: the step
+shared by a single-process ``apply`` (:mod:`rescore.pipeline`) and by each shard of a
+parallel one (:mod:`rescore.parallel`), which both import it from here."""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from rescore.errors import AccountingError, InputError
+from rescore.ioutil import TextSink
+from rescore.listcheck import ListStats, score_stats
+from rescore.nbest import Utterance, dumps, one_best
+from rescore.scoring import LanguageModel, build_matrix, choose, totals
+from rescore.text import tokens
+from rescore.weights import ACOUSTIC, LM, Weights
+
+DEFAULT_BATCH = 2000  # records read, scored and written together (memory stays flat)
+
+
+def batches(items: Iterator[tuple[int, Utterance]], size: int
+            ) -> Iterator[list[tuple[int, Utterance]]]:
+    """Consecutive lists of at most ``size`` records."""
+    while True:
+        batch = list(itertools.islice(items, size))
+        if not batch:
+            return
+        yield batch
+
+
+@dataclass(frozen=True)
+class WriteCounts:
+    """What :func:`write_scored` wrote: 1-best changed from the first hypothesis, and
+    chosen hypotheses without words."""
+
+    changed: int = 0
+    empty: int = 0
+
+    def __add__(self, other: WriteCounts) -> WriteCounts:
+        return WriteCounts(self.changed + other.changed, self.empty + other.empty)
+
+
+def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
+    """Every utterance read is accounted for: ``done`` (``what``) must equal ``read``."""
+    if done != read:
+        raise AccountingError(f"{read} utterances read but {done} {what} (a defect: please "
+                              "report it)", path=path)
+
+
+def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None, *,
+                 path: str = "", lines: Sequence[int] = ()) -> WriteCounts:
+    """Write rescored records (and their 1-best text); returns how many changed 1-best
+    and how many chose a hypothesis without words.
+
+    ``path`` and ``lines`` (the records' line numbers) name an id that the ``id<TAB>text``
+    file cannot hold.
+    """
+    if tsv is not None:
+        _check_tsv_ids(scored, path, lines)
+    fh.write("".join(dumps(utt) + "\n" for utt in scored))
+    if tsv is not None:
+        tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
+                          for utt in scored))
+    changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
+    # ``words`` is set on every hypothesis by rescore_batch; records written as they were
+    # read may lack it, and then the text is counted
+    empty = sum(1 for utt in scored if not one_best(utt).get("words", len(tokens(
+        one_best(utt)["text"]))))
+    return WriteCounts(changed, empty)
+
+
+def _check_tsv_ids(scored: Sequence[Utterance], path: str, lines: Sequence[int]) -> None:
+    ids = "".join(utt["id"] for utt in scored)
+    if "\t" not in ids and "\n" not in ids and "\r" not in ids:
+        return
+    for i, utt in enumerate(scored):
+        if any(c in utt["id"] for c in "\t\n\r"):
+            raise InputError("contains a tab or line break, which an id<TAB>text file "
+                             "(--text) cannot hold", path=path or None,
+                             line=lines[i] if i < len(lines) else None, field="id")
+
+
+def _one_line(text: str) -> str:
+    # a tab or line break inside the text would split its 'id<TAB>text' line; normalisation
+    # reads each as a space, so the words and the WER are unchanged
+    return text.translate(_TSV_BREAKS) if "\t" in text or "\n" in text or "\r" in text \
+        else text
+
+
+_TSV_BREAKS = str.maketrans("\t\n\r", "   ")
+
+
+def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
+                  lms: Mapping[str, LanguageModel], features: Sequence[str],
+                  weights: Weights) -> tuple[list[Utterance], ListStats]:
+    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
+    the sign and order counts of their acoustic scores."""
+    m = build_matrix(batch, path=path, lms=lms, features=features).matrix
+    total = totals(m, weights)
+    best = choose(m, weights, total)
+    # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
+    words = m.values[:, m.names.index("words")].astype(np.int64).tolist()
+    scores = total.tolist()
+    hyps = [hyp for _, utt in batch for hyp in utt["hypotheses"]]
+    if LM in m.names:
+        for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, scores,
+                                 strict=True):
+            hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
+    else:
+        for hyp, w, t in zip(hyps, words, scores, strict=True):
+            hyp["words"], hyp["total"] = w, t
+    for (_, utt), b in zip(batch, best.tolist(), strict=True):
+        utt["best"] = b
+    return [utt for _, utt in batch], score_stats(m.column(ACOUSTIC), m.offsets)

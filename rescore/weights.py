@@ -1,0 +1,206 @@
+"""The weights of the combined score and the weights file: the one owner of both.
+
+The combined score of a hypothesis is
+``acoustic_scale * acoustic + lm_weight * lm + insertion_penalty * words + sum w_k f_k``;
+a :class:`Weights` holds those numbers, and the weights file (the contract's
+``weights.json``) holds them with the provenance of the run that tuned them. Every other
+module reads, writes and serialises weights through here.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rescore.errors import InputError
+from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
+
+ACOUSTIC = "acoustic"
+LM = "lm"
+WORDS = "words"
+COLUMNS = (ACOUSTIC, LM, WORDS)  # the fixed columns of the feature matrix, in order
+
+
+@dataclass(frozen=True)
+class Weights:
+    """The weights of the combined score (the contract's weights file, less provenance)."""
+
+    acoustic_scale: float = 1.0
+    lm_weight: float = 0.0
+    insertion_penalty: float = 0.0
+    features: Mapping[str, float] = field(default_factory=dict)
+
+    def vector(self, names: tuple[str, ...]) -> np.ndarray:
+        """The weight of each column named in ``names`` (a feature absent here weighs 0)."""
+        fixed = {ACOUSTIC: self.acoustic_scale, LM: self.lm_weight, WORDS: self.insertion_penalty}
+        return np.array(
+            [fixed[n] if n in fixed else float(self.features.get(n, 0.0)) for n in names],
+            dtype=np.float64,
+        )
+
+    @classmethod
+    def from_vector(cls, names: tuple[str, ...], vector: np.ndarray) -> Weights:
+        values = dict(zip(names, (float(v) for v in vector), strict=True))
+        return cls(
+            acoustic_scale=values.pop(ACOUSTIC, 1.0),
+            lm_weight=values.pop(LM, 0.0),
+            insertion_penalty=values.pop(WORDS, 0.0),
+            features=values,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """The weights as the weights file spells them (without provenance)."""
+        return {"acoustic_scale": self.acoustic_scale, "lm_weight": self.lm_weight,
+                "insertion_penalty": self.insertion_penalty, "features": dict(self.features)}
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any], *, path: str | Path = "") -> Weights:
+        """Weights from a mapping of the weights file's keys, checked strictly (see
+        :func:`read_weights`); ``path`` names the source in errors."""
+        return _from_dict(data, str(path))
+
+
+_WEIGHT_KEYS = ("acoustic_scale", "lm_weight", "insertion_penalty")
+_FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
+
+
+def _number(value: object, path: str, name: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise InputError(f"expected a number, got {json.dumps(value)}", path=path, field=name)
+    if not math.isfinite(value):
+        raise InputError("must be a finite number", path=path, field=name)
+    return float(value)
+
+
+def _reject_constant(token: str) -> float:
+    raise ValueError(f"{token} is not a number in JSON")
+
+
+def read_weights(path: str | Path) -> Weights:
+    """Read a weights file, strictly: unknown keys, non-numbers and NaN are errors.
+
+    Parameters
+    ----------
+    path : str or Path
+        The weights file (as ``rescore tune`` writes it).
+
+    Returns
+    -------
+    Weights
+        The weights (the file's provenance is not part of them).
+
+    Raises
+    ------
+    InputError
+        A key unknown or missing, a value not a finite number, or bad JSON.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "w.json"
+    >>> write_weights(path, Weights(lm_weight=9.0), {})
+    >>> read_weights(path).lm_weight
+    9.0
+    """
+    where = str(path)
+    try:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:  # NaN or Infinity
+        raise InputError(str(exc), path=where) from None
+    return _from_dict(data, where)
+
+
+def _from_dict(data: object, where: str) -> Weights:
+    if not isinstance(data, dict):
+        raise InputError("expected a JSON object", path=where)
+    unknown = sorted(set(data) - set(_FILE_KEYS))
+    if unknown:
+        raise InputError(f"unknown key; expected {', '.join(_FILE_KEYS)}", path=where,
+                         field=unknown[0])
+    for key in _WEIGHT_KEYS:
+        if key not in data:
+            raise InputError("missing", path=where, field=key)
+    values = {key: _number(data[key], where, key) for key in _WEIGHT_KEYS}
+    raw = data.get("features", {})
+    if not isinstance(raw, dict):
+        raise InputError("expected an object of feature weights", path=where, field="features")
+    feats: dict[str, float] = {}
+    for name, value in raw.items():
+        if name in (ACOUSTIC, LM, WORDS):
+            raise InputError(f"{name!r} is a reserved column, not a feature", path=where,
+                             field=f"features.{name}")
+        feats[name] = _number(value, where, f"features.{name}")
+    if "provenance" in data and not isinstance(data["provenance"], dict):
+        raise InputError("expected an object", path=where, field="provenance")
+    return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
+                   insertion_penalty=values["insertion_penalty"], features=feats)
+
+
+def read_weights_models(path: str | Path) -> dict[str, str]:
+    """The SHA-256 of each model the weights were tuned with, by name, as the weights
+    file's provenance records them (empty when it records none)."""
+    where = str(path)
+    try:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise InputError(str(exc), path=where) from None
+    prov = data.get("provenance") if isinstance(data, dict) else None
+    models = prov.get("models") if isinstance(prov, dict) else None
+    if not isinstance(models, dict):
+        return {}
+    out = {}
+    for name, record in models.items():
+        digest = record.get("sha256") if isinstance(record, dict) else None
+        if not isinstance(digest, str):
+            raise InputError("expected the model's sha256 as a string", path=where,
+                             field=f"provenance.models.{name}.sha256")
+        out[str(name)] = digest
+    return out
+
+
+def write_weights(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> None:
+    """Write a weights file atomically (nothing appears at ``path`` on failure).
+
+    Parameters
+    ----------
+    path : str or Path
+        Where to write.
+    weights : Weights
+        The weights.
+    provenance : mapping
+        How they were made (package version, data and model checksums, search).
+
+    Returns
+    -------
+    None
+
+    Raises
+    ------
+    InputError
+        A weight that is not a finite number.
+    OutputError
+        The file could not be written whole.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> write_weights(pathlib.Path(tempfile.mkdtemp()) / "w.json", Weights(), {"note": "x"})
+    """
+    write_text_atomic(path, weights_text(path, weights, provenance))
+
+
+def weights_text(path: str | Path, weights: Weights, provenance: Mapping[str, Any]) -> str:
+    """The text of the weights file to be written at ``path`` (named in its errors)."""
+    body = weights.to_dict()
+    for key in _WEIGHT_KEYS:
+        _number(body[key], str(path), key)
+    for name, value in body["features"].items():
+        _number(value, str(path), f"features.{name}")
+    return json.dumps({**body, "provenance": dict(provenance)}, indent=2, sort_keys=False,
+                      allow_nan=False) + "\n"

@@ -14,8 +14,8 @@ from typing import Any
 
 from rescore import pipeline
 from rescore.errors import InputError
-from rescore.ioutil import write_text_atomic
 from rescore.nbest import iter_nbest, one_best
+from rescore.outputs import write_text_atomic
 from rescore.scoring import LM, oracle_rows
 from rescore.text import tokens
 from rescore.wer import corpus_wer

@@ -22,7 +22,8 @@ from pydantic import ConfigDict, Field, TypeAdapter, ValidationError, with_confi
 from typing_extensions import TypedDict
 
 from rescore.errors import InputError
-from rescore.ioutil import atomic_output, iter_text_lines
+from rescore.outputs import atomic_output
+from rescore.readers import iter_text_lines
 from rescore.text import tokens
 
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]

@@ -29,17 +29,9 @@ from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
+from rescore.compression import is_gzip_file
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import (
-    atomic_outputs,
-    disk_full_error,
-    inflate,
-    is_disk_full,
-    is_gzip_file,
-    iter_text_lines,
-    line_shards,
-    scratch_folder,
-)
+from rescore.leftovers import scratch_folder
 from rescore.listcheck import ListStats
 from rescore.nbest import (
     IdLedger,
@@ -49,7 +41,10 @@ from rescore.nbest import (
     id_digest,
     read_refs,
 )
+from rescore.outputs import atomic_outputs, disk_full_error, is_disk_full
+from rescore.readers import inflate, iter_text_lines
 from rescore.scoring import Weights
+from rescore.shards import line_shards
 
 if TYPE_CHECKING:
     from rescore.pipeline import WriteCounts

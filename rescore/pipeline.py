@@ -18,15 +18,8 @@ from typing import Any
 import numpy as np
 
 from rescore import __version__
+from rescore.checksum import sha256_file
 from rescore.errors import AccountingError, InputError, UsageError
-from rescore.ioutil import (
-    LineCounter,
-    TextSink,
-    atomic_outputs,
-    count_lines,
-    sha256_file,
-    write_texts_atomic,
-)
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.nbest import (
     DEFAULT_LIMITS,
@@ -38,6 +31,7 @@ from rescore.nbest import (
     read_convention,
     read_refs,
 )
+from rescore.outputs import LineCounter, TextSink, atomic_outputs, write_texts_atomic
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
     ACOUSTIC,
@@ -50,6 +44,7 @@ from rescore.scoring import (
     oracle_rows,
     segment_argmax,
 )
+from rescore.shards import count_lines
 from rescore.text import NORMALISATION, tokens
 from rescore.wer import (
     UNDEFINED_WER,

@@ -30,8 +30,10 @@ from typing import Any
 import numpy as np
 
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
+from rescore.limits import WEIGHTS_FILE_LIMIT
+from rescore.outputs import write_text_atomic
 from rescore.progress import Advance, Report, Steps
+from rescore.readers import read_json
 from rescore.scoring import (
     ACOUSTIC,
     LM,

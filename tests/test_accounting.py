@@ -16,8 +16,8 @@ import pytest
 
 from rescore import parallel, pipeline
 from rescore.errors import AccountingError, RescoreError
-from rescore.ioutil import TextSink
 from rescore.nbest import Utterance
+from rescore.outputs import TextSink
 from rescore.scoring import Weights
 from tests.conftest import FIXTURES
 

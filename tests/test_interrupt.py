@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from rescore.ioutil import TMP_PREFIX
+from rescore.leftovers import TMP_PREFIX
 from tests.bulk import write_bulk, write_weights
 
 

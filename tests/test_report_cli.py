@@ -10,8 +10,8 @@ import pytest
 from click.testing import Result
 from typer.testing import CliRunner
 
+from rescore.checksum import sha256_file
 from rescore.cli import app
-from rescore.ioutil import sha256_file
 from rescore.report import FILES
 
 TOL = 1e-12

@@ -19,7 +19,7 @@ from rich.console import Console
 from rich.table import Table
 
 from rescore.errors import RescoreError
-from rescore.ioutil import DISK_FULL, disk_full_error
+from rescore.outputs import DISK_FULL, disk_full_error
 from rescore.progress import Report
 
 P = ParamSpec("P")

@@ -22,9 +22,10 @@ from rescore.cli.options import (
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
 from rescore.errors import UsageError
-from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
+from rescore.outputs import check_output_path
 from rescore.report.load import reference_sentences
+from rescore.shards import count_lines
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:

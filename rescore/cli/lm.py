@@ -9,7 +9,6 @@ import typer
 
 from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
 from rescore.errors import UsageError
-from rescore.ioutil import check_output_path, count_lines, iter_text_lines
 from rescore.lm import (
     NGramModel,
     load_model,
@@ -18,7 +17,10 @@ from rescore.lm import (
     save_model,
     write_sentence_scores,
 )
+from rescore.outputs import check_output_path
 from rescore.progress import Steps
+from rescore.readers import iter_text_lines
+from rescore.shards import count_lines
 from rescore.text import tokens
 
 

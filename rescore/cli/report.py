@@ -8,10 +8,12 @@ from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
+from rescore.checksum import sha256_file
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
-from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
+from rescore.limits import ANALYSIS_FILE_LIMIT
+from rescore.readers import read_json
 
 if TYPE_CHECKING:
     from rescore.lm.fingerprint import OverlapSummary

@@ -24,10 +24,11 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import ModelFileError
-from rescore.ioutil import atomic_output, iter_text_lines
 from rescore.lm import hashindex
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
+from rescore.outputs import atomic_output
+from rescore.readers import iter_text_lines
 
 F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]

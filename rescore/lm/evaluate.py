@@ -14,8 +14,9 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError
-from rescore.ioutil import atomic_output, iter_text_lines
 from rescore.lm.model import NGramModel
+from rescore.outputs import atomic_output
+from rescore.readers import iter_text_lines
 from rescore.text import tokens
 
 LN10 = math.log(10.0)

@@ -12,7 +12,7 @@ import contextlib
 from pathlib import Path
 
 from rescore.errors import InputError
-from rescore.ioutil import write_texts_atomic
+from rescore.outputs import write_texts_atomic
 from rescore.report.json import render_json
 from rescore.report.load import is_nbest_file, load_system
 from rescore.report.markdown import render_markdown

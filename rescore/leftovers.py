@@ -12,6 +12,7 @@ import contextlib
 import fcntl
 import os
 import shutil
+import stat
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
@@ -79,7 +80,7 @@ def scratch_folder(target: Path, label: str) -> Iterator[Path]:
     with SIGKILL leaves the folder, and the next run writing the same output removes it
     once it can take that lock (see :func:`remove_stale_temporaries`).
     """
-    folder = target.parent if str(target.parent) else Path(".")
+    folder = _scratch_home(target)
     remove_stale_temporaries(folder, target.name)
     scratch = Path(tempfile.mkdtemp(prefix=f"{TMP_PREFIX}{target.name}.{os.getpid()}.{label}.",
                                     dir=folder))
@@ -94,3 +95,16 @@ def scratch_folder(target: Path, label: str) -> Iterator[Path]:
         shutil.rmtree(scratch, ignore_errors=True)
 
 
+
+
+def _scratch_home(target: Path) -> Path:
+    """Beside the target, so shards live on its file system; in the system's temporary
+    folder when the target is standard output or a special file (a device's folder is
+    often not ours to write in)."""
+    try:
+        special = str(target) == "-" or not stat.S_ISREG(os.stat(target).st_mode)
+    except OSError:
+        special = False  # not there yet: an ordinary file to be
+    if special:
+        return Path(tempfile.gettempdir())
+    return target.parent if str(target.parent) else Path(".")

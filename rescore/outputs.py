@@ -9,6 +9,8 @@ import fcntl
 import gzip
 import io
 import os
+import stat
+import sys
 import tempfile
 from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
@@ -101,17 +103,42 @@ def _atomic_output(path: str | Path, mode: str) -> Iterator[Any]:
         yield fh
 
 
+STDOUT_NAME = "-"
+
+
+def is_direct_output(path: str | Path) -> bool:
+    """Whether ``path`` is written to directly, streaming, instead of by temporary and
+    rename: ``-`` (standard output) and any existing target that is not a regular file or a
+    folder once links are followed (a device, a FIFO, a socket, ``/proc/self/fd/1``).
+    Renaming over such a file would replace it, so it is never renamed over; atomicity
+    then does not apply."""
+    if str(path) == STDOUT_NAME:
+        return True
+    try:
+        mode = os.stat(path).st_mode
+    except OSError:
+        return False
+    return not stat.S_ISREG(mode) and not stat.S_ISDIR(mode)
+
+
 def check_output_path(path: str | Path | None) -> None:
     """Refuse, before any work, an output path that writing would refuse at the end: one
-    whose folder is missing, or that is itself a folder. Nothing is created."""
-    if path is None:
+    whose folder is missing or not writable, that is itself a folder, or a special file
+    that cannot be opened for writing. Nothing is created."""
+    if path is None or str(path) == STDOUT_NAME:
         return
     target = Path(path)
+    if is_direct_output(target):
+        if not os.access(target, os.W_OK):
+            raise InputError("permission denied (cannot write to it)", path=str(target))
+        return
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise InputError("output folder does not exist", path=str(folder))
     if target.is_dir():
         raise InputError("is a folder, expected a file path", path=str(target))
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise InputError("output folder is not writable", path=str(folder))
 
 
 class _CountingFile(io.FileIO):
@@ -155,6 +182,9 @@ class _Pending:
             os.close(fd)
             os.unlink(self.tmp_name)
             raise
+        self._layers(target, mode)
+
+    def _layers(self, target: Path, mode: str) -> None:
         self.gz: gzip.GzipFile | None = None
         binary: IO[bytes] = self.raw
         if is_gzip_name(target):
@@ -168,12 +198,7 @@ class _Pending:
 
     def finish(self) -> None:
         """Flush every layer and sync the temporary to disk."""
-        if self.text is not None:
-            self.text.flush()
-            self.text.detach()
-        if self.gz is not None:
-            self.gz.close()
-        self.raw.flush()
+        self._flush_layers()
         os.fchmod(self.raw.fileno(), FILE_MODE)
         try:
             os.fsync(self.raw.fileno())  # where space is claimed late (NFS), fsync is told
@@ -182,6 +207,14 @@ class _Pending:
                 self.file.error = exc
             raise
         self.raw.close()
+
+    def _flush_layers(self) -> None:
+        if self.text is not None:
+            self.text.flush()
+            self.text.detach()
+        if self.gz is not None:
+            self.gz.close()
+        self.raw.flush()
 
     def commit(self) -> None:
         os.replace(self.tmp_name, self.target)
@@ -193,6 +226,42 @@ class _Pending:
             os.unlink(self.tmp_name)
 
 
+class _Direct(_Pending):
+    """An output written straight to its target (see :func:`is_direct_output`): the same
+    layers as a temporary's, but nothing to sync, chmod or rename, and nothing to remove."""
+
+    def __init__(self, target: Path, mode: str) -> None:
+        self.target = target
+        if str(target) == STDOUT_NAME:
+            sys.stdout.flush()
+            fd = os.dup(sys.stdout.fileno())
+        else:
+            try:
+                fd = os.open(target, os.O_WRONLY)
+            except OSError as exc:
+                raise InputError(f"cannot write to it ({exc.strerror})", path=str(target)) \
+                    from None
+        self.tmp_name = ""
+        self.file = _CountingFile(fd, "wb")
+        self.raw = io.BufferedWriter(self.file, 1 << 16)
+        self._layers(target, mode)
+
+    def finish(self) -> None:
+        self._flush_layers()
+        self.raw.close()
+
+    def commit(self) -> None:
+        pass
+
+    def abort(self) -> None:
+        with contextlib.suppress(Exception):
+            self.raw.close()
+
+
+def _open_output(target: Path, mode: str) -> _Pending:
+    return _Direct(target, mode) if is_direct_output(target) else _Pending(target, mode)
+
+
 @contextlib.contextmanager
 def _atomic_outputs(paths: Sequence[str | Path], mode: str) -> Iterator[list[Any]]:
     targets = [Path(p) for p in paths]
@@ -202,7 +271,7 @@ def _atomic_outputs(paths: Sequence[str | Path], mode: str) -> Iterator[list[Any
     pending: list[_Pending] = []
     try:
         for target in targets:
-            pending.append(_Pending(target, mode))
+            pending.append(_open_output(target, mode))
         yield [p.handle for p in pending]
         for p in pending:
             p.finish()

@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import json
+import os
 import signal
 import sys
 from collections.abc import Callable, Iterator, Sequence
@@ -72,8 +73,16 @@ def guarded(fn: Callable[P, R]) -> Callable[P, R]:
         except KeyboardInterrupt as exc:
             if state.debug:
                 raise
-            what = "terminated" if isinstance(exc, Terminated) else "interrupted"
-            raise fail(f"{what}; no output was written", 130) from None
+            # the shell's convention: 128 + the signal's number
+            if isinstance(exc, Terminated):
+                raise fail("terminated; no output was written", 128 + signal.SIGTERM) \
+                    from None
+            raise fail("interrupted; no output was written", 128 + signal.SIGINT) from None
+        except BrokenPipeError:
+            # the reader of standard output went away (``| head``): stop quietly, as a
+            # shell tool killed by SIGPIPE would, and keep Python from flushing into it
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            raise typer.Exit(128 + signal.SIGPIPE) from None
         except MemoryError:
             raise fail("out of memory; try a smaller batch or fewer workers") from None
         except OSError as exc:

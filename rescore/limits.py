@@ -28,3 +28,8 @@ GZIP_RATIO_VARIABLE = "RESCORE_GZIP_MAX_RATIO"
 def describe_size(n: int) -> str:
     """A limit as users read it: whole MiB where it is one, else bytes."""
     return f"{n >> 20} MiB" if n >= 1 << 20 and n % (1 << 20) == 0 else f"{n} bytes"
+
+# Largest score magnitude a weight search accepts in a column it weights: its box holds
+# weights up to 100 by default, and a total sums a handful of columns, so the products
+# and their sum stay far from float64's 1.8e308 (1e300 * 100 * 1000 columns < 1e306).
+TUNING_SCORE_LIMIT = 1e300

@@ -20,6 +20,7 @@ import numpy as np
 from rescore import __version__
 from rescore.checksum import sha256_file
 from rescore.errors import AccountingError, InputError, UsageError
+from rescore.finite import check_totals, check_tunable
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.nbest import (
     DEFAULT_LIMITS,
@@ -36,6 +37,7 @@ from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
     ACOUSTIC,
     LM,
+    WORDS,
     FeatureMatrix,
     LanguageModel,
     Weights,
@@ -379,7 +381,9 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     the sign and order counts of their acoustic scores."""
     m = build_matrix(batch, path=path, lms=lms, features=features).matrix
     vector = _weight_vector(weights, m)
-    total = m.values @ vector
+    with np.errstate(over="ignore", invalid="ignore"):  # refused below, naming the weight
+        total = m.values @ vector
+    check_totals(total, m, vector, path=path, lines=[line for line, _ in batch])
     best = segment_argmax(total, m.offsets) - m.offsets[:-1]
     # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
     words = m.values[:, m.names.index("words")].astype(np.int64).tolist()
@@ -527,6 +531,7 @@ def tune_file(
     matrix = load_matrix(path, models=models, features=features, refs=refs,
                          log_base=log_base, costs=costs, progress=scoring)
     scoring.finish()
+    check_tunable(matrix, [c for c in matrix.names if c != WORDS], path=str(path))
     stats = score_stats(matrix.column(ACOUSTIC), matrix.offsets)
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))

@@ -111,3 +111,64 @@ def test_unwritable_analysis_folder_is_refused_before_tuning(
     assert res.stderr.strip().splitlines()[-1] == \
         f"error: {locked}: output folder is not writable"
     assert not weights.exists()
+
+
+# --- 3: overflow -------------------------------------------------------------------------
+
+def _weights(folder: Path, **values: object) -> Path:
+    path = folder / "weights.json"
+    path.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 1.0,
+                                "insertion_penalty": 0.0, "features": {}} | values))
+    return path
+
+
+def _with_feature(folder: Path, value: float) -> Path:
+    path = folder / "dev-feature.jsonl"
+    with open(DEMO / "dev.jsonl") as src, open(path, "w") as dst:
+        for line in src:
+            record = json.loads(line)
+            for hyp in record["hypotheses"]:
+                hyp["features"] = {"first_pass_lm": value}
+            dst.write(json.dumps(record) + "\n")
+    return path
+
+
+# float64's largest value is about 1.797e308 (IEEE 754 binary64): each product below passes
+# it. The first demo test hypothesis has acoustic -262.03 and LM score about -33.9 under the
+# trigram (read from a run of this model, not from the file), so 1e308 * -33.9 and
+# 1e307 * -262.03 both overflow; 2 * -1.7e308 = -3.4e308 overflows too.
+@pytest.mark.parametrize(("weights", "named"), [
+    ({"lm_weight": 1e308}, "lm_weight 1e+308 times lm"),
+    ({"acoustic_scale": 1e307}, "acoustic_scale 1e+307 times acoustic -262.03"),
+])
+@pytest.mark.parametrize("workers", ["1", "2"])
+def test_total_that_overflows_is_an_error_naming_utterance_and_weight(
+        model: dict[str, Path], tmp_path: Path, weights: dict[str, float], named: str,
+        workers: str) -> None:
+    out = tmp_path / "out.jsonl"
+    w = _weights(tmp_path, **weights)
+    res = _cli(["apply", DEMO / "test.jsonl", "--lm", model["lm"], "--weights", w, "-o", out,
+                "--workers", workers, "--shard-mb", "0.01"])
+    assert res.returncode == 1
+    last = res.stderr.strip().splitlines()[-1]
+    assert last.startswith(f"error: {DEMO / 'test.jsonl'}:1: hypotheses[0].total: "
+                           "utterance 'lark-test-0001': total is not finite: ")
+    assert named in last and "Traceback" not in res.stderr
+    assert sorted(tmp_path.iterdir()) == [w]  # nothing written, no temporary
+
+
+def test_feature_weight_overflow_and_tuning_on_huge_feature_values_are_clean_errors(
+        model: dict[str, Path], tmp_path: Path) -> None:
+    dev = _with_feature(tmp_path, -1.7e308)
+    w = _weights(tmp_path, features={"first_pass_lm": 2.0})
+    res = _cli(["apply", dev, "--lm", model["lm"], "--weights", w, "-o", tmp_path / "o.jsonl"])
+    assert res.returncode == 1
+    assert "features.first_pass_lm 2 times first_pass_lm -1.7e+308 overflows" in res.stderr
+    res = _cli(["tune", dev, "--lm", model["lm"], "--feature", "first_pass_lm",
+                "-o", tmp_path / "tuned.json"])
+    assert res.returncode == 1, res.stderr
+    assert res.stderr.strip().splitlines()[-1] == (
+        f"error: {dev}: features.first_pass_lm: utterance 'lark-dev-0001': hypothesis 0: "
+        "-1.7e+308 is beyond ±1e+300, too large to weight without overflow; rescale the "
+        "feature")
+    assert not (tmp_path / "tuned.json").exists() and not (tmp_path / "o.jsonl").exists()

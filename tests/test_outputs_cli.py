@@ -172,3 +172,49 @@ def test_feature_weight_overflow_and_tuning_on_huge_feature_values_are_clean_err
         "-1.7e+308 is beyond ±1e+300, too large to weight without overflow; rescale the "
         "feature")
     assert not (tmp_path / "tuned.json").exists() and not (tmp_path / "o.jsonl").exists()
+
+
+# --- 4: names are never terminal markup --------------------------------------------------
+
+def _on_a_terminal(args: list[str | Path]) -> tuple[int, str]:
+    """Run the command with stdout and stderr on a pseudo-terminal (progress bars drawn)."""
+    import pty
+
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([sys.executable, "-m", "rescore", *map(str, args)], cwd=ROOT,
+                            env={**os.environ, "PYTHONPATH": str(ROOT), "COLUMNS": "200"},
+                            stdout=slave, stderr=slave, stdin=subprocess.DEVNULL)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            chunk = os.read(master, 1 << 16)
+        except OSError:  # EIO: the other side closed
+            break
+        if not chunk:
+            break
+        chunks.append(chunk)
+    os.close(master)
+    return proc.wait(timeout=300), b"".join(chunks).decode("utf-8", "replace")
+
+
+def test_paths_with_markup_brackets_are_printed_as_they_are(
+        model: dict[str, Path], tmp_path: Path) -> None:
+    # rich reads '[v2]' as a style tag (dropped) and '[/]' as a closing tag (MarkupError)
+    source = tmp_path / "run[v2].jsonl"
+    source.write_bytes((DEMO / "test.jsonl").read_bytes())
+    (tmp_path / "x[").mkdir()
+    out = tmp_path / "x[" / "]y.jsonl"
+    weights = tmp_path / "x[" / "]w.json"
+    checked = _cli(["check", source])
+    assert checked.returncode == 0 and str(source) in checked.stdout
+    for args, shown in [
+        (["apply", source, "--lm", model["lm"], "--weights", model["weights"], "-o", out], out),
+        (["tune", source, "--lm", model["lm"], "-o", weights, "--folds", "0",
+          "--grid-lm", "0:10:3", "--grid-penalty", "0:1:2", "--no-widen"], weights),
+        (["lm", "build", DEMO / "train.txt", "-o", tmp_path / "x[" / "]m.lm"],
+         tmp_path / "x[" / "]m.lm"),
+    ]:
+        code, text = _on_a_terminal(args)
+        assert code == 0, text
+        assert "internal error" not in text and str(shown) in text

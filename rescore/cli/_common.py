@@ -26,8 +26,10 @@ from rescore.progress import Report
 P = ParamSpec("P")
 R = TypeVar("R")
 
-stdout = Console(soft_wrap=True)
-stderr = Console(stderr=True, soft_wrap=True)
+# nothing printed is markup: paths, ids and user strings such as 'run[v2].jsonl' or
+# 'x[/]y.jsonl' are shown as they are (escaped at the console, so no call can forget)
+stdout = Console(soft_wrap=True, markup=False, emoji=False, highlight=False)
+stderr = Console(stderr=True, soft_wrap=True, markup=False, emoji=False, highlight=False)
 
 
 class _State:
@@ -141,7 +143,7 @@ def _bar() -> Any:
         def render(self, task: Task) -> Text:
             return Text(f"{task.speed:,.0f}/s" if task.speed else "")
 
-    columns = [SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
+    columns = [SpinnerColumn(), TextColumn("{task.description}", markup=False), BarColumn(),
                MofNCompleteColumn(), TaskProgressColumn(), RateColumn(), TimeElapsedColumn(),
                TimeRemainingColumn()]
     return Progress(*columns, console=stderr, transient=True)

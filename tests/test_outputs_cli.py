@@ -218,3 +218,71 @@ def test_paths_with_markup_brackets_are_printed_as_they_are(
         code, text = _on_a_terminal(args)
         assert code == 0, text
         assert "internal error" not in text and str(shown) in text
+
+
+# --- 6: the Markdown report stays text ---------------------------------------------------
+
+PAYLOADS = ["[click here](https://evil.example/login)", "![px](https://evil.example/p.png)",
+            "_em_ and ~~x~~ and **b**", "<img src=x onerror=alert(1)>", "a\rb | c"]
+
+
+def _report_pair(folder: Path, ids: list[str], meta_key: str, text: str = "") -> list[Path]:
+    """Before and after N-best files of one utterance per id: the first hypothesis is wrong
+    (one substitution), the second right, so every id is an 'improved' utterance. Hypothesis
+    texts carry ``text`` too (it is not a word of the reference)."""
+    files = []
+    for name, best in (("before", 0), ("after", 1)):
+        path = folder / f"{name}.jsonl"
+        with open(path, "w", encoding="utf-8") as fh:
+            for i, uid in enumerate(ids):
+                fh.write(json.dumps({
+                    "id": uid, "reference": "vent bay three",
+                    "hypotheses": [{"text": f"went bay three {text}", "acoustic": -1.0},
+                                   {"text": "vent bay three", "acoustic": -2.0}],
+                    "best": best, "meta": {meta_key: f"group {i % 2} {text}"}}) + "\n")
+        files.append(path)
+    return files
+
+
+def _tokens(markdown: str) -> list[tuple[str, str]]:
+    from markdown_it import MarkdownIt
+
+    md = MarkdownIt("commonmark").enable(["table", "strikethrough"])
+
+    def walk(tokens: list[object]) -> list[tuple[str, str]]:
+        out: list[tuple[str, str]] = []
+        for tok in tokens:
+            out.append((tok.type, tok.content))  # type: ignore[attr-defined]
+            out += walk(tok.children or [])  # type: ignore[attr-defined]
+        return out
+
+    return walk(md.parse(markdown))
+
+
+MARKUP = {"link_open", "image", "em_open", "strong_open", "s_open", "html_inline",
+          "html_block", "code_inline", "tr_open", "heading_open", "autolink_open"}
+
+
+def test_markdown_report_lets_no_data_take_effect(tmp_path: Path) -> None:
+    plain_dir, hostile_dir = tmp_path / "plain", tmp_path / "hostile"
+    plain_dir.mkdir()
+    hostile_dir.mkdir()
+    plain = _report_pair(plain_dir, [f"utt-{i}" for i in range(len(PAYLOADS))], "speaker",
+                         text="boom")
+    hostile = _report_pair(hostile_dir, PAYLOADS, "spk\r[x](https://evil.example)",
+                           text="*boom*")
+    shapes = []
+    for (before, after), out in ((plain, tmp_path / "rep-plain"),
+                                 (hostile, tmp_path / "rep-hostile")):
+        res = run(["report", "--before", before, "--after", after, "-o", out,
+                   "--resamples", "50"])
+        assert res.exit_code == 0, res.output
+        tokens = _tokens((out / "report.md").read_text(encoding="utf-8"))
+        shapes.append(sorted(t for t, _ in tokens if t in MARKUP))
+        text = "".join(c for t, c in tokens if t == "text")
+    # the same links, images, emphasis, HTML, rows and headings as with plain ids: all
+    # from the report's own layout, none from the data
+    assert shapes[0] == shapes[1]
+    assert not {"link_open", "image", "html_inline", "html_block"} & set(shapes[1])
+    for payload in PAYLOADS:  # each shown as its text, a carriage return read as a space
+        assert payload.replace("\r", " ") in text

@@ -141,6 +141,38 @@ def check_output_path(path: str | Path | None) -> None:
         raise InputError("output folder is not writable", path=str(folder))
 
 
+def check_outputs(outputs: Sequence[str | Path | None],
+                  inputs: Sequence[str | Path | None] = ()) -> None:
+    """:func:`check_output_path` for each output, and refuse an output that is one of the
+    inputs (the same file by device and inode, so links and other spellings are caught):
+    writing it would destroy what the command reads. Standard streams and special files
+    are not compared (a terminal may well be both)."""
+    for out in outputs:
+        check_output_path(out)
+    check_not_inputs(outputs, inputs)
+
+
+def check_not_inputs(outputs: Sequence[str | Path | None],
+                     inputs: Sequence[str | Path | None]) -> None:
+    """Refuse an output that is the same file as one of the inputs (see
+    :func:`check_outputs`)."""
+    read = {_identity(p) for p in inputs if p is not None}
+    read.discard(None)
+    for out in outputs:
+        if out is not None and _identity(out) in read:
+            raise UsageError(f"{out}: the output is one of the inputs; name another file")
+
+
+def _identity(path: str | Path) -> tuple[int, int] | None:
+    if str(path) == STDOUT_NAME:
+        return None
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino) if stat.S_ISREG(st.st_mode) else None
+
+
 class _CountingFile(io.FileIO):
     """The temporary's file descriptor: counts the bytes that reached the file and keeps
     the first write error, so a full disk can be reported for the right output."""
@@ -265,9 +297,15 @@ def _open_output(target: Path, mode: str) -> _Pending:
 @contextlib.contextmanager
 def _atomic_outputs(paths: Sequence[str | Path], mode: str) -> Iterator[list[Any]]:
     targets = [Path(p) for p in paths]
-    if len({t.resolve() for t in targets}) != len(targets):
-        raise UsageError("the same file is named for two outputs: "
-                         + ", ".join(str(t) for t in targets))
+    first: dict[Path, Path] = {}
+    for t in targets:
+        real = t.resolve()
+        if real in first:
+            why = "" if real in (t.absolute(), first[real].absolute()) else \
+                f" (through links, both are {real})"
+            raise UsageError(f"{first[real]} and {t} are one file{why}: each output of a "
+                             "command must be a file of its own")
+        first[real] = t
     pending: list[_Pending] = []
     try:
         for target in targets:

@@ -14,6 +14,7 @@ import os
 import stat
 import subprocess
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -97,20 +98,38 @@ def test_dash_and_a_link_to_proc_self_fd_1_write_to_standard_output(
 
 # --- 2: the outputs of one command are checked before the work --------------------------
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="root writes in any folder")
+@pytest.fixture
+def unwritable_folder(tmp_path: Path) -> Iterator[Path]:
+    """A folder this process cannot write in: mode 0500, or for root (whom modes do not
+    stop) a read-only tmpfs (access(2) then fails with EROFS for every user)."""
+    folder = tmp_path / "locked"
+    folder.mkdir()
+    if os.geteuid() != 0:
+        folder.chmod(0o500)
+        yield folder
+        folder.chmod(0o700)
+        return
+    mounted = subprocess.run(["mount", "-t", "tmpfs", "-o", "ro,size=64k", "tmpfs",
+                              str(folder)], capture_output=True, text=True)
+    if mounted.returncode != 0:
+        pytest.skip(f"mount -t tmpfs not permitted here: {mounted.stderr.strip()}")
+    try:
+        yield folder
+    finally:
+        subprocess.run(["umount", str(folder)], check=False)
+
+
 def test_unwritable_analysis_folder_is_refused_before_tuning(
-        model: dict[str, Path], tmp_path: Path) -> None:
-    locked = tmp_path / "locked"
-    locked.mkdir()
-    locked.chmod(0o500)
+        model: dict[str, Path], tmp_path: Path, unwritable_folder: Path) -> None:
     weights = tmp_path / "w.json"
+    weights.write_text("previous\n")
     res = _cli(["tune", DEMO / "dev.jsonl", "--lm", model["lm"], "-o", weights,
-                "--analysis", locked / "a.json", "--grid-lm", "0:10:3",
+                "--analysis", unwritable_folder / "a.json", "--grid-lm", "0:10:3",
                 "--grid-penalty", "0:1:2", "--folds", "0"])
     assert res.returncode == 1
     assert res.stderr.strip().splitlines()[-1] == \
-        f"error: {locked}: output folder is not writable"
-    assert not weights.exists()
+        f"error: {unwritable_folder}: output folder is not writable"
+    assert weights.read_text() == "previous\n"  # the weights of the set stay as they were
 
 
 # --- 3: overflow -------------------------------------------------------------------------
@@ -286,3 +305,95 @@ def test_markdown_report_lets_no_data_take_effect(tmp_path: Path) -> None:
     assert not {"link_open", "image", "html_inline", "html_block"} & set(shapes[1])
     for payload in PAYLOADS:  # each shown as its text, a carriage return read as a space
         assert payload.replace("\r", " ") in text
+
+
+# --- 9: smaller refusals -------------------------------------------------------------------
+
+@pytest.mark.parametrize(("line", "key"), [
+    ('{"id": "a", "hypotheses": [{"text": "x", "acoustic": -1, "acoustic": -2}]}', "acoustic"),
+    ('{"id": "a", "id": "b", "hypotheses": [{"text": "x", "acoustic": -1}]}', "id"),
+    ('{"id": "a", "hypotheses": [{"text": "x \\": y", "acoustic": -1}], '
+     '"meta": {"k": {"s" : 1, "s": 2}}}', "s"),
+])
+def test_duplicate_key_in_a_record_is_refused(tmp_path: Path, line: str, key: str) -> None:
+    # RFC 8259 section 4: names "SHOULD be unique"; parsers differ on which of two wins
+    path = tmp_path / "dup.jsonl"
+    path.write_text(line + "\n")
+    res = _cli(["check", path])
+    assert res.returncode == 1
+    assert res.stderr.strip() == (f"error: {path}:1: {key}: key {key!r} appears twice in one "
+                                  "object (which one counts would be a guess)")
+
+
+def test_key_like_text_inside_values_is_not_a_duplicate(tmp_path: Path) -> None:
+    path = tmp_path / "ok.jsonl"
+    path.write_text(json.dumps({"id": "a", "reference": 'x "id": y', "hypotheses": [
+        {"text": 'x \\": "acoustic": y', "acoustic": -1.0}], "meta": {"id": "z"}}) + "\n")
+    res = _cli(["check", path])
+    assert res.returncode == 0, res.stderr
+
+
+def test_duplicate_key_in_a_weights_file_is_refused(model: dict[str, Path], tmp_path: Path
+                                                    ) -> None:
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1.0, "lm_weight": 5.0, "lm_weight": 0.0, '
+                       '"insertion_penalty": 0.0, "features": {}}')
+    res = _apply(model, tmp_path / "o.jsonl", "--weights", weights)
+    assert res.returncode == 1
+    assert res.stderr.strip().endswith(f"error: {weights}: lm_weight: key 'lm_weight' appears "
+                                       "twice in one object (which one counts would be a guess)")
+
+
+def test_report_tuning_that_is_not_a_tuning_record_is_refused(tmp_path: Path) -> None:
+    tuning = tmp_path / "t.json"
+    tuning.write_text('{"hello": 1}')
+    res = _cli(["report", "--before", DEMO / "test.jsonl", "--after", DEMO / "test.jsonl",
+                "--tuning", tuning, "-o", tmp_path / "rep", "--resamples", "20"])
+    assert res.returncode == 1
+    assert res.stderr.strip().endswith(
+        f"error: {tuning}: not a tuning record: it has neither 'surface' nor 'depth' (write "
+        "one with 'rescore tune --analysis FILE')")
+    assert not (tmp_path / "rep").exists()
+
+
+def test_an_output_that_is_one_of_the_inputs_is_refused(model: dict[str, Path],
+                                                        tmp_path: Path) -> None:
+    source = tmp_path / "in.jsonl"
+    source.write_bytes((DEMO / "test.jsonl").read_bytes())
+    alias = tmp_path / "alias.jsonl"
+    alias.symlink_to(source)
+    lm_copy = tmp_path / "m.lm"
+    lm_copy.write_bytes(model["lm"].read_bytes())
+    before = source.read_bytes(), lm_copy.read_bytes()
+    (tmp_path / "rep").mkdir()
+    (tmp_path / "rep" / "report.json").symlink_to(source)
+    cases = [
+        (["apply", source, "--lm", lm_copy, "--weights", model["weights"], "-o", alias], alias),
+        (["apply", source, "--lm", lm_copy, "--weights", model["weights"], "-o", lm_copy],
+         lm_copy),
+        (["tune", source, "--lm", lm_copy, "-o", lm_copy], lm_copy),
+        (["lm", "build", source, "-o", source], source),
+        (["report", "--before", source, "--after", source, "-o", tmp_path / "rep",
+          "--resamples", "20"], tmp_path / "rep" / "report.json"),
+    ]
+    for args, named in cases:
+        res = _cli(args)
+        assert res.returncode == 2, (args, res.stderr)
+        assert res.stderr.strip() == \
+            f"error: {named}: the output is one of the inputs; name another file"
+    assert (source.read_bytes(), lm_copy.read_bytes()) == before
+
+
+def test_report_folder_with_two_links_to_one_file_says_why(tmp_path: Path) -> None:
+    folder = tmp_path / "rep"
+    folder.mkdir()
+    (folder / "real").write_text("")
+    (folder / "report.md").symlink_to("real")
+    (folder / "report.html").symlink_to("real")
+    res = _cli(["report", "--before", DEMO / "test.jsonl", "--after", DEMO / "test.jsonl",
+                "-o", folder, "--resamples", "20"])
+    assert res.returncode == 2
+    assert res.stderr.strip().splitlines()[-1] == (
+        f"error: {folder / 'report.md'} and {folder / 'report.html'} are one file (through "
+        f"links, both are {(folder / 'real').resolve()}): each output of a command must be "
+        "a file of its own")

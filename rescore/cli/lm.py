@@ -17,7 +17,7 @@ from rescore.lm import (
     save_model,
     write_sentence_scores,
 )
-from rescore.outputs import check_output_path
+from rescore.outputs import check_outputs
 from rescore.progress import Steps
 from rescore.readers import iter_text_lines
 from rescore.shards import count_lines
@@ -75,7 +75,7 @@ def build(
     prune: _Prune = None,
 ) -> None:
     """Train an n-gram language model."""
-    check_output_path(output)
+    check_outputs([output], [*text, vocab])
     model = NGramModel(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
@@ -128,6 +128,7 @@ def convert(
     target: Annotated[Path, typer.Argument(metavar="OUT", help="Model to write (by file ending).")],
 ) -> None:
     """Convert a model between ARPA text and the native file."""
+    check_outputs([target], [source])
     save_model(load_model(source), target)
     info(f"wrote {target}")
 
@@ -160,7 +161,7 @@ def mix(
 
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
-    check_output_path(output)
+    check_outputs([output], [*models, tune_on])
     if tune_on is None and weights is None:
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
                          field="--tune-on")

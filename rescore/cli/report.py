@@ -13,6 +13,7 @@ from rescore.cli._common import emit_json, guarded, info, pct, stages, table, wa
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
 from rescore.limits import ANALYSIS_FILE_LIMIT
+from rescore.outputs import check_not_inputs
 from rescore.readers import read_json
 
 if TYPE_CHECKING:
@@ -79,6 +80,14 @@ def _read_tuning(path: Path) -> dict[str, Any]:
     return data
 
 
+def _tuning_record(path: Path) -> dict[str, Any]:
+    data = _read_tuning(path)
+    if "surface" not in data and "depth" not in data:
+        raise InputError("not a tuning record: it has neither 'surface' nor 'depth' (write "
+                         "one with 'rescore tune --analysis FILE')", path=path)
+    return data
+
+
 @guarded
 def report(
     before: SystemOpt,
@@ -120,6 +129,7 @@ def report(
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
     from rescore.nbest import read_refs
     from rescore.report import (
+        FILES,
         build_report,
         gate_failures,
         load_system,
@@ -131,11 +141,13 @@ def report(
     from rescore.report.load import weights_provenance
     from rescore.report.text import CAUTION, interval, p_value, points, share_of_resamples
 
+    check_not_inputs([out / name for name in FILES],
+                     [before, after, refs, tuning, weights, terms, *(lm or [])])
     classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
-    tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
+    tuning_data = None if tuning is None else tuning_from_dict(_tuning_record(tuning),
                                                                path=str(tuning))
     files = [p for p in (before, after, refs, tuning, terms) if p is not None]
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}

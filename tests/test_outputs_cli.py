@@ -14,11 +14,13 @@ import os
 import stat
 import subprocess
 import sys
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
+from rescore.leftovers import TMP_PREFIX
 from tests.conftest import FIXTURES, ROOT, run
 
 DEMO = FIXTURES / "demo"
@@ -397,3 +399,42 @@ def test_report_folder_with_two_links_to_one_file_says_why(tmp_path: Path) -> No
         f"error: {folder / 'report.md'} and {folder / 'report.html'} are one file (through "
         f"links, both are {(folder / 'real').resolve()}): each output of a command must be "
         "a file of its own")
+
+
+# --- 5: a second run in another PID namespace leaves a live run's scratch alone -----------
+
+def test_run_in_another_pid_namespace_keeps_a_live_runs_shards(tmp_path: Path) -> None:
+    """The second run sees no process of the first run's pid (a fresh PID namespace, as in
+    another container sharing the folder), so only the first run's flock keeps its
+    temporary and shard folder from being taken for a dead run's leftovers."""
+    from tests.bulk import write_bulk, write_weights
+
+    probe = subprocess.run(["unshare", "--pid", "--fork", "true"], capture_output=True,
+                           text=True)
+    if probe.returncode != 0:
+        pytest.skip(f"unshare --pid not permitted here: {probe.stderr.strip()}")
+    big, weights = tmp_path / "big.jsonl", tmp_path / "w.json"
+    write_bulk(big, 40_000, depth=10)
+    write_weights(weights)
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    out = out_dir / "o.jsonl"
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    first = subprocess.Popen([sys.executable, "-m", "rescore", "-q", "apply", str(big),
+                              "--weights", str(weights), "-o", str(out), "--workers", "2",
+                              "--shard-mb", "4"], cwd=ROOT, env=env,
+                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while not any(p.name.startswith(TMP_PREFIX) for p in out_dir.iterdir()):
+        assert first.poll() is None and time.monotonic() < deadline, "first run ended early"
+        time.sleep(0.05)
+    second = subprocess.run(["unshare", "--pid", "--fork", sys.executable, "-m", "rescore",
+                             "-q", "apply", str(DEMO / "test.jsonl"), "--weights",
+                             str(weights), "-o", str(out)], cwd=ROOT, env=env,
+                            capture_output=True, text=True, timeout=300)
+    assert second.returncode == 0, second.stderr
+    assert first.poll() is None, "the first run ended before the second: enlarge the input"
+    _, err = first.communicate(timeout=600)
+    assert first.returncode == 0, err
+    assert out.read_bytes().count(b"\n") == 40_000  # the first run's output, whole
+    assert [p.name for p in out_dir.iterdir()] == ["o.jsonl"]

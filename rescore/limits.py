@@ -33,3 +33,8 @@ def describe_size(n: int) -> str:
 # weights up to 100 by default, and a total sums a handful of columns, so the products
 # and their sum stay far from float64's 1.8e308 (1e300 * 100 * 1000 columns < 1e306).
 TUNING_SCORE_LIMIT = 1e300
+
+# A batch of records (apply, check, wer, tune's reading) closes once its records hold this
+# much text, whatever --batch-size says, so peak memory has a ceiling however long the
+# lines are (README "Large jobs").
+BATCH_BYTE_LIMIT = 8 << 20

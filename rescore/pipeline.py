@@ -21,6 +21,7 @@ from rescore import __version__
 from rescore.checksum import sha256_file
 from rescore.errors import AccountingError, InputError, UsageError
 from rescore.finite import check_totals, check_tunable
+from rescore.limits import BATCH_BYTE_LIMIT
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.nbest import (
     DEFAULT_LIMITS,
@@ -153,14 +154,33 @@ def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
     return {name: m.model for name, m in models.items()}
 
 
-def batches(items: Iterator[tuple[int, Utterance]], size: int
-            ) -> Iterator[list[tuple[int, Utterance]]]:
-    """Consecutive lists of at most ``size`` records."""
-    while True:
-        batch = list(itertools.islice(items, size))
-        if not batch:
-            return
+def batches(items: Iterator[tuple[int, Utterance]], size: int,
+            max_bytes: int = BATCH_BYTE_LIMIT) -> Iterator[list[tuple[int, Utterance]]]:
+    """Consecutive lists of at most ``size`` records, closed early once the records' size
+    (see :func:`record_bytes`) reaches ``max_bytes``: a few huge lines never fill a batch
+    of thousands. A batch always holds at least one record."""
+    batch: list[tuple[int, Utterance]] = []
+    held = 0
+    for item in items:
+        batch.append(item)
+        held += record_bytes(item[1])
+        if len(batch) >= size or held >= max_bytes:
+            yield batch
+            batch, held = [], 0
+    if batch:
         yield batch
+
+
+def record_bytes(utt: Utterance) -> int:
+    """About the size of a record as read (its texts, and a fixed share for each score and
+    key); a cheap stand-in for the line's length, which the parsed record no longer has."""
+    hyps = utt["hypotheses"]
+    n = sum(len(h["text"]) for h in hyps) + 48 * len(hyps)
+    n += 32 * sum(len(h["features"]) for h in hyps if "features" in h)
+    n += len(utt["id"]) + len(utt.get("reference", ""))
+    if "meta" in utt:
+        n += len(dumps({"id": "", "hypotheses": [], "meta": utt["meta"]}))
+    return n
 
 
 def _check_weighted(weights: Weights, models: Mapping[str, NamedModel]) -> list[str]:

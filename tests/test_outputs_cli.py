@@ -438,3 +438,42 @@ def test_run_in_another_pid_namespace_keeps_a_live_runs_shards(tmp_path: Path) -
     assert first.returncode == 0, err
     assert out.read_bytes().count(b"\n") == 40_000  # the first run's output, whole
     assert [p.name for p in out_dir.iterdir()] == ["o.jsonl"]
+
+
+# --- 7: a batch is bounded by bytes as well as by records ---------------------------------
+
+def _peak_rss_mb(args: list[str | Path]) -> float:
+    """Peak resident memory of one command in its own process (ru_maxrss is in KiB on
+    Linux, getrusage(2))."""
+    code = ("import resource, subprocess, sys; "
+            "r = subprocess.run(sys.argv[1:]); "
+            "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024); "
+            "sys.exit(r.returncode)")
+    res = subprocess.run([sys.executable, "-c", code, sys.executable, "-m", "rescore", "-q",
+                          *map(str, args)], capture_output=True, text=True, cwd=ROOT,
+                         env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=600)
+    assert res.returncode == 0, res.stderr
+    return float(res.stdout.strip().splitlines()[-1])
+
+
+def test_few_huge_lines_take_no_more_memory_than_batches_of_one(tmp_path: Path) -> None:
+    # 4 lines of about 9.5 MB each (8,000 hypotheses of 200 words), each over the batch's
+    # 8 MiB byte bound (so a batch holds one) and under every per-line cap; a default batch
+    # of 2,000 records would hold all 4 at once
+    path = tmp_path / "long.jsonl"
+    words = ["vent", "bay", "three", "opened", "to", "forty", "percent", "lamp", "bank",
+             "four", "dimmed"]
+    text = " ".join(words[i % len(words)] for i in range(200))
+    with open(path, "w") as fh:
+        for u in range(4):
+            fh.write(json.dumps({"id": f"u{u}", "hypotheses": [
+                {"text": text, "acoustic": -100.0 - j} for j in range(8000)]}) + "\n")
+    weights = _weights(tmp_path, lm_weight=0.0)
+    for command in (["check", path], ["apply", path, "--weights", weights,
+                                      "-o", tmp_path / "o.jsonl"]):
+        default = _peak_rss_mb(command)
+        one = _peak_rss_mb([*command, "--batch-size", "1"])
+        # the baseline is the same command with batches of one record, measured in this
+        # run; 1.5 leaves room for allocator noise, while the 4 lines at once measured
+        # about 3 times as much before batches were bounded by bytes (README "Large jobs")
+        assert default < 1.5 * one, (command[0], default, one)

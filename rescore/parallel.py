@@ -243,6 +243,20 @@ class _Runner:
     def close(self) -> None:
         self._stack.close()
 
+    def abort(self) -> None:
+        """Stop at once (an error, Ctrl-C, SIGTERM): pending shards are cancelled and the
+        worker processes terminated, rather than waiting for the shards they are running."""
+        if self._pool is not None:
+            processes = list(getattr(self._pool, "_processes", {}).values())
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            for process in processes:
+                with contextlib.suppress(Exception):
+                    process.terminate()
+            for process in processes:
+                with contextlib.suppress(Exception):
+                    process.join(timeout=5)
+        self.close()
+
 
 @contextlib.contextmanager
 def _dask_client(address: str, workers: int) -> Iterator[Any]:
@@ -366,6 +380,12 @@ def _apply_in(
             for target, lines in zip(targets, joined_lines, strict=True):
                 check_accounting(path, ledger.count, lines,
                                  f"lines in the joined {target}, so no output was kept")
+    except BaseException:
+        if runner is not None:
+            runner.abort()
+            runner = None
+        raise
+    else:
         return total, counts, stats, len(tasks)
     finally:
         if runner is not None:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import stat
 import subprocess
 import sys
@@ -477,3 +478,55 @@ def test_few_huge_lines_take_no_more_memory_than_batches_of_one(tmp_path: Path) 
         # run; 1.5 leaves room for allocator noise, while the 4 lines at once measured
         # about 3 times as much before batches were bounded by bytes (README "Large jobs")
         assert default < 1.5 * one, (command[0], default, one)
+
+
+# --- 8: a signal stops the workers at once -------------------------------------------------
+
+@pytest.fixture(scope="module")
+def bulk(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    from tests.bulk import write_bulk, write_weights
+
+    folder = tmp_path_factory.mktemp("bulk")
+    write_bulk(folder / "big.jsonl", 40_000, depth=10)  # about 56 MB
+    write_weights(folder / "w.json")
+    return folder / "big.jsonl", folder / "w.json"
+
+
+def _apply_workers(bulk: tuple[Path, Path], out: Path) -> list[str]:
+    # shards of 28 MiB: two, one per worker, each a few seconds of work
+    return [sys.executable, "-m", "rescore", "-q", "apply", str(bulk[0]), "--weights",
+            str(bulk[1]), "-o", str(out), "--workers", "2", "--shard-mb", "28"]
+
+
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT], ids=["SIGTERM", "SIGINT"])
+def test_signal_to_apply_with_workers_stops_them_at_once(
+        bulk: tuple[Path, Path], tmp_path: Path, sig: signal.Signals) -> None:
+    import psutil
+
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    started = time.monotonic()
+    subprocess.run(_apply_workers(bulk, tmp_path / "whole.jsonl"), env=env, cwd=ROOT,
+                   check=True, capture_output=True, timeout=600)
+    whole_run = time.monotonic() - started  # the baseline, measured in this run
+    folder = tmp_path / "out"
+    folder.mkdir()
+    proc = subprocess.Popen(_apply_workers(bulk, folder / "o.jsonl"), env=env, cwd=ROOT,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while len(psutil.Process(proc.pid).children()) < 2 or not any(folder.iterdir()):
+        assert proc.poll() is None and time.monotonic() < deadline, "run ended early"
+        time.sleep(0.05)
+    time.sleep(0.3)  # the workers are inside their shards
+    workers = psutil.Process(proc.pid).children(recursive=True)
+    signalled = time.monotonic()
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=120)
+    stopped = time.monotonic() - signalled
+    # the shell's convention for death by signal n is 128 + n (bash manual, "EXIT STATUS")
+    assert proc.returncode == 128 + sig, err
+    assert err.strip().splitlines()[-1].startswith("error: ")
+    assert not [w for w in workers if w.is_running() and w.status() != psutil.STATUS_ZOMBIE]
+    assert list(folder.iterdir()) == []  # no output, no temporary, no shard folder
+    # stopping waits for no shard: well under the time of the run (measured here: 0.2 s
+    # against 3.1 s while a shard was running, before workers were terminated)
+    assert stopped < 0.5 * whole_run, (stopped, whole_run)

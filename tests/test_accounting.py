@@ -86,6 +86,9 @@ class _InProcessRunner:
     def close(self) -> None:
         pass
 
+    def abort(self) -> None:
+        pass
+
 
 def test_parallel_apply_notices_a_record_lost_in_a_shard(tmp_path: Path,
                                                          monkeypatch: pytest.MonkeyPatch) -> None:

@@ -4,7 +4,6 @@ parallel one (:mod:`rescore.parallel`), which both import it from here."""
 
 from __future__ import annotations
 
-import itertools
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -12,9 +11,11 @@ from pathlib import Path
 import numpy as np
 
 from rescore.errors import AccountingError, InputError
-from rescore.ioutil import TextSink
+from rescore.finite import check_totals
+from rescore.limits import BATCH_BYTE_LIMIT
 from rescore.listcheck import ListStats, score_stats
 from rescore.nbest import Utterance, dumps, one_best
+from rescore.outputs import TextSink
 from rescore.scoring import LanguageModel, build_matrix, choose, totals
 from rescore.text import tokens
 from rescore.weights import ACOUSTIC, LM, Weights
@@ -22,14 +23,33 @@ from rescore.weights import ACOUSTIC, LM, Weights
 DEFAULT_BATCH = 2000  # records read, scored and written together (memory stays flat)
 
 
-def batches(items: Iterator[tuple[int, Utterance]], size: int
-            ) -> Iterator[list[tuple[int, Utterance]]]:
-    """Consecutive lists of at most ``size`` records."""
-    while True:
-        batch = list(itertools.islice(items, size))
-        if not batch:
-            return
+def batches(items: Iterator[tuple[int, Utterance]], size: int,
+            max_bytes: int = BATCH_BYTE_LIMIT) -> Iterator[list[tuple[int, Utterance]]]:
+    """Consecutive lists of at most ``size`` records, closed early once the records' size
+    (see :func:`record_bytes`) reaches ``max_bytes``: a few huge lines never fill a batch
+    of thousands. A batch always holds at least one record."""
+    batch: list[tuple[int, Utterance]] = []
+    held = 0
+    for item in items:
+        batch.append(item)
+        held += record_bytes(item[1])
+        if len(batch) >= size or held >= max_bytes:
+            yield batch
+            batch, held = [], 0
+    if batch:
         yield batch
+
+
+def record_bytes(utt: Utterance) -> int:
+    """About the size of a record as read (its texts, and a fixed share for each score and
+    key); a cheap stand-in for the line's length, which the parsed record no longer has."""
+    hyps = utt["hypotheses"]
+    n = sum(len(h["text"]) for h in hyps) + 48 * len(hyps)
+    n += 32 * sum(len(h["features"]) for h in hyps if "features" in h)
+    n += len(utt["id"]) + len(utt.get("reference", ""))
+    if "meta" in utt:
+        n += len(dumps({"id": "", "hypotheses": [], "meta": utt["meta"]}))
+    return n
 
 
 @dataclass(frozen=True)
@@ -100,7 +120,10 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
     the sign and order counts of their acoustic scores."""
     m = build_matrix(batch, path=path, lms=lms, features=features).matrix
-    total = totals(m, weights)
+    with np.errstate(over="ignore", invalid="ignore"):  # refused below, naming the weight
+        total = totals(m, weights)
+    check_totals(total, m, weights.vector(m.names), path=path,
+                 lines=[line for line, _ in batch])
     best = choose(m, weights, total)
     # whole columns to Python numbers at once (tolist), then one pass over the hypotheses
     words = m.values[:, m.names.index("words")].astype(np.int64).tolist()

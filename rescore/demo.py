@@ -15,11 +15,11 @@ from typing import Any
 
 from rescore import pipeline
 from rescore.errors import InputError
-from rescore.ioutil import write_text_atomic
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
 from rescore.lm.mix import mix_models
 from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
+from rescore.outputs import write_text_atomic
 from rescore.report import build_report, load_system, write_report
 from rescore.report.load import weights_provenance
 from rescore.scoring import oracle_rows

@@ -22,7 +22,8 @@ from pydantic import ConfigDict, Field, TypeAdapter, ValidationError, with_confi
 from typing_extensions import TypedDict
 
 from rescore.errors import InputError
-from rescore.ioutil import atomic_output, iter_text_lines
+from rescore.outputs import atomic_output
+from rescore.readers import count_keys, duplicate_key, iter_text_lines
 from rescore.text import tokens
 
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
@@ -166,6 +167,10 @@ class RecordParser:
         except ValidationError as exc:
             field, msg = validation_message(exc)
             raise InputError(msg, path=path, line=number, field=field) from None
+        twice = duplicate_key(line, _record_keys(utt))
+        if twice is not None:
+            raise InputError(f"key {twice!r} appears twice in one object (which one counts "
+                             "would be a guess)", path=path, line=number, field=twice)
         _check_record(path, number, utt, self.limits)
         if self.refs is not None:
             key = utt["id"]
@@ -343,6 +348,14 @@ def _header(
     base = log_base if log_base is not None else fields.get("log_base")
     is_cost = costs if costs is not None else fields.get("scores_are_costs", False)
     return ScoreConvention(base, is_cost), is_header
+
+
+def _record_keys(utt: Utterance) -> int:
+    """The keys of a validated record, counted the fast way for its known shape."""
+    hyps = utt["hypotheses"]
+    n = len(utt) + sum(map(len, hyps))
+    n += sum(len(h["features"]) for h in hyps if "features" in h)
+    return n + count_keys(utt["meta"]) if "meta" in utt else n
 
 
 def _check_record(path: str | Path, number: int, utt: Utterance, limits: ReadLimits) -> None:

@@ -31,17 +31,9 @@ import numpy as np
 
 from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
 from rescore.cluster import dask_client
+from rescore.compression import is_gzip_file
 from rescore.errors import InputError
-from rescore.ioutil import (
-    atomic_outputs,
-    disk_full_error,
-    inflate,
-    is_disk_full,
-    is_gzip_file,
-    iter_text_lines,
-    line_shards,
-    scratch_folder,
-)
+from rescore.leftovers import scratch_folder
 from rescore.listcheck import ListStats
 from rescore.lm import load_model
 from rescore.nbest import (
@@ -52,6 +44,9 @@ from rescore.nbest import (
     id_digest,
     read_refs,
 )
+from rescore.outputs import atomic_outputs, disk_full_error, is_disk_full
+from rescore.readers import inflate, iter_text_lines
+from rescore.shards import line_shards
 from rescore.weights import Weights
 
 log = logging.getLogger(__name__)
@@ -244,6 +239,20 @@ class _Runner:
     def close(self) -> None:
         self._stack.close()
 
+    def abort(self) -> None:
+        """Stop at once (an error, Ctrl-C, SIGTERM): pending shards are cancelled and the
+        worker processes terminated, rather than waiting for the shards they are running."""
+        if self._pool is not None:
+            processes = list(getattr(self._pool, "_processes", {}).values())
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            for process in processes:
+                with contextlib.suppress(Exception):
+                    process.terminate()
+            for process in processes:
+                with contextlib.suppress(Exception):
+                    process.join(timeout=5)
+        self.close()
+
 
 def apply_sharded(
     path: Path, out: Path, *, models: Sequence[tuple[str, str]], weights: Weights,
@@ -332,6 +341,12 @@ def _apply_in(
             for target, lines in zip(targets, joined_lines, strict=True):
                 check_accounting(path, ledger.count, lines,
                                  f"lines in the joined {target}, so no output was kept")
+    except BaseException:
+        if runner is not None:
+            runner.abort()
+            runner = None
+        raise
+    else:
         return total, counts, stats, len(tasks)
     finally:
         if runner is not None:

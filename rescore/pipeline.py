@@ -27,14 +27,9 @@ from rescore.batch import (
     rescore_batch,
     write_scored,
 )
+from rescore.checksum import sha256_file
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import (
-    LineCounter,
-    atomic_outputs,
-    count_lines,
-    sha256_file,
-    write_texts_atomic,
-)
+from rescore.finite import check_tunable
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.lm import load_model
 from rescore.nbest import (
@@ -45,6 +40,7 @@ from rescore.nbest import (
     read_convention,
     read_refs,
 )
+from rescore.outputs import LineCounter, atomic_outputs, write_texts_atomic
 from rescore.parallel import apply_sharded
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import (
@@ -54,9 +50,10 @@ from rescore.scoring import (
     lm_column,
     oracle_rows,
 )
+from rescore.shards import count_lines
 from rescore.text import NORMALISATION, tokens
 from rescore.version import __version__
-from rescore.weights import ACOUSTIC, LM, Weights, read_weights_models, weights_text
+from rescore.weights import ACOUSTIC, LM, WORDS, Weights, read_weights_models, weights_text
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
@@ -423,6 +420,7 @@ def tune_file(
     matrix = load_matrix(path, models=models, features=features, refs=refs,
                          log_base=log_base, costs=costs, progress=scoring)
     scoring.finish()
+    check_tunable(matrix, [c for c in matrix.names if c != WORDS], path=str(path))
     stats = score_stats(matrix.column(ACOUSTIC), matrix.offsets)
     log.info("tuning matrix: %d utterances, %d hypotheses, columns %s", matrix.n_utterances,
              matrix.n_hypotheses, ", ".join(matrix.names))

@@ -19,7 +19,9 @@ from typing import Any
 import numpy as np
 
 from rescore.errors import InputError
-from rescore.ioutil import WEIGHTS_FILE_LIMIT, read_json, write_text_atomic
+from rescore.limits import WEIGHTS_FILE_LIMIT
+from rescore.outputs import write_text_atomic
+from rescore.readers import read_json
 
 ACOUSTIC = "acoustic"
 LM = "lm"

@@ -31,9 +31,9 @@ import numpy as np
 from bench_lm import sentences_of, target, zipf_corpus
 from benchkit import like_the_command_line
 
-from rescore.ioutil import iter_text_blocks
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
 from rescore.lm.vocab import encode_block, stream_from_lengths
+from rescore.readers import iter_text_blocks
 from rescore.text import normalise_block
 
 SEED = 20240611

@@ -32,6 +32,7 @@ from rescore.lm import NGramModel, read_corpus, save_model
 from rescore.nbest import iter_nbest, write_nbest
 from rescore.scoring import FeatureMatrix, Weights, totals
 from rescore.text import tokens
+from rescore.weights import read_weights
 from rescore.wer import corpus_wer
 
 
@@ -62,7 +63,7 @@ def _tuned(models: dict[str, pipeline.NamedModel], dev_path: Path, test_path: Pa
     pipeline.tune_file(dev_path, models=models, search="grid", features=[], grid_lm=None,
                        grid_penalty=None, folds=0, seed=0, refs=None, log_base=None,
                        costs=None, weights_path=weights_path, analysis_path=None)
-    weights = pipeline.read_weights(weights_path)
+    weights = read_weights(weights_path)
     dev = pipeline.load_matrix(dev_path, models=models, features=[])
     test = pipeline.load_matrix(test_path, models=models, features=[])
     return weights, dev, test

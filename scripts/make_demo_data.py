@@ -40,7 +40,7 @@ ROOT = Path(__file__).resolve().parent.parent
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from rescore.ioutil import write_text_atomic  # noqa: E402
+from rescore.outputs import write_text_atomic  # noqa: E402
 from rescore.text import normalise  # noqa: E402
 
 DEFAULT_SEED = 20240611

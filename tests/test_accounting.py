@@ -16,8 +16,8 @@ import pytest
 
 from rescore import parallel, pipeline
 from rescore.errors import AccountingError, RescoreError
-from rescore.ioutil import TextSink
 from rescore.nbest import Utterance
+from rescore.outputs import TextSink
 from rescore.weights import Weights
 from tests.conftest import FIXTURES
 
@@ -84,6 +84,9 @@ class _InProcessRunner:
         return (fn(task) for task in tasks)
 
     def close(self) -> None:
+        pass
+
+    def abort(self) -> None:
         pass
 
 

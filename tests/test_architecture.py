@@ -160,7 +160,6 @@ def test_the_library_never_imports_the_command_line() -> None:
 MAX_LINES = 520
 # modules over the bound that another change splits, and which
 LONG_FOR_NOW = {
-    "ioutil.py": "split by job in the outputs change (issue 19)",
     "lm/arpa.py": "the block reader and the exact line reader share it; to be split in two",
 }
 

@@ -28,9 +28,10 @@ from typing import Any
 import psutil
 import pytest
 
-from rescore import ioutil
+from rescore import leftovers, outputs
 from rescore.errors import InputError
-from rescore.ioutil import TMP_PREFIX, inflate
+from rescore.leftovers import TMP_PREFIX
+from rescore.readers import inflate
 from tests.bulk import write_bulk, write_weights
 from tests.conftest import FIXTURES, ROOT, run
 
@@ -90,7 +91,7 @@ def disk_holding(monkeypatch: pytest.MonkeyPatch) -> Iterator[int]:
         self.written += n
         return n
 
-    monkeypatch.setattr(ioutil._CountingFile, "write", write)
+    monkeypatch.setattr(outputs._CountingFile, "write", write)
     yield room
 
 
@@ -300,25 +301,25 @@ def test_a_leftover_whose_lock_is_held_is_kept_even_when_its_pid_looks_dead(
     dead = 2**22 + 4321  # above Linux's largest pid_max, 2^22 (proc(5), from memory)
     scratch = tmp_path / f"{TMP_PREFIX}o.jsonl.{dead}.shards.abc"
     scratch.mkdir()
-    (scratch / ioutil.SCRATCH_LOCK).write_text("")
+    (scratch / leftovers.SCRATCH_LOCK).write_text("")
     (scratch / "00000.jsonl").write_text("shard\n")
-    holder = _hold_lock(scratch / ioutil.SCRATCH_LOCK)
+    holder = _hold_lock(scratch / leftovers.SCRATCH_LOCK)
     try:
-        ioutil.write_text_atomic(tmp_path / "o.jsonl", "x\n")
+        outputs.write_text_atomic(tmp_path / "o.jsonl", "x\n")
         assert scratch.is_dir()
     finally:
         assert holder.stdin is not None and holder.stdout is not None
         holder.stdin.close()
         holder.wait(timeout=10)
         holder.stdout.close()
-    ioutil.write_text_atomic(tmp_path / "o.jsonl", "y\n")
+    outputs.write_text_atomic(tmp_path / "o.jsonl", "y\n")
     assert not scratch.exists()
 
 
 def test_a_temporary_being_written_is_locked_for_its_writer(tmp_path: Path) -> None:
     """Checks: while an output is open its temporary's flock is taken (so no later run can
     prove it dead), and it is gone with the output's completion."""
-    with ioutil.atomic_output(tmp_path / "o.txt") as fh:
+    with outputs.atomic_output(tmp_path / "o.txt") as fh:
         fh.write("z")
         (tmp,) = [p for p in tmp_path.iterdir() if p.name.startswith(TMP_PREFIX)]
         fd = os.open(tmp, os.O_RDONLY)

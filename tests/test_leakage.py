@@ -145,7 +145,7 @@ def test_threshold_is_settable(tmp_path: Path, models: tuple[Path, Path]) -> Non
 
 def test_report_uses_the_models_the_weights_record(tmp_path: Path,
                                                    models: tuple[Path, Path]) -> None:
-    from rescore.ioutil import sha256_file
+    from rescore.checksum import sha256_file
 
     _, leaky = models
     weights = tmp_path / "w.json"

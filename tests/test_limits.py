@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 from click.testing import Result
 
-from rescore.ioutil import ANALYSIS_FILE_LIMIT, TEXT_LINE_LIMIT, WEIGHTS_FILE_LIMIT
+from rescore.limits import ANALYSIS_FILE_LIMIT, TEXT_LINE_LIMIT, WEIGHTS_FILE_LIMIT
 from rescore.nbest import DEFAULT_LIMITS
 from tests.conftest import run
 

@@ -21,7 +21,7 @@ from typer.testing import CliRunner
 
 from rescore.cli import app
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import TMP_PREFIX
+from rescore.leftovers import TMP_PREFIX
 from rescore.lm import NGramModel, external, read_corpus, save_model
 from rescore.lm.counts import OrderCounts
 from rescore.lm.external import (

@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import json
+import os
 import signal
 import sys
 from collections.abc import Callable, Iterator, Sequence
@@ -32,14 +33,16 @@ from rich.table import Table
 from rich.text import Text
 
 from rescore.errors import RescoreError
-from rescore.ioutil import DISK_FULL, disk_full_error
+from rescore.outputs import DISK_FULL, disk_full_error
 from rescore.progress import Report
 
 P = ParamSpec("P")
 R = TypeVar("R")
 
-stdout = Console(soft_wrap=True)
-stderr = Console(stderr=True, soft_wrap=True)
+# nothing printed is markup: paths, ids and user strings such as 'run[v2].jsonl' or
+# 'x[/]y.jsonl' are shown as they are (escaped at the console, so no call can forget)
+stdout = Console(soft_wrap=True, markup=False, emoji=False, highlight=False)
+stderr = Console(stderr=True, soft_wrap=True, markup=False, emoji=False, highlight=False)
 
 
 class _State:
@@ -85,8 +88,16 @@ def guarded(fn: Callable[P, R]) -> Callable[P, R]:
         except KeyboardInterrupt as exc:
             if state.debug:
                 raise
-            what = "terminated" if isinstance(exc, Terminated) else "interrupted"
-            raise fail(f"{what}; no output was written", 130) from None
+            # the shell's convention: 128 + the signal's number
+            if isinstance(exc, Terminated):
+                raise fail("terminated; no output was written", 128 + signal.SIGTERM) \
+                    from None
+            raise fail("interrupted; no output was written", 128 + signal.SIGINT) from None
+        except BrokenPipeError:
+            # the reader of standard output went away (``| head``): stop quietly, as a
+            # shell tool killed by SIGPIPE would, and keep Python from flushing into it
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            raise typer.Exit(128 + signal.SIGPIPE) from None
         except MemoryError:
             raise fail("out of memory; try a smaller batch or fewer workers") from None
         except OSError as exc:
@@ -131,7 +142,7 @@ def _bar() -> Any:
         def render(self, task: Task) -> Text:
             return Text(f"{task.speed:,.0f}/s" if task.speed else "")
 
-    columns = [SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
+    columns = [SpinnerColumn(), TextColumn("{task.description}", markup=False), BarColumn(),
                MofNCompleteColumn(), TaskProgressColumn(), RateColumn(), TimeElapsedColumn(),
                TimeRemainingColumn()]
     return Progress(*columns, console=stderr, transient=True)

@@ -24,9 +24,10 @@ from rescore.cli.options import (
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
 from rescore.errors import UsageError
-from rescore.ioutil import check_output_path, count_lines
 from rescore.nbest import read_refs
+from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
+from rescore.shards import count_lines
 from rescore.weights import read_weights
 
 
@@ -122,6 +123,7 @@ def apply(
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
+    check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = read_weights(weights)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
@@ -199,9 +201,8 @@ def tune(
     as_json: JsonOpt = False,
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
-    check_output_path(out)
-    check_output_path(analysis)
     models = pipeline.load_lms(lm or [])
+    check_outputs([out, analysis], [nbest, refs, *(m.path for m in models.values())])
     with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,

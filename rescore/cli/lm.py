@@ -9,7 +9,6 @@ import typer
 
 from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
 from rescore.errors import UsageError
-from rescore.ioutil import check_output_path, count_lines, iter_text_lines
 from rescore.lm import (
     NGramModel,
     is_arpa_name,
@@ -22,7 +21,10 @@ from rescore.lm import (
 )
 from rescore.lm.external import MIN_MEMORY, default_memory, parse_size
 from rescore.lm.mix import mix_models
+from rescore.outputs import check_outputs
 from rescore.progress import Steps
+from rescore.readers import iter_text_lines
+from rescore.shards import count_lines
 from rescore.text import tokens
 
 
@@ -117,7 +119,7 @@ def build(
 ) -> None:
     """Train an n-gram language model."""
     _check_bits(quantize)
-    check_output_path(output)
+    check_outputs([output], [*text, vocab])
     budget = default_memory() if memory is None else _memory_size(memory)
     model = NGramModel(
         order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
@@ -184,7 +186,7 @@ def convert(
 ) -> None:
     """Convert a model between ARPA text and the native file."""
     _check_bits(quantize)
-    check_output_path(target)
+    check_outputs([target], [source])
     model = load_model(source, verify=verify)
     if quantize is not None:
         model.quantize(quantize)
@@ -247,7 +249,7 @@ def mix(
     """Interpolate language models; weights by EM on in-domain text; write one merged model."""
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
-    check_output_path(output)
+    check_outputs([output], [*models, tune_on])
     if tune_on is None and weights is None:
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
                          field="--tune-on")

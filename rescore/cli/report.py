@@ -9,14 +9,18 @@ from typing import Annotated, Any
 import typer
 
 from rescore import pipeline
+from rescore.checksum import sha256_file
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
 from rescore.errors import GateError, InputError, UsageError
-from rescore.ioutil import ANALYSIS_FILE_LIMIT, read_json, sha256_file
+from rescore.limits import ANALYSIS_FILE_LIMIT
 from rescore.lm import load_model
 from rescore.lm.overlap import OverlapSummary, overlap_summary
 from rescore.nbest import read_refs
+from rescore.outputs import check_not_inputs
+from rescore.readers import read_json
 from rescore.report import (
+    FILES,
     build_report,
     gate_failures,
     load_system,
@@ -86,6 +90,14 @@ def _read_tuning(path: Path) -> dict[str, Any]:
     return data
 
 
+def _tuning_record(path: Path) -> dict[str, Any]:
+    data = _read_tuning(path)
+    if "surface" not in data and "depth" not in data:
+        raise InputError("not a tuning record: it has neither 'surface' nor 'depth' (write "
+                         "one with 'rescore tune --analysis FILE')", path=path)
+    return data
+
+
 @guarded
 def report(
     before: SystemOpt,
@@ -128,6 +140,8 @@ def report(
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
+    check_not_inputs([out / name for name in FILES],
+                     [before, after, refs, tuning, weights, terms, *(lm or [])])
     if weights is not None and lm:
         # the models named as apply names them (MODEL, or NAME=MODEL), refused like there
         given = pipeline.load_lms([str(p) for p in lm])
@@ -137,7 +151,7 @@ def report(
     ref_map = None if refs is None else read_refs(refs)
     before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
-    tuning_data = None if tuning is None else tuning_from_dict(_read_tuning(tuning),
+    tuning_data = None if tuning is None else tuning_from_dict(_tuning_record(tuning),
                                                                path=str(tuning))
     files = [p for p in (before, after, refs, tuning, terms) if p is not None]
     provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}

@@ -28,13 +28,15 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from rescore.compression import open_binary
 from rescore.errors import ModelFileError, RescoreError
-from rescore.ioutil import atomic_output, iter_text_lines, open_binary
 from rescore.lm import hashindex
 from rescore.lm.model import MAX_ORDER
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS, BOS_ID, SPECIALS, UNK_ID, Vocabulary
+from rescore.outputs import atomic_output
 from rescore.process import give_back_freed_memory
+from rescore.readers import iter_text_lines
 
 F64 = npt.NDArray[np.float64]
 I64 = npt.NDArray[np.int64]

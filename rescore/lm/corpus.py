@@ -12,7 +12,7 @@ from itertools import pairwise
 from pathlib import Path
 
 from rescore.errors import InputError
-from rescore.ioutil import iter_text_blocks
+from rescore.readers import iter_text_blocks
 from rescore.text import clean_words, normalise_block
 
 

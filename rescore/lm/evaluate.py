@@ -13,10 +13,10 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from rescore.ioutil import atomic_output
 from rescore.lm.corpus import Corpus, read_corpus
 from rescore.lm.model import NGramModel
 from rescore.lm.vocab import UNK_ID, encode_block, stream_from_lengths
+from rescore.outputs import atomic_output
 from rescore.text import clean_words
 
 LN10 = math.log(10.0)

@@ -36,7 +36,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError, UsageError
-from rescore.ioutil import TMP_PREFIX, remove_stale_temporaries
+from rescore.leftovers import TMP_PREFIX, remove_stale_temporaries
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary, remap, stream_from_lengths
 from rescore.progress import Report, Steps

@@ -24,8 +24,8 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.cluster import LOCAL, dask_client, worker_count
+from rescore.compression import is_gzip_file
 from rescore.errors import InputError, RescoreError, UsageError
-from rescore.ioutil import is_gzip_file, iter_text_lines, line_shards
 from rescore.lm import fingerprint
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
 from rescore.lm.external import (
@@ -49,6 +49,8 @@ from rescore.lm.vocab import (
     stream_from_lengths,
 )
 from rescore.progress import Report, Steps
+from rescore.readers import iter_text_lines
+from rescore.shards import line_shards
 from rescore.text import tokens
 
 I32 = npt.NDArray[np.int32]

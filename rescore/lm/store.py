@@ -42,10 +42,10 @@ import numpy as np
 import xxhash
 
 from rescore.errors import ModelFileError
-from rescore.ioutil import atomic_output
 from rescore.lm.hashindex import BucketIndex
 from rescore.lm.tables import BackoffTables, Coded
 from rescore.lm.vocab import SPECIALS, Vocabulary
+from rescore.outputs import atomic_output
 
 MAGIC = b"RSCRLM\x00\n"
 END = b"RSCREND\n"

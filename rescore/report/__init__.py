@@ -12,7 +12,7 @@ import contextlib
 from pathlib import Path
 
 from rescore.errors import InputError
-from rescore.ioutil import write_texts_atomic
+from rescore.outputs import write_texts_atomic
 from rescore.report.build import (
     DEFAULT_RESAMPLES,
     DEFAULT_SEED,

@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Any
 
 from rescore.errors import InputError
-from rescore.ioutil import iter_text_lines
+from rescore.readers import iter_text_lines
 from rescore.report.rows import UtteranceRow
 from rescore.text import tokens
 from rescore.wer import Alignment

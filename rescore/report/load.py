@@ -7,9 +7,10 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from rescore.checksum import sha256_file
 from rescore.errors import InputError
-from rescore.ioutil import iter_text_lines, sha256_file
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
+from rescore.readers import iter_text_lines
 from rescore.report.build import Pair
 from rescore.text import tokens
 from rescore.weights import read_weights

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-import html
+import re
 from collections.abc import Sequence
 
 from rescore.report import wording as t
@@ -11,9 +11,29 @@ from rescore.report.build import Report
 
 
 def _cell(value: object) -> str:
-    # transcripts and ids are data: no Markdown or HTML of theirs may take effect
-    s = html.escape(str(value), quote=False)
-    return s.replace("|", "\\|").replace("\n", " ").replace("`", "\\`").replace("*", "\\*")
+    """Data as Markdown text that stays text: transcripts, ids and meta keys are data, so
+    none of their Markdown or HTML may take effect in any viewer."""
+    return _NUMBER_OR_PUNCT.sub(_escape_match, str(value).translate(_CONTROLS))
+
+
+def _escape_match(match: re.Match[str]) -> str:
+    # CommonMark 0.31 "Backslash escapes": any ASCII punctuation may be escaped, and an
+    # escaped character is always literal text
+    return match.group() if match.lastgroup == "keep" else "\\" + match.group()
+
+
+# Escaped: every character that can start or end markup inline in CommonMark or the common
+# extensions (GFM tables, strikethrough and autolinks, math, footnotes, attributes, emoji,
+# e-mail links): \ ` * _ [ ] < > & | ~ ! # $ ^ { } @, a colon before a non-space (https:,
+# :emoji:) and a full stop inside a word (www.evil.example). Data never starts a line here
+# (every cell, heading and list item has its prefix), so the line-start marks - + = and a
+# digit's full stop are inert. Numbers (12.50%, +1.20) are matched first and kept whole.
+_NUMBER_OR_PUNCT = re.compile(r"(?P<keep>(?<![\w.])[+-]?\d[\d,]*(?:\.\d+)?%?(?![\w.]))"
+                              r"|[\\`*_\[\]<>&|~!#$^{}@]|:(?=\S)|(?<=[^\W_])\.(?=[^\W_])")
+# control characters (C0, DEL, C1) and the Unicode line and paragraph separators would
+# split a table row or a heading: breaks and tabs become spaces, the rest U+FFFD
+_CONTROLS = {c: " " if chr(c) in "\t\n\r\v\f\u2028\u2029\x85" else "\ufffd"
+             for c in [*range(0x20), *range(0x7F, 0xA0), 0x2028, 0x2029]}
 
 
 def _table(head: Sequence[str], rows: Sequence[Sequence[object]]) -> list[str]:

@@ -11,7 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from rescore.errors import InputError
-from rescore.ioutil import TMP_PREFIX, atomic_output, iter_text_lines
+from rescore.leftovers import TMP_PREFIX
+from rescore.outputs import atomic_output
+from rescore.readers import iter_text_lines
 
 
 def test_output_appears_only_when_complete(tmp_path: Path) -> None:
@@ -71,7 +73,7 @@ def test_line_shards_cover_the_file_at_line_starts(tmp_path: Path) -> None:
     path = tmp_path / "lines.txt"
     lines = [f"line {i} " + "x" * (i % 37) for i in range(5000)]
     path.write_text("\n".join(lines) + "\n")
-    from rescore.ioutil import line_shards
+    from rescore.shards import line_shards
 
     shards = line_shards(path, parts=7, min_bytes=1000)
     assert len(shards) == 7
@@ -81,7 +83,7 @@ def test_line_shards_cover_the_file_at_line_starts(tmp_path: Path) -> None:
 
 
 def test_line_shards_of_a_small_file_is_one_shard(tmp_path: Path) -> None:
-    from rescore.ioutil import line_shards
+    from rescore.shards import line_shards
 
     path = tmp_path / "small.txt"
     path.write_text("a\nb\n")
@@ -99,7 +101,7 @@ def test_output_has_ordinary_file_mode(tmp_path: Path) -> None:
 
 
 def test_outputs_of_a_set_appear_together(tmp_path: Path) -> None:
-    from rescore.ioutil import atomic_outputs
+    from rescore.outputs import atomic_outputs
 
     a, b = tmp_path / "a.txt", tmp_path / "b.txt.gz"
     with atomic_outputs([a, b]) as (fa, fb):
@@ -110,7 +112,7 @@ def test_outputs_of_a_set_appear_together(tmp_path: Path) -> None:
 
 
 def test_error_in_a_set_leaves_every_previous_file(tmp_path: Path) -> None:
-    from rescore.ioutil import atomic_outputs
+    from rescore.outputs import atomic_outputs
 
     a, b = tmp_path / "a.txt", tmp_path / "b.txt"
     a.write_text("old a")
@@ -124,7 +126,7 @@ def test_error_in_a_set_leaves_every_previous_file(tmp_path: Path) -> None:
 
 
 def test_a_set_refuses_a_folder_before_writing_anything(tmp_path: Path) -> None:
-    from rescore.ioutil import atomic_outputs
+    from rescore.outputs import atomic_outputs
 
     (tmp_path / "b").mkdir()
     with pytest.raises(InputError, match="is a folder, expected a file path"), \
@@ -135,9 +137,9 @@ def test_a_set_refuses_a_folder_before_writing_anything(tmp_path: Path) -> None:
 
 def test_a_set_refuses_the_same_file_twice(tmp_path: Path) -> None:
     from rescore.errors import UsageError
-    from rescore.ioutil import atomic_outputs
+    from rescore.outputs import atomic_outputs
 
-    with pytest.raises(UsageError, match="the same file is named for two outputs"), \
+    with pytest.raises(UsageError, match="are one file: each output of a command must be"), \
             atomic_outputs([tmp_path / "a.txt", tmp_path / "." / "a.txt"]):
         pass
     assert list(tmp_path.iterdir()) == []
@@ -157,7 +159,7 @@ def test_text_blocks_hold_the_lines_of_the_line_reader(
     # same line, with bad UTF-8, over-long lines and tiny blocks
     import tempfile
 
-    from rescore.ioutil import iter_text_blocks
+    from rescore.readers import iter_text_blocks
 
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / ("t.txt.gz" if gz else "t.txt")

@@ -8,14 +8,12 @@ Prints medians over repeats and the ratio, both measured in this run.
 
 from __future__ import annotations
 
-import statistics
 import sys
-import time
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 
 import jiwer
-from benchkit import like_the_command_line
+from benchkit import like_the_command_line, median_seconds
 
 from rescore.align import align_with_rules
 from rescore.nbest import read_nbest
@@ -31,15 +29,6 @@ def jiwer_only(refs: Sequence[list[str]], hyps: Sequence[list[str]]) -> list[Ali
     result = jiwer.process_words([" ".join(r) for r in refs], [" ".join(h) for h in hyps])
     return [Alignment(tuple(_jiwer_ops(r, h, c)))
             for r, h, c in zip(refs, hyps, result.alignments, strict=True)]
-
-
-def median_seconds(fn: Callable[[], object], repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
 
 
 def main(argv: list[str]) -> int:

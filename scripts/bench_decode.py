@@ -11,13 +11,10 @@ medians over repeats and ratios; the target is 2,000 utterances per second on on
 
 from __future__ import annotations
 
-import statistics
 import sys
-import time
-from collections.abc import Callable
 
 import numpy as np
-from benchkit import like_the_command_line
+from benchkit import like_the_command_line, median_seconds
 
 from rescore.decode.choice import decide
 from rescore.decode.posterior import posteriors
@@ -121,15 +118,6 @@ def plain_consensus(hyps: list[list[str]], offsets: np.ndarray, post: list[float
                     words.append(best)
         out.append(words)
     return out
-
-
-def median_seconds(fn: Callable[[], object], repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
 
 
 def main(argv: list[str]) -> int:

@@ -95,25 +95,7 @@ def lookup_slotted(slots: I32, held: U64, queries: U64) -> I64:
     The first probe runs over the whole batch; later probes only over the queries that met
     another key in their slot.
     """
-    bits = len(slots).bit_length() - 1
-    mask = len(slots) - 1
-    where = _home(queries, bits)
-    got = held[where]
-    hit = got == queries
-    result = np.where(hit, slots[where], EMPTY).astype(np.int64)
-    pending = np.flatnonzero(~hit & (got != NO_KEY))
-    if pending.size:
-        q = queries[pending]
-        where = where[pending]
-        while pending.size:
-            where = (where + 1) & mask
-            got = held[where]
-            hit = got == q
-            if hit.any():
-                result[pending[hit]] = slots[where[hit]]
-            more = ~hit & (got != NO_KEY)
-            pending, q, where = pending[more], q[more], where[more]
-    return result
+    return lookup_values(held, slots, queries, EMPTY).astype(np.int64, copy=False)
 
 
 def lookup_values(held: U64, values: I32, queries: U64, missing: int) -> I32:

@@ -8,7 +8,7 @@ import os
 from pathlib import Path
 from typing import IO, cast
 
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, UsageError, open_failure
 from rescore.limits import (
     GZIP_FLOOR_BYTES,
     GZIP_RATIO_LIMIT,
@@ -28,12 +28,8 @@ def open_binary(path: str | Path) -> IO[bytes]:
     p = Path(path)
     try:
         fh: IO[bytes] = open(p, "rb")  # noqa: SIM115 - returned to the caller
-    except FileNotFoundError:
-        raise InputError("file not found", path=str(p)) from None
-    except IsADirectoryError:
-        raise InputError("is a folder, expected a file", path=str(p)) from None
-    except PermissionError:
-        raise InputError("permission denied", path=str(p)) from None
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
+        raise InputError(open_failure(exc), path=str(p)) from None
     head = fh.read(2)
     fh.seek(0)
     if head == GZIP_MAGIC:

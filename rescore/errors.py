@@ -80,3 +80,13 @@ class ParameterError(RescoreError, ValueError):
     parameter's name (the command line shows its own flag name instead)."""
 
     exit_code = 2
+
+
+def open_failure(exc: FileNotFoundError | IsADirectoryError | PermissionError,
+                 expected: str = "a file") -> str:
+    """The one-line reason an ``open`` for reading failed, in the words every reader uses."""
+    if isinstance(exc, FileNotFoundError):
+        return "file not found"
+    if isinstance(exc, IsADirectoryError):
+        return f"is a folder, expected {expected}"
+    return "permission denied"

@@ -33,3 +33,11 @@ def write_bulk(path: Path, n: int, *, depth: int = 5, seed: int = 0) -> None:
 def write_weights(path: Path) -> None:
     path.write_text(json.dumps({"acoustic_scale": 1.0, "lm_weight": 0.0,
                                 "insertion_penalty": 0.5, "features": {"first_pass_lm": 3.0}}))
+
+
+def write_long_run(folder: Path) -> tuple[Path, Path]:
+    """An N-best file long enough that ``apply`` is still running when a test signals or
+    kills it (150,000 lists of 10), and weights for it."""
+    write_bulk(folder / "big.jsonl", 150_000, depth=10)
+    write_weights(folder / "w.json")
+    return folder / "big.jsonl", folder / "w.json"

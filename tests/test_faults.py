@@ -32,7 +32,7 @@ from rescore import leftovers, outputs
 from rescore.errors import InputError
 from rescore.leftovers import TMP_PREFIX
 from rescore.readers import inflate
-from tests.bulk import write_bulk, write_weights
+from tests.bulk import write_bulk, write_long_run
 from tests.conftest import FIXTURES, ROOT, run
 
 DEMO = FIXTURES / "demo"
@@ -232,10 +232,7 @@ def test_real_full_disk_on_a_tiny_tmpfs(extra: list[str], tiny_tmpfs: Path,
 
 @pytest.fixture(scope="module")
 def big(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
-    folder = tmp_path_factory.mktemp("big")
-    write_bulk(folder / "big.jsonl", 150_000, depth=10)
-    write_weights(folder / "w.json")
-    return folder / "big.jsonl", folder / "w.json"
+    return write_long_run(tmp_path_factory.mktemp("big"))
 
 
 def _alive(pids: list[int]) -> list[int]:

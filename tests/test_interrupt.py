@@ -12,15 +12,12 @@ from pathlib import Path
 import pytest
 
 from rescore.leftovers import TMP_PREFIX
-from tests.bulk import write_bulk, write_weights
+from tests.bulk import write_bulk, write_long_run
 
 
 @pytest.fixture(scope="module")
 def big(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
-    folder = tmp_path_factory.mktemp("big")
-    write_bulk(folder / "big.jsonl", 150_000, depth=10)
-    write_weights(folder / "w.json")
-    return folder / "big.jsonl", folder / "w.json"
+    return write_long_run(tmp_path_factory.mktemp("big"))
 
 
 def _start(src: Path, weights: Path, out: Path) -> subprocess.Popen[bytes]:

@@ -41,7 +41,7 @@ from typing import Any
 import numpy as np
 import xxhash
 
-from rescore.errors import ModelFileError
+from rescore.errors import ModelFileError, open_failure
 from rescore.lm.hashindex import BucketIndex
 from rescore.lm.tables import BackoffTables, Coded
 from rescore.lm.vocab import SPECIALS, Vocabulary
@@ -197,12 +197,8 @@ def map_file(path: str | Path) -> mmap.mmap:
                 raise bad_file(path, "unknown file type (no rescore model mark)")
             # the mapping keeps its own reference to the file; closing fh does not unmap it
             return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
-    except FileNotFoundError:
-        raise ModelFileError("file not found", path=str(path)) from None
-    except IsADirectoryError:
-        raise ModelFileError("is a folder, expected a model file", path=str(path)) from None
-    except PermissionError:
-        raise ModelFileError("permission denied", path=str(path)) from None
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
+        raise ModelFileError(open_failure(exc, "a model file"), path=str(path)) from None
     except (OSError, ValueError) as exc:
         raise ModelFileError(f"cannot map the file ({exc})", path=str(path)) from None
 

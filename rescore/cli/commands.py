@@ -28,6 +28,7 @@ from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.shards import count_lines
+from rescore.cli.decoding import ChooseOpt, with_rule
 from rescore.weights import read_weights
 
 
@@ -120,11 +121,12 @@ def apply(
     allow_other_model: Annotated[bool, typer.Option(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
+    choose: ChooseOpt = None,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
-    w = read_weights(weights)
+    w = with_rule(read_weights(weights), choose)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:

@@ -13,6 +13,7 @@ from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.batch import DEFAULT_BATCH
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
+from rescore.cli.decoding import ChooseOpt, decoding_rows, rule_value, with_rule
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -28,7 +29,6 @@ from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.shards import count_lines
-from rescore.cli.decoding import ChooseOpt, with_rule
 from rescore.weights import read_weights
 
 
@@ -200,6 +200,7 @@ def tune(
         help="The exact search's box for LM weight and insertion penalty, which also "
         "limits grid widening (default 0:100,-100:100).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
+    choose: ChooseOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
@@ -212,6 +213,7 @@ def tune(
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
             progress=report, widen=not no_widen, bounds=bounds,
+            choose=None if choose is None else rule_value(choose),
         )
     data = outcome.to_dict()
     _warn(outcome.warnings)
@@ -232,6 +234,7 @@ def tune(
             ["cross-validated WER", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
             ["oracle WER", pct(data["oracle_wer"])],
+            *decoding_rows(outcome.decoding),
         ])
     for key in ("cv_warning", "edge_warning"):
         if data.get(key):

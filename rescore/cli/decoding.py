@@ -3,15 +3,17 @@
 from __future__ import annotations
 
 import dataclasses
-from enum import Enum
+from enum import StrEnum
 from typing import Annotated
 
 import typer
 
+from rescore.decode.choice import Rule
+from rescore.decode.fit import DecodeFit
 from rescore.weights import Weights
 
 
-class ChooseRule(str, Enum):
+class ChooseRule(StrEnum):
     best = "best"
     min_risk = "min-risk"
     consensus = "consensus"
@@ -30,3 +32,23 @@ def with_rule(weights: Weights, choose: ChooseRule | None) -> Weights:
     if choose is None:
         return weights
     return dataclasses.replace(weights, choose=choose.value)
+
+
+def rule_value(choose: ChooseRule) -> Rule:
+    return choose.value
+
+
+def decoding_rows(fit: DecodeFit | None) -> list[list[str]]:
+    """Rows of tune's table: the posterior scale, each rule's dev WER, the calibration."""
+    if fit is None:
+        return []
+    rows = [["posterior scale (max. likelihood of dev oracle)", f"{fit.scale.scale:.4g}"]]
+    rows += [[f"dev WER, --choose {rule}" + (" (stored)" if fit.rule_given and
+                                              rule == fit.rule else ""), f"{100 * wer:.2f}%"]
+             for rule, wer in fit.rule_wer.items()]
+
+    def num(v: float | None) -> str:
+        return "-" if v is None else f"{v:.3f}"
+    rows.append(["word confidence NCE on dev, raw -> isotonic",
+                 f"{num(fit.nce_raw)} -> {num(fit.nce_calibrated)}"])
+    return rows

@@ -12,6 +12,7 @@ import typer
 from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.batch import DEFAULT_BATCH
+from rescore.cli import combine
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
 from rescore.cli.decoding import ChooseOpt, decoding_rows, rule_value, with_rule
 from rescore.cli.options import (
@@ -282,3 +283,4 @@ def register(app: typer.Typer, lm_app: typer.Typer) -> None:
     app.command()(apply)
     app.command()(wer)
     app.command()(demo)
+    combine.register(app)

@@ -19,10 +19,10 @@ from rescore.outputs import atomic_output, check_outputs
 def _system(spec: str) -> tuple[str, Path]:
     """``NAME=FILE``, or ``FILE`` named by its file name without .gz and .jsonl."""
     if "=" in spec and not Path(spec).exists():
-        name, _, path = spec.partition("=")
-        if not name or not path:
+        name, _, given = spec.partition("=")
+        if not name or not given:
             raise UsageError(f"expected NAME=FILE or FILE, got {spec!r}")
-        return name, Path(path)
+        return name, Path(given)
     path = Path(spec)
     name = path.name.removesuffix(".gz").removesuffix(".jsonl")
     return name, path

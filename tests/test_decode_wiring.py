@@ -167,3 +167,30 @@ def test_combine_refuses_partial_ids_unless_kept(tmp_path: Path) -> None:
     assert run(["combine", a, b, "-o", out, "--partial", "keep"]).exit_code == 0
     assert len(out.read_text().splitlines()) == 2
     assert run(["combine", a, "-o", out]).exit_code == 2
+
+
+def test_report_confidence_section_by_hand(tmp_path: Path) -> None:
+    nbest, weights = _files(tmp_path, posterior_scale=1.0)
+    out = tmp_path / "after.jsonl"
+    assert run(["apply", nbest, "--weights", weights, "-o", out]).exit_code == 0
+    result = run(["report", "--before", nbest, "--after", out, "-o", tmp_path / "rep"])
+    assert result.exit_code == 0, result.output
+    conf = json.loads((tmp_path / "rep" / "report.json").read_text())["confidence"]
+    # after = best = "a b c" against "a x c": a right (conf 1.0), b wrong (0.4), c right
+    # (0.7). Accuracy 2/3. Bins of width 0.1: [0.4, 0.5) holds b (accuracy 0), [0.7, 0.8)
+    # holds c (1), [0.9, 1.0] holds a (1). ECE = (1/3)(|0 - 0.4| + |1 - 0.7| + |1 - 1|)
+    # = 0.7 / 3. Review lowest first: b is the only error, so 1/3 of the words reviewed
+    # catch all errors.
+    assert conf["words"] == 3 and conf["accuracy"] == pytest.approx(2 / 3)
+    assert [b["words"] for b in conf["reliability"]] == [0, 0, 0, 0, 1, 0, 0, 1, 0, 1]
+    assert conf["ece"] == pytest.approx(0.7 / 3)
+    assert conf["review"][-1] == {"reviewed": 0.5, "errors_caught": 1.0}
+    assert "this test set" in conf["caution"]
+    # NCE (NIST's definition): H(C) = -(2 log2(2/3) + log2(1/3)) = 2.7549 bits;
+    # H(C|conf) = -(log2(1 - 1e-6) + log2(1 - 0.4) + log2(0.7)) = 1.2515 (1.0 is clipped
+    # to 1 - 1e-6); NCE = (2.7549 - 1.2515) / 2.7549 = 0.5457
+    h_c = -(2 * math.log2(2 / 3) + math.log2(1 / 3))
+    h_cond = -(math.log2(1 - 1e-6) + math.log2(0.6) + math.log2(0.7))
+    assert conf["nce"] == pytest.approx((h_c - h_cond) / h_c)
+    assert conf["nce"] == pytest.approx(0.5457, abs=1e-4)
+    assert "## Word confidences" in (tmp_path / "rep" / "report.md").read_text()

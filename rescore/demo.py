@@ -102,7 +102,7 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         # the choice rules with the same tuned weights (rescore.demo_rules)
         rule_rows, rule_files = demo_rules.rule_rows(data / "test.jsonl", out, models,
                                                      read_weights(weights_path), tuned,
-                                                     ppl["perplexity"])
+                                                     ppl["perplexity"], FULL_ROW)
         comparison += rule_rows
         outputs += rule_files
         summary["comparison"] = comparison

@@ -28,7 +28,7 @@ def chosen_wer(rescored: Path) -> float:
 
 
 def rule_rows(test: Path, out: Path, models: Mapping[str, pipeline.NamedModel],
-              weights: Weights, tuned: Mapping[str, Any], dev_ppl: float
+              weights: Weights, tuned: Mapping[str, Any], dev_ppl: float, system: str
               ) -> tuple[list[dict[str, Any]], list[Path]]:
     """One comparison row per rule (``test_wer`` of its chosen text) and the files written."""
     rows: list[dict[str, Any]] = []
@@ -38,7 +38,7 @@ def rule_rows(test: Path, out: Path, models: Mapping[str, pipeline.NamedModel],
         pipeline.apply_file(test, rescored, models=dict(models),
                             weights=dataclasses.replace(weights, choose=rule))
         written.append(rescored)
-        rows.append({"system": f"in-domain, all lines, --choose {rule}",
+        rows.append({"system": f"{system}, --choose {rule}",
                      "dev_perplexity": dev_ppl, "test_wer": chosen_wer(rescored),
                      "lm_weight": tuned["lm_weight"],
                      "insertion_penalty": tuned["insertion_penalty"],

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from rescore.decode.apply_rule import choose_in_batch
 from rescore.errors import AccountingError, InputError
 from rescore.finite import check_totals
 from rescore.limits import BATCH_BYTE_LIMIT
@@ -83,8 +84,10 @@ def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None
         _check_tsv_ids(scored, path, lines)
     fh.write("".join(dumps(utt) + "\n" for utt in scored))
     if tsv is not None:
-        tsv.write("".join(f"{utt['id']}\t{_one_line(one_best(utt)['text'])}\n"
-                          for utt in scored))
+        # the output text: the choice rule's when it ran (--choose), else the 1-best
+        tsv.write("".join(
+            f"{utt['id']}\t{_one_line(utt.get('chosen', one_best(utt)['text']))}\n"
+            for utt in scored))
     changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
     # ``words`` is set on every hypothesis by rescore_batch; records written as they were
     # read may lack it, and then the text is counted
@@ -138,4 +141,5 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
             hyp["words"], hyp["total"] = w, t
     for (_, utt), b in zip(batch, best.tolist(), strict=True):
         utt["best"] = b
+    choose_in_batch([utt for _, utt in batch], m.offsets, total, weights)  # --choose
     return [utt for _, utt in batch], score_stats(m.column(ACOUSTIC), m.offsets)

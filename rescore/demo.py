@@ -13,7 +13,7 @@ from itertools import islice
 from pathlib import Path
 from typing import Any
 
-from rescore import pipeline
+from rescore import demo_rules, pipeline
 from rescore.errors import InputError
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
 from rescore.lm.mix import mix_models
@@ -99,6 +99,12 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         comparison, extra = _compare(data, out, order, models, tuned, after,
                                      ppl["perplexity"], progress)
         outputs += extra
+        # the choice rules with the same tuned weights (rescore.demo_rules)
+        rule_rows, rule_files = demo_rules.rule_rows(data / "test.jsonl", out, models,
+                                                     read_weights(weights_path), tuned,
+                                                     ppl["perplexity"], FULL_ROW)
+        comparison += rule_rows
+        outputs += rule_files
         summary["comparison"] = comparison
     write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
     outputs.append(out / "summary.json")

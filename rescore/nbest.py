@@ -47,6 +47,10 @@ class Utterance(TypedDict):
     reference: NotRequired[str]
     meta: NotRequired[dict[str, Any]]
     best: NotRequired[Annotated[int, Field(ge=0)]]
+    # written by apply --choose (rescore.decode.apply_rule)
+    chosen: NotRequired[str]
+    word_confidences: NotRequired[list[tuple[str, Annotated[float, Field(ge=0, le=1)]]]]
+    word_posteriors: NotRequired[list[tuple[str, Annotated[float, Field(ge=0, le=1)]]]]
 
 
 @with_config(ConfigDict(extra="forbid", strict=True))

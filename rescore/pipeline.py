@@ -28,6 +28,8 @@ from rescore.batch import (
     write_scored,
 )
 from rescore.checksum import sha256_file
+from rescore.decode.choice import Rule
+from rescore.decode.fit import DecodeFit, fit_decoding, read_dev_texts
 from rescore.errors import InputError, UsageError
 from rescore.finite import check_tunable
 from rescore.listcheck import ListStats, score_stats, text_stats
@@ -344,9 +346,12 @@ class TuneOutcome:
     result: Any
     provenance: dict[str, Any] = field(default_factory=dict)
     warnings: tuple[str, ...] = ()  # the dev lists' score convention (rescore.listcheck)
+    decoding: DecodeFit | None = None  # posterior scale, rule WERs, calibration
 
     def to_dict(self) -> dict[str, Any]:
         data: dict[str, Any] = self.result.to_dict()
+        if self.decoding is not None:
+            data = data | {"decoding": self.decoding.to_dict()}
         return data | {"warnings": list(self.warnings)}
 
 
@@ -403,6 +408,7 @@ def tune_file(
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
     weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
     progress: Report | None = None, widen: bool = True, bounds: str | None = None,
+    choose: Rule | None = None,
 ) -> TuneOutcome:
     """Read and score the dev set, tune, write the weights (and the analysis).
 
@@ -434,10 +440,15 @@ def tune_file(
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
     prov = provenance(data=[path], models=models, extra=result.search_record())
-    files = {weights_path: weights_text(weights_path, result.weights, prov)}
+    # decoding: posterior scale, calibration (and the rule) fitted with the tuned weights
+    decoding = fit_decoding(matrix, result.weights, read_dev_texts(
+        path, refs=refs, log_base=log_base, costs=costs), choose)
+    prov["decoding"] = decoding.to_dict()
+    files = {weights_path: weights_text(weights_path, decoding.apply_to(result.weights), prov)}
     if analysis_path is not None:
         files[analysis_path] = json.dumps(result.to_dict() | {"provenance": prov},
                                           indent=2) + "\n"
     # the weights and their analysis appear together or not at all (a full disk, a kill)
     write_texts_atomic(files)
-    return TuneOutcome(result, prov, stats.warnings(costs=_read_as_costs(path, costs)))
+    return TuneOutcome(result, prov, stats.warnings(costs=_read_as_costs(path, costs)),
+                       decoding)

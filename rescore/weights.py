@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from rescore.decode.confidence import IsotonicCalibration
 from rescore.errors import InputError
 from rescore.limits import WEIGHTS_FILE_LIMIT
 from rescore.outputs import write_text_atomic
@@ -37,6 +38,11 @@ class Weights:
     lm_weight: float = 0.0
     insertion_penalty: float = 0.0
     features: Mapping[str, float] = field(default_factory=dict)
+    # --- decoding (rescore.decode): optional; a file without them reads and writes as before
+    posterior_scale: float | None = None  # s of p(h) ~ exp(s * total(h)), fitted by tune
+    calibration: Mapping[str, Any] | None = None  # posterior -> P(correct), IsotonicCalibration
+    choose: str | None = None  # the choice rule tune picked (best, min-risk, consensus)
+    # --- end decoding
 
     def vector(self, names: tuple[str, ...]) -> np.ndarray:
         """The weight of each column named in ``names`` (a feature absent here weighs 0)."""
@@ -58,8 +64,12 @@ class Weights:
 
     def to_dict(self) -> dict[str, Any]:
         """The weights as the weights file spells them (without provenance)."""
-        return {"acoustic_scale": self.acoustic_scale, "lm_weight": self.lm_weight,
-                "insertion_penalty": self.insertion_penalty, "features": dict(self.features)}
+        out: dict[str, Any] = {"acoustic_scale": self.acoustic_scale,
+                               "lm_weight": self.lm_weight,
+                               "insertion_penalty": self.insertion_penalty,
+                               "features": dict(self.features)}
+        out.update(_decoding_dict(self))
+        return out
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any], *, path: str | Path = "") -> Weights:
@@ -69,7 +79,45 @@ class Weights:
 
 
 _WEIGHT_KEYS = ("acoustic_scale", "lm_weight", "insertion_penalty")
-_FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
+_DECODING_KEYS = ("posterior_scale", "calibration", "choose")
+_FILE_KEYS = (*_WEIGHT_KEYS, "features", *_DECODING_KEYS, "provenance")
+
+
+def _decoding_dict(weights: Weights) -> dict[str, Any]:
+    """The decoding keys that are set (none for weights tuned before them)."""
+    out: dict[str, Any] = {}
+    if weights.posterior_scale is not None:
+        out["posterior_scale"] = weights.posterior_scale
+    if weights.calibration is not None:
+        out["calibration"] = dict(weights.calibration)
+    if weights.choose is not None:
+        out["choose"] = weights.choose
+    return out
+
+
+def _decoding(data: Mapping[str, Any], where: str) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    if "posterior_scale" in data:
+        scale = _number(data["posterior_scale"], where, "posterior_scale")
+        if scale < 0:
+            raise InputError("must be non-negative", path=where, field="posterior_scale")
+        out["posterior_scale"] = scale
+    if "calibration" in data:
+        raw = data["calibration"]
+        try:
+            if not isinstance(raw, dict):
+                raise ValueError("expected an object with method, x and y")
+            IsotonicCalibration.from_dict(raw)
+        except (ValueError, TypeError, KeyError) as exc:
+            raise InputError(str(exc).strip("'"), path=where, field="calibration") from None
+        out["calibration"] = raw
+    if "choose" in data:
+        rule = data["choose"]
+        if rule not in ("best", "min-risk", "consensus"):
+            raise InputError(f"expected best, min-risk or consensus, got {json.dumps(rule)}",
+                             path=where, field="choose")
+        out["choose"] = rule
+    return out
 
 
 def _number(value: object, path: str, name: str) -> float:
@@ -141,7 +189,8 @@ def _from_dict(data: object, where: str) -> Weights:
     if "provenance" in data and not isinstance(data["provenance"], dict):
         raise InputError("expected an object", path=where, field="provenance")
     return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
-                   insertion_penalty=values["insertion_penalty"], features=feats)
+                   insertion_penalty=values["insertion_penalty"], features=feats,
+                   **_decoding(data, where))
 
 
 def read_weights_models(path: str | Path) -> dict[str, str]:
@@ -204,5 +253,7 @@ def weights_text(path: str | Path, weights: Weights, provenance: Mapping[str, An
         _number(body[key], str(path), key)
     for name, value in body["features"].items():
         _number(value, str(path), f"features.{name}")
+    if "posterior_scale" in body:
+        _number(body["posterior_scale"], str(path), "posterior_scale")
     return json.dumps({**body, "provenance": dict(provenance)}, indent=2, sort_keys=False,
                       allow_nan=False) + "\n"

@@ -11,13 +11,19 @@ medians over repeats and ratios; the target is 2,000 utterances per second on on
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import sys
+import tempfile
+from pathlib import Path
 
 import numpy as np
 from benchkit import like_the_command_line, median_seconds
 
 from rescore.decode.choice import decide
 from rescore.decode.posterior import posteriors
+from rescore.pipeline import apply_file
+from rescore.weights import Weights
 from rescore.wer import word_errors
 
 TARGET = 2000.0  # utterances per second
@@ -145,7 +151,40 @@ def main(argv: list[str]) -> int:
     best = median_seconds(lambda: decide(hyps, offsets, totals, scale=1.0, rule="best"),
                           repeats) / n
     print(f"  best (with word confidences): {best * 1e6:.0f} us/utt = {1 / best:.0f} utt/s")
+    failed += apply_path(hyps, offsets, totals, repeats)
     return 1 if failed else 0
+
+
+def apply_path(hyps: list[list[str]], offsets: np.ndarray, totals: np.ndarray,
+               repeats: int) -> int:
+    """The whole ``apply`` step (read, score, choose, write) on the same lists as an N-best
+    file, today's output (no rule) as the baseline; returns how many rules missed TARGET."""
+    n = len(offsets) - 1
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        nbest = folder / "lists.jsonl"
+        with open(nbest, "w", encoding="utf-8") as fh:
+            for u in range(n):
+                a, b = int(offsets[u]), int(offsets[u + 1])
+                fh.write(json.dumps({"id": f"u{u}", "hypotheses": [
+                    {"text": " ".join(hyps[r]), "acoustic": float(totals[r])}
+                    for r in range(a, b)]}) + "\n")
+        plain = Weights()
+        baseline = median_seconds(lambda: apply_file(nbest, folder / "o.jsonl", models={},
+                                                     weights=plain), repeats) / n
+        print(f"  apply path, {n} lists: today's output {baseline * 1e6:.0f} us/utt = "
+              f"{1 / baseline:.0f} utt/s (baseline)")
+        failed = 0
+        for rule in ("best", "min-risk", "consensus"):
+            w = dataclasses.replace(plain, posterior_scale=1.0, choose=rule)
+            t = median_seconds(lambda w=w: apply_file(nbest, folder / "o.jsonl", models={},
+                                                      weights=w), repeats) / n
+            met = 1 / t >= TARGET
+            failed += rule != "best" and not met
+            print(f"  apply --choose {rule:<9} {t * 1e6:6.0f} us/utt = {1 / t:6.0f} utt/s "
+                  f"({t / baseline:.2f}x the baseline's time); target {TARGET:.0f} utt/s "
+                  f"{'met' if met else 'NOT met'}")
+    return failed
 
 
 if __name__ == "__main__":

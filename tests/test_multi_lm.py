@@ -123,8 +123,14 @@ def test_demo_compares_background_in_domain_mixed_and_two_lms(tmp_path: Path) ->
     summary = json.loads((tmp_path / "out" / "summary.json").read_text())
     rows = {r["system"]: r for r in summary["comparison"]}
     small, full = demo.SMALL_ROW, demo.FULL_ROW
+    rules = [f"{full}, --choose {rule}" for rule in ("min-risk", "consensus")]
     assert list(rows) == ["background only", small, "mixed (merged model)",
-                          "log-linear, two LMs", full]
+                          "log-linear, two LMs", full, *rules]
+    # minimum expected word errors and the confusion-network vote, with the weights and
+    # posterior scale tuned on dev, do no worse than the top score on test (the decision
+    # rules' purpose: Stolcke, Konig and Weintraub 1997; Mangu, Brill and Stolcke 2000)
+    for name in rules:
+        assert rows[name]["test_wer"] <= rows[full]["test_wer"] + 1e-12
     # the contract's keys keep meaning the result of the model built from all of train.txt
     assert summary["wer_after"] == rows[full]["test_wer"]
     assert summary["dev_perplexity"] == rows[full]["dev_perplexity"]

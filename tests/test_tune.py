@@ -491,12 +491,15 @@ def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str
     assert result.exit_code == 0, result.stderr
     printed = json.loads(result.stdout)
     body = json.loads(out.read_text())
-    # the contract's weights file: these keys and no others
+    # the contract's weights file: these keys and no others (posterior_scale and the
+    # calibration map of the second round's decoding keys; choose only with tune --choose)
     assert set(body) == {"acoustic_scale", "lm_weight", "insertion_penalty", "features",
-                         "provenance"}
+                         "posterior_scale", "calibration", "provenance"}
     assert read_weights(out) == Weights(lm_weight=printed["lm_weight"],
                                         insertion_penalty=printed["insertion_penalty"],
-                                        features=printed["features"])
+                                        features=printed["features"],
+                                        posterior_scale=body["posterior_scale"],
+                                        calibration=body["calibration"])
     prov = body["provenance"]
     # package version as the installed distribution's metadata gives it (importlib.metadata)
     assert prov["version"] == importlib.metadata.version("rescore")

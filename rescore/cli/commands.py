@@ -12,7 +12,9 @@ import typer
 from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.batch import DEFAULT_BATCH
+from rescore.cli import combine
 from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
+from rescore.cli.decoding import ChooseOpt, decoding_rows, rule_value, with_rule
 from rescore.cli.options import (
     BatchOpt,
     CostsOpt,
@@ -120,11 +122,12 @@ def apply(
     allow_other_model: Annotated[bool, typer.Option(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
+    choose: ChooseOpt = None,
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
-    w = read_weights(weights)
+    w = with_rule(read_weights(weights), choose)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
@@ -198,6 +201,7 @@ def tune(
         help="The exact search's box for LM weight and insertion penalty, which also "
         "limits grid widening (default 0:100,-100:100).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
+    choose: ChooseOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
@@ -210,6 +214,7 @@ def tune(
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
             progress=report, widen=not no_widen, bounds=bounds,
+            choose=None if choose is None else rule_value(choose),
         )
     data = outcome.to_dict()
     _warn(outcome.warnings)
@@ -230,6 +235,7 @@ def tune(
             ["cross-validated WER", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
             ["oracle WER", pct(data["oracle_wer"])],
+            *decoding_rows(outcome.decoding),
         ])
     for key in ("cv_warning", "edge_warning"):
         if data.get(key):
@@ -277,3 +283,4 @@ def register(app: typer.Typer, lm_app: typer.Typer) -> None:
     app.command()(apply)
     app.command()(wer)
     app.command()(demo)
+    combine.register(app)

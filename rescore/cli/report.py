@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -28,6 +29,7 @@ from rescore.report import (
     with_gate,
     write_report,
 )
+from rescore.report.confidence import load_confidences
 from rescore.report.critical import classes_with_terms, read_terms
 from rescore.report.load import weights_provenance
 from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
@@ -168,6 +170,8 @@ def report(
                               tuning=tuning_data, resamples=resamples, seed=seed,
                               critical_classes=classes, overlap=overlap,
                               progress=report_progress)
+    result = replace(result, confidence=load_confidences(after, refs=ref_map, log_base=log_base,
+                                                         costs=costs))
     result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
     written = write_report(result, out)
     data = result.to_dict()

@@ -152,6 +152,7 @@ class Report:
     warnings: tuple[str, ...] = ()
     critical: tuple[ClassResult, ...] = ()
     overlap: OverlapSummary | None = None
+    confidence: Any = None  # rescore.report.confidence.ConfidenceSummary (word confidences)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -182,6 +183,8 @@ class Report:
             out["tuning"] = self.tuning.to_dict()
         if self.gate is not None:
             out["gate"] = dict(self.gate)
+        if self.confidence is not None:
+            out["confidence"] = self.confidence.to_dict()
         out["warnings"] = list(self.warnings)
         out["provenance"] = dict(self.provenance)
         out["caution"] = CAUTION

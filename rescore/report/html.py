@@ -17,6 +17,7 @@ from rescore.report import plots
 from rescore.report import wording as t
 from rescore.report.breakdown import Confusions
 from rescore.report.build import Report
+from rescore.report.confidence import CONFIDENCE_CAUTION, confidence_lines, confidence_rows
 from rescore.report.rows import UtteranceRow
 from rescore.wer import Alignment
 
@@ -253,6 +254,17 @@ def _overlap(report: Report) -> str:
             + _table(head, rows) + f'<ul class="notes"><li>{_e(t.OVERLAP_NOTE)}</li></ul></div>')
 
 
+def _confidence(report: Report) -> str:
+    """The word-confidence card (rescore.report.confidence), when the file carries them."""
+    if report.confidence is None:
+        return ""
+    notes = "".join(f"<li>{_e(line)}</li>" for line in confidence_lines(report.confidence))
+    return ('<div class="card" id="confidence"><h3>Word confidences</h3>'
+            f'<ul class="notes">{notes}</ul>' + _table(*confidence_rows(report.confidence))
+            + f'<div class="caution"><strong>Caution.</strong> {_e(CONFIDENCE_CAUTION)}</div>'
+            '</div>')
+
+
 def _warnings(report: Report) -> str:
     return "".join(f'<div class="warning"><strong>Warning.</strong> {_e(w)}</div>'
                    for w in report.warnings)
@@ -297,6 +309,7 @@ reference words; normalisation {_e(report.provenance.get("normalisation", ""))}<
 <div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
 {_critical(report)}
 {_overlap(report)}
+{_confidence(report)}
 <div class="card">{counts}</div>
 <div class="card"><ul class="notes">{notes}</ul></div>
 {_tuning(report)}

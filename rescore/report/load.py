@@ -39,7 +39,8 @@ def load_system(
     """
     if is_nbest_file(path):
         return [
-            Pair.from_text(u["id"], u["reference"], one_best(u)["text"], u.get("meta"))
+            Pair.from_text(u["id"], u["reference"], u.get("chosen", one_best(u)["text"]),
+                           u.get("meta"))
             for _, u in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                    require_references=True)
         ]

@@ -8,6 +8,7 @@ from collections.abc import Sequence
 from rescore.report import wording as t
 from rescore.report.breakdown import Confusions
 from rescore.report.build import Report
+from rescore.report.confidence import CONFIDENCE_CAUTION, confidence_lines, confidence_rows
 
 
 def _cell(value: object) -> str:
@@ -67,6 +68,11 @@ def render_markdown(report: Report) -> str:
         verdict = "passed" if report.gate["passed"] else "FAILED: " + "; ".join(
             report.gate["reasons"])
         out += [f"**Release gate:** {_cell(verdict)}", ""]
+    if report.confidence is not None:  # word confidences (rescore.report.confidence)
+        out += ["## Word confidences", ""]
+        out += [_cell(line) + "\n" for line in confidence_lines(report.confidence)]
+        out += _table(*confidence_rows(report.confidence))
+        out += [f"**Caution.** {_cell(CONFIDENCE_CAUTION)}", ""]
     if report.critical:
         out += ["## Critical words", ""]
         head, rows_ = t.critical_table(report)

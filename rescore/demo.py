@@ -16,7 +16,8 @@ from typing import Any
 from rescore import pipeline
 from rescore.errors import InputError
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
-from rescore.lm.mix import mix_models
+from rescore.lm.compare import SharedVocabulary
+from rescore.lm.mix import compare_models, mix_models
 from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
@@ -44,6 +45,7 @@ class DemoResult:
     perplexity: dict[str, Any]
     outputs: list[Path]
     comparison: list[dict[str, Any]] = field(default_factory=list)
+    comparison_vocabulary: SharedVocabulary | None = None
 
 
 def _silent(message: str) -> None:
@@ -95,19 +97,22 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         "dev_perplexity": ppl["perplexity"],
     }
     comparison: list[dict[str, Any]] = []
+    shared: SharedVocabulary | None = None
     if (data / "background.txt").is_file():
-        comparison, extra = _compare(data, out, order, models, tuned, after,
-                                     ppl["perplexity"], progress)
+        comparison, extra, shared = _compare(data, out, order, models, tuned, after,
+                                             ppl["perplexity"], progress)
         outputs += extra
         summary["comparison"] = comparison
+        summary["comparison_vocabulary"] = shared.to_dict()
     write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
     outputs.append(out / "summary.json")
-    return DemoResult(summary, before, after, oracle, ppl, outputs, comparison)
+    return DemoResult(summary, before, after, oracle, ppl, outputs, comparison, shared)
 
 
 def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.NamedModel],
              in_tuned: dict[str, Any], in_after: dict[str, Any], in_ppl: float,
-             progress: Callable[[str], None]) -> tuple[list[dict[str, Any]], list[Path]]:
+             progress: Callable[[str], None]
+             ) -> tuple[list[dict[str, Any]], list[Path], SharedVocabulary]:
     """The everyday adaptation case: a general model and only a little in-domain text.
 
     The in-domain model here is built from the first ``ADAPT_SENTENCES`` logbook lines (a
@@ -137,6 +142,9 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
         ("log-linear, two LMs", [str(small_path), f"background={bg_path}"], None),
         (FULL_ROW, [str(in_models[LM].path)], in_ppl),
     ]
+    # like with like: every model's perplexity on the same dev tokens, one vocabulary
+    like = compare_models([background, small, merged, load_model(in_models[LM].path)], dev_text)
+    measured = {"background only": 0, SMALL_ROW: 1, "mixed (merged model)": 2, FULL_ROW: 3}
     rows: list[dict[str, Any]] = []
     written = [bg_path, small_path, mix_path]
     for name, specs, dev_ppl in systems:
@@ -160,6 +168,10 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
         rows.append({
             "system": name,
             "dev_perplexity": dev_ppl,
+            **({"dev_perplexity_shared": like.shared[measured[name]],
+                "dev_perplexity_own": like.own[measured[name]].perplexity,
+                "dev_oov_own": like.own[measured[name]].oov}
+               if name in measured else {}),
             "test_wer": wer["wer"],
             "lm_weight": tuned["lm_weight"],
             "insertion_penalty": tuned["insertion_penalty"],
@@ -169,7 +181,7 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
                 "mixture_perplexity": mixed.perplexity}
                if name.startswith("mixed") else {}),
         })
-    return rows, written
+    return rows, written, like.vocabulary
 
 
 def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel]

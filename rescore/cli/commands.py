@@ -259,11 +259,15 @@ def demo(
          f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
     if result.comparison:
         table("language models compared (perplexity on dev.txt, WER on the test set)",
-              ["system", "dev perplexity", "test WER", "LM weights"],
-              [[r["system"], r["dev_perplexity"], pct(r["test_wer"]),
+              ["system", "dev ppl, shared", "dev ppl, own",
+               "own OOV", "test WER", "LM weights"],
+              [[r["system"], r.get("dev_perplexity_shared"), r.get("dev_perplexity_own"),
+                r.get("dev_oov_own"), pct(r["test_wer"]),
                 ", ".join([f"lm {r['lm_weight']:.3g}",
                            *(f"{k} {v:.3g}" for k, v in r["features"].items())])]
                for r in result.comparison])
+        if result.comparison_vocabulary is not None:
+            info(result.comparison_vocabulary.footnote("dev.txt"))
         mixed = next((r for r in result.comparison if "mixture_weights" in r), None)
         if mixed is not None:
             info("mixture weights (EM on dev.txt): " + ", ".join(

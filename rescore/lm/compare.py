@@ -15,17 +15,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
-
 from rescore.lm.evaluate import PerplexityResult
-from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary
-
-
-def oov_counts(vocab: Vocabulary, sentences: Sequence[Sequence[str]]) -> np.ndarray:
-    """Per sentence, the number of its words outside ``vocab`` (shape (n,), int64)."""
-    index = vocab.index
-    return np.fromiter((sum(1 for w in s if index.get(w, UNK_ID) == UNK_ID)
-                        for s in sentences), dtype=np.int64, count=len(sentences))
+from rescore.lm.vocab import SPECIALS, Vocabulary, oov_counts
 
 
 @dataclass(frozen=True)
@@ -42,9 +33,9 @@ class SharedVocabulary:
 
     def footnote(self, what: str) -> str:
         """One line saying what the shared-vocabulary figures count."""
-        return (f"ppl, shared: {self.tokens} tokens of {what}, one vocabulary "
+        return (f"shared vocabulary: {self.tokens} tokens of {what}, one vocabulary "
                 f"of {self.words} words (the union of the models'), {self.oov} tokens outside "
-                "it scored as <unk>; ppl, own: each model's own vocabulary, "
+                "it scored as <unk>; own vocabulary: each model's own vocabulary, "
                 "as 'lm perplexity' prints it")
 
 
@@ -76,4 +67,4 @@ def shared_vocabulary(union: Vocabulary, sentences: Sequence[Sequence[str]]
                             oov=int(oov_counts(union, sentences).sum()))
 
 
-__all__ = ["LikeForLike", "SharedVocabulary", "oov_counts", "shared_vocabulary"]
+__all__ = ["LikeForLike", "SharedVocabulary", "shared_vocabulary"]

@@ -23,7 +23,7 @@ from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
 from rescore.report import build_report, load_system, write_report
 from rescore.report.load import weights_provenance
-from rescore.scoring import oracle_rows
+from rescore.scoring import OOV, oov_features, oracle_rows
 from rescore.text import tokens
 from rescore.weights import LM, read_weights
 from rescore.wer import corpus_wer
@@ -34,6 +34,8 @@ FILES = ("train.txt", "dev.txt", "dev.jsonl", "test.jsonl")
 ADAPT_SENTENCES = 100
 SMALL_ROW = f"in-domain, {ADAPT_SENTENCES} lines"
 FULL_ROW = "in-domain, all lines"
+# the mixed model again, with its unknown-word count as a tuned feature
+OOV_ROW = f"mixed + {OOV}"
 
 
 @dataclass(frozen=True)
@@ -139,12 +141,14 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
         ("background only", [str(bg_path)], bg_ppl),
         (SMALL_ROW, [str(small_path)], small_ppl),
         ("mixed (merged model)", [str(mix_path)], mixed.merged_perplexity),
+        (OOV_ROW, [str(mix_path)], mixed.merged_perplexity),
         ("log-linear, two LMs", [str(small_path), f"background={bg_path}"], None),
         (FULL_ROW, [str(in_models[LM].path)], in_ppl),
     ]
     # like with like: every model's perplexity on the same dev tokens, one vocabulary
     like = compare_models([background, small, merged, load_model(in_models[LM].path)], dev_text)
-    measured = {"background only": 0, SMALL_ROW: 1, "mixed (merged model)": 2, FULL_ROW: 3}
+    measured = {"background only": 0, SMALL_ROW: 1, "mixed (merged model)": 2, OOV_ROW: 2,
+                FULL_ROW: 3}
     rows: list[dict[str, Any]] = []
     written = [bg_path, small_path, mix_path]
     for name, specs, dev_ppl in systems:
@@ -152,11 +156,12 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
             tuned, wer = in_tuned, in_after
         else:
             progress(f"tuning and rescoring with {name}")
-            tag = name.split()[0].strip(",")
+            tag = "mixed-oov" if name == OOV_ROW else name.split()[0].strip(",")
             models = pipeline.load_lms(specs)
             weights_path = out / f"weights.{tag}.json"
             tuned = pipeline.tune_file(
-                data / "dev.jsonl", models=models, search=None, features=[], grid_lm=None,
+                data / "dev.jsonl", models=models, search=None,
+                features=oov_features(list(models)) if name == OOV_ROW else [], grid_lm=None,
                 grid_penalty=None, folds=0, seed=0, refs=None, log_base=None, costs=None,
                 weights_path=weights_path, analysis_path=None,
             ).to_dict()

@@ -30,7 +30,7 @@ def setup(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
         NGramModel(3).fit(_lines("train.txt", 60))
     save_model(bg, tmp / "bg.lm")
     save_model(small, tmp / "small.lm")
-    held = _lines("dev.txt", 60) + [["pump", "zyxxy", "seven"]]  # zyxxy: in no model
+    held = [*_lines("dev.txt", 60), ["pump", "zyxxy", "seven"]]  # zyxxy: in no model
     (tmp / "held.txt").write_text("\n".join(" ".join(s) for s in held) + "\n")
     return {"bg": tmp / "bg.lm", "small": tmp / "small.lm", "held": tmp / "held.txt",
             "out": tmp / "mix.lm"}

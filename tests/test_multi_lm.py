@@ -124,7 +124,7 @@ def test_demo_compares_background_in_domain_mixed_and_two_lms(tmp_path: Path) ->
     rows = {r["system"]: r for r in summary["comparison"]}
     small, full = demo.SMALL_ROW, demo.FULL_ROW
     assert list(rows) == ["background only", small, "mixed (merged model)",
-                          "log-linear, two LMs", full]
+                          demo.OOV_ROW, "log-linear, two LMs", full]
     # the contract's keys keep meaning the result of the model built from all of train.txt
     assert summary["wer_after"] == rows[full]["test_wer"]
     assert summary["dev_perplexity"] == rows[full]["dev_perplexity"]

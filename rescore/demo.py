@@ -16,13 +16,14 @@ from typing import Any
 from rescore import demo_rules, pipeline
 from rescore.errors import InputError
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
-from rescore.lm.mix import mix_models
+from rescore.lm.compare import SharedVocabulary
+from rescore.lm.mix import compare_models, mix_models
 from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
 from rescore.report import build_report, load_system, write_report
 from rescore.report.load import weights_provenance
-from rescore.scoring import oracle_rows
+from rescore.scoring import OOV, oov_features, oracle_rows
 from rescore.text import tokens
 from rescore.weights import LM, read_weights
 from rescore.wer import corpus_wer
@@ -33,6 +34,8 @@ FILES = ("train.txt", "dev.txt", "dev.jsonl", "test.jsonl")
 ADAPT_SENTENCES = 100
 SMALL_ROW = f"in-domain, {ADAPT_SENTENCES} lines"
 FULL_ROW = "in-domain, all lines"
+# the mixed model again, with its unknown-word count as a tuned feature
+OOV_ROW = f"mixed + {OOV}"
 
 
 @dataclass(frozen=True)
@@ -44,6 +47,7 @@ class DemoResult:
     perplexity: dict[str, Any]
     outputs: list[Path]
     comparison: list[dict[str, Any]] = field(default_factory=list)
+    comparison_vocabulary: SharedVocabulary | None = None
 
 
 def _silent(message: str) -> None:
@@ -95,9 +99,10 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         "dev_perplexity": ppl["perplexity"],
     }
     comparison: list[dict[str, Any]] = []
+    shared: SharedVocabulary | None = None
     if (data / "background.txt").is_file():
-        comparison, extra = _compare(data, out, order, models, tuned, after,
-                                     ppl["perplexity"], progress)
+        comparison, extra, shared = _compare(data, out, order, models, tuned, after,
+                                             ppl["perplexity"], progress)
         outputs += extra
         # the choice rules with the same tuned weights (rescore.demo_rules)
         rule_rows, rule_files = demo_rules.rule_rows(data / "test.jsonl", out, models,
@@ -106,14 +111,16 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
         comparison += rule_rows
         outputs += rule_files
         summary["comparison"] = comparison
+        summary["comparison_vocabulary"] = shared.to_dict()
     write_text_atomic(out / "summary.json", json.dumps(summary, indent=2) + "\n")
     outputs.append(out / "summary.json")
-    return DemoResult(summary, before, after, oracle, ppl, outputs, comparison)
+    return DemoResult(summary, before, after, oracle, ppl, outputs, comparison, shared)
 
 
 def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.NamedModel],
              in_tuned: dict[str, Any], in_after: dict[str, Any], in_ppl: float,
-             progress: Callable[[str], None]) -> tuple[list[dict[str, Any]], list[Path]]:
+             progress: Callable[[str], None]
+             ) -> tuple[list[dict[str, Any]], list[Path], SharedVocabulary]:
     """The everyday adaptation case: a general model and only a little in-domain text.
 
     The in-domain model here is built from the first ``ADAPT_SENTENCES`` logbook lines (a
@@ -140,9 +147,14 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
         ("background only", [str(bg_path)], bg_ppl),
         (SMALL_ROW, [str(small_path)], small_ppl),
         ("mixed (merged model)", [str(mix_path)], mixed.merged_perplexity),
+        (OOV_ROW, [str(mix_path)], mixed.merged_perplexity),
         ("log-linear, two LMs", [str(small_path), f"background={bg_path}"], None),
         (FULL_ROW, [str(in_models[LM].path)], in_ppl),
     ]
+    # like with like: every model's perplexity on the same dev tokens, one vocabulary
+    like = compare_models([background, small, merged, load_model(in_models[LM].path)], dev_text)
+    measured = {"background only": 0, SMALL_ROW: 1, "mixed (merged model)": 2, OOV_ROW: 2,
+                FULL_ROW: 3}
     rows: list[dict[str, Any]] = []
     written = [bg_path, small_path, mix_path]
     for name, specs, dev_ppl in systems:
@@ -150,11 +162,12 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
             tuned, wer = in_tuned, in_after
         else:
             progress(f"tuning and rescoring with {name}")
-            tag = name.split()[0].strip(",")
+            tag = "mixed-oov" if name == OOV_ROW else name.split()[0].strip(",")
             models = pipeline.load_lms(specs)
             weights_path = out / f"weights.{tag}.json"
             tuned = pipeline.tune_file(
-                data / "dev.jsonl", models=models, search=None, features=[], grid_lm=None,
+                data / "dev.jsonl", models=models, search=None,
+                features=oov_features(list(models)) if name == OOV_ROW else [], grid_lm=None,
                 grid_penalty=None, folds=0, seed=0, refs=None, log_base=None, costs=None,
                 weights_path=weights_path, analysis_path=None,
             ).to_dict()
@@ -166,6 +179,10 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
         rows.append({
             "system": name,
             "dev_perplexity": dev_ppl,
+            **({"dev_perplexity_shared": like.shared[measured[name]],
+                "dev_perplexity_own": like.own[measured[name]].perplexity,
+                "dev_oov_own": like.own[measured[name]].oov}
+               if name in measured else {}),
             "test_wer": wer["wer"],
             "lm_weight": tuned["lm_weight"],
             "insertion_penalty": tuned["insertion_penalty"],
@@ -175,7 +192,7 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
                 "mixture_perplexity": mixed.perplexity}
                if name.startswith("mixed") else {}),
         })
-    return rows, written
+    return rows, written, like.vocabulary
 
 
 def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel]

@@ -16,7 +16,7 @@ from typing import Protocol
 
 import numpy as np
 
-from rescore.errors import InputError
+from rescore.errors import InputError, UsageError
 from rescore.nbest import Utterance
 from rescore.text import tokens, tokens_many, word_counts
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
@@ -153,6 +153,39 @@ def lm_column(name: str) -> str:
     return LM if name == LM else f"{LM}:{name}"
 
 
+OOV = "oov_count"
+
+
+def oov_column(name: str) -> str:
+    """Column of a model's unknown-word count: ``oov_count`` for the main LM,
+    ``oov_count:NAME`` for others (named as :func:`lm_column` names the scores)."""
+    return OOV if name == LM else f"{OOV}:{name}"
+
+
+def oov_features(lm_names: Sequence[str]) -> list[str]:
+    """The unknown-word columns of the models named (``tune --oov-feature``)."""
+    return [oov_column(n) for n in lm_names]
+
+
+class CountsUnknownWords(Protocol):
+    """A model that can say how many words of each sentence it lacks."""
+
+    def oov_counts(self, sentences: Sequence[Sequence[str]]) -> np.ndarray: ...
+
+
+def _oov_model(name: str, lms: Mapping[str, LanguageModel]) -> LanguageModel | None:
+    """The model whose unknown-word count column ``name`` is, if it is one."""
+    by_column = {oov_column(n): m for n, m in lms.items()}
+    return by_column.get(name)
+
+
+def _computed_oov(model: LanguageModel, name: str, toks: Sequence[list[str]]) -> np.ndarray:
+    counter = getattr(model, "oov_counts", None)
+    if counter is None:
+        raise UsageError(f"feature {name!r}: this model cannot count unknown words")
+    return np.asarray(counter(toks), dtype=np.float64)
+
+
 @dataclass(frozen=True)
 class Batch:
     """Utterances with their tokenised hypotheses and the matrix built from them."""
@@ -180,7 +213,8 @@ def build_matrix(
     """The feature matrix of ``items`` (``(line, utterance)`` pairs from the reader).
 
     Columns: acoustic, one per language model, words, then each named feature. A named
-    feature missing from a hypothesis is an error naming its line and field.
+    feature missing from a hypothesis is an error naming its line and field, except an
+    unknown-word count of a model given (:func:`oov_column`), which is counted here.
     """
     lms = lms or {}
     names = (ACOUSTIC, *(lm_column(n) for n in lms), WORDS, *features)
@@ -195,6 +229,11 @@ def build_matrix(
     first_feature = 1 + len(lms) + 1
     values[:, first_feature - 1] = word_counts(toks)
     for j, name in enumerate(features):
+        oov_model = _oov_model(name, lms)
+        if oov_model is not None:
+            # words outside that model's vocabulary, counted from the text, not the file
+            values[:, first_feature + j] = _computed_oov(oov_model, name, toks) if n else 0.0
+            continue
         try:
             values[:, first_feature + j] = [hyp["features"][name] for hyp in hyps]
         except KeyError:

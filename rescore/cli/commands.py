@@ -29,6 +29,7 @@ from rescore.errors import UsageError
 from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
+from rescore.scoring import oov_features
 from rescore.shards import count_lines
 from rescore.weights import read_weights
 
@@ -200,12 +201,19 @@ def tune(
         "--bounds", metavar="LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH",
         help="The exact search's box for LM weight and insertion penalty, which also "
         "limits grid widening (default 0:100,-100:100).")] = None,
+    oov_feature: Annotated[bool, typer.Option(
+        "--oov-feature", help="Also tune a weight for each LM's count of words outside its "
+        "vocabulary (oov_count, oov_count:NAME); apply then counts them too.")] = False,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     choose: ChooseOpt = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
     models = pipeline.load_lms(lm or [])
+    if oov_feature:
+        if not models:
+            raise UsageError("--oov-feature counts words outside an LM's vocabulary; give --lm")
+        feature = list(dict.fromkeys([*(feature or []), *oov_features(list(models))]))
     check_outputs([out, analysis], [nbest, refs, *(m.path for m in models.values())])
     with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(
@@ -265,11 +273,15 @@ def demo(
          f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
     if result.comparison:
         table("language models compared (perplexity on dev.txt, WER on the test set)",
-              ["system", "dev perplexity", "test WER", "LM weights"],
-              [[r["system"], r["dev_perplexity"], pct(r["test_wer"]),
+              ["system", "dev ppl, shared", "dev ppl, own",
+               "own OOV", "test WER", "LM weights"],
+              [[r["system"], r.get("dev_perplexity_shared"), r.get("dev_perplexity_own"),
+                r.get("dev_oov_own"), pct(r["test_wer"]),
                 ", ".join([f"lm {r['lm_weight']:.3g}",
                            *(f"{k} {v:.3g}" for k, v in r["features"].items())])]
                for r in result.comparison])
+        if result.comparison_vocabulary is not None:
+            info(result.comparison_vocabulary.footnote("dev.txt"))
         mixed = next((r for r in result.comparison if "mixture_weights" in r), None)
         if mixed is not None:
             info("mixture weights (EM on dev.txt): " + ", ".join(

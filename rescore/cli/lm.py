@@ -261,14 +261,20 @@ def mix(
         emit_json(result.to_dict())
         return
     rows: list[tuple[object, ...]] = []
-    comp = result.component_perplexities
+    comp, like = result.component_perplexities, result.like
     for i, p in enumerate(models):
-        rows.append((str(p), result.weights[i], "" if comp is None else comp[i]))
-    rows.append(("mixture (exact)", "", "" if result.perplexity is None else result.perplexity))
+        rows.append((str(p), result.weights[i], "" if comp is None else comp[i],
+                     *(() if like is None else (like.own[i].perplexity, like.own[i].oov))))
+    blank = () if like is None else ("", "")
+    rows.append(("mixture (exact)", "", "" if result.perplexity is None else result.perplexity,
+                 *blank))
     rows.append(("merged model", "",
-                 "" if result.merged_perplexity is None else result.merged_perplexity))
+                 "" if result.merged_perplexity is None else result.merged_perplexity, *blank))
     table(None if tune_on is None else f"perplexity on {tune_on}",
-          ["model", "weight", "perplexity"], rows)
+          ["model", "weight", "perplexity" if like is None else "shared-vocabulary perplexity",
+           *(() if like is None else ("own-vocabulary perplexity", "own OOV"))], rows)
+    if like is not None:
+        info(like.vocabulary.footnote(str(tune_on)))
     info(f"wrote {output}: merged back-off model, {len(merged.vocab_)} tokens in the "
          f"vocabulary; " + ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(merged.n_ngrams_)))
 

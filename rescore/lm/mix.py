@@ -28,6 +28,8 @@ import numpy.typing as npt
 from rescore.arrays import F64, I64
 from rescore.errors import UsageError
 from rescore.lm import fingerprint, hashindex
+from rescore.lm.compare import LikeForLike, shared_vocabulary
+from rescore.lm.evaluate import perplexity
 from rescore.lm.model import NGramModel
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary
@@ -207,6 +209,8 @@ class MixResult:
     iterations: int = 0
     tokens: int = 0
     log_likelihood: tuple[float, ...] = field(default=(), repr=False)
+    # the components' own-vocabulary figures and the shared vocabulary measured on
+    like: LikeForLike | None = field(default=None, repr=False)
 
     def to_dict(self) -> dict[str, Any]:
         def finite(x: float | None) -> float | None:
@@ -220,7 +224,30 @@ class MixResult:
             "merged_perplexity": finite(self.merged_perplexity),
             "em_iterations": self.iterations,
             "tokens": self.tokens,
+            **({} if self.like is None else {
+                "component_own_perplexities": [finite(p.perplexity) for p in self.like.own],
+                "component_own_oov": [p.oov for p in self.like.own],
+                "shared_vocabulary": self.like.vocabulary.to_dict(),
+            }),
         }
+
+
+def like_for_like(mixture: Mixture, sentences: Sequence[Sequence[str]],
+                  component_logp: F64 | None = None) -> LikeForLike:
+    """The components' own perplexities and their perplexities over the union vocabulary
+    (the same tokens for all); ``component_logp`` is reused when already computed."""
+    comp = (mixture.component_token_logprobs(sentences) if component_logp is None
+            else component_logp)
+    return LikeForLike(
+        own=tuple(perplexity(m, sentences) for m in mixture.models),
+        shared=tuple(perplexity_of(comp[:, i]) for i in range(len(mixture.models))),
+        vocabulary=shared_vocabulary(mixture.vocab, sentences))
+
+
+def compare_models(models: Sequence[NGramModel], sentences: Sequence[Sequence[str]]
+                   ) -> LikeForLike:
+    """Like-for-like perplexities of any open-vocabulary models on one text."""
+    return like_for_like(Mixture(models), [list(s) for s in sentences])
 
 
 def mix_models(models: Sequence[NGramModel], tune_on: Sequence[Sequence[str]] | None, *,
@@ -252,12 +279,13 @@ def mix_models(models: Sequence[NGramModel], tune_on: Sequence[Sequence[str]] | 
         component_perplexities=tuple(perplexity_of(comp[:, i]) for i in range(len(models))),
         merged_perplexity=perplexity_of(merged_logp),
         iterations=iterations, tokens=len(mixed), log_likelihood=history,
+        like=like_for_like(mixture, sentences, comp),
     )
     return mixture, merged, result
 
 
-__all__ = ["EMResult", "MixResult", "Mixture", "estimate_weights", "mix_logprobs",
-           "mix_models", "perplexity_of", "union_vocabulary"]
+__all__ = ["EMResult", "MixResult", "Mixture", "compare_models", "estimate_weights",
+           "like_for_like", "mix_logprobs", "mix_models", "perplexity_of", "union_vocabulary"]
 
 
 # --- the static merge: A mixture written as one back-off model (a static merge).

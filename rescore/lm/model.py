@@ -32,6 +32,7 @@ from rescore.lm.vocab import (
     encode,
     first_pass,
     first_pass_blocks,
+    oov_counts,
     remap,
     stream_from_lengths,
 )
@@ -288,6 +289,10 @@ class NGramModel:
         sums = np.bincount(stream.sentence_of[scored], weights=logp[scored],
                            minlength=stream.n_sentences)
         return sums.astype(np.float64)
+
+    def oov_counts(self, sentences: Sequence[Sequence[str]]) -> npt.NDArray[np.int64]:
+        """Per sentence, its words outside this model's vocabulary; shape (n,)."""
+        return oov_counts(self._fitted().vocab, sentences)
 
     def token_logprobs(self, sentences: Sequence[Sequence[str]]) -> list[F64]:
         """Per sentence, the natural-log probability of each word and of ``</s>``.

@@ -275,3 +275,14 @@ def remap(words: Sequence[str], vocab: Vocabulary) -> I32:
     table = np.array([vocab.id_of(w) for w in words], dtype=np.int32)
     table[:len(SPECIALS)] = UNK_ID  # literal reserved words in text are unknown words
     return table
+
+
+def oov_counts(vocab: Vocabulary, sentences: Sequence[Sequence[str]]) -> I64:
+    """Per sentence, the number of its words outside ``vocab``: those :func:`encode` maps
+    to ``<unk>`` (the literal reserved words among them); shape (n,)."""
+    lens = word_counts(sentences)
+    flat = sentences.flat if isinstance(sentences, Words) else chain.from_iterable(sentences)
+    ids = np.fromiter(map(vocab.index.get, flat, repeat(UNK_ID)), dtype=np.int32,
+                      count=int(lens.sum()))
+    sentence_of = np.repeat(np.arange(len(lens)), lens)
+    return np.bincount(sentence_of[ids <= UNK_ID], minlength=len(lens)).astype(np.int64)

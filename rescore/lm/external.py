@@ -308,8 +308,13 @@ class _Reader:
         return out
 
 
-def merge_runs(runs: Sequence[Run], block: int) -> tuple[Keys, I64]:
+def merge_runs(runs: Sequence[Run], block: int, spill: Path | None = None
+               ) -> tuple[Keys, I64]:
     """The distinct keys of all ``runs`` (each sorted and distinct) and their summed counts.
+
+    With ``spill`` (a path without suffix in a scratch folder), each step's output goes to
+    ``spill.keys`` and ``spill.counts`` and the result is read back in one piece at the
+    end, so the merge never holds its pieces and their concatenation at once.
 
     Each step takes, from every run's buffer, the entries up to the smallest last buffered
     key among the runs that have more on disk: no later entry of any run can sort before
@@ -318,6 +323,9 @@ def merge_runs(runs: Sequence[Run], block: int) -> tuple[Keys, I64]:
     readers = [_Reader(r, block) for r in runs]
     out_keys: list[Keys] = []
     out_counts: list[I64] = []
+    dtype = runs[0].dtype if runs else np.dtype(np.uint64)
+    if spill is not None:
+        return _merge_to_disk(readers, spill, dtype)
     while True:
         for r in readers:
             r.refill()
@@ -331,10 +339,39 @@ def merge_runs(runs: Sequence[Run], block: int) -> tuple[Keys, I64]:
                                       np.concatenate([p[1] for p in pieces]))
         out_keys.append(keys)
         out_counts.append(counts)
-    dtype = runs[0].dtype if runs else np.dtype(np.uint64)
     if not out_keys:
         return np.zeros(0, dtype=dtype), np.zeros(0, dtype=np.int64)
     return np.concatenate(out_keys), np.concatenate(out_counts)
+
+
+def _merge_steps(readers: list[_Reader]) -> Iterator[tuple[Keys, I64]]:
+    """The merge's steps (see :func:`merge_runs`), each complete and in order."""
+    while True:
+        for r in readers:
+            r.refill()
+        live = [r for r in readers if len(r.keys)]
+        if not live:
+            return
+        bounds = [r.keys[-1] for r in live if r.more_on_disk]
+        cut = min(bounds) if bounds else None
+        pieces = [r.take_through(cut) for r in live]
+        yield sum_duplicates(np.concatenate([p[0] for p in pieces]),
+                             np.concatenate([p[1] for p in pieces]))
+
+
+def _merge_to_disk(readers: list[_Reader], spill: Path, dtype: np.dtype[Any]
+                   ) -> tuple[Keys, I64]:
+    keys_path, counts_path = spill.with_suffix(".keys"), spill.with_suffix(".counts")
+    with _create(keys_path) as fk, _create(counts_path) as fc:
+        for keys, counts in _merge_steps(readers):
+            _write(fk, keys)
+            _write(fc, counts)
+    try:
+        return (np.fromfile(keys_path, dtype=dtype),
+                np.fromfile(counts_path, dtype=np.int64))
+    finally:
+        keys_path.unlink()
+        counts_path.unlink()
 
 
 def merge_block(memory: int, runs: int) -> int:
@@ -454,7 +491,8 @@ def merge_all(codec: KeyCodec, unigrams: I64, runs: list[list[Run]], memory: int
     keys: list[Keys] = []
     counts: list[I64] = []
     for order_runs in runs:
-        k_keys, k_counts = merge_runs(order_runs, merge_block(memory, len(order_runs)))
+        spill = order_runs[0].keys.with_name(f"merged.{len(keys) + 2}") if order_runs else None
+        k_keys, k_counts = merge_runs(order_runs, merge_block(memory, len(order_runs)), spill)
         for run in order_runs:  # free the disk as soon as an order is merged
             run.keys.unlink()
             run.counts.unlink()

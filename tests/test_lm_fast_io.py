@@ -21,7 +21,16 @@ from typer.testing import CliRunner
 
 from rescore.cli import app
 from rescore.errors import ModelFileError
-from rescore.lm import METHODS, NGramModel, arpa, load_model, save_model, store
+from rescore.lm import (
+    METHODS,
+    NGramModel,
+    arpa,
+    arpa_fast,
+    arpa_text,
+    load_model,
+    save_model,
+    store,
+)
 from rescore.lm.hashindex import BucketIndex
 
 LN10 = math.log(10)
@@ -129,7 +138,7 @@ def test_fast_reader_equals_exact_reader(tmp_path: Path, method: str, order: int
     path = tmp_path / "m.arpa"
     save_model(model, path)
     with open(path, "rb") as fh:
-        fast, meta = arpa._read_fast(fh)  # raises if the fast path gives up
+        fast, meta = arpa_fast.read_fast(fh)  # raises if the fast path gives up
     exact, exact_meta = arpa.read_exact(path)
     assert meta == exact_meta
     probe = _probe(model, order)
@@ -146,8 +155,8 @@ def test_other_whitespace_goes_to_the_exact_reader(tmp_path: Path) -> None:
     save_model(model, tabbed)
     spaced = tmp_path / "space.arpa"
     spaced.write_text(tabbed.read_text().replace("\t", "  ").replace("\n", " \r\n"))
-    with open(spaced, "rb") as fh, pytest.raises(arpa._Slow):
-        arpa._read_fast(fh)
+    with open(spaced, "rb") as fh, pytest.raises(arpa_fast.Slow):
+        arpa_fast.read_fast(fh)
     probe = _probe(model, 5)
     np.testing.assert_array_equal(load_model(spaced).logprob(probe),
                                   load_model(tabbed).logprob(probe))
@@ -214,7 +223,7 @@ def test_number_format_is_printf_g10() -> None:
     values = np.concatenate([log10 * LN10, [-np.inf, np.nan]])
     chars, lengths = arpa.format_numbers(values)
     got = [bytes(chars[i, :lengths[i]]).decode() for i in range(len(values))]
-    assert got == arpa._fmt(values)
+    assert got == arpa_text.fmt(values)
 
 
 def test_standard_input_is_read(tmp_path: Path) -> None:

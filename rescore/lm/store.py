@@ -362,7 +362,7 @@ def _compact_tables(order: int, arrays: dict[str, np.ndarray[Any, Any]], index_p
         | {f"{a}{k}" for k in range(2, order + 1) for a in ("start", "rest")}
     stray = [n for n in arrays if n not in known and not n.startswith(EXTRA)]
     if stray:
-        raise ValueError(f"unknown array {stray[0]}")
+        raise ValueError(f"unknown array {stray[0]!r}")
     if not isinstance(index_params, list) or len(index_params) != order - 1:
         raise ValueError("index parameters")
     logp = [_want(arrays, "logp1", ("<f8",), v)]

@@ -1,0 +1,244 @@
+"""ARPA files written: line by line (the reference), or in vectorised blocks.
+
+Numbers are formatted as ``%.10g`` would, with numpy: ten significant digits from one
+exact scaling (a power of ten up to 1e13 is exact in float64), and the few values the
+scaling cannot settle (within 1e-5 of a rounding tie, or in exponent notation) by
+Python's own formatting; so the text is byte for byte what the line-by-line writer gave.
+Each line is laid out in a fixed-width byte matrix (number, words from a padded
+vocabulary matrix, number) and the padding is dropped by one boolean mask.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from rescore.lm.arpa_text import F64, I64, LOG10E, fmt
+from rescore.lm.tables import BackoffTables
+from rescore.lm.vocab import UNK_ID
+from rescore.outputs import atomic_output
+
+
+def write(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> None:
+    """Write ``tables`` as an ARPA file (gzip for a ``.gz`` name), atomically.
+
+    A closed-vocabulary model leaves ``<unk>`` out, which is how a reader recognises it.
+    The text is formatted in vectorised blocks (:func:`write_fast`), or line by line
+    (:func:`write_lines`, the same bytes) when a word is too long for that.
+    """
+    if not write_fast(tables, path, closed_vocab=closed_vocab):
+        write_lines(tables, path, closed_vocab=closed_vocab)
+
+
+def write_lines(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> None:
+    """The line-by-line writer (also the baseline of the benchmark)."""
+    order = tables.order
+    words = tables.vocab.words
+    unigram_rows = [i for i in range(len(words)) if not (closed_vocab and i == UNK_ID)]
+    counts = [len(unigram_rows)] + [len(tables.logp[k - 1]) for k in range(2, order + 1)]
+    with atomic_output(path, "w") as fh:
+        out: Any = fh
+        out.write("\n\\data\\\n")
+        for k, n in enumerate(counts, start=1):
+            out.write(f"ngram {k}={n}\n")
+        for k in range(1, order + 1):
+            out.write(f"\n\\{k}-grams:\n")
+            if k == 1:
+                idx = np.array(unigram_rows, dtype=np.int64)
+                grams = [words[i] for i in unigram_rows]
+            else:
+                idx = np.arange(counts[k - 1], dtype=np.int64)
+                mat = tables.words_of(k)
+                grams = [" ".join(words[j] for j in row) for row in mat.tolist()]
+            probs = fmt(tables.logp[k - 1][idx])
+            if k < order:
+                bows = fmt(tables.bow[k - 1][idx])
+                out.write("".join(f"{p}\t{g}\t{b}\n" for p, g, b in zip(probs, grams, bows,
+                                                                         strict=True)))
+            else:
+                out.write("".join(f"{p}\t{g}\n" for p, g in zip(probs, grams, strict=True)))
+        out.write("\n\\end\\\n")
+
+
+NUMBER_WIDTH = 24
+ROWS_PER_BLOCK = 1 << 18
+MAX_WORD_WIDTH = 64  # longer words: the line-by-line writer
+_POW10 = 10.0 ** np.arange(0, 14)
+
+
+_FIVE: list[tuple[npt.NDArray[np.uint8], I64]] = []
+
+
+def _five_digits() -> tuple[npt.NDArray[np.uint8], I64]:
+    """The characters of 00000 .. 99999 (100000 x 5) and each one's trailing zeros."""
+    if not _FIVE:
+        text = "".join(f"{i:05d}" for i in range(100_000)).encode("ascii")
+        chars = np.frombuffer(text, dtype=np.uint8).reshape(100_000, 5)
+        tz = np.zeros(100_000, dtype=np.int64)
+        for z in range(1, 6):
+            tz[np.arange(0, 100_000, 10 ** z)] = z
+        _FIVE.append((chars, tz))
+    return _FIVE[0]
+
+
+def _layout(e: int, neg: bool) -> list[int]:
+    """Source columns (digits 0-9, then '.', '0', '-') of ``%.10g`` with exponent ``e``."""
+    sign = [12] if neg else []
+    if e >= 0:
+        return sign + list(range(e + 1)) + [10] + list(range(e + 1, 10))
+    return sign + [11, 10] + [11] * (-e - 1) + list(range(10))
+
+
+_LAYOUTS = [_layout(e, bool(neg)) for e in range(-4, 10) for neg in (0, 1)]
+
+
+def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
+    """``%.10g`` of each value in log10, as ARPA files carry it (-99 for zero, a value that
+    would print as -99 nudged below it): a (n, NUMBER_WIDTH) byte matrix and lengths."""
+    x = ln_values * LOG10E
+    n = len(x)
+    out = np.zeros((n, NUMBER_WIDTH), dtype=np.uint8)
+    length = np.zeros(n, dtype=np.int64)
+    finite = np.isfinite(x)
+    ax = np.abs(np.where(finite, x, 1.0))
+    with np.errstate(divide="ignore"):
+        e = np.floor(np.log10(np.where(ax > 0, ax, 1.0))).astype(np.int64)
+    ok = finite & (ax >= 1e-4) & (ax < 1e10)
+    e = np.clip(e, -4, 9)
+    y = ax * _POW10[9 - e]
+    low = ok & (y < 999999999.5)  # log10 overestimated the exponent
+    e[low] -= 1
+    ok &= e >= -4
+    e = np.clip(e, -4, 9)
+    y = ax * _POW10[9 - e]
+    frac = y - np.floor(y)
+    ok &= np.abs(frac - 0.5) > 1e-5
+    digits_value = np.rint(y).astype(np.int64)
+    high = ok & (digits_value >= 10_000_000_000)  # rounded up to the next power of ten
+    digits_value[high] //= 10
+    e[high] += 1
+    ok &= (e <= 9) & (digits_value >= 1_000_000_000) & (digits_value < 10_000_000_000)
+    neg = x < 0
+    # the ten digits as two five-digit halves, each looked up in a table of characters
+    whole = np.where(ok, digits_value, 1_000_000_000).astype(np.float64)  # exact
+    upper = np.floor(whole / 1e5)  # exact: a quotient by 1e5 never rounds across an integer
+    low_half = (whole - upper * 1e5).astype(np.int64)
+    high_half = upper.astype(np.int64)
+    chars, zeros_at_end = _five_digits()
+    tz = zeros_at_end[low_half]
+    tz = np.where(low_half == 0, 5 + zeros_at_end[high_half], tz)
+    kept = 10 - tz
+    # characters to pick from: the ten digits, then '.', '0', '-'; one fixed layout per
+    # (exponent, sign) pair, cut to length by the trailing zeros dropped
+    ext = np.empty((n, 13), dtype=np.uint8)
+    ext[:, :5] = chars[high_half]
+    ext[:, 5:10] = chars[low_half]
+    ext[:, 10], ext[:, 11], ext[:, 12] = ord("."), ord("0"), ord("-")
+    code = np.where(ok, (e + 4) * 2 + neg, len(_LAYOUTS)).astype(np.int8)
+    perm = np.argsort(code, kind="stable")  # a radix sort of small integers
+    bounds = np.searchsorted(code[perm], np.arange(len(_LAYOUTS) + 1))
+    ext = ext[perm]
+    grouped = np.zeros((n, 16), dtype=np.uint8)
+    for c in range(len(_LAYOUTS)):
+        a, b = int(bounds[c]), int(bounds[c + 1])
+        if b > a:
+            src = _LAYOUTS[c]
+            grouped[a:b, :len(src)] = ext[a:b, src]
+    out[perm, :16] = grouped
+    lead = e >= 0
+    int_len = np.where(lead, e + 1, 0)
+    frac_len = np.where(lead, np.maximum(kept - int_len, 0), kept)
+    length[:] = neg + np.where(lead, int_len + (frac_len > 0) + frac_len, 1 - e + kept)
+    zero = finite & (ax == 0)
+    out[zero, 0] = np.where(np.signbit(x[zero]), ord("-"), ord("0"))
+    out[zero, 1] = ord("0")
+    length[zero] = 1 + np.signbit(x[zero])
+    ok |= zero
+    minus_99 = ok & (digits_value == 9_900_000_000) & (e == 1) & (neg == 1)
+    special = ~ok | minus_99
+    for i in np.flatnonzero(special).tolist():
+        text = fmt(ln_values[i:i + 1])[0].encode("ascii")
+        out[i, :] = 0
+        out[i, :len(text)] = np.frombuffer(text, dtype=np.uint8)
+        length[i] = len(text)
+    return out, length
+
+
+def _vocab_matrix(words: tuple[str, ...]) -> tuple[npt.NDArray[np.uint8], I64] | None:
+    encoded = [w.encode("utf-8") for w in words]
+    width = max(1, max(len(w) for w in encoded))
+    if width > MAX_WORD_WIDTH:
+        return None
+    mat = np.frombuffer(b"".join(w.ljust(width, b"\0") for w in encoded),
+                        dtype=np.uint8).reshape(len(words), width)
+    return mat, np.array([len(w) for w in encoded], dtype=np.int64)
+
+
+def _lines(ids: I64, probs: F64, bows: F64 | None, mat: npt.NDArray[np.uint8],
+           lens: I64) -> bytes:
+    """The ARPA lines of one block of n-grams: prob TAB w1 SPACE .. wk [TAB bow] NEWLINE,
+    laid out in one fixed-width matrix whose padding a boolean mask then drops."""
+    n, k = ids.shape
+    width = mat.shape[1]
+    numbers = [format_numbers(probs)] + ([format_numbers(bows)] if bows is not None else [])
+    num_width = max(int(ln.max(initial=1)) for _, ln in numbers)
+    total = num_width + 1 + k * (width + 1) + (num_width + 1 if bows is not None else 0)
+    line = np.empty((n, total), dtype=np.uint8)
+    keep = np.empty((n, total), dtype=bool)
+    at = 0
+
+    def put(chars: npt.NDArray[np.uint8], length: I64) -> None:
+        nonlocal at
+        w = chars.shape[1]
+        line[:, at:at + w] = chars
+        np.less(np.arange(w)[None, :], length[:, None], out=keep[:, at:at + w])
+        at += w
+
+    def sep(byte: int) -> None:
+        nonlocal at
+        line[:, at] = byte
+        keep[:, at] = True
+        at += 1
+
+    put(numbers[0][0][:, :num_width], numbers[0][1])
+    sep(9)
+    for j in range(k):
+        put(mat[ids[:, j]], lens[ids[:, j]])
+        sep(32 if j < k - 1 else (9 if bows is not None else 10))
+    if bows is not None:
+        put(numbers[1][0][:, :num_width], numbers[1][1])
+        sep(10)
+    return bytes(line[keep].data)
+
+
+def write_fast(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> bool:
+    """Write as :func:`write_lines` would, in vectorised blocks; False (nothing written) when
+    a word is too long for the fixed-width layout."""
+    got = _vocab_matrix(tables.vocab.words)
+    if got is None:
+        return False
+    mat, lens = got
+    order = tables.order
+    unigram_rows = np.array([i for i in range(tables.vsize)
+                             if not (closed_vocab and i == UNK_ID)], dtype=np.int64)
+    counts = [len(unigram_rows)] + [len(tables.logp[k - 1]) for k in range(2, order + 1)]
+    with atomic_output(path, "wb") as fh:
+        fh.write(("\n\\data\\\n" + "".join(f"ngram {k}={n}\n" for k, n in
+                                            enumerate(counts, start=1))).encode("ascii"))
+        for k in range(1, order + 1):
+            fh.write(f"\n\\{k}-grams:\n".encode("ascii"))
+            words = unigram_rows[:, None] if k == 1 else tables.words_of(k)
+            rows = unigram_rows if k == 1 else None
+            for at in range(0, counts[k - 1], ROWS_PER_BLOCK):
+                part = slice(at, at + ROWS_PER_BLOCK)
+                idx = rows[part] if rows is not None else np.arange(
+                    at, min(at + ROWS_PER_BLOCK, counts[k - 1]))
+                probs = tables.logp[k - 1][idx]
+                bows = tables.bow[k - 1][idx] if k < order else None
+                fh.write(_lines(words[part], probs, bows, mat, lens))
+            del words
+        fh.write(b"\n\\end\\\n")
+    return True

@@ -177,7 +177,15 @@ def _die_with_parent(parent: int) -> None:
     process. Elsewhere, or if prctl fails, a daemon thread checks the parent pid every
     second and exits the worker when it changes. Both check once after arming, for a parent
     that died before.
+
+    A forked worker also inherits the command line's signal handlers: the SIGTERM handler
+    would raise inside the worker when the main process ends the pool after an error, and
+    print a worker traceback beside the one-line error. The worker takes the default
+    SIGTERM (end quietly) and ignores SIGINT (Ctrl-C reaches the whole process group; the
+    main process stops the pool itself).
     """
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     armed = False
     if sys.platform.startswith("linux"):
         with contextlib.suppress(OSError, AttributeError):

@@ -15,6 +15,7 @@ from rescore.limits import (
     GZIP_RATIO_VARIABLE,
     describe_size,
 )
+from rescore.spool import local
 
 GZIP_MAGIC = b"\x1f\x8b"
 
@@ -24,12 +25,16 @@ def is_gzip_name(path: str | Path) -> bool:
 
 
 def open_binary(path: str | Path) -> IO[bytes]:
-    """Open a file for reading, decompressing gzip by its magic bytes (not just its name)."""
-    p = Path(path)
+    """Open a file for reading, decompressing gzip by its magic bytes (not just its name).
+
+    ``-`` and other streams are read through their temporary copy (:mod:`rescore.spool`);
+    errors name ``path`` as given.
+    """
+    p = local(path)
     try:
         fh: IO[bytes] = open(p, "rb")  # noqa: SIM115 - returned to the caller
     except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
-        raise InputError(open_failure(exc), path=str(p)) from None
+        raise InputError(open_failure(exc), path=str(path)) from None
     head = fh.read(2)
     fh.seek(0)
     if head == GZIP_MAGIC:
@@ -66,6 +71,6 @@ def gzip_bomb_error(path: str | Path, limit: int, line: int | None) -> InputErro
 
 
 def is_gzip_file(path: str | Path) -> bool:
-    with open(path, "rb") as fh:
+    with open(local(path), "rb") as fh:
         return fh.read(2) == GZIP_MAGIC
 

@@ -39,6 +39,7 @@ from pydantic import (
 )
 
 from rescore.errors import InputError
+from rescore.spool import local
 
 Step = Literal["nfc", "lowercase", "apostrophe", "punctuation"]
 # the order and the steps of rescore.text.tokens (NORMALISATION "nfc-lower-strip-punct-v1")
@@ -193,7 +194,7 @@ def parse_rules(data: bytes, path: str | Path = "<rules>") -> RulesFile:
 def load_rules(path: str | Path) -> RulesFile:
     """Read and validate a scoring-rules file (TOML)."""
     try:
-        data = Path(path).read_bytes()
+        data = local(path).read_bytes()
     except OSError as exc:
         raise InputError(f"cannot read the rules file: {exc.strerror}", path=path) from None
     return parse_rules(data, path)

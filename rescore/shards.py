@@ -6,6 +6,7 @@ import os
 from pathlib import Path
 
 from rescore.compression import is_gzip_file
+from rescore.spool import local
 
 
 def count_lines(path: str | Path) -> int | None:
@@ -15,7 +16,7 @@ def count_lines(path: str | Path) -> int | None:
     try:
         if is_gzip_file(path):
             return None
-        with open(path, "rb") as fh:
+        with open(local(path), "rb") as fh:
             for block in iter(lambda: fh.read(1 << 22), b""):
                 count += block.count(b"\n")
     except OSError:
@@ -31,6 +32,7 @@ def line_shards(path: str | Path, parts: int, min_bytes: int = 1 << 20
     At most ``parts`` shards, each of at least ``min_bytes`` (but the last), found by
     counting newlines in blocks, so it costs one sequential read.
     """
+    path = local(path)
     size = os.path.getsize(path)
     target = max(min_bytes, -(-size // max(parts, 1)))
     shards: list[tuple[int, int, int]] = []

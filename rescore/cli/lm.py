@@ -179,7 +179,8 @@ def perplexity_cmd(
 def convert(
     source: Annotated[Path, typer.Argument(
         metavar="IN", help="Model to read (.arpa/.arpa.gz or '-' for ARPA text on stdin).")],
-    target: Annotated[Path, typer.Argument(metavar="OUT", help="Model to write (by file ending).")],
+    target: Annotated[Path, typer.Argument(
+        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout).")],
     verify: Annotated[bool, typer.Option(
         "--verify", help="Check every value of a native input first (as lm check).")] = False,
     quantize: _Quantize = None,

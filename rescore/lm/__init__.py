@@ -29,7 +29,7 @@ def is_arpa_name(path: str | Path) -> bool:
 
 def save_model(model: NGramModel, path: str | Path) -> None:
     """Write ``model`` atomically: ARPA text for a ``.arpa``/``.arpa.gz`` name, else native."""
-    if is_arpa_name(path):
+    if is_arpa_name(path) or str(path) == "-":  # standard output: ARPA text
         arpa.write(model._fitted(), path, closed_vocab=model.closed_vocab)
     else:
         digest = store.save(model._fitted(), model.metadata_, path, model.extras())

@@ -51,6 +51,7 @@ from rescore.lm.vocab import (
 from rescore.progress import Report, Steps
 from rescore.readers import iter_text_lines
 from rescore.shards import line_shards
+from rescore.spool import local
 from rescore.text import tokens
 
 I32 = npt.NDArray[np.int32]
@@ -101,13 +102,13 @@ def plan_shards(paths: Sequence[str | Path], parts: int, min_bytes: int = MIN_SH
     sizes = []
     for p in paths:
         try:
-            sizes.append(Path(p).stat().st_size)
+            sizes.append(local(p).stat().st_size)
         except FileNotFoundError:
             raise InputError("file not found", path=p) from None
     total = max(sum(sizes), 1)
     shards: list[TextShard] = []
     for p, size in zip(paths, sizes, strict=True):
-        full = str(Path(p).resolve())
+        full = str(local(p).resolve())
         if Path(p).is_dir():
             raise InputError("is a folder, expected a file", path=p)
         if is_gzip_file(p):

@@ -28,7 +28,8 @@ from rescore.text import tokens
 from rescore.weights import LM, read_weights
 from rescore.wer import corpus_wer
 
-BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+# shipped inside the package (the wheel carries it); fixtures/demo links here for the tests
+BUNDLED = Path(__file__).resolve().parent / "demo_data"
 FILES = ("train.txt", "dev.txt", "dev.jsonl", "test.jsonl")
 # In-domain sentences of the adaptation comparison: a new deployment's first days of logbook.
 ADAPT_SENTENCES = 100

@@ -39,7 +39,7 @@ def sample_dir() -> Path:
 # Modules whose tests start real subprocesses, worker pools, a Dask cluster or a browser, or
 # run many fuzz examples: `make check` leaves them out (`-m 'not slow'`); `make test` runs all.
 SLOW_MODULES = frozenset({"test_report_browser", "test_parallel", "test_memory", "test_fuzz",
-                          "test_outputs_cli",
+                          "test_outputs_cli", "test_wheel",
                           "test_interrupt", "test_progress"})
 
 

@@ -256,7 +256,7 @@ def demo(
     out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
     = Path("demo-out"),
     data: Annotated[Path | None, typer.Option(
-        "--data", help="Scenario data folder (default: the bundled fixtures/demo).")] = None,
+        "--data", metavar="DIR", help="Scenario data folder (default: the bundled scenario).")] = None,
     as_json: JsonOpt = False,
 ) -> None:
     """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
@@ -265,7 +265,8 @@ def demo(
         emit_json(result.summary)
         return
     s = result.summary
-    table("Larkspur Growhouse test set: before and after rescoring", WER_COLUMNS,
+    heading = "Larkspur Growhouse" if data is None else str(data)
+    table(f"{heading} test set: before and after rescoring", WER_COLUMNS,
           _wer_rows([("before (recognizer 1-best)", result.before),
                      ("after (rescored)", result.after),
                      ("oracle (best in list)", result.oracle)]))

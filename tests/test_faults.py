@@ -109,8 +109,8 @@ def _disk_cases(tmp: Path, models: dict[str, Path]) -> list[tuple[str, list[str]
         ("lm build", ["lm", "build", str(DEMO / "train.txt"), "-o", str(tmp / "x.lm")],
          tmp / "x.lm"),
         ("lm convert", ["lm", "convert", m, str(tmp / "x.arpa")], tmp / "x.arpa"),
-        ("lm perplexity --sentence-scores",
-         ["lm", "perplexity", m, str(DEMO / "dev.txt"), "--sentence-scores",
+        ("lm perplexity --per-sentence",
+         ["lm", "perplexity", m, str(DEMO / "dev.txt"), "--per-sentence",
           str(tmp / "s.tsv")], tmp / "s.tsv"),
         ("tune -o --analysis", ["tune", dev, "--lm", m, "-o", str(tmp / "t.json"),
                                 "--analysis", str(tmp / "a.json"), "--folds", "0",
@@ -123,7 +123,7 @@ def _disk_cases(tmp: Path, models: dict[str, Path]) -> list[tuple[str, list[str]
 
 @pytest.mark.parametrize("case", range(8), ids=[
     "apply -o", "apply -o .gz", "apply --text", "lm build", "lm convert",
-    "lm perplexity --sentence-scores", "tune -o --analysis", "report -o DIR"])
+    "lm perplexity --per-sentence", "tune -o --analysis", "report -o DIR"])
 def test_disk_full_at_the_writer_seam_is_one_line_and_keeps_the_old_output(
         case: int, tmp_path: Path, demo_models: dict[str, Path], disk_holding: int) -> None:
     """Checks: a full disk during any output ends in `error: PATH: no space left on device

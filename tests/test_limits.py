@@ -151,7 +151,7 @@ def test_line_cap_on_every_line_reader(tmp_path: Path, reader: str) -> None:
     elif reader == "corpus":
         result = run(["lm", "build", long, "-o", out])
     elif reader == "vocab":
-        result = run(["lm", "build", refs, "--vocab", long, "-o", out])
+        result = run(["lm", "build", refs, "--vocabulary", long, "-o", out])
     elif reader == "perplexity":
         model = _model(tmp_path)
         inputs |= {"c.txt", "m.lm"}

@@ -83,10 +83,10 @@ def test_damaged_model_is_one_line_error(text: Path, tmp_path: Path) -> None:
 
 def test_bad_cutoffs_and_options(text: Path, tmp_path: Path) -> None:
     out = str(tmp_path / "m")
-    assert _run("lm", "build", str(text), "--cutoffs", "1,x", "-o", out)[0] == 2
-    assert _run("lm", "build", str(text), "--cutoffs", "1", "-n", "3", "-o", out)[0] == 2
+    assert _run("lm", "build", str(text), "--min-ngram-counts", "1,x", "-o", out)[0] == 2
+    assert _run("lm", "build", str(text), "--min-ngram-counts", "1", "-n", "3", "-o", out)[0] == 2
     assert _run("lm", "build", str(text), "--order", "9", "-o", out)[0] == 2
-    assert _run("lm", "build", str(text), "--cutoffs", "1,2", "--prune", "1e-6",
+    assert _run("lm", "build", str(text), "--min-ngram-counts", "1,2", "--prune-entropy", "1e-6",
                 "-o", out)[0] == 0
 
 
@@ -94,7 +94,7 @@ def test_vocab_file_and_closed_vocab(text: Path, tmp_path: Path) -> None:
     vocab = tmp_path / "vocab.txt"
     vocab.write_text("pump\ntwo\non\n")
     model = tmp_path / "m.lm"
-    code, _, err = _run("lm", "build", str(text), "--vocab", str(vocab), "--closed-vocab",
+    code, _, err = _run("lm", "build", str(text), "--vocabulary", str(vocab), "--no-unknown-word",
                         "-o", str(model))
     assert code == 0, err
     code, out, _ = _run("lm", "perplexity", str(model), str(text), "--json")
@@ -117,7 +117,7 @@ def test_pruned_arpa_model_reads_back(tmp_path: Path) -> None:
                             for _ in range(300)))
     outs = {}
     for name in ("p.arpa", "p.lm"):
-        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb", "--prune", "1e-3",
+        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb", "--prune-entropy", "1e-3",
                             "-o", str(tmp_path / name))
         assert code == 0, err
         code, out, err = _run("lm", "perplexity", str(tmp_path / name), str(text), "--json")
@@ -135,7 +135,7 @@ def test_sentence_scores_file(text: Path, tmp_path: Path) -> None:
     probe.write_text("Pump four on.\n\n  \nVent bay three open\n")
     scores = tmp_path / "scores.jsonl"
     code, out, err = _run("lm", "perplexity", str(model), str(probe), "--json",
-                          "--sentence-scores", str(scores))
+                          "--per-sentence", str(scores))
     assert code == 0, err
     totals = json.loads(out)  # stdout stays one JSON object
     rows = [json.loads(x) for x in scores.read_text().splitlines()]
@@ -163,7 +163,7 @@ def test_sentence_scores_not_written_on_bad_input(text: Path, tmp_path: Path) ->
     bad = tmp_path / "bad.txt"
     bad.write_bytes(b"pump on\nvent \xff open\n")
     scores = tmp_path / "scores.jsonl"
-    code, _, err = _run("lm", "perplexity", str(model), str(bad), "--sentence-scores",
+    code, _, err = _run("lm", "perplexity", str(model), str(bad), "--per-sentence",
                         str(scores))
     # bad input: one line naming file and line, and no half-written output (project rule)
     assert code == 1 and err.startswith(f"error: {bad}:2: invalid UTF-8")

@@ -9,20 +9,28 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from rescore.cli import commands, lm, report
-from rescore.cli._common import install_signal_handlers, state
+from rescore.cli import aliases, commands, lm, report
+from rescore.cli._common import install_signal_handlers, state, warn
 from rescore.process import avoid_huge_pages, keep_freed_memory
 from rescore.version import __version__
 
 
 class _Commands(TyperGroup):
-    """The root group. Path arguments are not checked for access by the parser: an
-    unreadable input is the reader's to report, as one ``error: PATH: permission denied``
-    line and exit 1 like a missing file, not as a usage error (exit 2)."""
+    """The root group. Old option names are rewritten before parsing. Path arguments are
+    not checked for access by the parser: an unreadable input is the reader's to report,
+    as one ``error: PATH: permission denied`` line and exit 1 like a missing file, not as
+    a usage error (exit 2)."""
 
     def __init__(self, *args: Any, **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
         _leave_access_to_readers(self)
+
+    def parse_args(self, ctx: Any, args: list[str]) -> list[str]:
+        # old option names and global flags after the command: see rescore.cli.aliases
+        args, notices = aliases.rewrite(args)
+        for notice in notices:
+            warn(notice)
+        return list(super().parse_args(ctx, args))
 
 
 def _leave_access_to_readers(command: Any) -> None:

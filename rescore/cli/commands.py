@@ -256,7 +256,8 @@ def demo(
     out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
     = Path("demo-out"),
     data: Annotated[Path | None, typer.Option(
-        "--data", metavar="DIR", help="Scenario data folder (default: the bundled scenario).")] = None,
+        "--data", metavar="DIR",
+        help="Scenario data folder (default: the bundled scenario).")] = None,
     as_json: JsonOpt = False,
 ) -> None:
     """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""

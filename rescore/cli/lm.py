@@ -35,7 +35,8 @@ def _cutoffs(text: str | None) -> list[int] | None:
         return [int(part) for part in text.split(",")]
     except ValueError:
         raise UsageError(
-            f"--cutoffs must be comma-separated whole numbers, one per order from 2, got {text!r}"
+            "--min-ngram-counts must be comma-separated whole numbers, one per order from 2, "
+            f"got {text!r}"
         ) from None
 
 
@@ -64,16 +65,21 @@ def _vocab_words(path: Path | None) -> list[str] | None:
 
 
 _Text = Annotated[list[Path], typer.Argument(help="Training text: one sentence a line (.gz ok).")]
-_Out = Annotated[Path, typer.Option("--output", "-o", help="Model file (.arpa/.arpa.gz: ARPA).")]
+_Out = Annotated[Path, typer.Option(
+    "--out", "-o", metavar="MODEL", help="Model file (.arpa/.arpa.gz: ARPA).")]
 _Order = Annotated[int, typer.Option("--order", "-n", help="n-gram order, 1 to 6.")]
 _Method = Annotated[str, typer.Option("--method", "-m", help="mkn, kn, wb, abs, addk or mle.")]
-_Vocab = Annotated[Path | None, typer.Option("--vocab", help="Vocabulary file: the words to keep.")]
+_Vocab = Annotated[Path | None, typer.Option(
+    "--vocabulary", metavar="FILE", help="Vocabulary file: the words to keep.")]
 _MaxVocab = Annotated[int | None, typer.Option("--max-vocab", help="Keep the K most frequent.")]
 _MinCount = Annotated[int, typer.Option("--min-count", help="Keep words seen at least C times.")]
-_Closed = Annotated[bool, typer.Option("--closed-vocab", help="Leave unknown words out.")]
+_Closed = Annotated[bool, typer.Option(
+    "--no-unknown-word", help="Leave unknown words out (no <unk> in the model).")]
 _K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
-_Cutoffs = Annotated[str | None, typer.Option("--cutoffs", help="Least count per order from 2.")]
-_Prune = Annotated[float | None, typer.Option("--prune", help="Entropy-pruning threshold.")]
+_Cutoffs = Annotated[str | None, typer.Option(
+    "--min-ngram-counts", metavar="N,N,...", help="Least count per order from 2.")]
+_Prune = Annotated[float | None, typer.Option(
+    "--prune-entropy", metavar="X", help="Entropy-pruning threshold.")]
 _Memory = Annotated[str | None, typer.Option(
     "--memory", metavar="SIZE",
     help="Memory for counting, e.g. 4G or 500M; a larger text is counted in sorted runs on "
@@ -151,7 +157,7 @@ def perplexity_cmd(
     text: Annotated[Path, typer.Argument(help="Text to evaluate: one sentence a line.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
     scores_out: Annotated[Path | None, typer.Option(
-        "--sentence-scores", metavar="FILE",
+        "--per-sentence", metavar="FILE",
         help="Also write one JSON line per sentence: line, text, words, tokens, oov, "
              "log10_prob.")] = None,
 ) -> None:
@@ -231,7 +237,7 @@ def _weights(text: str | None) -> list[float] | None:
         return [float(part) for part in text.split(",")]
     except ValueError:
         raise UsageError(f"--weights must be comma-separated numbers, got {text!r}",
-                         field="--weights") from None
+                         field="--fixed-weights") from None
 
 
 @guarded
@@ -239,12 +245,13 @@ def mix(
     models: Annotated[list[Path], typer.Argument(
         metavar="MODEL MODEL...", help="Models to interpolate (native or ARPA).")],
     output: Annotated[Path, typer.Option(
-        "--output", "-o", help="The merged back-off model (.arpa/.arpa.gz: ARPA).")],
+        "--out", "-o", metavar="MODEL", help="The merged back-off model (.arpa/.arpa.gz: ARPA).")],
     tune_on: Annotated[Path | None, typer.Option(
         "--tune-on", help="Held-out in-domain text: the weights maximise its likelihood.")]
     = None,
     weights: Annotated[str | None, typer.Option(
-        "--weights", help="Fixed weights in the models' order, e.g. 0.7,0.3 (no EM).")] = None,
+        "--fixed-weights", metavar="W,W,...",
+        help="Fixed weights in the models' order, e.g. 0.7,0.3 (no EM).")] = None,
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Interpolate language models; weights by EM on in-domain text; write one merged model."""

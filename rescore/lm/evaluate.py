@@ -55,6 +55,11 @@ class PerplexityResult:
         return {
             "perplexity": _finite(self.perplexity),
             "log10_prob": _finite(self.log10_prob),
+            # the same total in natural-log units, and the cross entropy in bits per scored
+            # token (log2 of the perplexity): -log10_prob / (tokens * log10 2)
+            "ln_prob": _finite(self.log10_prob * math.log(10)),
+            "bits_per_token": _finite(-self.log10_prob / (self.tokens * math.log10(2)))
+            if self.tokens else None,
             "sentences": self.sentences,
             "tokens": self.tokens,
             "oov": self.oov,

@@ -117,8 +117,8 @@ def test_pruned_arpa_model_reads_back(tmp_path: Path) -> None:
                             for _ in range(300)))
     outs = {}
     for name in ("p.arpa", "p.lm"):
-        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb", "--prune-entropy", "1e-3",
-                            "-o", str(tmp_path / name))
+        code, _, err = _run("lm", "build", str(text), "-n", "3", "-m", "wb",
+                            "--prune-entropy", "1e-3", "-o", str(tmp_path / name))
         assert code == 0, err
         code, out, err = _run("lm", "perplexity", str(tmp_path / name), str(text), "--json")
         assert code == 0, err

@@ -9,7 +9,7 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from rescore.cli import aliases, commands, lm, report
+from rescore.cli import aliases, commands, helptext, lm, report
 from rescore.cli._common import install_signal_handlers, state, warn
 from rescore.process import avoid_huge_pages, keep_freed_memory
 from rescore.version import __version__
@@ -24,6 +24,10 @@ class _Commands(TyperGroup):
     def __init__(self, *args: Any, **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
         _leave_access_to_readers(self)
+        helptext.apply_help_style(self)
+
+    def list_commands(self, ctx: Any) -> list[str]:
+        return helptext.ordered(list(super().list_commands(ctx)), helptext.ORDER)
 
     def parse_args(self, ctx: Any, args: list[str]) -> list[str]:
         # old option names and global flags after the command: see rescore.cli.aliases
@@ -51,8 +55,13 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
     add_completion=False,
 )
+class _LmCommands(TyperGroup):
+    def list_commands(self, ctx: Any) -> list[str]:
+        return helptext.ordered(list(super().list_commands(ctx)), helptext.LM_ORDER)
+
+
 lm_app = typer.Typer(help="Build, evaluate, mix and convert n-gram language models.",
-                     no_args_is_help=True)
+                     no_args_is_help=True, cls=_LmCommands)
 app.add_typer(lm_app, name="lm")
 
 

@@ -64,7 +64,8 @@ def _vocab_words(path: Path | None) -> list[str] | None:
     return [w for _, line in iter_text_lines(path) for w in tokens(line)]
 
 
-_Text = Annotated[list[Path], typer.Argument(help="Training text: one sentence a line (.gz ok).")]
+_Text = Annotated[list[Path], typer.Argument(
+    metavar="CORPUS", help="Training text: one sentence a line (.gz ok).")]
 _Out = Annotated[Path, typer.Option(
     "--out", "-o", metavar="MODEL", help="Model file (.arpa/.arpa.gz: ARPA).")]
 _Order = Annotated[int, typer.Option("--order", "-n", help="n-gram order, 1 to 6.")]
@@ -154,7 +155,8 @@ def build(
 @guarded
 def perplexity_cmd(
     model_path: Annotated[Path, typer.Argument(metavar="MODEL", help="Native or ARPA model.")],
-    text: Annotated[Path, typer.Argument(help="Text to evaluate: one sentence a line.")],
+    text: Annotated[Path, typer.Argument(
+        metavar="CORPUS", help="Text to evaluate: one sentence a line.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
     scores_out: Annotated[Path | None, typer.Option(
         "--per-sentence", metavar="FILE",

@@ -345,10 +345,9 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
     raw = data.get("surface")
     if isinstance(raw, Mapping):
         try:
-            # `rescore tune --analysis` writes lm_weight/insertion_penalty axes
-            lm = tuple(float(v) for v in raw.get("lm_weight", raw.get("lm_values")))
-            pen = tuple(float(v) for v in raw.get("insertion_penalty",
-                                                  raw.get("penalty_values")))
+            # the one spelling `rescore tune --analysis` writes (tune.results.Surface.to_dict)
+            lm = tuple(float(v) for v in raw["lm_weight"])
+            pen = tuple(float(v) for v in raw["insertion_penalty"])
             errors = tuple(tuple(float(v) for v in row) for row in raw["errors"])
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"cannot read the error surface ({exc})", path=path,
@@ -363,7 +362,7 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
     if isinstance(rows, Sequence):
         for i, row in enumerate(rows):
             try:
-                depth.append(DepthRow(int(row["depth"] if "depth" in row else row["k"]), *(
+                depth.append(DepthRow(int(row["depth"]), *(
                     None if row.get(key) is None else float(row[key])
                     for key in ("one_best_wer", "tuned_wer", "oracle_wer"))))
             except (KeyError, TypeError, ValueError, AttributeError) as exc:

@@ -24,7 +24,7 @@ from rescore.report import build_report, load_system, write_report
 from rescore.report.load import weights_provenance
 from rescore.scoring import oracle_rows
 from rescore.text import tokens
-from rescore.weights import LM, read_weights
+from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
 from rescore.wer import corpus_wer
 
 BUNDLED = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
@@ -90,7 +90,7 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
                        model_path)
     summary = {
         "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
-        "lm_weight": tuned["lm_weight"], "insertion_penalty": tuned["insertion_penalty"],
+        LM_WEIGHT: tuned[LM_WEIGHT], INSERTION_PENALTY: tuned[INSERTION_PENALTY],
         "utterances": before["utterances"],
         "dev_perplexity": ppl["perplexity"],
     }
@@ -161,8 +161,8 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
             "system": name,
             "dev_perplexity": dev_ppl,
             "test_wer": wer["wer"],
-            "lm_weight": tuned["lm_weight"],
-            "insertion_penalty": tuned["insertion_penalty"],
+            LM_WEIGHT: tuned[LM_WEIGHT],
+            INSERTION_PENALTY: tuned[INSERTION_PENALTY],
             "features": tuned["features"],
             **({"mixture_weights": {"background": mixed.weights[0],
                                     "in-domain": mixed.weights[1]},

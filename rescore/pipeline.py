@@ -53,7 +53,16 @@ from rescore.scoring import (
 from rescore.shards import count_lines
 from rescore.text import NORMALISATION, tokens
 from rescore.version import __version__
-from rescore.weights import ACOUSTIC, LM, WORDS, Weights, read_weights_models, weights_text
+from rescore.weights import (
+    ACOUSTIC,
+    INSERTION_PENALTY,
+    LM,
+    LM_WEIGHT,
+    WORDS,
+    Weights,
+    read_weights_models,
+    weights_text,
+)
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
@@ -64,7 +73,7 @@ from rescore.wer import (
 
 log = logging.getLogger(__name__)
 
-TUNE_JSON_KEYS = ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
+TUNE_JSON_KEYS = (LM_WEIGHT, INSERTION_PENALTY, "features", "dev_errors", "dev_wer",
                   "baseline_wer", "oracle_wer", "search")
 
 

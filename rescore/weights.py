@@ -27,6 +27,10 @@ ACOUSTIC = "acoustic"
 LM = "lm"
 WORDS = "words"
 COLUMNS = (ACOUSTIC, LM, WORDS)  # the fixed columns of the feature matrix, in order
+# the weights file's keys for the fixed columns: spelled here only, imported everywhere else
+ACOUSTIC_SCALE = "acoustic_scale"
+LM_WEIGHT = "lm_weight"
+INSERTION_PENALTY = "insertion_penalty"
 
 
 @dataclass(frozen=True)
@@ -58,8 +62,8 @@ class Weights:
 
     def to_dict(self) -> dict[str, Any]:
         """The weights as the weights file spells them (without provenance)."""
-        return {"acoustic_scale": self.acoustic_scale, "lm_weight": self.lm_weight,
-                "insertion_penalty": self.insertion_penalty, "features": dict(self.features)}
+        return {ACOUSTIC_SCALE: self.acoustic_scale, LM_WEIGHT: self.lm_weight,
+                INSERTION_PENALTY: self.insertion_penalty, "features": dict(self.features)}
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any], *, path: str | Path = "") -> Weights:
@@ -68,7 +72,7 @@ class Weights:
         return _from_dict(data, str(path))
 
 
-_WEIGHT_KEYS = ("acoustic_scale", "lm_weight", "insertion_penalty")
+_WEIGHT_KEYS = (ACOUSTIC_SCALE, LM_WEIGHT, INSERTION_PENALTY)
 _FILE_KEYS = (*_WEIGHT_KEYS, "features", "provenance")
 
 

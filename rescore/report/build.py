@@ -32,6 +32,7 @@ from rescore.significance import (
 )
 from rescore.text import NORMALISATION, tokens
 from rescore.version import __version__
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT
 from rescore.wer import (
     CerResult,
     WerResult,
@@ -110,9 +111,9 @@ class Tuning:
         if self.depth:
             out["depth"] = [vars(r).copy() for r in self.depth]
         if self.lm_weight is not None:
-            out["lm_weight"] = self.lm_weight
+            out[LM_WEIGHT] = self.lm_weight
         if self.insertion_penalty is not None:
-            out["insertion_penalty"] = self.insertion_penalty
+            out[INSERTION_PENALTY] = self.insertion_penalty
         return out
 
 
@@ -346,8 +347,8 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
     if isinstance(raw, Mapping):
         try:
             # the one spelling `rescore tune --analysis` writes (tune.results.Surface.to_dict)
-            lm = tuple(float(v) for v in raw["lm_weight"])
-            pen = tuple(float(v) for v in raw["insertion_penalty"])
+            lm = tuple(float(v) for v in raw[LM_WEIGHT])
+            pen = tuple(float(v) for v in raw[INSERTION_PENALTY])
             errors = tuple(tuple(float(v) for v in row) for row in raw["errors"])
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"cannot read the error surface ({exc})", path=path,
@@ -373,4 +374,4 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
         v = data.get(key)
         return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
 
-    return Tuning(surface, tuple(depth), number("lm_weight"), number("insertion_penalty"))
+    return Tuning(surface, tuple(depth), number(LM_WEIGHT), number(INSERTION_PENALTY))

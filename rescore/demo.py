@@ -20,8 +20,8 @@ from rescore.lm.mix import mix_models
 from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
+from rescore.provenance import run_provenance, weights_provenance
 from rescore.report import build_report, load_system, write_report
-from rescore.report.load import weights_provenance
 from rescore.scoring import oracle_rows
 from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
@@ -86,7 +86,7 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     outputs = [model_path, weights_path, analysis_path, rescored, out / "test.best.tsv"]
     outputs += _report(data / "test.jsonl", rescored, out / "report", analysis_path,
                        weights_path,
-                       pipeline.provenance(data=[data / "test.jsonl"], models=models),
+                       run_provenance(data=[data / "test.jsonl"], models=models),
                        model_path)
     summary = {
         "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],

@@ -43,6 +43,7 @@ from rescore.nbest import (
 from rescore.outputs import LineCounter, atomic_outputs, write_texts_atomic
 from rescore.parallel import apply_sharded
 from rescore.progress import Advance, Report, Steps
+from rescore.provenance import run_provenance
 from rescore.scoring import (
     FeatureMatrix,
     LanguageModel,
@@ -51,8 +52,7 @@ from rescore.scoring import (
     oracle_rows,
 )
 from rescore.shards import count_lines
-from rescore.text import NORMALISATION, tokens
-from rescore.version import __version__
+from rescore.text import tokens
 from rescore.weights import (
     ACOUSTIC,
     INSERTION_PENALTY,
@@ -359,20 +359,6 @@ class TuneOutcome:
         return data | {"warnings": list(self.warnings)}
 
 
-def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
-               extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
-    out: dict[str, Any] = {
-        "package": "rescore",
-        "version": __version__,
-        "normalisation": NORMALISATION,
-        "data_sha256": {str(p): sha256_file(p) for p in data},
-        "models": {name: {"path": str(m.path), "sha256": m.sha256} for name, m in models.items()},
-    }
-    if extra:
-        out.update(extra)
-    return out
-
-
 def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
                 refs: Mapping[str, str] | None = None, log_base: float | None = None,
                 costs: bool | None = None, progress: Advance | None = None) -> FeatureMatrix:
@@ -442,7 +428,7 @@ def tune_file(
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
-    prov = provenance(data=[path], models=models, extra=result.search_record())
+    prov = run_provenance(data=[path], models=models, extra=result.search_record())
     files = {weights_path: weights_text(weights_path, result.weights, prov)}
     if analysis_path is not None:
         files[analysis_path] = json.dumps(result.to_dict() | {"provenance": prov},

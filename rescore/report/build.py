@@ -17,6 +17,7 @@ from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
+from rescore.provenance import header
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
 from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
 from rescore.report.rows import UtteranceRow
@@ -30,8 +31,7 @@ from rescore.significance import (
     sign_test,
     wilcoxon_signed_rank,
 )
-from rescore.text import NORMALISATION, tokens
-from rescore.version import __version__
+from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM_WEIGHT
 from rescore.wer import (
     CerResult,
@@ -282,10 +282,7 @@ def build_report(
         UtteranceRow(b.id, len(b.reference), x, y, dict(b.meta) or dict(a.meta))
         for (b, a), x, y in zip(matched, al_b, al_a, strict=True)
     )
-    prov: dict[str, Any] = {
-        "package": "rescore",
-        "version": __version__,
-        "normalisation": NORMALISATION,
+    prov: dict[str, Any] = header() | {
         "bootstrap": {"resamples": resamples, "seed": seed, "confidence": confidence,
                       "generator": f"numpy {np.__version__} default_rng (PCG64)"},
         "matched_pairs": {"min_run": min_run},

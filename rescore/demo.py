@@ -21,11 +21,11 @@ from rescore.lm.mix import compare_models, mix_models
 from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
+from rescore.provenance import run_provenance, weights_provenance
 from rescore.report import build_report, load_system, write_report
-from rescore.report.load import weights_provenance
 from rescore.scoring import OOV, oov_features, oracle_rows
 from rescore.text import tokens
-from rescore.weights import LM, read_weights
+from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
 from rescore.wer import corpus_wer
 
 # shipped inside the package (the wheel carries it); fixtures/demo links here for the tests
@@ -91,11 +91,11 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
     outputs = [model_path, weights_path, analysis_path, rescored, out / "test.best.tsv"]
     outputs += _report(data / "test.jsonl", rescored, out / "report", analysis_path,
                        weights_path,
-                       pipeline.provenance(data=[data / "test.jsonl"], models=models),
+                       run_provenance(data=[data / "test.jsonl"], models=models),
                        model_path)
     summary = {
         "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
-        "lm_weight": tuned["lm_weight"], "insertion_penalty": tuned["insertion_penalty"],
+        LM_WEIGHT: tuned[LM_WEIGHT], INSERTION_PENALTY: tuned[INSERTION_PENALTY],
         "utterances": before["utterances"],
         "dev_perplexity": ppl["perplexity"],
     }
@@ -185,8 +185,8 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
                 "dev_oov_own": like.own[measured[name]].oov}
                if name in measured else {}),
             "test_wer": wer["wer"],
-            "lm_weight": tuned["lm_weight"],
-            "insertion_penalty": tuned["insertion_penalty"],
+            LM_WEIGHT: tuned[LM_WEIGHT],
+            INSERTION_PENALTY: tuned[INSERTION_PENALTY],
             "features": tuned["features"],
             **({"mixture_weights": {"background": mixed.weights[0],
                                     "in-domain": mixed.weights[1]},

@@ -11,7 +11,7 @@ from typing import Any
 from rescore import pipeline
 from rescore.nbest import iter_nbest, one_best
 from rescore.text import tokens
-from rescore.weights import Weights
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, Weights
 from rescore.wer import word_errors
 
 RULE_ROWS = ("min-risk", "consensus")
@@ -40,7 +40,7 @@ def rule_rows(test: Path, out: Path, models: Mapping[str, pipeline.NamedModel],
         written.append(rescored)
         rows.append({"system": f"{system}, --choose {rule}",
                      "dev_perplexity": dev_ppl, "test_wer": chosen_wer(rescored),
-                     "lm_weight": tuned["lm_weight"],
-                     "insertion_penalty": tuned["insertion_penalty"],
+                     LM_WEIGHT: tuned[LM_WEIGHT],
+                     INSERTION_PENALTY: tuned[INSERTION_PENALTY],
                      "features": tuned["features"], "choose": rule})
     return rows, written

@@ -16,9 +16,9 @@ import numpy as np
 from rescore.errors import InputError
 from rescore.limits import TUNING_SCORE_LIMIT
 from rescore.scoring import FeatureMatrix
-from rescore.weights import ACOUSTIC, LM, WORDS
+from rescore.weights import ACOUSTIC, ACOUSTIC_SCALE, INSERTION_PENALTY, LM, LM_WEIGHT, WORDS
 
-_WEIGHT_NAMES = {ACOUSTIC: "acoustic_scale", LM: "lm_weight", WORDS: "insertion_penalty"}
+_WEIGHT_NAMES = {ACOUSTIC: ACOUSTIC_SCALE, LM: LM_WEIGHT, WORDS: INSERTION_PENALTY}
 
 
 def weight_name(column: str) -> str:

@@ -45,6 +45,7 @@ from rescore.nbest import (
 from rescore.outputs import LineCounter, atomic_outputs, write_texts_atomic
 from rescore.parallel import apply_sharded
 from rescore.progress import Advance, Report, Steps
+from rescore.provenance import run_provenance
 from rescore.scoring import (
     FeatureMatrix,
     LanguageModel,
@@ -53,9 +54,17 @@ from rescore.scoring import (
     oracle_rows,
 )
 from rescore.shards import count_lines
-from rescore.text import NORMALISATION, tokens
-from rescore.version import __version__
-from rescore.weights import ACOUSTIC, LM, WORDS, Weights, read_weights_models, weights_text
+from rescore.text import tokens
+from rescore.weights import (
+    ACOUSTIC,
+    INSERTION_PENALTY,
+    LM,
+    LM_WEIGHT,
+    WORDS,
+    Weights,
+    read_weights_models,
+    weights_text,
+)
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
@@ -66,7 +75,7 @@ from rescore.wer import (
 
 log = logging.getLogger(__name__)
 
-TUNE_JSON_KEYS = ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
+TUNE_JSON_KEYS = (LM_WEIGHT, INSERTION_PENALTY, "features", "dev_errors", "dev_wer",
                   "baseline_wer", "oracle_wer", "search")
 
 
@@ -355,20 +364,6 @@ class TuneOutcome:
         return data | {"warnings": list(self.warnings)}
 
 
-def provenance(*, data: Sequence[Path], models: Mapping[str, NamedModel],
-               extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
-    out: dict[str, Any] = {
-        "package": "rescore",
-        "version": __version__,
-        "normalisation": NORMALISATION,
-        "data_sha256": {str(p): sha256_file(p) for p in data},
-        "models": {name: {"path": str(m.path), "sha256": m.sha256} for name, m in models.items()},
-    }
-    if extra:
-        out.update(extra)
-    return out
-
-
 def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
                 refs: Mapping[str, str] | None = None, log_base: float | None = None,
                 costs: bool | None = None, progress: Advance | None = None) -> FeatureMatrix:
@@ -439,7 +434,7 @@ def tune_file(
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
-    prov = provenance(data=[path], models=models, extra=result.search_record())
+    prov = run_provenance(data=[path], models=models, extra=result.search_record())
     # decoding: posterior scale, calibration (and the rule) fitted with the tuned weights
     decoding = fit_decoding(matrix, result.weights, read_dev_texts(
         path, refs=refs, log_base=log_base, costs=costs), choose)

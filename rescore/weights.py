@@ -28,6 +28,10 @@ ACOUSTIC = "acoustic"
 LM = "lm"
 WORDS = "words"
 COLUMNS = (ACOUSTIC, LM, WORDS)  # the fixed columns of the feature matrix, in order
+# the weights file's keys for the fixed columns: spelled here only, imported everywhere else
+ACOUSTIC_SCALE = "acoustic_scale"
+LM_WEIGHT = "lm_weight"
+INSERTION_PENALTY = "insertion_penalty"
 
 
 @dataclass(frozen=True)
@@ -64,9 +68,9 @@ class Weights:
 
     def to_dict(self) -> dict[str, Any]:
         """The weights as the weights file spells them (without provenance)."""
-        out: dict[str, Any] = {"acoustic_scale": self.acoustic_scale,
-                               "lm_weight": self.lm_weight,
-                               "insertion_penalty": self.insertion_penalty,
+        out: dict[str, Any] = {ACOUSTIC_SCALE: self.acoustic_scale,
+                               LM_WEIGHT: self.lm_weight,
+                               INSERTION_PENALTY: self.insertion_penalty,
                                "features": dict(self.features)}
         out.update(_decoding_dict(self))
         return out
@@ -78,7 +82,7 @@ class Weights:
         return _from_dict(data, str(path))
 
 
-_WEIGHT_KEYS = ("acoustic_scale", "lm_weight", "insertion_penalty")
+_WEIGHT_KEYS = (ACOUSTIC_SCALE, LM_WEIGHT, INSERTION_PENALTY)
 _DECODING_KEYS = ("posterior_scale", "calibration", "choose")
 _FILE_KEYS = (*_WEIGHT_KEYS, "features", *_DECODING_KEYS, "provenance")
 

@@ -82,7 +82,7 @@ def test_contract_keys_and_numbers() -> None:
 def test_same_inputs_give_byte_identical_files(tmp_path: Path) -> None:
     # the release review must be able to regenerate the exact files
     before, after = systems()
-    tuning = {"surface": {"lm_values": [0, 1], "penalty_values": [-1, 0, 1],
+    tuning = {"surface": {"lm_weight": [0, 1], "insertion_penalty": [-1, 0, 1],
                           "errors": [[5, 4, 6], [3, 2, 4]]}}
     for name in ("a", "b"):
         write_report(build_report(before, after, provenance={}, tuning=tuning,
@@ -278,11 +278,11 @@ def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
 
 def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
     assert tuning_from_dict({"lm_weight": 0.8}).surface is None
-    depth = tuning_from_dict({"depth": [{"k": 1, "one_best_wer": 0.2, "tuned_wer": 0.2,
-                                         "oracle_wer": 0.2}, {"k": 5, "tuned_wer": 0.1}]}).depth
+    depth = tuning_from_dict({"depth": [{"depth": 1, "one_best_wer": 0.2, "tuned_wer": 0.2,
+                                         "oracle_wer": 0.2}, {"depth": 5, "tuned_wer": 0.1}]}).depth
     assert depth[1].oracle_wer is None and depth[1].tuned_wer == 0.1
     with pytest.raises(InputError, match=r"surface\.errors"):
-        tuning_from_dict({"surface": {"lm_values": [0, 1], "penalty_values": [0],
+        tuning_from_dict({"surface": {"lm_weight": [0, 1], "insertion_penalty": [0],
                                       "errors": [[1, 2]]}})
 
 

@@ -177,10 +177,10 @@ def test_gate_percentage_and_fraction_are_the_same_gate(tmp_path: Path,
 def test_same_inputs_same_bytes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
     tuning = tmp_path / "tuning.json"
     tuning.write_text(json.dumps({
-        "surface": {"lm_values": [0.0, 0.5, 1.0], "penalty_values": [-1.0, 0.0],
+        "surface": {"lm_weight": [0.0, 0.5, 1.0], "insertion_penalty": [-1.0, 0.0],
                     "errors": [[9, 8], [7, 5], [6, 7]]},
-        "depth": [{"k": 1, "one_best_wer": 0.2, "tuned_wer": 0.2, "oracle_wer": 0.2},
-                  {"k": 2, "one_best_wer": 0.2, "tuned_wer": 0.1, "oracle_wer": 0.05}],
+        "depth": [{"depth": 1, "one_best_wer": 0.2, "tuned_wer": 0.2, "oracle_wer": 0.2},
+                  {"depth": 2, "one_best_wer": 0.2, "tuned_wer": 0.1, "oracle_wer": 0.05}],
         "lm_weight": 0.5, "insertion_penalty": 0.0, "search": "grid"}))
     for name in ("a", "b"):
         res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
@@ -195,7 +195,7 @@ def test_same_inputs_same_bytes(tmp_path: Path, nbest_pair: tuple[Path, Path]) -
 
 def test_bad_tuning_file(tmp_path: Path, nbest_pair: tuple[Path, Path]) -> None:
     tuning = tmp_path / "tuning.json"
-    tuning.write_text('{"surface": {"lm_values": [0, 1], "penalty_values": [0], '
+    tuning.write_text('{"surface": {"lm_weight": [0, 1], "insertion_penalty": [0], '
                       '"errors": [[1]]}}')
     res = invoke(["report", "--before", nbest_pair[0], "--after", nbest_pair[1],
                   "-o", tmp_path / "rep", "--tuning", tuning])

@@ -15,7 +15,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from rescore.errors import InputError, UsageError
+from rescore.cli.flags import in_flags
+from rescore.errors import InputError, ParameterError
 from rescore.scoring import FeatureMatrix, choose
 from rescore.text import tokens
 from rescore.tune import (
@@ -134,9 +135,12 @@ def test_parse_grid_gives_evenly_spaced_points_inclusive() -> None:
     ("30:0:10", "must not exceed"), ("0:30:1", "1-point"), ("nan:1:3", "finite"),
 ])
 def test_parse_grid_rejects_bad_text(text: str, message: str) -> None:
-    with pytest.raises(UsageError, match=message) as caught:
-        parse_grid(text, option="--grid-lm")
-    assert caught.value.field == "--grid-lm"
+    with pytest.raises(ParameterError, match=message) as caught:
+        parse_grid(text, option="lm_grid")
+    # the library names the Python parameter; the command line maps it to its flag
+    assert caught.value.field == "lm_grid"
+    assert isinstance(caught.value, ValueError)
+    assert in_flags(caught.value).startswith("--grid-lm: ")
 
 
 @settings(max_examples=60)
@@ -402,7 +406,7 @@ def test_to_dict_has_the_contract_keys_and_is_json() -> None:
     ({"search": "simplex"}, "unknown search"),
 ])
 def test_tune_usage_errors(kwargs: dict[str, object], message: str) -> None:
-    with pytest.raises(UsageError, match=message):
+    with pytest.raises(ParameterError, match=message):
         tune(signal_set(n_utt=5), **kwargs)  # type: ignore[arg-type]
 
 

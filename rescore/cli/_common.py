@@ -32,6 +32,7 @@ from rich.progress import (
 from rich.table import Table
 from rich.text import Text
 
+from rescore.cli.flags import in_flags
 from rescore.errors import RescoreError
 from rescore.outputs import DISK_FULL, disk_full_error
 from rescore.progress import Report
@@ -84,7 +85,7 @@ def guarded(fn: Callable[P, R]) -> Callable[P, R]:
         except RescoreError as exc:
             if state.debug:
                 raise
-            raise fail(str(exc), exc.exit_code) from None
+            raise fail(in_flags(exc), exc.exit_code) from None
         except KeyboardInterrupt as exc:
             if state.debug:
                 raise

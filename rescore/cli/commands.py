@@ -31,7 +31,7 @@ from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.scoring import oov_features
 from rescore.shards import count_lines
-from rescore.weights import read_weights
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -235,8 +235,8 @@ def tune(
     else:
         gap = data.get("cv_gap")
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
-            ["LM weight", data["lm_weight"]],
-            ["insertion penalty", data["insertion_penalty"]],
+            ["LM weight", data[LM_WEIGHT]],
+            ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
             ["baseline WER", pct(data["baseline_wer"])],
             ["dev WER (tuned)", pct(data["dev_wer"])],

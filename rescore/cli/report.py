@@ -19,6 +19,7 @@ from rescore.lm import load_model
 from rescore.lm.overlap import OverlapSummary, overlap_summary
 from rescore.nbest import read_refs
 from rescore.outputs import check_not_inputs
+from rescore.provenance import data_hashes, weights_provenance
 from rescore.readers import read_json
 from rescore.report import (
     FILES,
@@ -31,7 +32,6 @@ from rescore.report import (
 )
 from rescore.report.confidence import load_confidences
 from rescore.report.critical import classes_with_terms, read_terms
-from rescore.report.load import weights_provenance
 from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
 
 SystemOpt = Annotated[Path, typer.Option(
@@ -156,7 +156,7 @@ def report(
     tuning_data = None if tuning is None else tuning_from_dict(_tuning_record(tuning),
                                                                path=str(tuning))
     files = [p for p in (before, after, refs, tuning, terms) if p is not None]
-    provenance: dict[str, Any] = {"data_sha256": {str(p): sha256_file(p) for p in files}}
+    provenance: dict[str, Any] = {"data_sha256": data_hashes(files)}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
     models = _leak_models(lm, weights)

@@ -26,7 +26,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.arrays import F64, I64
-from rescore.errors import UsageError
+from rescore.errors import ParameterError
 from rescore.lm import fingerprint, hashindex
 from rescore.lm.compare import LikeForLike, shared_vocabulary
 from rescore.lm.evaluate import perplexity
@@ -47,12 +47,12 @@ def check_weights(weights: Sequence[float], n: int) -> F64:
     """Weights as an array: ``n`` non-negative numbers summing to one."""
     w = np.asarray([float(x) for x in weights], dtype=np.float64)
     if len(w) != n:
-        raise UsageError(f"{len(w)} weights given for {n} models", field="--weights")
+        raise ParameterError(f"{len(w)} weights given for {n} models", field="weights")
     if not np.all(np.isfinite(w)) or np.any(w < 0):
-        raise UsageError(f"weights must be non-negative numbers, got {list(weights)}",
-                         field="--weights")
+        raise ParameterError(f"weights must be non-negative numbers, got {list(weights)}",
+                             field="weights")
     if abs(float(w.sum()) - 1.0) > 1e-6:
-        raise UsageError(f"weights must sum to 1, got {float(w.sum()):.6g}", field="--weights")
+        raise ParameterError(f"weights must sum to 1, got {float(w.sum()):.6g}", field="weights")
     return w
 
 
@@ -61,12 +61,12 @@ class Mixture:
 
     def __init__(self, models: Sequence[NGramModel], weights: Sequence[float] | None = None):
         if not models:
-            raise UsageError("a mixture needs at least one model")
+            raise ParameterError("a mixture needs at least one model")
         for i, m in enumerate(models):
             m._fitted()
             if m.closed_vocab:
-                raise UsageError(f"model {i + 1} has a closed vocabulary; mixing needs "
-                                 "open-vocabulary models (unknown words as <unk>)")
+                raise ParameterError(f"model {i + 1} has a closed vocabulary; mixing needs "
+                                     "open-vocabulary models (unknown words as <unk>)")
         self.models = list(models)
         self.vocab = union_vocabulary(self.models)
         n = len(self.models)
@@ -170,9 +170,9 @@ def estimate_weights(component_logp: F64, *, start: Sequence[float] | None = Non
     """
     n_tok, n_models = component_logp.shape
     if n_tok == 0:
-        raise UsageError("the tuning text has no tokens to estimate mixture weights on")
+        raise ParameterError("the tuning text has no tokens to estimate mixture weights on")
     if not np.all(np.isfinite(component_logp).any(axis=1)):
-        raise UsageError("some tuning token has zero probability under every model")
+        raise ParameterError("some tuning token has zero probability under every model")
     w = (np.full(n_models, 1.0 / n_models) if start is None
          else check_weights(start, n_models))
     # scale each row by its largest probability: posteriors and gains are unchanged
@@ -256,8 +256,8 @@ def mix_models(models: Sequence[NGramModel], tune_on: Sequence[Sequence[str]] | 
     mixture = Mixture(models)
     if tune_on is None:
         if weights is None:
-            raise UsageError("give tuning text to estimate weights on, or fixed weights",
-                             field="--tune-on")
+            raise ParameterError("give tuning text to estimate weights on, or fixed weights",
+                                 field="tune_on")
         mixture.weights = check_weights(weights, len(models))
         merged = merge(mixture)
         return mixture, merged, MixResult(tuple(float(x) for x in mixture.weights), None, None)

@@ -17,6 +17,7 @@ from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
 from rescore.progress import Steps
+from rescore.provenance import header
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, Breakdown, build_breakdown
 from rescore.report.critical import ClassResult, CriticalClass, builtin_classes, critical_words
 from rescore.report.rows import UtteranceRow
@@ -30,8 +31,8 @@ from rescore.significance import (
     sign_test,
     wilcoxon_signed_rank,
 )
-from rescore.text import NORMALISATION, tokens
-from rescore.version import __version__
+from rescore.text import tokens
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT
 from rescore.wer import (
     CerResult,
     WerResult,
@@ -110,9 +111,9 @@ class Tuning:
         if self.depth:
             out["depth"] = [vars(r).copy() for r in self.depth]
         if self.lm_weight is not None:
-            out["lm_weight"] = self.lm_weight
+            out[LM_WEIGHT] = self.lm_weight
         if self.insertion_penalty is not None:
-            out["insertion_penalty"] = self.insertion_penalty
+            out[INSERTION_PENALTY] = self.insertion_penalty
         return out
 
 
@@ -284,10 +285,7 @@ def build_report(
         UtteranceRow(b.id, len(b.reference), x, y, dict(b.meta) or dict(a.meta))
         for (b, a), x, y in zip(matched, al_b, al_a, strict=True)
     )
-    prov: dict[str, Any] = {
-        "package": "rescore",
-        "version": __version__,
-        "normalisation": NORMALISATION,
+    prov: dict[str, Any] = header() | {
         "bootstrap": {"resamples": resamples, "seed": seed, "confidence": confidence,
                       "generator": f"numpy {np.__version__} default_rng (PCG64)"},
         "matched_pairs": {"min_run": min_run},
@@ -348,10 +346,9 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
     raw = data.get("surface")
     if isinstance(raw, Mapping):
         try:
-            # `rescore tune --analysis` writes lm_weight/insertion_penalty axes
-            lm = tuple(float(v) for v in raw.get("lm_weight", raw.get("lm_values")))
-            pen = tuple(float(v) for v in raw.get("insertion_penalty",
-                                                  raw.get("penalty_values")))
+            # the one spelling `rescore tune --analysis` writes (tune.results.Surface.to_dict)
+            lm = tuple(float(v) for v in raw[LM_WEIGHT])
+            pen = tuple(float(v) for v in raw[INSERTION_PENALTY])
             errors = tuple(tuple(float(v) for v in row) for row in raw["errors"])
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"cannot read the error surface ({exc})", path=path,
@@ -366,7 +363,7 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
     if isinstance(rows, Sequence):
         for i, row in enumerate(rows):
             try:
-                depth.append(DepthRow(int(row["depth"] if "depth" in row else row["k"]), *(
+                depth.append(DepthRow(int(row["depth"]), *(
                     None if row.get(key) is None else float(row[key])
                     for key in ("one_best_wer", "tuned_wer", "oracle_wer"))))
             except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -377,4 +374,4 @@ def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tun
         v = data.get(key)
         return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
 
-    return Tuning(surface, tuple(depth), number("lm_weight"), number("insertion_penalty"))
+    return Tuning(surface, tuple(depth), number(LM_WEIGHT), number(INSERTION_PENALTY))

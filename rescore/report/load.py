@@ -5,15 +5,12 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
 
-from rescore.checksum import sha256_file
 from rescore.errors import InputError
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
 from rescore.readers import iter_text_lines
 from rescore.report.build import Pair
 from rescore.text import tokens
-from rescore.weights import read_weights
 
 
 def is_nbest_file(path: str | Path) -> bool:
@@ -73,12 +70,3 @@ def _ids(ids: list[str], limit: int = 5) -> str:
     return ", ".join(ids[:limit]) + (f" and {len(ids) - limit} more" if len(ids) > limit else "")
 
 
-def weights_provenance(path: str | Path) -> dict[str, Any]:
-    """The weights in a weights file, its path and SHA-256, for a report's provenance.
-
-    The file is read with the tuner's strict reader, so a report never records weights
-    that ``rescore apply`` would refuse.
-    """
-    weights = read_weights(path).to_dict()
-    return {"file": str(path), "sha256": sha256_file(path), **weights,
-            "features": dict(sorted(weights["features"].items()))}

@@ -9,6 +9,7 @@ from typing import Any
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
 from rescore.report.build import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.build import Report
+from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT
 
 TITLE = "Release report: WER before and after rescoring"
 
@@ -135,7 +136,7 @@ def provenance_rows(report: Report) -> list[tuple[str, str]]:
 def weights_text(weights: dict[str, Any]) -> str:
     """The weights exactly as recorded (shortest round-trip floats), then file and SHA-256."""
     parts = [f"{name} {weights[name]!r}"
-             for name in ("lm_weight", "insertion_penalty", "acoustic_scale") if name in weights]
+             for name in (LM_WEIGHT, INSERTION_PENALTY, ACOUSTIC_SCALE) if name in weights]
     parts += [f"feature {name} {value!r}"
               for name, value in sorted(weights.get("features", {}).items())]
     return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"

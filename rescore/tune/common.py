@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, ParameterError
 from rescore.scoring import FeatureMatrix, chosen_errors, oracle_rows
 from rescore.tune.results import Surface, TuneResult
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
@@ -48,7 +48,7 @@ def _check_matrix(matrix: FeatureMatrix) -> tuple[np.ndarray, int]:
 def _column_index(matrix: FeatureMatrix, name: str) -> int:
     if name not in matrix.names:
         known = ", ".join(matrix.names)
-        raise UsageError(f"no column {name!r} to tune; columns are {known}", field="tune")
+        raise ParameterError(f"no column {name!r} to tune; columns are {known}", field="tune")
     return matrix.names.index(name)
 
 

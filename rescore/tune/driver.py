@@ -9,7 +9,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from rescore.errors import UsageError
+from rescore.errors import ParameterError
 from rescore.progress import Advance, Report, Steps
 from rescore.scoring import FeatureMatrix, chosen_errors
 from rescore.tune.common import (
@@ -198,19 +198,19 @@ def tune(
     for name in feats:
         if name in (ACOUSTIC, LM, WORDS, lm_column) or name not in matrix.names:
             known = [n for n in matrix.names if n not in (ACOUSTIC, LM, WORDS, lm_column)]
-            raise UsageError(f"no feature {name!r} to tune; features here: "
-                             f"{', '.join(known) or 'none'}", field="--feature")
+            raise ParameterError(f"no feature {name!r} to tune; features here: "
+                                     f"{', '.join(known) or 'none'}", field="features")
     method = search if search is not None else ("exact" if feats else "grid")
     if method not in ("grid", "exact"):
-        raise UsageError(f"unknown search {method!r}; expected grid or exact", field="--search")
+        raise ParameterError(f"unknown search {method!r}; expected grid or exact", field="search")
     if method == "grid" and feats:
-        raise UsageError("grid search tunes only the LM weight and insertion penalty; "
-                         "use the exact search to tune features", field="--search")
+        raise ParameterError("grid search tunes only the LM weight and insertion penalty; "
+                             "use the exact search to tune features", field="search")
     if not (math.isfinite(cv_warn) and cv_warn >= 0.0):
-        raise UsageError(f"the warning threshold must be a number >= 0, got {cv_warn!r}",
-                         field="--warn-cv-gap")
-    lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "--grid-lm")
-    pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "--grid-penalty")
+        raise ParameterError(f"the warning threshold must be a number >= 0, got {cv_warn!r}",
+                             field="cv_warn")
+    lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "lm_grid")
+    pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "penalty_grid")
     widenings: tuple[Widening, ...] = ()
     widened: TuneResult | None = None
     if method == "grid" and widen:

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rescore.errors import UsageError
+from rescore.errors import ParameterError
 from rescore.progress import Advance
 from rescore.scoring import FeatureMatrix, chosen_errors
 from rescore.tune.common import (
@@ -186,7 +186,7 @@ def _bounds_for(names: Sequence[str], bounds: Mapping[str, tuple[float, float]] 
         else:
             a, b = -DEFAULT_BOUND, DEFAULT_BOUND
         if not (math.isfinite(a) and math.isfinite(b)) or a > b:
-            raise UsageError(f"bad bounds {a!r}..{b!r} for {name!r}", field="bounds")
+            raise ParameterError(f"bad bounds {a!r}..{b!r} for {name!r}", field="bounds")
         lo.append(float(a))
         hi.append(float(b))
     return np.array(lo), np.array(hi)
@@ -300,7 +300,7 @@ def exact_search(
     errors, _ = _check_matrix(matrix)
     tuned = tuple(dict.fromkeys(tune))
     if not tuned:
-        raise UsageError("nothing to tune", field="tune")
+        raise ParameterError("nothing to tune", field="tune")
     names = tuple(dict.fromkeys((*matrix.names, *start.features)))
     idx = np.array([_column_index(matrix, t) for t in tuned])
     lo, hi = _bounds_for(tuned, bounds)

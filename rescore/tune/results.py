@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from rescore.weights import Weights
+from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT, Weights
 
 _SIDE_LABELS = {"lm_low": "lowest LM weight", "lm_high": "highest LM weight",
                 "penalty_low": "lowest penalty", "penalty_high": "highest penalty"}
@@ -24,7 +24,7 @@ class Surface:
     errors: np.ndarray
 
     def to_dict(self) -> dict[str, Any]:
-        return {"lm_weight": self.lm.tolist(), "insertion_penalty": self.penalty.tolist(),
+        return {LM_WEIGHT: self.lm.tolist(), INSERTION_PENALTY: self.penalty.tolist(),
                 "errors": self.errors.tolist()}
 
 
@@ -144,15 +144,15 @@ class TuneResult:
     def to_dict(self) -> dict[str, Any]:
         """The contract's tune JSON keys, then extras (acoustic scale, cv, depth, surface)."""
         out: dict[str, Any] = {
-            "lm_weight": self.weights.lm_weight,
-            "insertion_penalty": self.weights.insertion_penalty,
+            LM_WEIGHT: self.weights.lm_weight,
+            INSERTION_PENALTY: self.weights.insertion_penalty,
             "features": dict(self.weights.features),
             "dev_errors": self.dev_errors,
             "dev_wer": self.dev_wer,
             "baseline_wer": self.baseline_wer,
             "oracle_wer": self.oracle_wer,
             "search": self.search,
-            "acoustic_scale": self.weights.acoustic_scale,
+            ACOUSTIC_SCALE: self.weights.acoustic_scale,
             "tuned": list(self.tuned),
             "reference_words": self.reference_words,
             "utterances": self.utterances,

@@ -419,7 +419,7 @@ def test_output_that_is_a_folder_is_refused_before_the_work(
     demo = FIXTURES / "demo"
     args = {"tune": ["tune", demo / "dev.jsonl", "--lm", demo_lm, "-o", folder],
             "lm build": ["lm", "build", demo / "dev.txt", "-o", folder],
-            "lm mix": ["lm", "mix", demo_lm, demo_lm, "--weights", "0.5,0.5", "-o", folder]}
+            "lm mix": ["lm", "mix", demo_lm, demo_lm, "--fixed-weights", "0.5,0.5", "-o", folder]}
     result = run(args[command])
     assert result.exit_code == 1
     assert result.stderr == f"error: {folder}: is a folder, expected a file path\n"

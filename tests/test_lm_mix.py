@@ -252,14 +252,14 @@ def test_cli_mix_json_and_output_model(models: dict[str, NGramModel], tmp_path: 
 
 def test_cli_mix_fixed_weights(models: dict[str, NGramModel], tmp_path: Path) -> None:
     a, b, held = _write_models(tmp_path, models)
-    res = run(["lm", "mix", a, b, "--weights", "0.7,0.3", "--tune-on", held,
+    res = run(["lm", "mix", a, b, "--fixed-weights", "0.7,0.3", "--tune-on", held,
                "-o", tmp_path / "m.lm", "--json"])
     assert res.exit_code == 0, res.stderr
     assert json.loads(res.stdout)["weights"] == [0.7, 0.3]
-    assert run(["lm", "mix", a, b, "--weights", "0.7,0.3", "-o", tmp_path / "n.lm"]
+    assert run(["lm", "mix", a, b, "--fixed-weights", "0.7,0.3", "-o", tmp_path / "n.lm"]
                ).exit_code == 0
-    for bad in (["--weights", "0.7,0.2"], ["--weights", "0.5,0.25,0.25"],
-                ["--weights", "x,y"], []):
+    for bad in (["--fixed-weights", "0.7,0.2"], ["--fixed-weights", "0.5,0.25,0.25"],
+                ["--fixed-weights", "x,y"], []):
         res = run(["lm", "mix", a, b, *bad, "-o", tmp_path / "bad.lm"])
         assert res.exit_code == 2, (bad, res.stdout, res.stderr)
         assert res.stderr.startswith("error:")

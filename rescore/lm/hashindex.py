@@ -30,7 +30,8 @@ def table_bits(n_keys: int) -> int:
     return max(4, int(np.ceil(max(n_keys, 1) / MAX_LOAD) - 1).bit_length())
 
 
-def _home(keys: U64, bits: int) -> I64:
+def home(keys: U64, bits: int) -> I64:
+    """The slot where probing for each key starts in a table of ``2**bits`` slots."""
     with np.errstate(over="ignore"):
         mixed = keys * _GOLDEN
     return (mixed >> np.uint64(64 - bits)).astype(np.int64)
@@ -42,7 +43,7 @@ def build_slots(keys: U64) -> I32:
     mask = (1 << bits) - 1
     slots = np.full(1 << bits, EMPTY, dtype=np.int32)
     pending = np.arange(len(keys), dtype=np.int64)
-    where = _home(keys, bits)
+    where = home(keys, bits)
     while pending.size:
         free = slots[where] == EMPTY
         cand = pending[free]
@@ -62,7 +63,7 @@ def lookup(slots: I32, keys: U64, queries: U64) -> I64:
     mask = len(slots) - 1
     result = np.full(len(queries), -1, dtype=np.int64)
     active = np.arange(len(queries), dtype=np.int64)
-    where = _home(queries, bits)
+    where = home(queries, bits)
     q = queries
     while active.size:
         at = slots[where].astype(np.int64)
@@ -104,7 +105,7 @@ def lookup_values(held: U64, values: I32, queries: U64, missing: int) -> I32:
     gather fewer (the value is read from the slot it was found in)."""
     bits = len(held).bit_length() - 1
     mask = len(held) - 1
-    where = _home(queries, bits)
+    where = home(queries, bits)
     got = held[where]
     out = values[where]
     miss = got != queries

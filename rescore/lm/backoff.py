@@ -50,7 +50,7 @@ def _narrow(ids: I64) -> I64:
     """``ids`` as 32-bit integers where they fit (the same values: every use of the ids
     indexes with them or widens them first)."""
     if len(ids) and int(ids.max()) < (1 << 31) and int(ids.min()) >= 0:
-        return ids.astype(np.int32)  # type: ignore[return-value]
+        return ids.astype(np.int32)
     return ids
 
 
@@ -273,9 +273,11 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
 
 def _let_go(work: _Work, k: int) -> None:
     """Drop the estimation arrays of order ``k`` (its tables are made)."""
-    for arrays in (work.suffix, work.first, work.prob, work.gamma):
-        if len(arrays) >= k:
-            arrays[k - 1] = arrays[k - 1][:0]
+    for ids in (work.suffix, work.first):
+        ids[k - 1] = ids[k - 1][:0]
+    for values in (work.prob, work.gamma):
+        if len(values) >= k:
+            values[k - 1] = values[k - 1][:0]
     work.slots.pop(k, None)
 
 

@@ -226,19 +226,26 @@ class BucketIndex:
         if not len(self.rest):
             return np.full(len(queries), EMPTY, dtype=np.int64)
         h = self._hash(queries)
-        bucket = (h >> np.uint64(self.shift)).astype(np.intp)
         want = (h & np.uint64((1 << self.shift) - 1)).astype(self.rest.dtype)
-        at = self.starts[bucket].astype(np.intp)
-        end = self.starts[bucket + 1].astype(np.intp)
+        h >>= np.uint64(self.shift)
+        bucket = h.view(np.int64)  # each query's bucket, in place
+        at = self.starts.take(bucket).astype(np.intp)
+        bucket += 1
+        end = self.starts.take(bucket).astype(np.intp)
+        del h, bucket
         rest = self.rest
         got = rest.take(at, mode="clip")  # an empty last bucket points one past the end
-        hit = (got == want) & (at < end)
-        result = np.where(hit, at, EMPTY).astype(np.int64, copy=False)
+        live = at < end
+        result = np.where((got == want) & live, at, EMPTY)
+        live &= got < want
+        pending = np.flatnonzero(live)
+        at = at[pending]
         at += 1
-        pending = np.flatnonzero((got < want) & (at < end))
-        at, end, want = at[pending], end[pending], want[pending]
+        end, want = end[pending], want[pending]
+        more = at < end
+        pending, at, end, want = pending[more], at[more], end[more], want[more]
         while pending.size:
-            got = rest[at]
+            got = rest.take(at)
             hit = got == want
             if hit.any():
                 result[pending[hit]] = at[hit]

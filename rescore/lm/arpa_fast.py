@@ -27,7 +27,7 @@ from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 
-BLOCK_BYTES = 2 << 20
+BLOCK_BYTES = 1 << 20
 WORD_BYTES = 16  # words up to this length are matched as two integers, longer ones by a dict
 _LOW = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [(1 << 64) - 1], dtype=np.uint64)
 _KEEP = np.array([255, 0, 255], dtype=np.uint8)  # the number, the words, the rest of a line
@@ -372,6 +372,7 @@ class _FastReader:
         else:
             give_back_freed_memory()  # the blocks' temporaries: the peak comes next
             self.add_order(order)
+            give_back_freed_memory()  # the read arrays given up, before the next order
         self.current = None
 
     def add_order(self, order: _Order) -> None:
@@ -384,10 +385,10 @@ class _FastReader:
         self.index.append(index)
         # the arrays given up are reused: the keys' memory takes the probabilities, the
         # read probabilities' memory the back-off weights
-        logp = np.take(order.prob, perm, out=keys.view(np.float64))
+        logp = _permuted(order.prob, perm, keys.view(np.float64))
         self.logp.append(ln10(logp))
         if order.bow is not None:
-            bow = np.take(order.bow, perm, out=order.prob)
+            bow = _permuted(order.bow, perm, order.prob)
             self.bow.append(ln10(bow))
             order.bow = None
         order.prob = np.zeros(0)
@@ -397,6 +398,15 @@ class _FastReader:
             raise Slow
         return BackoffTables(self.vocab, self.logp, self.bow, [], [], self.index)
 
+
+
+def _permuted(values: F64, perm: npt.NDArray[Any], out: F64) -> F64:
+    """``values[perm]`` into ``out``, a slice at a time (numpy widens 32-bit positions to
+    a temporary copy: a slice's, not the whole permutation's)."""
+    step = 1 << 18
+    for at in range(0, len(perm), step):
+        np.take(values, perm[at:at + step], out=out[at:at + step])
+    return out
 
 
 def read_fast(fh: Any) -> tuple[BackoffTables, dict[str, Any]]:

@@ -165,7 +165,7 @@ def estimate(
         else:
             work.gamma.append(gamma)
         smoothing()
-    work.gamma.append(np.ones(sizes[-1]))  # the top order backs off to nothing
+    work.gamma.append(np.ones(0))  # the top order backs off to nothing: no weights
 
     p1 = alphas[0] + gamma0 / n_pred
     p1[~predictable] = 0.0
@@ -317,10 +317,14 @@ def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
             if k + 2 <= order:
                 pending[k + 2] = pool.submit(index, k + 2)
             keep = work.keep[k - 1]
+            every = bool(keep.all())  # then the log is taken in place (the arrays go next)
             with np.errstate(divide="ignore"):
-                logp.append(np.log(work.prob[k - 1][keep]))
+                prob = work.prob[k - 1]
+                logp.append(np.log(prob, out=prob) if every else np.log(prob[keep]))
                 if k < order:
-                    bow.append(np.log(work.gamma[k - 1][keep]))
+                    gamma = work.gamma[k - 1]
+                    bow.append(np.log(gamma, out=gamma) if every else np.log(gamma[keep]))
+                del prob
             keys.append(kk)
             slots.append(ss)
             del kk, ss

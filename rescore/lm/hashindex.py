@@ -168,9 +168,10 @@ class BucketIndex:
 
     @classmethod
     def build(cls, keys: U64, key_space: int, *, overwrite: bool = False
-              ) -> tuple[BucketIndex, I64]:
+              ) -> tuple[BucketIndex, npt.NDArray[Any]]:
         """The index of ``keys`` (each below ``key_space``) and the permutation that puts
-        them (and anything stored beside them) in its order: ``keys[perm]``. A key given
+        them (and anything stored beside them) in its order: ``keys[perm]`` (32-bit
+        positions when they fit, else 64-bit). A key given
         twice sets ``duplicates``. ``overwrite`` lets the hashes replace ``keys`` in place
         (less memory; the caller gives the array up)."""
         bits = cls.key_bits(key_space)
@@ -189,7 +190,7 @@ class BucketIndex:
         rest_type = np.uint32 if shift <= 32 else np.uint64
         rest = np.empty(len(h), dtype=rest_type)
         low = np.uint64((1 << shift) - 1)
-        step = 1 << 20
+        step = 1 << 18  # temporaries of 2 MiB at most
         place_bits = max(1, (len(h) - 1).bit_length())
         if bits + place_bits <= 64:
             # each hash with its position in the low bits, sorted in place: the order of
@@ -198,13 +199,23 @@ class BucketIndex:
             for at in range(0, len(h), step):
                 h[at:at + step] |= np.arange(at, min(at + step, len(h)), dtype=np.uint64)
             h.sort()
-            perm = (h & np.uint64((1 << place_bits) - 1)).view(np.int64)
-            h >>= np.uint64(place_bits)  # the hashes in sorted order
+            # the positions (4 bytes each when they fit), the hashes, their rests
+            perm: npt.NDArray[Any] = np.empty(len(h), np.int32 if place_bits < 32 else np.int64)
+            places = np.uint64((1 << place_bits) - 1)
+            for at in range(0, len(h), step):
+                part = h[at:at + step]
+                perm[at:at + step] = part & places
+                part >>= np.uint64(place_bits)  # the hash, in place
+                rest[at:at + step] = part & low
             duplicates = False
             for at in range(0, len(h), step):
                 part = h[max(at - 1, 0):at + step]
                 duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
-                rest[at:at + step] = h[at:at + step] & low
+            h >>= np.uint64(shift)  # each key's bucket, in increasing order
+            starts = np.empty((1 << b) + 1, dtype=count_type)
+            for at in range(0, len(starts), step):  # the first key of each bucket
+                starts[at:at + step] = np.searchsorted(
+                    h, np.arange(at, min(at + step, len(starts)), dtype=np.uint64))
         else:
             perm = np.argsort(h)  # introsort: no buffer beside the result
             # the rests in sorted order, a slice at a time (no sorted copy of every hash)
@@ -214,13 +225,13 @@ class BucketIndex:
                 duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
                 part &= low
                 rest[at:at + step] = part[1:] if at else part
-        h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
-        starts = np.zeros((1 << b) + 1, dtype=count_type)
-        np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
+            h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
+            starts = np.zeros((1 << b) + 1, dtype=count_type)
+            np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
         del h
         index = cls(bits, shift, starts, rest)
         index.duplicates = duplicates
-        return index, perm.astype(np.int64, copy=False)
+        return index, perm
 
     def __len__(self) -> int:
         return len(self.rest)

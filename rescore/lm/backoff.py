@@ -50,7 +50,7 @@ def _narrow(ids: I64) -> I64:
     """``ids`` as 32-bit integers where they fit (the same values: every use of the ids
     indexes with them or widens them first)."""
     if len(ids) and int(ids.max()) < (1 << 31) and int(ids.min()) >= 0:
-        return ids.astype(np.int32)
+        return ids.astype(np.int32, copy=False)
     return ids
 
 

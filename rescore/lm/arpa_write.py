@@ -138,16 +138,16 @@ def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
     ext[:, 5:10] = chars[low_half]
     ext[:, 10], ext[:, 11], ext[:, 12] = ord("."), ord("0"), ord("-")
     code = np.where(ok, (e + 4) * 2 + neg, len(_LAYOUTS)).astype(np.int8)
-    perm = np.argsort(code, kind="stable")  # a radix sort of small integers
-    bounds = np.searchsorted(code[perm], np.arange(len(_LAYOUTS) + 1))
-    ext = ext[perm]
-    grouped = np.zeros((n, 16), dtype=np.uint8)
+    present = np.bincount(code, minlength=len(_LAYOUTS) + 1)
     for c in range(len(_LAYOUTS)):
-        a, b = int(bounds[c]), int(bounds[c + 1])
-        if b > a:
-            src = _LAYOUTS[c]
-            grouped[a:b, :len(src)] = ext[a:b, src]
-    out[perm, :16] = grouped
+        if present[c] == 0:
+            continue
+        src = _LAYOUTS[c]
+        if present[c] == n:  # one layout for the whole block (common): no row selection
+            out[:, :len(src)] = ext[:, src]
+            break
+        rows = np.flatnonzero(code == c)
+        out[rows, :len(src)] = ext[rows][:, src]
     lead = e >= 0
     int_len = np.where(lead, e + 1, 0)
     frac_len = np.where(lead, np.maximum(kept - int_len, 0), kept)

@@ -556,6 +556,16 @@ GOOD = '{"acoustic_scale": 1, "lm_weight": 0.8, "insertion_penalty": -0.5, "feat
     ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 1e999}', "insertion_penalty",
      "finite"),
     ("[1, 2]", None, "JSON object"),
+    # the decoding keys: the scale of a probability is not negative, the rule is one of three
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "posterior_scale": -1}',
+     "posterior_scale", "non-negative"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "choose": "vote"}',
+     "choose", "expected best, min-risk or consensus"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "provenance": 3}',
+     "provenance", "expected an object"),
+    # a misspelt key is named before the weight it leaves missing
+    ('{"acoustic_scale": 1, "lm_wieght": 1, "insertion_penalty": 0}', "lm_wieght",
+     "unknown key"),
 ])
 def test_read_weights_is_strict(tmp_path: Path, text: str, field: str | None,
                                 message: str) -> None:

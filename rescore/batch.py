@@ -89,9 +89,9 @@ def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None
             f"{utt['id']}\t{_one_line(utt.get('chosen', one_best(utt)['text']))}\n"
             for utt in scored))
     changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
-    # ``words`` is set on every hypothesis by rescore_batch; records written as they were
+    # ``word_count`` is set on every hypothesis by rescore_batch; records written as they were
     # read may lack it, and then the text is counted
-    empty = sum(1 for utt in scored if not one_best(utt).get("words", len(tokens(
+    empty = sum(1 for utt in scored if not one_best(utt).get("word_count", len(tokens(
         one_best(utt)["text"]))))
     return WriteCounts(changed, empty)
 
@@ -120,7 +120,7 @@ _TSV_BREAKS = str.maketrans("\t\n\r", "   ")
 def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
                   lms: Mapping[str, LanguageModel], features: Sequence[str],
                   weights: Weights) -> tuple[list[Utterance], ListStats]:
-    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
+    """The batch's records with ``lm``, ``word_count``, ``total`` and ``best`` filled in, and
     the sign and order counts of their acoustic scores."""
     m = build_matrix(batch, path=path, lms=lms, features=features).matrix
     with np.errstate(over="ignore", invalid="ignore"):  # refused below, naming the weight
@@ -135,10 +135,12 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     if LM in m.names:
         for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, scores,
                                  strict=True):
-            hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
+            hyp.pop("words", None)  # the name before word_count, on a file rescored again
+            hyp["lm"], hyp["word_count"], hyp["total"] = lm, w, t
     else:
         for hyp, w, t in zip(hyps, words, scores, strict=True):
-            hyp["words"], hyp["total"] = w, t
+            hyp.pop("words", None)
+            hyp["word_count"], hyp["total"] = w, t
     for (_, utt), b in zip(batch, best.tolist(), strict=True):
         utt["best"] = b
     choose_in_batch([utt for _, utt in batch], m.offsets, total, weights)  # --choose

@@ -36,7 +36,8 @@ class Hypothesis(TypedDict):
     features: NotRequired[dict[str, FiniteFloat]]
     # Added by `rescore apply`; accepted on input so that rescored files can be read back.
     lm: NotRequired[FiniteFloat]
-    words: NotRequired[Annotated[int, Field(ge=0)]]
+    word_count: NotRequired[Annotated[int, Field(ge=0)]]
+    words: NotRequired[Annotated[int, Field(ge=0)]]  # word_count's name in earlier releases
     total: NotRequired[FiniteFloat]
 
 

@@ -120,7 +120,7 @@ def test_apply_with_recognizer_weights_reproduces_its_choice(sample_dir: Path,
         assert result.exit_code == 0, result.stderr
         records = [json.loads(line) for line in out.read_text().splitlines()]
         assert len(records) == 30 and all(r["best"] == 0 for r in records)
-        assert all({"words", "total"} <= set(h) and "lm" not in h
+        assert all({"word_count", "total"} <= set(h) and "lm" not in h
                    for r in records for h in r["hypotheses"])
         first = [f"{r['id']}\t{r['hypotheses'][0]['text']}" for r in records]
         assert tsv.read_text().splitlines() == first

@@ -46,12 +46,14 @@ def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) ->
     for label, r in label_results:
         if r is None:
             continue
-        rows.append([label, pct(float(r["wer"])), r["substitutions"], r["deletions"],
-                     r["insertions"], r["hits"], r["reference_words"]])
+        errors = int(r["substitutions"]) + int(r["deletions"]) + int(r["insertions"])
+        rows.append([label, r["reference_words"], errors, pct(float(r["wer"])),
+                     r["substitutions"], r["deletions"], r["insertions"]])
     return rows
 
 
-WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
+# reference words, errors and WER first; what the errors are made of follows
+WER_COLUMNS = ["", "ref words", "errors", "WER", "of which sub", "del", "ins"]
 
 
 @guarded
@@ -169,7 +171,8 @@ def wer(
     if as_json:
         emit_json(result.to_dict())
         return
-    table(None, WER_COLUMNS, _wer_rows([("1-best", result.to_dict())]))
+    label = "transcripts" if hyps is not None else "1-best"
+    table(None, WER_COLUMNS, _wer_rows([(label, result.to_dict())]))
 
 
 @guarded

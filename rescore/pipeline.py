@@ -76,7 +76,7 @@ from rescore.wer import (
 log = logging.getLogger(__name__)
 
 TUNE_JSON_KEYS = (LM_WEIGHT, INSERTION_PENALTY, "features", "dev_errors", "dev_wer",
-                  "baseline_wer", "oracle_wer", "search")
+                  "one_best_wer", "oracle_wer", "search")
 
 
 class NamedModel:

@@ -161,8 +161,8 @@ def test_tune_then_apply_on_the_demo_scenario(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.stderr
     data = json.loads(result.stdout)
     assert {"lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
-            "baseline_wer", "oracle_wer", "search"} <= set(data)
-    assert data["oracle_wer"] <= data["dev_wer"] < data["baseline_wer"]
+            "one_best_wer", "oracle_wer", "search"} <= set(data)
+    assert data["oracle_wer"] <= data["dev_wer"] < data["one_best_wer"]
     out = tmp_path / "test.out.jsonl"
     assert run(["apply", demo / "test.jsonl", "--lm", model, "--weights", weights,
                 "-o", out]).exit_code == 0
@@ -246,17 +246,30 @@ def test_tune_cv_warning_follows_warn_cv_gap(sample_dir: Path, tmp_path: Path) -
     nbest = sample_dir / "warehouse_espeak.jsonl"
     base = ["-q", "tune", nbest, "--feature", "first_pass_lm", "--feature", "filler_penalty",
             "-o", tmp_path / "w.json"]
-    data = json.loads(run([*base, "--json", "--warn-cv-gap", "100"]).stdout)
+    data = json.loads(run([*base, "--json", "--warn-cv-gap", "100%"]).stdout)
     gap_points = 100 * abs(data["cv_wer"] - data["dev_wer"])
     assert data["cv_warning"] is None and gap_points > 1.0
     # the default threshold is one point (as the README's tuning section documents)
     assert "warning: cross-validated WER" in run(base[1:]).stderr
     for points, warns in ((gap_points / 2, True), (gap_points * 2, False), (0.0, True)):
-        result = run([*base[1:], "--warn-cv-gap", f"{points:.6f}"])
-        assert result.exit_code == 0, result.stderr
-        assert ("warning: cross-validated WER" in result.stderr) == warns, points
-        printed = json.loads(run([*base, "--json", "--warn-cv-gap", f"{points:.6f}"]).stdout)
-        assert (printed["cv_warning"] is not None) == warns, points
+        # the same threshold as percentage points (N%) and as a fraction, as the gates take it
+        for given in (f"{points:.6f}%", f"{points / 100:.8f}"):
+            result = run([*base[1:], "--warn-cv-gap", given])
+            assert result.exit_code == 0, result.stderr
+            assert ("warning: cross-validated WER" in result.stderr) == warns, given
+            printed = json.loads(run([*base, "--json", "--warn-cv-gap", given]).stdout)
+            assert (printed["cv_warning"] is not None) == warns, given
+
+
+def test_tune_warn_cv_gap_says_how_an_old_bare_number_is_read(tmp_path: Path) -> None:
+    # "2" once meant two points; as a fraction it is 200 points, and one line says so
+    result = run(["tune", TWO, "-o", tmp_path / "w.json", "--warn-cv-gap", "2"])
+    assert result.exit_code == 2 and "expected a percentage" in result.stderr
+    result = run(["tune", TWO, "-o", tmp_path / "w.json", "--folds", "0",
+                  "--warn-cv-gap", "0.5"])
+    assert result.exit_code == 0, result.stderr
+    assert "--warn-cv-gap 0.5 is read as a fraction (50 points); for percentage points " \
+        "write 0.5%" in result.stderr
 
 
 def test_tune_warn_cv_gap_must_not_be_negative(tmp_path: Path) -> None:

@@ -99,6 +99,18 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           [[d, c] for d, c in sorted(result.depths.items())])
 
 
+def cv_gap_rate(text: str) -> float:
+    """``--warn-cv-gap`` as a fraction: ``1%`` or ``0.01``, the forms the gates take. Before
+    this form the option took bare points (``1.0``); a bare value that large is almost surely
+    meant so, and one line says how it is read now."""
+    rate = gate_rate(text, "--warn-cv-gap")
+    assert rate is not None
+    if not text.strip().endswith("%") and rate >= 0.05:
+        warn(f"--warn-cv-gap {text} is read as a fraction ({100 * rate:g} points); for "
+             f"percentage points write {text.strip()}%")
+    return rate
+
+
 def _warn(warnings: Sequence[str]) -> None:
     for line in warnings:
         info(f"warning: {line}")
@@ -193,10 +205,11 @@ def tune(
     folds: Annotated[int, typer.Option("--folds", min=0,
                                        help="Cross-validation folds (0 or 1: none).")] = 5,
     seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,
-    warn_cv_gap: Annotated[float, typer.Option(
-        "--warn-cv-gap", min=0.0, metavar="POINTS",
-        help="Warn when the cross-validated WER and the dev WER differ by more than this "
-        "many percentage points.")] = 1.0,
+    warn_cv_gap: Annotated[str, typer.Option(
+        "--warn-cv-gap", metavar="RATE",
+        help="Warn when the cross-validated WER and the dev WER differ by more than this: "
+        "percentage points (1%) or a fraction (0.01), as the report's gates take them.")
+    ] = "1%",
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
@@ -226,7 +239,7 @@ def tune(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
-            cv_warn=warn_cv_gap / 100.0,
+            cv_warn=cv_gap_rate(warn_cv_gap),
             progress=report, widen=not no_widen, bounds=bounds,
             choose=None if choose is None else rule_value(choose),
         )
@@ -244,7 +257,7 @@ def tune(
             ["LM weight", data[LM_WEIGHT]],
             ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
-            ["baseline WER", pct(data["baseline_wer"])],
+            ["1-best WER", pct(data["one_best_wer"])],
             ["dev WER (tuned)", pct(data["dev_wer"])],
             ["cross-validated WER", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],

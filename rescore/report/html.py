@@ -203,7 +203,7 @@ def _tuning(report: Report) -> str:
         cards.append('<div class="card"><h3>WER by N-best depth (dev set)</h3><figure>'
                      + plots.depth_curve(tuning) + "</figure>"
                      + _table(["k", "1-best", "rescored", "oracle"],
-                              [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
+                              [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
                                 t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
     return f'<h2>Tuning (dev set)</h2><div class="row">{"".join(cards)}</div>'
 

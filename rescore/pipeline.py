@@ -242,7 +242,7 @@ class ApplyResult:
     utterances: int
     changed: int
     shards: int = 1  # pieces of the input processed separately (1: one process, in order)
-    empty: int = 0  # utterances whose chosen hypothesis has no words
+    empty: int = 0  # utterances whose output (chosen text, else the 1-best) has no words
     lists: ListStats = field(default_factory=ListStats)
     warnings: tuple[str, ...] = ()
 

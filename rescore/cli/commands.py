@@ -52,8 +52,9 @@ def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) ->
     return rows
 
 
-# reference words, errors and WER first; what the errors are made of follows
-WER_COLUMNS = ["", "ref words", "errors", "WER", "of which sub", "del", "ins"]
+# reference words, errors and WER first; then what the errors are made of (errors = sub +
+# del + ins)
+WER_COLUMNS = ["", "ref words", "errors", "WER", "sub", "del", "ins"]
 
 
 @guarded

@@ -432,6 +432,12 @@ def one_best(utt: Utterance) -> Hypothesis:
     return utt["hypotheses"][utt.get("best", 0)]
 
 
+def output_text(utt: Utterance) -> str:
+    """The text a rescored record outputs: ``chosen`` when a choice rule wrote it (it may be
+    words no single hypothesis holds), else the 1-best's."""
+    return utt.get("chosen", one_best(utt)["text"])
+
+
 def dumps(utt: Utterance) -> str:
     """One compact JSON line (UTF-8 text, floats in their shortest round-trip form)."""
     return orjson.dumps(utt).decode("utf-8")

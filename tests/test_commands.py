@@ -437,3 +437,30 @@ def test_output_that_is_a_folder_is_refused_before_the_work(
     assert result.exit_code == 1
     assert result.stderr == f"error: {folder}: is a folder, expected a file path\n"
     assert "Traceback" not in result.stderr
+
+
+def test_apply_prints_wer_before_and_after_when_references_exist(demo_lm: Path,
+                                                                tmp_path: Path) -> None:
+    # the figures apply prints are the ones wer prints of its input (the recognizer's
+    # 1-best) and of its output: one measurement, two routes
+    test = FIXTURES / "demo" / "test.jsonl"
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1, "lm_weight": 9, "insertion_penalty": 2}')
+    out = tmp_path / "out.jsonl"
+    result = run(["apply", test, "--lm", demo_lm, "--weights", weights, "-o", out, "--json"])
+    assert result.exit_code == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert data["before"] == json.loads(run(["wer", test, "--json"]).stdout)
+    assert data["after"] == json.loads(run(["wer", out, "--json"]).stdout)
+    assert data["after"]["wer"] < data["before"]["wer"] and data["utterances"] == 500
+    shown = run(["apply", test, "--lm", demo_lm, "--weights", weights, "-o", out]).stdout
+    assert "before (recognizer 1-best)" in shown and "after (rescored)" in shown
+    # without references there is nothing to score: no table, nulls in the JSON
+    bare = tmp_path / "bare.jsonl"
+    bare.write_text("".join(json.dumps({k: v for k, v in json.loads(line).items()
+                                        if k != "reference"}) + "\n"
+                            for line in test.read_text().splitlines()[:5]))
+    quiet = run(["apply", bare, "--lm", demo_lm, "--weights", weights, "-o", out, "--json"])
+    assert json.loads(quiet.stdout)["before"] is None
+    assert run(["apply", bare, "--weights", weights, "--lm", demo_lm, "-o", "-",
+                "--json"]).exit_code == 2

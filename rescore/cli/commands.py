@@ -142,8 +142,12 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    as_json: JsonOpt = False,
 ) -> None:
-    """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
+    """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
+    index; with references, print the WER before and after."""
+    if as_json and str(out) == "-":
+        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
@@ -155,6 +159,18 @@ def apply(
                                      batch_size=batch_size, workers=workers, cluster=cluster,
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)))
     _warn(result.warnings)
+    # with references, the WER of the recognizer's 1-best and of the output (read back from
+    # the output just written; nothing to read back when it went to standard output)
+    wers = None if str(out) == "-" else pipeline.before_after_wer(out, batch_size=batch_size)
+    if as_json:
+        emit_json({"utterances": result.utterances, "changed": result.changed,
+                   "empty": result.empty, "shards": result.shards, "out": str(out),
+                   "before": None if wers is None else wers[0].to_dict(),
+                   "after": None if wers is None else wers[1].to_dict()})
+    elif wers is not None:
+        table(f"{out}: WER before and after rescoring", WER_COLUMNS,
+              _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
+                         ("after (rescored)", wers[1].to_dict())]))
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
     info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
          f"{result.empty} chose an empty hypothesis) -> {out}")

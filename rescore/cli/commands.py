@@ -21,8 +21,9 @@ from rescore.cli.options import (
     JsonOpt,
     LogBaseOpt,
     NbestArg,
-    OutOpt,
+    NbestOutOpt,
     RefsOpt,
+    WeightsOutOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
 from rescore.errors import UsageError
@@ -122,7 +123,7 @@ def apply(
     nbest: NbestArg,
     weights: Annotated[Path, typer.Option("--weights", help="Weights file from 'rescore tune'.",
                                           show_default=False)],
-    out: OutOpt,
+    out: NbestOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several). Optional when only "
         "file features are weighted.")] = None,
@@ -207,7 +208,7 @@ def wer(
 @guarded
 def tune(
     nbest: NbestArg,
-    out: OutOpt,
+    out: WeightsOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several).")] = None,
     search: Annotated[str | None, typer.Option(
@@ -289,7 +290,7 @@ def tune(
 
 @guarded
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
+    out: Annotated[Path, typer.Option("-o", "--out", help="Folder for every output of the demo.")]
     = Path("demo-out"),
     data: Annotated[Path | None, typer.Option(
         "--data", metavar="DIR",

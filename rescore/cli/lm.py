@@ -204,7 +204,7 @@ def convert(
     source: Annotated[Path, typer.Argument(
         metavar="IN", help="Model to read (.arpa/.arpa.gz or '-' for ARPA text on stdin).")],
     target: Annotated[Path | None, typer.Argument(
-        metavar="[OUT]", help="Model to write (by file ending; '-' for ARPA text on stdout); "
+        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout); "
         "or give it with -o.", show_default=False)] = None,
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", metavar="MODEL", help="Model to write, as OUT.",

@@ -12,9 +12,7 @@ systems agree on is rarely wrong, so the combination makes fewer errors than eit
 
 from __future__ import annotations
 
-import importlib.util
 import json
-import sys
 from pathlib import Path
 from types import ModuleType
 
@@ -24,7 +22,7 @@ import pytest
 from rescore.decode.choice import RULES
 from rescore.demo import BUNDLED
 from rescore.text import normalise
-from tests.conftest import run
+from tests.conftest import load_script, run
 
 SCRIPT = Path(__file__).resolve().parent.parent / "scripts" / "make_combine_data.py"
 SYSTEMS = ("A", "B")
@@ -39,12 +37,7 @@ FEATURES = {
 
 
 def _load_script() -> ModuleType:
-    spec = importlib.util.spec_from_file_location("make_combine_data", SCRIPT)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses look the module up while it loads
-    spec.loader.exec_module(module)
-    return module
+    return load_script(SCRIPT)
 
 
 def _ok(args: list[str | Path]) -> None:

@@ -36,7 +36,8 @@ class Hypothesis(TypedDict):
     features: NotRequired[dict[str, FiniteFloat]]
     # Added by `rescore apply`; accepted on input so that rescored files can be read back.
     lm: NotRequired[FiniteFloat]
-    words: NotRequired[Annotated[int, Field(ge=0)]]
+    word_count: NotRequired[Annotated[int, Field(ge=0)]]
+    words: NotRequired[Annotated[int, Field(ge=0)]]  # word_count's name in earlier releases
     total: NotRequired[FiniteFloat]
 
 
@@ -319,13 +320,24 @@ def iter_nbest(
                                               limits=limits)
     parser = RecordParser(str(path), convention, refs, require_references, limits)
     ledger = IdLedger(str(path), refs)
-    for number, line in iter_text_lines(path, limits.max_line_bytes):
-        if number == header_line or not line.strip():
-            continue
-        utt = parser.parse(number, line)
+    for number, utt in iter_records(path, parser, skip_line=header_line):
         ledger.admit(number, utt["id"], "reference" in utt)
         yield number, utt
     ledger.finish()
+
+
+def iter_records(path: str | Path, parser: RecordParser, *, skip_line: int = 0,
+                 start: int = 0, end: int | None = None, first_line: int = 1
+                 ) -> Iterator[tuple[int, Utterance]]:
+    """The reader's loop over the lines of ``path`` from byte ``start`` to ``end``: every
+    record but blank lines and ``skip_line`` (the header), validated one by one by
+    ``parser``. The whole-file rules (:class:`IdLedger`) are the caller's: :func:`iter_nbest`
+    keeps them for a whole file, a parallel run for all its shards together."""
+    for number, line in iter_text_lines(path, parser.limits.max_line_bytes, start=start,
+                                        end=end, first_line=first_line):
+        if number == skip_line or not line.strip():
+            continue
+        yield number, parser.parse(number, line)
 
 
 def read_nbest(path: str | Path, **options: Any) -> Iterator[Utterance]:
@@ -418,6 +430,12 @@ def _overflow(path: str, number: int, field: str, factor: float) -> InputError:
 def one_best(utt: Utterance) -> Hypothesis:
     """The utterance's 1-best: the hypothesis at ``best`` when present, else the first."""
     return utt["hypotheses"][utt.get("best", 0)]
+
+
+def output_text(utt: Utterance) -> str:
+    """The text a rescored record outputs: ``chosen`` when a choice rule wrote it (it may be
+    words no single hypothesis holds), else the 1-best's."""
+    return utt.get("chosen", one_best(utt)["text"])
 
 
 def dumps(utt: Utterance) -> str:

@@ -30,15 +30,16 @@ from rescore.batch import (
 from rescore.checksum import sha256_file
 from rescore.decode.choice import Rule
 from rescore.decode.fit import DecodeFit, fit_decoding, read_dev_texts
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, ParameterError
 from rescore.finite import check_tunable
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.lm import load_model
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
+    Utterance,
     iter_nbest,
-    one_best,
+    output_text,
     read_convention,
     read_refs,
 )
@@ -76,7 +77,7 @@ from rescore.wer import (
 log = logging.getLogger(__name__)
 
 TUNE_JSON_KEYS = (LM_WEIGHT, INSERTION_PENALTY, "features", "dev_errors", "dev_wer",
-                  "baseline_wer", "oracle_wer", "search")
+                  "one_best_wer", "oracle_wer", "search")
 
 
 class NamedModel:
@@ -111,9 +112,9 @@ def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
         if not eq:
             name, path = LM, spec
         if not name or not path:
-            raise UsageError(f"--lm {spec!r}: expected MODEL or NAME=MODEL")
+            raise ParameterError(f"{spec!r}: expected MODEL or NAME=MODEL", field="lm")
         if name in out:
-            raise UsageError(f"--lm: the name {name!r} is given twice")
+            raise ParameterError(f"the name {name!r} is given twice", field="lm")
         out[name] = NamedModel(name, Path(path))
     return out
 
@@ -167,8 +168,8 @@ def check_weighted(weights: Weights, models: Mapping[str, object]) -> list[str]:
     needed |= {k[3:] for k, v in weights.features.items() if v != 0.0 and k.startswith("lm:")}
     missing = sorted(needed - set(models))
     if missing:
-        raise UsageError(f"the weights give LM weight to {', '.join(missing)} but no such --lm "
-                         "was given")
+        raise ParameterError(f"the weights give LM weight to {', '.join(missing)} but no such "
+                             "model was given", field="lm")
     return features
 
 
@@ -242,7 +243,7 @@ class ApplyResult:
     utterances: int
     changed: int
     shards: int = 1  # pieces of the input processed separately (1: one process, in order)
-    empty: int = 0  # utterances whose chosen hypothesis has no words
+    empty: int = 0  # utterances whose output (chosen text, else the 1-best) has no words
     lists: ListStats = field(default_factory=ListStats)
     warnings: tuple[str, ...] = ()
 
@@ -264,7 +265,8 @@ def apply_file(
     features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
         if refs is not None and refs_path is None:
-            raise UsageError("parallel runs take references as a file path (refs_path)")
+            raise ParameterError("parallel runs take references as a file path",
+                                 field="refs_path")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
                                                   limits=limits)
         total, counts, stats, shards = apply_sharded(
@@ -310,24 +312,48 @@ def apply_file(
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
              log_base: float | None = None, costs: bool | None = None,
              batch_size: int = DEFAULT_BATCH) -> WerResult:
-    """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat)."""
-    totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
+    """Corpus WER of the file's output text (:func:`rescore.nbest.output_text`: the chosen
+    text of a choice rule, else the 1-best), counted batch by batch (memory stays flat)."""
+    return _wers(path, [output_text], refs=refs, log_base=log_base, costs=costs,
+                 batch_size=batch_size)[0]
+
+
+def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH
+                     ) -> tuple[WerResult, WerResult] | None:
+    """WER of a rescored file's first hypotheses (the recognizer's 1-best) and of its output
+    text, in one pass; ``None`` when its records carry no references."""
+    first = next(iter_nbest(path), None)
+    if first is None or "reference" not in first[1]:
+        return None
+    before, after = _wers(path, [lambda u: u["hypotheses"][0]["text"], output_text],
+                          batch_size=batch_size)
+    return before, after
+
+
+def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
+          refs: Mapping[str, str] | None = None, log_base: float | None = None,
+          costs: bool | None = None, batch_size: int = DEFAULT_BATCH) -> list[WerResult]:
+    """Corpus WER of each way of taking a text from the records, in one pass."""
+    totals = np.zeros((len(texts), 4), dtype=np.int64)  # sub, del, ins, hits per way
     n_utt = n_scored = 0
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                     require_references=True), batch_size):
-        counts = utterance_counts([tokens(u["reference"]) for _, u in batch],
-                                  [tokens(one_best(u)["text"]) for _, u in batch])
-        totals += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
-                                          counts.insertions, counts.hits)]
+        refs_words = [tokens(u["reference"]) for _, u in batch]
+        for k, text in enumerate(texts):
+            counts = utterance_counts(refs_words, [tokens(text(u)) for _, u in batch])
+            totals[k] += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
+                                                 counts.insertions, counts.hits)]
         n_utt += len(batch)
         n_scored += len(counts.substitutions)
     if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
     check_accounting(path, n_utt, n_scored, "scored")
-    s, d, i, h = (int(t) for t in totals)
-    if s + d + h == 0:
-        raise InputError(UNDEFINED_WER, path=path)
-    return wer_from_totals(s, d, i, h, utterances=n_utt)
+    out = []
+    for s, d, i, h in totals.tolist():
+        if s + d + h == 0:
+            raise InputError(UNDEFINED_WER, path=path)
+        out.append(wer_from_totals(s, d, i, h, utterances=n_utt))
+    return out
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:

@@ -7,6 +7,7 @@ import re
 from html import unescape
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from rescore.errors import InputError
@@ -16,14 +17,14 @@ from rescore.report import (
     build_report,
     gate_failures,
     render_all,
-    tuning_from_dict,
     with_gate,
     write_report,
 )
-from rescore.report.build import CAUTION, Surface, Tuning
+from rescore.report.build import CAUTION
 from rescore.report.html import marked_words
 from rescore.report.plots import chosen_cell, colour_limits
 from rescore.text import NORMALISATION
+from rescore.tune.results import DepthRow, Surface, TuningRecord
 from rescore.wer import align
 
 
@@ -34,7 +35,7 @@ def w(text: str) -> list[str]:
 ROOT = Path(__file__).resolve().parent.parent
 TOL = 1e-12
 CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
-                       "probability_of_improvement", "mapsswe_p", "sign_test_p", "wilcoxon_p"}
+                       "probability_of_improvement", "matched_pairs_p", "sign_test_p", "wilcoxon_p"}
 WER_KEYS = {"wer", "substitutions", "deletions", "insertions", "hits", "reference_words",
             "utterances"}
 HOSTILE_ID = 'bay<script>window.__pwned=1</script>"onload=alert(1)'
@@ -109,9 +110,15 @@ def test_breakdown_counts_and_meta_groups() -> None:
     before, after = systems()
     b = build_report(before, after, provenance={}, resamples=200).breakdown
     # derived by hand from the transcripts in systems()
-    assert set(b.before.substitutions) == {("vent", "went", 1), ("four", "for", 1),
-                                           ("two", "to", 1)}
-    assert b.after.insertions == (("six", 1),)
+    # before: went, for and to each once; after: to once and the insertion of six. One
+    # table, each error counted in both systems, the most frequent first, then the count
+    # before, the kind (substitution, deletion, insertion) and the words
+    table = [(c.kind, c.reference, c.hypothesis, c.before, c.after, c.change)
+             for c in b.confusions]
+    assert table == [("substitution", "four", "for", 1, 0, -1),
+                     ("substitution", "two", "to", 1, 1, 0),
+                     ("substitution", "vent", "went", 1, 0, -1),
+                     ("insertion", "", "six", 0, 1, 1)]
     assert b.improved == ("lark-0001", "lark-0002")
     assert b.worsened == ("lark-0003",)
     speakers = {g.value: (g.before_errors, g.after_errors) for g in b.by_meta["speaker"]}
@@ -211,7 +218,7 @@ def test_matched_pairs_fallback_is_shown_in_every_output() -> None:
     data = json.loads(files["report.json"])
     mp = data["tests"]["matched_pairs"]
     assert (mp["method"], mp["z"], mp["p_value"]) == ("sign", None, 0.5)
-    assert data["difference"]["mapsswe_p"] == 0.5
+    assert data["difference"]["matched_pairs_p"] == 0.5
     for name in ("report.md", "report.html"):
         assert "Matched-pairs segment test p (exact sign test: W undefined)" in files[name]
         assert "all 2 segment differences equal -1, so W is undefined" in files[name]
@@ -257,13 +264,13 @@ def test_gates() -> None:
 def test_heatmap_star_marks_the_chosen_weights() -> None:
     # derived by hand: the first grid minimum (2 errors) is at LM 0, penalty -1, but the
     # tuner chose LM 2, penalty 0 (a plateau centre): the star goes where the title says
-    surface = Surface((0.0, 1.0, 2.0), (-1.0, 0.0, 1.0),
-                      ((2.0, 3.0, 4.0), (3.0, 2.0, 3.0), (2.0, 2.0, 2.0)))
-    assert chosen_cell(surface, Tuning(surface, (), 2.0, 0.0)) == (2, 1)
+    surface = Surface(np.array([0.0, 1.0, 2.0]), np.array([-1.0, 0.0, 1.0]),
+                      np.array([[2.0, 3.0, 4.0], [3.0, 2.0, 3.0], [2.0, 2.0, 2.0]]))
+    assert chosen_cell(surface, TuningRecord(surface, (), 2.0, 0.0)) == (2, 1)
     # weights between grid points take the nearest cell (1.4 -> 1.0, 0.6 -> 1.0)
-    assert chosen_cell(surface, Tuning(surface, (), 1.4, 0.6)) == (1, 2)
+    assert chosen_cell(surface, TuningRecord(surface, (), 1.4, 0.6)) == (1, 2)
     # no chosen weights recorded: the first minimum in row order
-    assert chosen_cell(surface, Tuning(surface)) == (0, 0)
+    assert chosen_cell(surface, TuningRecord(surface)) == (0, 0)
 
 
 def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
@@ -276,14 +283,23 @@ def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
     assert colour_limits([[1, 5], [5, 5]]) == (1.0, 5.0, False)
 
 
-def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
-    assert tuning_from_dict({"lm_weight": 0.8}).surface is None
-    depth = tuning_from_dict({"depth": [{"depth": 1, "one_best_wer": 0.2, "tuned_wer": 0.2,
-                                         "oracle_wer": 0.2}, {"depth": 5, "tuned_wer": 0.1}]}).depth
-    assert depth[1].oracle_wer is None and depth[1].tuned_wer == 0.1
+def test_tuning_record_reads_what_tune_writes_and_checks_shapes() -> None:
+    # one schema both ways: the record of a run, written and read back, is the same record
+    surface = Surface(np.array([0.0, 1.0]), np.array([-1.0, 0.0, 1.0]),
+                      np.array([[5.0, 4.0, 6.0], [3.0, 2.0, 3.0]]))
+    rows = (DepthRow(1, "1", 0.2, 0.2, 0.2), DepthRow(5, "all", 0.2, 0.1, 0.05))
+    record = TuningRecord(surface, rows, 1.0, 0.0)
+    again = TuningRecord.from_dict(json.loads(json.dumps(record.to_dict())))
+    assert again.to_dict() == record.to_dict() and again.depth == rows
+    assert TuningRecord.from_dict({"lm_weight": 0.8}).surface is None
+    assert TuningRecord.from_dict({"surface": None, "depth": []}).to_dict() == {}
+    # a row missing a value names it, as every reader error does
+    with pytest.raises(InputError, match=r"depth\[1\]\.oracle_wer"):
+        TuningRecord.from_dict({"depth": [rows[0].to_dict(), {"depth": 5, "one_best_wer": 0.2,
+                                                              "tuned_wer": 0.1}]})
     with pytest.raises(InputError, match=r"surface\.errors"):
-        tuning_from_dict({"surface": {"lm_weight": [0, 1], "insertion_penalty": [0],
-                                      "errors": [[1, 2]]}})
+        TuningRecord.from_dict({"surface": {"lm_weight": [0, 1], "insertion_penalty": [0],
+                                            "errors": [[1, 2]]}})
 
 
 @pytest.mark.parametrize(("value", "resamples", "shown"), [

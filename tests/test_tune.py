@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 
 from rescore.cli.flags import in_flags
 from rescore.errors import InputError, ParameterError
-from rescore.scoring import FeatureMatrix, choose
+from rescore.scoring import DevMatrix, FeatureMatrix, choose
 from rescore.text import tokens
 from rescore.tune import (
     driver,
@@ -300,7 +300,7 @@ def test_perfect_feature_reaches_the_oracle() -> None:
                            ids=base.ids, errors=base.errors, ref_words=base.ref_words)
     result = tune(matrix, features=["perfect"], folds=0)
     assert result.dev_wer == result.oracle_wer
-    assert result.oracle_wer < result.baseline_wer
+    assert result.oracle_wer < result.one_best_wer
 
 
 def test_exact_search_keeps_untuned_weights_and_bounds() -> None:
@@ -338,12 +338,12 @@ def test_tuning_beats_the_baseline_when_the_lm_carries_signal() -> None:
     signal_point = slow_errors(matrix, Weights(lm_weight=5.0, insertion_penalty=10.0))
     first = int(matrix.errors[matrix.offsets[:-1]].sum())
     assert result.dev_errors <= signal_point < first
-    assert result.baseline_wer == first / int(np.asarray(matrix.ref_words).sum())
+    assert result.one_best_wer == first / int(np.asarray(matrix.ref_words).sum())
     # k-fold cross-validation estimates the error on unseen utterances (Hastie, Tibshirani
     # and Friedman, Elements of Statistical Learning, section 7.10, from memory): weights
     # fitted on four fifths must also beat the first choice on the held-out fifth when the
     # signal is real
-    assert result.cv is not None and result.cv.wer < result.baseline_wer
+    assert result.cv is not None and result.cv.wer < result.one_best_wer
 
 
 def test_cross_validation_sums_held_out_errors_over_all_words() -> None:
@@ -378,19 +378,19 @@ def test_depth_rows_are_consistent() -> None:
     assert depths == [1, 2, 5, 10, 12] and result.depth[-1].label == "all"
     first = result.depth[0]
     # one hypothesis per list: one-best, tuned and oracle are the same thing
-    assert first.one_best_wer == first.tuned_wer == first.oracle_wer == result.baseline_wer
+    assert first.one_best_wer == first.tuned_wer == first.oracle_wer == result.one_best_wer
     oracles = [row.oracle_wer for row in result.depth]
     assert all(a >= b for a, b in itertools.pairwise(oracles))
     assert result.depth[-1].oracle_wer == result.oracle_wer
     assert result.depth[-1].tuned_wer == result.dev_wer
-    assert all(row.one_best_wer == result.baseline_wer for row in result.depth)
+    assert all(row.one_best_wer == result.one_best_wer for row in result.depth)
 
 
 def test_to_dict_has_the_contract_keys_and_is_json() -> None:
     result = tune(signal_set(n_utt=40), features=["f"])
     out = result.to_dict()
     for key in ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
-                "baseline_wer", "oracle_wer", "search"):
+                "one_best_wer", "oracle_wer", "search"):
         assert key in out
     assert out["features"] == {"f": result.weights.features["f"]}
     json.dumps(out, allow_nan=False)
@@ -469,10 +469,10 @@ def test_tuning_on_the_recognizer_sample(sample_dir: Path, name: str) -> None:
     result = tune(matrix, lm_column="first_pass_lm", lm_grid=np.linspace(0, 20, 41),
                   penalty_grid=np.linspace(-10, 10, 41), folds=3)
     one_best, oracle = SAMPLE_FACTS[name]
-    assert round(result.baseline_wer, 3) == one_best
+    assert round(result.one_best_wer, 3) == one_best
     assert round(result.oracle_wer, 3) == oracle
     # the recognizer's own weights lie inside this grid, so tuning can only match or beat them
-    assert result.dev_wer <= result.baseline_wer
+    assert result.dev_wer <= result.one_best_wer
     assert result.oracle_wer <= result.dev_wer
 
 
@@ -491,7 +491,7 @@ def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str
     extra = ["--feature", "first_pass_lm"] if search == "exact" else []
     result = run(["-q", "tune", dev, "--lm", model, "-o", out, "--analysis", analysis,
                   "--search", search, *extra, "--seed", "7", "--folds", "3",
-                  "--grid-lm", "0:20:41", "--no-widen", "--warn-cv-gap", "2", "--json"])
+                  "--grid-lm", "0:20:41", "--no-widen", "--warn-cv-gap", "2%", "--json"])
     assert result.exit_code == 0, result.stderr
     printed = json.loads(result.stdout)
     body = json.loads(out.read_text())
@@ -519,7 +519,7 @@ def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str
     assert settings["seed"] == 7 and settings["folds"] == 3
     assert settings["lm_grid"] == [0.0, 20.0, 41]  # --grid-lm 0:20:41 as given
     assert settings["penalty_grid"] == [-20.0, 20.0, 81]  # the documented default
-    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2 points
+    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2% (points), a fraction in the file
     if search == "exact":
         assert settings["start"] == "grid" and settings["restarts"] == 3
     # the analysis file records the same provenance; nothing else was left behind
@@ -556,6 +556,16 @@ GOOD = '{"acoustic_scale": 1, "lm_weight": 0.8, "insertion_penalty": -0.5, "feat
     ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 1e999}', "insertion_penalty",
      "finite"),
     ("[1, 2]", None, "JSON object"),
+    # the decoding keys: the scale of a probability is not negative, the rule is one of three
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "posterior_scale": -1}',
+     "posterior_scale", "non-negative"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "choose": "vote"}',
+     "choose", "expected best, min-risk or consensus"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "provenance": 3}',
+     "provenance", "expected an object"),
+    # a misspelt key is named before the weight it leaves missing
+    ('{"acoustic_scale": 1, "lm_wieght": 1, "insertion_penalty": 0}', "lm_wieght",
+     "unknown key"),
 ])
 def test_read_weights_is_strict(tmp_path: Path, text: str, field: str | None,
                                 message: str) -> None:
@@ -588,3 +598,26 @@ def test_write_weights_leaves_nothing_on_failure(tmp_path: Path) -> None:
     assert [p.name for p in tmp_path.iterdir()] == ["w.json"]
     with pytest.raises(InputError, match="does not exist"):
         write_weights(tmp_path / "missing" / "w.json", Weights(), {})
+
+
+@pytest.mark.parametrize("search", ["grid", "exact"])
+def test_tune_checks_the_dev_set_once(monkeypatch: pytest.MonkeyPatch, search: str) -> None:
+    # the checks (references, list sizes, finite scores, reference words) run at the entry
+    # point only; the searches, folds, widenings and depth rows reuse the checked matrix
+    rng = np.random.default_rng(3)
+    sizes = [3, 4, 2, 5, 3, 4]
+    n = sum(sizes)
+    matrix = make_matrix(rng.normal(size=(n, len(NAMES))), sizes, rng.integers(0, 4, n),
+                         [5, 6, 4, 7, 5, 6])
+    real = DevMatrix.check.__func__  # type: ignore[attr-defined]
+    checked: list[type] = []
+
+    def counting(cls: type[DevMatrix], m: FeatureMatrix) -> DevMatrix:
+        if not isinstance(m, DevMatrix):
+            checked.append(type(m))
+        return real(cls, m)  # type: ignore[no-any-return]
+
+    monkeypatch.setattr(DevMatrix, "check", classmethod(counting))
+    tune(matrix, search=search, features=("f",) if search == "exact" else (),
+         lm_grid=[0.0, 1.0, 2.0], penalty_grid=[-1.0, 0.0, 1.0], folds=3)
+    assert checked == [FeatureMatrix]

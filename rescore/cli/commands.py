@@ -21,11 +21,14 @@ from rescore.cli.options import (
     JsonOpt,
     LogBaseOpt,
     NbestArg,
-    OutOpt,
+    NbestOutOpt,
     RefsOpt,
+    WeightsOutOpt,
 )
-from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
+from rescore.cli.report import WarnOverlapOpt, gate_rate
 from rescore.errors import UsageError
+from rescore.lm import load_model
+from rescore.lm.overlap import overlap_summary
 from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
@@ -44,12 +47,15 @@ def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) ->
     for label, r in label_results:
         if r is None:
             continue
-        rows.append([label, pct(float(r["wer"])), r["substitutions"], r["deletions"],
-                     r["insertions"], r["hits"], r["reference_words"]])
+        errors = int(r["substitutions"]) + int(r["deletions"]) + int(r["insertions"])
+        rows.append([label, r["reference_words"], errors, pct(float(r["wer"])),
+                     r["substitutions"], r["deletions"], r["insertions"]])
     return rows
 
 
-WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
+# reference words, errors and WER first; then what the errors are made of (errors = sub +
+# del + ins)
+WER_COLUMNS = ["", "ref words", "errors", "WER", "sub", "del", "ins"]
 
 
 @guarded
@@ -67,9 +73,10 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
     ref_map = _refs(refs)
     result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
                                  batch_size=batch_size)
-    overlap = None if not lm else leakage(
-        [(str(p), p) for p in lm],
-        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs), threshold)
+    overlap = None if not lm else overlap_summary(
+        [(str(p), load_model(p)) for p in lm],
+        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs),
+        threshold=threshold)
     for line in [] if overlap is None else overlap.warnings():
         warn(line)
     _warn(result.warnings)
@@ -94,6 +101,18 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           [[d, c] for d, c in sorted(result.depths.items())])
 
 
+def cv_gap_rate(text: str) -> float:
+    """``--warn-cv-gap`` as a fraction: ``1%`` or ``0.01``, the forms the gates take. Before
+    this form the option took bare points (``1.0``); a bare value that large is almost surely
+    meant so, and one line says how it is read now."""
+    rate = gate_rate(text, "--warn-cv-gap")
+    assert rate is not None
+    if not text.strip().endswith("%") and rate >= 0.05:
+        warn(f"--warn-cv-gap {text} is read as a fraction ({100 * rate:g} points); for "
+             f"percentage points write {text.strip()}%")
+    return rate
+
+
 def _warn(warnings: Sequence[str]) -> None:
     for line in warnings:
         info(f"warning: {line}")
@@ -104,12 +123,13 @@ def apply(
     nbest: NbestArg,
     weights: Annotated[Path, typer.Option("--weights", help="Weights file from 'rescore tune'.",
                                           show_default=False)],
-    out: OutOpt,
+    out: NbestOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several). Optional when only "
         "file features are weighted.")] = None,
     text: Annotated[Path | None, typer.Option(
-        "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
+        "--text", help="Also write 'id<TAB>output text' lines here (the chosen text under "
+        "--choose min-risk or consensus, else the 1-best).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     batch_size: BatchOpt = DEFAULT_BATCH,
     workers: Annotated[int, typer.Option(
@@ -124,8 +144,12 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    as_json: JsonOpt = False,
 ) -> None:
-    """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
+    """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
+    index; with references, print the WER before and after."""
+    if as_json and str(out) == "-":
+        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
@@ -137,6 +161,18 @@ def apply(
                                      batch_size=batch_size, workers=workers, cluster=cluster,
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)))
     _warn(result.warnings)
+    # with references, the WER of the recognizer's 1-best and of the output (read back from
+    # the output just written; nothing to read back when it went to standard output)
+    wers = None if str(out) == "-" else pipeline.before_after_wer(out, batch_size=batch_size)
+    if as_json:
+        emit_json({"utterances": result.utterances, "changed": result.changed,
+                   "empty": result.empty, "shards": result.shards, "out": str(out),
+                   "before": None if wers is None else wers[0].to_dict(),
+                   "after": None if wers is None else wers[1].to_dict()})
+    elif wers is not None:
+        table(f"{out}: WER before and after rescoring", WER_COLUMNS,
+              _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
+                         ("after (rescored)", wers[1].to_dict())]))
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
     info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
          f"{result.empty} chose an empty hypothesis) -> {out}")
@@ -166,13 +202,14 @@ def wer(
     if as_json:
         emit_json(result.to_dict())
         return
-    table(None, WER_COLUMNS, _wer_rows([("1-best", result.to_dict())]))
+    label = "transcripts" if hyps is not None else "1-best"
+    table(None, WER_COLUMNS, _wer_rows([(label, result.to_dict())]))
 
 
 @guarded
 def tune(
     nbest: NbestArg,
-    out: OutOpt,
+    out: WeightsOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several).")] = None,
     search: Annotated[str | None, typer.Option(
@@ -187,10 +224,11 @@ def tune(
     folds: Annotated[int, typer.Option("--folds", min=0,
                                        help="Cross-validation folds (0 or 1: none).")] = 5,
     seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,
-    warn_cv_gap: Annotated[float, typer.Option(
-        "--warn-cv-gap", min=0.0, metavar="POINTS",
-        help="Warn when the cross-validated WER and the dev WER differ by more than this "
-        "many percentage points.")] = 1.0,
+    warn_cv_gap: Annotated[str, typer.Option(
+        "--warn-cv-gap", metavar="RATE",
+        help="Warn when the cross-validated WER and the dev WER differ by more than this: "
+        "percentage points (1%) or a fraction (0.01), as the report's gates take them.")
+    ] = "1%",
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
@@ -220,7 +258,7 @@ def tune(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
-            cv_warn=warn_cv_gap / 100.0,
+            cv_warn=cv_gap_rate(warn_cv_gap),
             progress=report, widen=not no_widen, bounds=bounds,
             choose=None if choose is None else rule_value(choose),
         )
@@ -238,7 +276,7 @@ def tune(
             ["LM weight", data[LM_WEIGHT]],
             ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
-            ["baseline WER", pct(data["baseline_wer"])],
+            ["1-best WER", pct(data["one_best_wer"])],
             ["dev WER (tuned)", pct(data["dev_wer"])],
             ["cross-validated WER", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
@@ -253,7 +291,7 @@ def tune(
 
 @guarded
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
+    out: Annotated[Path, typer.Option("-o", "--out", help="Folder for every output of the demo.")]
     = Path("demo-out"),
     data: Annotated[Path | None, typer.Option(
         "--data", metavar="DIR",

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -71,16 +71,22 @@ _Out = Annotated[Path, typer.Option(
 _Order = Annotated[int, typer.Option("--order", "-n", help="n-gram order, 1 to 6.")]
 _Method = Annotated[str, typer.Option("--method", "-m", help="mkn, kn, wb, abs, addk or mle.")]
 _Vocab = Annotated[Path | None, typer.Option(
-    "--vocabulary", metavar="FILE", help="Vocabulary file: the words to keep.")]
-_MaxVocab = Annotated[int | None, typer.Option("--max-vocab", help="Keep the K most frequent.")]
+    "--vocabulary", metavar="FILE",
+    help="Vocabulary file: the words to keep, one a line (default: every word seen).")]
+_MaxVocab = Annotated[int | None, typer.Option(
+    "--max-vocab", metavar="K", help="Keep the K most frequent words (default: no cap).")]
 _MinCount = Annotated[int, typer.Option("--min-count", help="Keep words seen at least C times.")]
 _Closed = Annotated[bool, typer.Option(
     "--no-unknown-word", help="Leave unknown words out (no <unk> in the model).")]
 _K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
 _Cutoffs = Annotated[str | None, typer.Option(
-    "--min-ngram-counts", metavar="N,N,...", help="Least count per order from 2.")]
+    "--min-ngram-counts", metavar="N,N,...",
+    help="Least count of an n-gram to keep it, per order from 2 (default: 1 for every order, "
+    "nothing cut).")]
 _Prune = Annotated[float | None, typer.Option(
-    "--prune-entropy", metavar="X", help="Entropy-pruning threshold.")]
+    "--prune-entropy", metavar="X",
+    help="Drop n-grams whose removal changes the model's relative entropy by less than X, "
+    "e.g. 1e-8 (default: no pruning).")]
 _Memory = Annotated[str | None, typer.Option(
     "--memory", metavar="SIZE",
     help="Memory for counting, e.g. 4G or 500M; a larger text is counted in sorted runs on "
@@ -123,6 +129,7 @@ def build(
     cluster: _Cluster = None,
     workers: _Workers = None,
     quantize: _Quantize = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Train an n-gram language model."""
     _check_bits(quantize)
@@ -145,11 +152,26 @@ def build(
     if quantize is not None:
         model.quantize(quantize)
     save_model(model, output)
+    if as_json:
+        emit_json(_model_summary(model, output)
+                  | {"fallbacks": dict(model.metadata_.get("fallbacks", {}))})
+        return
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "
          f"{len(model.vocab_)} tokens in the vocabulary; {counts}")
     for level, why in model.metadata_.get("fallbacks", {}).items():
         info(f"order {level}: {why}")
+
+
+def _model_summary(model: NGramModel, path: Path) -> dict[str, Any]:
+    """What ``--json`` says of a model written to ``path``: lm check's keys where they mean
+    the same (order, ngrams, bytes, bytes_per_ngram), and its method and vocabulary."""
+    counts = [int(n) for n in model.n_ngrams_]
+    size = None if str(path) == "-" else path.stat().st_size
+    return {"out": str(path), "method": model.method, "order": model.order_,
+            "vocabulary": len(model.vocab_), "ngrams": counts, "bytes": size,
+            "bytes_per_ngram": None if size is None else size / max(sum(counts), 1),
+            "quantized_bits": model.metadata_.get("quantized_bits")}
 
 
 @guarded
@@ -187,20 +209,34 @@ def perplexity_cmd(
 def convert(
     source: Annotated[Path, typer.Argument(
         metavar="IN", help="Model to read (.arpa/.arpa.gz or '-' for ARPA text on stdin).")],
-    target: Annotated[Path, typer.Argument(
-        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout).")],
+    target: Annotated[Path | None, typer.Argument(
+        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout); "
+        "or give it with -o.", show_default=False)] = None,
+    out: Annotated[Path | None, typer.Option(
+        "--out", "-o", metavar="MODEL", help="Model to write, as OUT.",
+        show_default=False)] = None,
     verify: Annotated[bool, typer.Option(
         "--verify", help="Check every value of a native input first (as lm check).")] = False,
     quantize: _Quantize = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Convert a model between ARPA text and the native file."""
+    if (target is None) == (out is None):
+        raise UsageError("give the model to write once: as OUT or with -o/--out")
+    written = target if target is not None else out
+    assert written is not None
+    if as_json and str(written) == "-":
+        raise UsageError("--json and ARPA text on standard output would mix: give a file")
     _check_bits(quantize)
-    check_outputs([target], [source])
+    check_outputs([written], [source])
     model = load_model(source, verify=verify)
     if quantize is not None:
         model.quantize(quantize)
-    save_model(model, target)
-    info(f"wrote {target}")
+    save_model(model, written)
+    if as_json:
+        emit_json({"in": str(source), **_model_summary(model, written)})
+        return
+    info(f"wrote {written}")
 
 
 @guarded

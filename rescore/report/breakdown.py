@@ -11,7 +11,7 @@ from typing import Any
 from rescore.report.rows import UtteranceRow
 from rescore.wer import Alignment
 
-TOP = 15
+TOP = 30
 CHANGED = 10
 MAX_GROUPS = 50
 # common practice, not law: below this many utterances a subgroup's WER moves too much with
@@ -19,21 +19,29 @@ MAX_GROUPS = 50
 MIN_GROUP_UTTERANCES = 30
 
 
-@dataclass(frozen=True)
-class Confusions:
-    """Most frequent errors of one system, each list sorted by count then words."""
+KINDS = ("substitution", "deletion", "insertion")
 
-    substitutions: tuple[tuple[str, str, int], ...]
-    insertions: tuple[tuple[str, int], ...]
-    deletions: tuple[tuple[str, int], ...]
+
+@dataclass(frozen=True)
+class Confusion:
+    """One kind of error, counted in both systems: a reference word taken for a hypothesis
+    word (substitution), a reference word missed (deletion, ``hypothesis`` empty) or a word
+    put in (insertion, ``reference`` empty)."""
+
+    kind: str
+    reference: str
+    hypothesis: str
+    before: int
+    after: int
+
+    @property
+    def change(self) -> int:
+        """After minus before (negative: the error became rarer)."""
+        return self.after - self.before
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "substitutions": [{"reference": r, "hypothesis": h, "count": c}
-                              for r, h, c in self.substitutions],
-            "insertions": [{"word": w, "count": c} for w, c in self.insertions],
-            "deletions": [{"word": w, "count": c} for w, c in self.deletions],
-        }
+        return {"kind": self.kind, "reference": self.reference, "hypothesis": self.hypothesis,
+                "before": self.before, "after": self.after, "change": self.change}
 
 
 @dataclass(frozen=True)
@@ -79,8 +87,7 @@ class SkippedKey:
 
 @dataclass(frozen=True)
 class Breakdown:
-    before: Confusions
-    after: Confusions
+    confusions: tuple[Confusion, ...]
     improved: tuple[str, ...]
     worsened: tuple[str, ...]
     by_meta: Mapping[str, tuple[GroupRow, ...]]
@@ -88,8 +95,7 @@ class Breakdown:
 
     def to_dict(self) -> dict[str, Any]:
         return {
-            "before": self.before.to_dict(),
-            "after": self.after.to_dict(),
+            "confusions": [c.to_dict() for c in self.confusions],
             "most_improved": list(self.improved),
             "most_worsened": list(self.worsened),
             "by_meta": {k: [r.to_dict() for r in rows] for k, rows in self.by_meta.items()},
@@ -97,27 +103,27 @@ class Breakdown:
         }
 
 
-def _ranked(counter: Counter[Any], top: int) -> list[tuple[Any, int]]:
-    return sorted(counter.items(), key=lambda kv: (-kv[1], kv[0]))[:top]
-
-
-def confusions(alignments: Sequence[Alignment], top: int = TOP) -> Confusions:
-    subs: Counter[tuple[str, str]] = Counter()
-    ins: Counter[str] = Counter()
-    dels: Counter[str] = Counter()
+def _count(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
+    counts: Counter[tuple[str, str, str]] = Counter()
     for al in alignments:
         for op in al.ops:
             if op.kind == "substitute" and op.ref is not None and op.hyp is not None:
-                subs[(op.ref, op.hyp)] += 1
-            elif op.kind == "insert" and op.hyp is not None:
-                ins[op.hyp] += 1
+                counts[("substitution", op.ref, op.hyp)] += 1
             elif op.kind == "delete" and op.ref is not None:
-                dels[op.ref] += 1
-    return Confusions(
-        tuple((r, h, c) for (r, h), c in _ranked(subs, top)),
-        tuple(_ranked(ins, top)),
-        tuple(_ranked(dels, top)),
-    )
+                counts[("deletion", op.ref, "")] += 1
+            elif op.kind == "insert" and op.hyp is not None:
+                counts[("insertion", "", op.hyp)] += 1
+    return counts
+
+
+def confusion_table(before: Sequence[Alignment], after: Sequence[Alignment],
+                    top: int = TOP) -> tuple[Confusion, ...]:
+    """The ``top`` most frequent errors of either system, each counted in both: ranked by
+    the larger of its two counts, then by its count before, kind and words."""
+    b, a = _count(before), _count(after)
+    keys = sorted(set(b) | set(a), key=lambda k: (-max(b[k], a[k]), -b[k],
+                                                 KINDS.index(k[0]), k[1], k[2]))
+    return tuple(Confusion(*k, before=b[k], after=a[k]) for k in keys[:top])
 
 
 def _groupable(value: Any) -> bool:
@@ -168,8 +174,7 @@ def build_breakdown(rows: Sequence[UtteranceRow], top: int = TOP,
     worsened = sorted((r for r in rows if r.change > 0), key=lambda r: (-r.change, r.id))
     groups, skipped = by_meta(rows)
     return Breakdown(
-        before=confusions([r.before for r in rows], top),
-        after=confusions([r.after for r in rows], top),
+        confusions=confusion_table([r.before for r in rows], [r.after for r in rows], top),
         improved=tuple(r.id for r in improved[:changed]),
         worsened=tuple(r.id for r in worsened[:changed]),
         by_meta=groups,

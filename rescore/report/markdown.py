@@ -6,7 +6,7 @@ import re
 from collections.abc import Sequence
 
 from rescore.report import wording as t
-from rescore.report.breakdown import Confusions
+from rescore.report.breakdown import Confusion
 from rescore.report.build import Report
 from rescore.report.confidence import CONFIDENCE_CAUTION, confidence_lines, confidence_rows
 
@@ -37,23 +37,24 @@ _CONTROLS = {c: " " if chr(c) in "\t\n\r\v\f\u2028\u2029\x85" else "\ufffd"
              for c in [*range(0x20), *range(0x7F, 0xA0), 0x2028, 0x2029]}
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[object]]) -> list[str]:
+def _table(head: Sequence[str], rows: Sequence[Sequence[object]],
+           numeric_from: int = 1) -> list[str]:
     if not rows:
         return ["(none)", ""]
     out = ["| " + " | ".join(head) + " |",
-           "|" + "|".join(" --- " if i == 0 else " ---: " for i in range(len(head))) + "|"]
+           "|" + "|".join(" --- " if i < numeric_from else " ---: " for i in range(len(head)))
+           + "|"]
     out += ["| " + " | ".join(_cell(v) for v in row) + " |" for row in rows]
     return [*out, ""]
 
 
-def _confusions(name: str, c: Confusions) -> list[str]:
-    out = [f"### Most frequent errors, {name}", ""]
-    out += ["Substitutions:", ""]
-    out += _table(["reference", "hypothesis", "count"], c.substitutions)
-    out += ["Insertions:", ""]
-    out += _table(["word", "count"], c.insertions)
-    out += ["Deletions:", ""]
-    out += _table(["word", "count"], c.deletions)
+def _confusions(rows: Sequence[Confusion]) -> list[str]:
+    out = ["### Confusions", "",
+           "The most frequent errors of either system, each counted in both (change: after "
+           "minus before).", ""]
+    out += _table(["kind", "reference", "hypothesis", "before", "after", "change"],
+                  [(c.kind, c.reference or "-", c.hypothesis or "-", c.before, c.after,
+                    f"{c.change:+d}") for c in rows], numeric_from=3)
     return out
 
 
@@ -88,16 +89,10 @@ def render_markdown(report: Report) -> str:
         out += _table(head, rows_)
         out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
-    rows = []
-    for name, w, c in (("before", report.before, report.before_cer),
-                       ("after", report.after, report.after_cer)):
-        rows.append((name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
-                     w.reference_words, t.pct(c.cer)))
-    out += _table(["system", "WER", "sub", "del", "ins", "hits", "ref words", "CER"], rows)
+    out += _table(t.COUNTS_HEAD, t.counts_rows(report))
     out += ["## Method", ""] + [f"- {_cell(n)}" for n in t.method_notes(report)] + [""]
     out += ["## Breakdown", ""]
-    out += _confusions("before", report.breakdown.before)
-    out += _confusions("after", report.breakdown.after)
+    out += _confusions(report.breakdown.confusions)
     by_id = {u.id: u for u in report.utterances}
     for title, ids in (("Most improved utterances", report.breakdown.improved),
                        ("Most worsened utterances", report.breakdown.worsened)):
@@ -116,7 +111,7 @@ def render_markdown(report: Report) -> str:
     if report.tuning is not None and report.tuning.depth:
         out += ["## WER by N-best depth (dev set, from tuning)", ""]
         out += _table(["k", "1-best", "rescored", "oracle"],
-                      [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
+                      [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
                        for r in report.tuning.depth])
     out += ["## Provenance", ""]
     out += _table(["item", "value"], t.provenance_rows(report))

@@ -37,28 +37,45 @@ def home(keys: U64, bits: int) -> I64:
     return (mixed >> np.uint64(64 - bits)).astype(np.int64)
 
 
+BATCH = 1 << 20  # keys inserted, or queries looked up, at a time: temporaries stay small
+
+
 def build_slots(keys: U64) -> I32:
-    """The slot array for ``keys`` (which must be unique): slot -> key position, or -1."""
+    """The slot array for ``keys`` (which must be unique): slot -> key position, or -1.
+
+    Keys go in a batch at a time (the batch's temporaries, not every key's, are held);
+    which slot a key takes depends on the batches, but every look-up finds the same
+    position whatever the layout."""
     bits = table_bits(len(keys))
     mask = (1 << bits) - 1
     slots = np.full(1 << bits, EMPTY, dtype=np.int32)
-    pending = np.arange(len(keys), dtype=np.int64)
-    where = home(keys, bits)
-    while pending.size:
-        free = slots[where] == EMPTY
-        cand = pending[free]
-        cand_slot = where[free]
-        slots[cand_slot] = cand  # among keys racing for one slot, one write wins
-        won = slots[cand_slot] == cand
-        lost = np.concatenate([pending[~free], cand[~won]])
-        lost_slot = np.concatenate([where[~free], cand_slot[~won]])
-        pending = lost
-        where = (lost_slot + 1) & mask
+    for lo in range(0, len(keys), BATCH):
+        pending = np.arange(lo, min(lo + BATCH, len(keys)), dtype=np.int64)
+        where = home(keys[lo:lo + BATCH], bits)
+        while pending.size:
+            free = slots[where] == EMPTY
+            cand = pending[free]
+            cand_slot = where[free]
+            slots[cand_slot] = cand  # among keys racing for one slot, one write wins
+            won = slots[cand_slot] == cand
+            lost = np.concatenate([pending[~free], cand[~won]])
+            lost_slot = np.concatenate([where[~free], cand_slot[~won]])
+            pending = lost
+            where = (lost_slot + 1) & mask
     return slots
 
 
 def lookup(slots: I32, keys: U64, queries: U64) -> I64:
-    """Position of each query in ``keys``, or -1 where absent."""
+    """Position of each query in ``keys``, or -1 where absent (a batch at a time)."""
+    if len(queries) <= BATCH:
+        return _lookup(slots, keys, queries)
+    result = np.empty(len(queries), dtype=np.int64)
+    for lo in range(0, len(queries), BATCH):
+        result[lo:lo + BATCH] = _lookup(slots, keys, queries[lo:lo + BATCH])
+    return result
+
+
+def _lookup(slots: I32, keys: U64, queries: U64) -> I64:
     bits = len(slots).bit_length() - 1
     mask = len(slots) - 1
     result = np.full(len(queries), -1, dtype=np.int64)

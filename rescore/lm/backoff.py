@@ -41,6 +41,10 @@ class _Work:
     prob: list[F64] = field(default_factory=list)
     gamma: list[F64] = field(default_factory=list)  # gamma[k-1]: over order-k n-grams
     keep: list[B] = field(default_factory=list)
+    sizes: list[int] = field(default_factory=list)  # n-grams of each order
+    # per order, the n-grams whose count reaches the cutoff (the raw counts are let go as
+    # soon as their order is estimated)
+    counted: list[B] = field(default_factory=list)
     # hash slots of the unpruned keys of some orders, built while finding contexts; the
     # final tables reuse them where an order and every order below it lose nothing
     slots: dict[int, npt.NDArray[np.int32]] = field(default_factory=dict)
@@ -114,7 +118,7 @@ def estimate(
     sizes = [len(c) for c in counts]
     smoothing = Steps(progress, "smoothing", order + 1)
     prefixes, slots = _prefixes(counts, v)
-    work = _Work(suffix=[], first=[], prefix=prefixes, raw=[], slots=slots)
+    work = _Work(suffix=[], first=[], prefix=prefixes, raw=[], slots=slots, sizes=sizes)
     for k, c in enumerate(counts):
         work.raw.append(c.count.astype(np.float64))
         if consume:  # the caller's arrays are let go: the ids in half the bytes
@@ -153,6 +157,8 @@ def estimate(
         if est.fallback:
             meta["fallbacks"][str(k)] = est.fallback
         dropped = work.raw[k - 1] < cut[k - 1]
+        work.counted.append(~dropped)
+        work.raw[k - 1] = work.raw[k - 1][:0]  # the last use of this order's counts
         numer = np.where(dropped, 0.0, est.numer)
         denom = stats.per_context(used) + est.extra
         lost = stats.per_context(est.numer - numer)  # the share of n-grams below a cutoff
@@ -179,12 +185,11 @@ def estimate(
         del alpha, ctx_gamma
     del alphas
 
-    _mark_kept(work, cut)
+    _mark_kept(work)
     if prune is not None and prune > 0:
         _entropy_prune(work, prune, Steps(progress, "pruning", order - 1))
     # the tables need the words, the probabilities, the weights and what is kept
     work.prefix = [p[:0] for p in work.prefix]
-    work.raw = [r[:0] for r in work.raw]
     give_back_freed_memory()  # the estimation's temporaries: the peak comes next
     tables = _compact(work, vocab, Steps(progress, "indexing", order))
     meta["uniform_tokens"] = n_pred
@@ -193,22 +198,22 @@ def estimate(
 
 def _protect(work: _Work, k: int) -> B:
     """Order-k n-grams that a kept (k+1)-gram needs as its context or its suffix."""
-    need = np.zeros(len(work.raw[k - 1]), dtype=bool)
-    if k < len(work.raw):
+    need = np.zeros(work.sizes[k - 1], dtype=bool)
+    if k < len(work.sizes):
         kept = work.keep[k]
         need[work.suffix[k][kept]] = True
         need[work.prefix[k][kept]] = True
     return need
 
 
-def _mark_kept(work: _Work, cut: list[int]) -> None:
-    order = len(work.raw)
+def _mark_kept(work: _Work) -> None:
+    order = len(work.sizes)
     work.keep = [np.ones(0, bool)] * order
     for k in range(order, 0, -1):
         if k == 1:
-            work.keep[0] = np.ones(len(work.raw[0]), dtype=bool)
+            work.keep[0] = np.ones(work.sizes[0], dtype=bool)
         else:
-            work.keep[k - 1] = (work.raw[k - 1] >= cut[k - 1]) | _protect(work, k)
+            work.keep[k - 1] = work.counted[k - 1] | _protect(work, k)
 
 
 def _marginals(work: _Work) -> list[F64]:
@@ -217,7 +222,7 @@ def _marginals(work: _Work) -> list[F64]:
         first = np.log(work.prob[0])
     first[BOS_ID] = 0.0  # a history that begins a sentence begins with certainty
     out = [first]
-    for k in range(2, len(work.raw) + 1):
+    for k in range(2, len(work.sizes) + 1):
         with np.errstate(divide="ignore"):
             own = np.log(work.prob[k - 1])
         out.append(out[k - 2][work.prefix[k - 1]] + own)
@@ -226,7 +231,7 @@ def _marginals(work: _Work) -> list[F64]:
 
 def _entropy_prune(work: _Work, threshold: float, tick: Steps) -> None:
     """Stolcke (1998): drop n-grams whose removal raises perplexity by less than threshold."""
-    order = len(work.raw)
+    order = len(work.sizes)
     marg = _marginals(work)
     changed: list[B] = [np.zeros(len(g), dtype=bool) for g in work.gamma]
     for k in range(order, 1, -1):
@@ -234,7 +239,7 @@ def _entropy_prune(work: _Work, threshold: float, tick: Steps) -> None:
         prefix, suffix = work.prefix[k - 1], work.suffix[k - 1]
         p = work.prob[k - 1]
         pb = work.prob[k - 2][suffix]
-        n_ctx = len(work.raw[k - 2])
+        n_ctx = work.sizes[k - 2]
         listed = np.bincount(prefix, weights=np.where(keep, p, 0.0), minlength=n_ctx)
         listed_b = np.bincount(prefix, weights=np.where(keep, pb, 0.0), minlength=n_ctx)
         left = np.maximum(1.0 - listed, 0.0)[prefix]  # unlisted mass under h
@@ -263,7 +268,7 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
     prefix = work.prefix[k - 1]
     p = np.where(keep, work.prob[k - 1], 0.0)
     pb = np.where(keep, work.prob[k - 2][work.suffix[k - 1]], 0.0)
-    n_ctx = len(work.raw[k - 2])
+    n_ctx = work.sizes[k - 2]
     left = np.maximum(1.0 - np.bincount(prefix, weights=p, minlength=n_ctx), 0.0)
     left_b = np.maximum(1.0 - np.bincount(prefix, weights=pb, minlength=n_ctx), 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -282,7 +287,7 @@ def _let_go(work: _Work, k: int) -> None:
 
 
 def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
-    order = len(work.raw)
+    order = len(work.sizes)
     v = len(vocab)
     # ids of the kept n-grams of each order (None: all kept, the ids are unchanged)
     new_ids: list[I64 | None] = [None]

@@ -158,6 +158,9 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    no_wer: Annotated[bool, typer.Option(
+        "--no-wer", help="Skip the WER before and after: with references, it reads the output "
+        "back once (about as long again as the rescoring on large files).")] = False,
     as_json: JsonOpt = False,
 ) -> None:
     """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
@@ -179,7 +182,7 @@ def apply(
     # the output just written; nothing to read back when it went to standard output)
     # (or a FIFO, a terminal, /proc/self/fd/1: only a regular file, not stdout, is read back)
     wers = (pipeline.before_after_wer(out, batch_size=batch_size)
-            if _readable_output(out) else None)
+            if not no_wer and _readable_output(out) else None)
     if as_json:
         emit_json({"utterances": result.utterances, "changed": result.changed,
                    "empty": result.empty, "shards": result.shards, "out": str(out),

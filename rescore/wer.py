@@ -72,13 +72,13 @@ def align_counts(ref: Sequence[str], hyp: Sequence[str]) -> tuple[int, int, int,
     a = [ids.setdefault(w, len(ids)) for w in ref]
     b = [ids.setdefault(w, len(ids)) for w in hyp]
     s = d = i = 0
-    for tag, i1, i2, j1, j2 in Levenshtein.opcodes(a, b):
-        if tag == "replace":
-            s += i2 - i1
-        elif tag == "delete":
-            d += i2 - i1
-        elif tag == "insert":
-            i += j2 - j1
+    for op in Levenshtein.opcodes(a, b):
+        if op.tag == "replace":
+            s += op.src_end - op.src_start
+        elif op.tag == "delete":
+            d += op.src_end - op.src_start
+        elif op.tag == "insert":
+            i += op.dest_end - op.dest_start
     return s, d, i, len(ref) - s - d
 
 

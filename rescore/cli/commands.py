@@ -23,15 +23,18 @@ from rescore.cli.options import (
     NbestArg,
     OutOpt,
     RefsOpt,
+    RulesOpt,
+    UnitOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
+from rescore.counting import counting_of, unit_name
 from rescore.errors import UsageError
 from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.scoring import oov_features
 from rescore.shards import count_lines
-from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights, read_weights_provenance
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -59,14 +62,16 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           lm: Annotated[list[Path] | None, typer.Option(
               "--lm", help="Count the references found verbatim in this LM's training text "
               "(repeatable).", show_default=False)] = None,
-          warn_overlap: WarnOverlapOpt = "1%") -> None:
+          warn_overlap: WarnOverlapOpt = "1%", rules: RulesOpt = None,
+          unit: UnitOpt = "word") -> None:
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
+    counting = counting_of(rules, unit)
     threshold = gate_rate(warn_overlap, "--warn-overlap") or 0.0
     if lm and str(nbest) == "-":
         raise UsageError("check --lm reads the references a second time: give a file, not -")
     ref_map = _refs(refs)
     result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
-                                 batch_size=batch_size)
+                                 batch_size=batch_size, counting=counting)
     overlap = None if not lm else leakage(
         [(str(p), p) for p in lm],
         reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs), threshold)
@@ -74,15 +79,17 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
         warn(line)
     _warn(result.warnings)
     if as_json:
-        emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()}))
+        emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()})
+                  | counting.provenance())
         return
+    rate = unit_name(counting.unit)
     table(f"{nbest}", ["", "value"], [
         ["utterances", result.utterances],
         ["hypotheses", result.hypotheses],
         ["max depth", result.max_depth],
         ["mean depth", result.hypotheses / max(result.utterances, 1)],
-        ["1-best WER", pct(result.one_best_wer)],
-        ["oracle WER", pct(result.oracle_wer)],
+        [f"1-best {rate}", pct(result.one_best_wer)],
+        [f"oracle {rate}", pct(result.oracle_wer)],
         *([] if overlap is None else [
             ["references in the LM text", f"{overlap.found} of {overlap.references} "
              f"({pct(overlap.share)})"]]),
@@ -124,18 +131,24 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    unit: UnitOpt = "word",
 ) -> None:
     """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
+    counting = counting_of(None, unit)
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
+    # weights tuned at one unit weigh the tokens of that unit: refuse the other
+    counting.check_record(read_weights_provenance(weights), "the weights", path=weights,
+                          rules=False)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
-                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)),
+                                     counting=counting)
     _warn(result.warnings)
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
     info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
@@ -150,23 +163,29 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
-    batch_size: BatchOpt = DEFAULT_BATCH,
+    batch_size: BatchOpt = DEFAULT_BATCH, rules: RulesOpt = None, unit: UnitOpt = "word",
 ) -> None:
-    """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
+    """Word error rate of an N-best file's 1-best, or of a transcript file against --refs
+    (character error rate with --unit char)."""
+    counting = counting_of(rules, unit)
     if (nbest is None) == (hyps is None):
         raise UsageError("give either an N-best file or --refs FILE --hyps FILE")
     if hyps is not None:
         if refs is None:
             raise UsageError("--hyps needs --refs")
-        result = pipeline.wer_transcripts(refs, hyps)
+        result = pipeline.wer_transcripts(refs, hyps, counting=counting)
     else:
         assert nbest is not None
         result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
-                                   batch_size=batch_size)
+                                   batch_size=batch_size, counting=counting)
     if as_json:
-        emit_json(result.to_dict())
+        # the contract's keys (a CER under --unit char: counts of characters), then how
+        # they were counted when not the default
+        emit_json(result.to_dict() | counting.provenance())
         return
-    table(None, WER_COLUMNS, _wer_rows([("1-best", result.to_dict())]))
+    columns = WER_COLUMNS if counting.unit == "word" else \
+        ["", "CER", "sub", "del", "ins", "hits", "ref chars"]
+    table(None, columns, _wer_rows([("1-best", result.to_dict())]))
 
 
 @guarded
@@ -207,8 +226,11 @@ def tune(
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     choose: ChooseOpt = None,
     as_json: JsonOpt = False,
+    rules: RulesOpt = None,
+    unit: UnitOpt = "word",
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
+    counting = counting_of(rules, unit)
     models = pipeline.load_lms(lm or [])
     if oov_feature:
         if not models:
@@ -222,7 +244,7 @@ def tune(
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=warn_cv_gap / 100.0,
             progress=report, widen=not no_widen, bounds=bounds,
-            choose=None if choose is None else rule_value(choose),
+            choose=None if choose is None else rule_value(choose), counting=counting,
         )
     data = outcome.to_dict()
     _warn(outcome.warnings)
@@ -231,18 +253,19 @@ def tune(
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
             k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning",
-                                     "widenings", "warnings")})
+                                     "widenings", "warnings")} | counting.provenance())
     else:
         gap = data.get("cv_gap")
+        rate = unit_name(counting.unit)
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
             ["LM weight", data[LM_WEIGHT]],
             ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
-            ["baseline WER", pct(data["baseline_wer"])],
-            ["dev WER (tuned)", pct(data["dev_wer"])],
-            ["cross-validated WER", pct(data.get("cv_wer"))],
+            [f"baseline {rate}", pct(data["baseline_wer"])],
+            [f"dev {rate} (tuned)", pct(data["dev_wer"])],
+            [f"cross-validated {rate}", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
-            ["oracle WER", pct(data["oracle_wer"])],
+            [f"oracle {rate}", pct(data["oracle_wer"])],
             *decoding_rows(outcome.decoding),
         ])
     for key in ("cv_warning", "edge_warning"):

@@ -17,6 +17,8 @@ FLAGS: dict[str, str] = {
     "bounds": "--bounds",
     "weights": "--weights",
     "tune_on": "--tune-on",
+    "unit": "--unit",
+    "rules": "--rules",
 }
 
 

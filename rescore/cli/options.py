@@ -20,3 +20,10 @@ JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON object on 
 OutOpt = Annotated[Path, typer.Option("-o", "--out", help="Output file.", show_default=False)]
 BatchOpt = Annotated[int, typer.Option("--batch-size", min=1,
                                        help="Utterances held in memory at once.")]
+RulesOpt = Annotated[Path | None, typer.Option(
+    "--rules", metavar="FILE", help="Scoring rules (TOML): equivalent spellings, optional "
+    "and ignored words, normalisation steps; their name and SHA-256 go into the provenance.",
+    show_default=False)]
+UnitOpt = Annotated[str, typer.Option(
+    "--unit", metavar="word|char", help="Unit of counting and scoring: words, or characters "
+    "with spaces dropped (character LMs and CER, for scripts written without spaces).")]

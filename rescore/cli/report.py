@@ -12,7 +12,8 @@ import typer
 from rescore import pipeline
 from rescore.checksum import sha256_file
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
-from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
+from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt, RulesOpt, UnitOpt
+from rescore.counting import Counting, counting_of, unit_name
 from rescore.errors import GateError, InputError, UsageError
 from rescore.limits import ANALYSIS_FILE_LIMIT
 from rescore.lm import load_model
@@ -33,6 +34,7 @@ from rescore.report import (
 from rescore.report.confidence import load_confidences
 from rescore.report.critical import classes_with_terms, read_terms
 from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
+from rescore.weights import read_weights_provenance
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
@@ -100,6 +102,17 @@ def _tuning_record(path: Path) -> dict[str, Any]:
     return data
 
 
+def _check_counted(counting: Counting, tuning: Path | None, weights: Path | None) -> None:
+    """Refuse a tuning record or a weights file counted at another unit or under other
+    scoring rules than the report's: their errors and the report's would not compare."""
+    if tuning is not None:
+        counting.check_record(_read_tuning(tuning).get("provenance"), "the tuning record's "
+                              "errors", path=tuning)
+    if weights is not None:
+        counting.check_record(read_weights_provenance(weights), "the weights' tuning errors",
+                              path=weights)
+
+
 @guarded
 def report(
     before: SystemOpt,
@@ -137,8 +150,11 @@ def report(
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
+    rules: RulesOpt = None,
+    unit: UnitOpt = "word",
 ) -> None:
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
+    counting = counting_of(rules, unit)
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
@@ -151,11 +167,14 @@ def report(
             info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     classes = classes_with_terms({} if terms is None else read_terms(terms))
     ref_map = None if refs is None else read_refs(refs)
-    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
-    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
+    _check_counted(counting, tuning, weights)
+    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs,
+                               counting=counting)
+    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs,
+                              counting=counting)
     tuning_data = None if tuning is None else tuning_from_dict(_tuning_record(tuning),
                                                                path=str(tuning))
-    files = [p for p in (before, after, refs, tuning, terms) if p is not None]
+    files = [p for p in (before, after, refs, tuning, terms, rules) if p is not None]
     provenance: dict[str, Any] = {"data_sha256": data_hashes(files)}
     if weights is not None:
         provenance["weights"] = weights_provenance(weights)
@@ -169,7 +188,7 @@ def report(
         result = build_report(before_pairs, after_pairs, provenance=provenance,
                               tuning=tuning_data, resamples=resamples, seed=seed,
                               critical_classes=classes, overlap=overlap,
-                              progress=report_progress)
+                              progress=report_progress, counting=counting)
     result = replace(result, confidence=load_confidences(after, refs=ref_map, log_base=log_base,
                                                          costs=costs))
     result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
@@ -181,7 +200,8 @@ def report(
     else:
         d = result.difference
         table(None, ["", "before", "after", "change"], [
-            ("WER", pct(result.before.wer), pct(result.after.wer), points(d.absolute)),
+            (unit_name(counting.unit), pct(result.before.wer), pct(result.after.wer),
+             points(d.absolute)),
             ("interval of the change", "", "", interval(d.ci_low, d.ci_high)),
             ("probability of improvement", "", "",
              share_of_resamples(d.probability_of_improvement, result.bootstrap.resamples)),

@@ -26,14 +26,22 @@ class Confusions:
     substitutions: tuple[tuple[str, str, int], ...]
     insertions: tuple[tuple[str, int], ...]
     deletions: tuple[tuple[str, int], ...]
+    # what the scoring rules counted as correct (kind ``equivalent`` or ``optional``,
+    # reference, hypothesis or "" for an optional word left out, count): no errors, but
+    # shown so a reader sees how much the rules forgave
+    rule_matches: tuple[tuple[str, str, str, int], ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
-        return {
+        out: dict[str, Any] = {
             "substitutions": [{"reference": r, "hypothesis": h, "count": c}
                               for r, h, c in self.substitutions],
             "insertions": [{"word": w, "count": c} for w, c in self.insertions],
             "deletions": [{"word": w, "count": c} for w, c in self.deletions],
         }
+        if self.rule_matches:  # only under rules that change the alignment
+            out["rule_matches"] = [{"kind": k, "reference": r, "hypothesis": h, "count": c}
+                                   for k, r, h, c in self.rule_matches]
+        return out
 
 
 @dataclass(frozen=True)
@@ -105,9 +113,12 @@ def confusions(alignments: Sequence[Alignment], top: int = TOP) -> Confusions:
     subs: Counter[tuple[str, str]] = Counter()
     ins: Counter[str] = Counter()
     dels: Counter[str] = Counter()
+    ruled: Counter[tuple[str, str, str]] = Counter()
     for al in alignments:
         for op in al.ops:
-            if op.kind == "substitute" and op.ref is not None and op.hyp is not None:
+            if op.kind in ("equivalent", "optional") and op.ref is not None:
+                ruled[(op.kind, op.ref, op.hyp or "")] += 1
+            elif op.kind == "substitute" and op.ref is not None and op.hyp is not None:
                 subs[(op.ref, op.hyp)] += 1
             elif op.kind == "insert" and op.hyp is not None:
                 ins[op.hyp] += 1
@@ -117,6 +128,7 @@ def confusions(alignments: Sequence[Alignment], top: int = TOP) -> Confusions:
         tuple((r, h, c) for (r, h), c in _ranked(subs, top)),
         tuple(_ranked(ins, top)),
         tuple(_ranked(dels, top)),
+        tuple((k, r, h, c) for (k, r, h), c in _ranked(ruled, top)),
     )
 
 

@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
@@ -31,12 +32,10 @@ from rescore.significance import (
     sign_test,
     wilcoxon_signed_rank,
 )
-from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM_WEIGHT
 from rescore.wer import (
     CerResult,
     WerResult,
-    align_many,
     corpus_cer,
     counts_from_alignments,
     summarise,
@@ -71,9 +70,11 @@ class Pair:
 
     @classmethod
     def from_text(cls, id: str, reference: str, hypothesis: str,
-                  meta: Mapping[str, Any] | None = None) -> Pair:
-        """Normalise both sides with :func:`rescore.text.tokens`."""
-        return cls(id, tuple(tokens(reference)), tuple(tokens(hypothesis)), dict(meta or {}))
+                  meta: Mapping[str, Any] | None = None, counting: Counting = PLAIN) -> Pair:
+        """Both sides as ``counting`` scores them (by default :func:`rescore.text.tokens`'s
+        words; the rules' tokens, or characters, otherwise)."""
+        return cls(id, tuple(counting.score_tokens(reference)),
+                   tuple(counting.score_tokens(hypothesis)), dict(meta or {}))
 
 
 @dataclass(frozen=True)
@@ -241,6 +242,7 @@ def build_report(
     critical_classes: Sequence[CriticalClass] | None = None,
     overlap: OverlapSummary | None = None,
     progress: ProgressReport | None = None,
+    counting: Counting = PLAIN,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
@@ -250,7 +252,9 @@ def build_report(
     of critical words counted apart (default: the built-in numbers and negations; see
     :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
     language models' training text (:func:`rescore.lm.overlap.overlap_summary`); above
-    its threshold the report warns first of all.
+    its threshold the report warns first of all. ``counting`` is the unit and the
+    scoring rules the pairs were read under (:meth:`Pair.from_text`): the alignments
+    follow the rules, and both go into the provenance.
     """
     if tuning is not None and not isinstance(tuning, Tuning):
         tuning = tuning_from_dict(tuning)
@@ -258,8 +262,8 @@ def build_report(
     refs = [b.reference for b, _ in matched]
     hyp_b = [b.hypothesis for b, _ in matched]
     hyp_a = [a.hypothesis for _, a in matched]
-    al_b = align_many(refs, hyp_b)
-    al_a = align_many(refs, hyp_a)
+    al_b = counting.align_many(refs, hyp_b)
+    al_a = counting.align_many(refs, hyp_a)
     counts_b = counts_from_alignments(al_b)
     counts_a = counts_from_alignments(al_a)
     wer_b, wer_a = summarise(counts_b), summarise(counts_a)
@@ -285,7 +289,7 @@ def build_report(
         UtteranceRow(b.id, len(b.reference), x, y, dict(b.meta) or dict(a.meta))
         for (b, a), x, y in zip(matched, al_b, al_a, strict=True)
     )
-    prov: dict[str, Any] = header() | {
+    prov: dict[str, Any] = header(counting) | {
         "bootstrap": {"resamples": resamples, "seed": seed, "confidence": confidence,
                       "generator": f"numpy {np.__version__} default_rng (PCG64)"},
         "matched_pairs": {"min_run": min_run},
@@ -306,7 +310,10 @@ def build_report(
                         f"{', '.join(small)}) are too small to compare; they are marked")
     return Report(
         before=wer_b, after=wer_a,
-        before_cer=corpus_cer(refs, hyp_b), after_cer=corpus_cer(refs, hyp_a),
+        # characters with spaces between words; under --unit char the tokens are
+        # characters already, and the CER is the error rate itself
+        before_cer=corpus_cer(refs, hyp_b, spaces=counting.unit == "word"),
+        after_cer=corpus_cer(refs, hyp_a, spaces=counting.unit == "word"),
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
         breakdown=breakdown,
         utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),

@@ -10,6 +10,7 @@ from __future__ import annotations
 import base64
 import hashlib
 import json
+import unicodedata
 from collections.abc import Iterable, Sequence
 from html import escape
 
@@ -103,6 +104,23 @@ _SCRIPT = """
 """
 
 
+# added to the page only when a transcript has a step the scoring rules counted as correct
+_RULES_CSS = """
+.w-eqv { border-bottom: 2px dotted #5a8f5a; }
+.w-opt { color: #777; font-style: italic; }
+"""
+_RULED = frozenset({"equivalent", "optional"})
+_RIGHT_TO_LEFT = frozenset({"R", "AL"})  # Unicode bidirectional classes of RTL letters
+
+
+def _dir(words: Iterable[str]) -> str:
+    """``dir="auto"`` for text holding right-to-left letters, so the browser lays it out
+    from its first strong character (Hebrew, Arabic) instead of the page's left-to-right;
+    left-to-right text is laid out the same either way and keeps its bytes."""
+    return ' dir="auto"' if any(unicodedata.bidirectional(c) in _RIGHT_TO_LEFT
+                                for w in words for c in w) else ""
+
+
 def _e(value: object) -> str:
     return escape(str(value), quote=True)
 
@@ -155,7 +173,12 @@ def _confusions(name: str, c: Confusions) -> str:
             "<h3>Substitutions</h3>"
             + _table(["reference", "hypothesis", "count"], c.substitutions, 2)
             + "<h3>Insertions</h3>" + _table(["word", "count"], c.insertions)
-            + "<h3>Deletions</h3>" + _table(["word", "count"], c.deletions) + "</div>")
+            + "<h3>Deletions</h3>" + _table(["word", "count"], c.deletions)
+            + ("" if not c.rule_matches else
+               "<h3>Counted as correct by the scoring rules</h3>"
+               + _table(["kind", "reference", "hypothesis", "count"],
+                        [(k, r, h or "(left out)", n) for k, r, h, n in c.rule_matches], 2))
+            + "</div>")
 
 
 def marked_words(alignment: Alignment) -> str:
@@ -169,6 +192,14 @@ def marked_words(alignment: Alignment) -> str:
                          "</span>")
         elif op.kind == "insert":
             parts.append(f'<ins title="inserted">{_e(op.hyp)}</ins>')
+        elif op.kind == "equivalent":
+            # correct under the scoring rules: the hypothesis's spelling, the reference's
+            # on hover, and a dotted underline so it is seen not to be the same words
+            parts.append(f'<span class="w-eqv" title="equivalent under the scoring rules to '
+                         f'the reference: {_e(op.ref)}">{_e(op.hyp)}</span>')
+        elif op.kind == "optional":
+            parts.append(f'<span class="w-opt" title="optional word left out (no error)">'
+                         f'({_e(op.ref)})</span>')
         else:
             parts.append(f'<del title="deleted">{_e(op.ref)}</del>')
     return " ".join(parts) if parts else '<span class="sub-title">(no words)</span>'
@@ -178,15 +209,17 @@ def _utterance(index: int, u: UtteranceRow) -> str:
     tone = " better" if u.change < 0 else (" worse" if u.change > 0 else "")
     meta = ", ".join(f"{k}={v}" for k, v in sorted(u.meta.items(), key=lambda kv: kv[0]))
     ref = " ".join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
+    words = [*u.before.reference, *u.before.hypothesis, *u.after.hypothesis]
+    ltr = _dir(words)
     return (
         f'<li class="utt" id="u{index}" data-change="{u.change}">'
         f'<span class="change{tone}">errors {u.before_errors} &rarr; {u.after_errors}</span>'
         f'<span class="uid">{_e(u.id)}</span>'
         + (f' <span class="sub-title">{_e(meta)}</span>' if meta else "")
         + '<table class="words"><tbody>'
-        f"<tr><td>reference</td><td>{ref}</td></tr>"
-        f"<tr><td>before</td><td>{marked_words(u.before)}</td></tr>"
-        f"<tr><td>after</td><td>{marked_words(u.after)}</td></tr>"
+        f"<tr><td>reference</td><td{ltr}>{ref}</td></tr>"
+        f"<tr><td>before</td><td{ltr}>{marked_words(u.before)}</td></tr>"
+        f"<tr><td>after</td><td{ltr}>{marked_words(u.after)}</td></tr>"
         "</tbody></table></li>"
     )
 
@@ -200,8 +233,9 @@ def _tuning(report: Report) -> str:
         cards.append('<div class="card"><h3>Error surface on the tuning set</h3><figure>'
                      + plots.surface_heatmap(tuning.surface, tuning) + "</figure></div>")
     if tuning.depth:
-        cards.append('<div class="card"><h3>WER by N-best depth (dev set)</h3><figure>'
-                     + plots.depth_curve(tuning) + "</figure>"
+        cards.append('<div class="card"><h3>' + t.say(report, "WER by N-best depth (dev set)")
+                     + "</h3><figure>" + plots.depth_curve(tuning, t.say(report, "WER"))
+                     + "</figure>"
                      + _table(["k", "1-best", "rescored", "oracle"],
                               [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
                                 t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
@@ -223,8 +257,8 @@ def _changed(report: Report) -> str:
 def _by_meta(report: Report) -> str:
     out = []
     for key, groups in report.breakdown.by_meta.items():
-        head, rows = t.group_table(key, groups)
-        out.append(f'<div class="card"><h3>WER by {_e(key)}</h3>'
+        head, rows = t.group_table(key, groups, report)
+        out.append(f'<div class="card"><h3>{t.say(report, "WER")} by {_e(key)}</h3>'
                    + _table(head, rows) + "</div>")
     skipped = report.breakdown.meta_skipped
     if skipped:
@@ -271,13 +305,18 @@ def _warnings(report: Report) -> str:
 
 
 def render_html(report: Report) -> str:
+    chars = t.unit_of(report) == "char"  # then the CER is the headline rate, not a column
     counts = _table(
-        ["system", "WER", "substitutions", "deletions", "insertions", "hits",
-         "reference words", "CER"],
+        [t.say(report, h) for h in ["system", "WER", "substitutions", "deletions",
+                                    "insertions", "hits", "reference words",
+                                    *([] if chars else ["CER"])]],
         [(name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
-          w.reference_words, t.pct(c.cer))
+          w.reference_words, *([] if chars else [t.pct(c.cer)]))
          for name, w, c in (("before", report.before, report.before_cer),
                             ("after", report.after, report.after_cer))])
+    ruled = any(op.kind in _RULED for u in report.utterances
+                for al in (u.before, u.after) for op in al.ops)
+    counted = t.counting_text(report)
     confusions = (_confusions("before", report.breakdown.before)
                   + _confusions("after", report.breakdown.after))
     notes = "".join(f"<li>{_e(n)}</li>" for n in t.method_notes(report))
@@ -290,21 +329,22 @@ def render_html(report: Report) -> str:
 <meta http-equiv="Content-Security-Policy" content="{_e(_csp())}">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <meta name="referrer" content="no-referrer">
-<title>{_e(t.TITLE)}</title>
-<style>{_CSS}</style>
+<title>{_e(t.title(report))}</title>
+<style>{_CSS}{_RULES_CSS if ruled else ""}</style>
 </head>
 <body>
 <header>
-<h1>{_e(t.TITLE)}</h1>
+<h1>{_e(t.title(report))}</h1>
 <p class="sub-title">{report.before.utterances} utterances, {report.before.reference_words}
-reference words; normalisation {_e(report.provenance.get("normalisation", ""))}</p>
+{t.say(report, "reference words")}; normalisation {_e(report.provenance.get("normalisation", ""))}\
+{"" if not counted else "; " + _e(counted)}</p>
 </header>
 <main>
 {_warnings(report)}
 {_gate(report)}
 <div class="row">
 <div class="card">{_headline(report)}</div>
-<div class="card"><figure>{plots.wer_intervals(report)}</figure></div>
+<div class="card"><figure>{plots.wer_intervals(report, t.say(report, "WER"))}</figure></div>
 </div>
 <div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
 {_critical(report)}

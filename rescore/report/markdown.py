@@ -54,11 +54,18 @@ def _confusions(name: str, c: Confusions) -> list[str]:
     out += _table(["word", "count"], c.insertions)
     out += ["Deletions:", ""]
     out += _table(["word", "count"], c.deletions)
+    if c.rule_matches:
+        out += ["Counted as correct by the scoring rules (no errors):", ""]
+        out += _table(["kind", "reference", "hypothesis", "count"],
+                      [(k, r, h or "(left out)", n) for k, r, h, n in c.rule_matches])
     return out
 
 
 def render_markdown(report: Report) -> str:
-    out = [f"# {t.TITLE}", ""]
+    out = [f"# {t.title(report)}", ""]
+    counted = t.counting_text(report)
+    if counted:  # the header names the unit and the rules when they are not the default
+        out += [f"Counting: {_cell(counted)}.", ""]
     for warning in report.warnings:
         out += [f"> **Warning.** {_cell(warning)}", ""]
     out += _table(["measure", "value"],
@@ -89,11 +96,14 @@ def render_markdown(report: Report) -> str:
         out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
     rows = []
+    chars = t.unit_of(report) == "char"  # then the CER is the headline rate, not a column
     for name, w, c in (("before", report.before, report.before_cer),
                        ("after", report.after, report.after_cer)):
         rows.append((name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
-                     w.reference_words, t.pct(c.cer)))
-    out += _table(["system", "WER", "sub", "del", "ins", "hits", "ref words", "CER"], rows)
+                     w.reference_words, *([] if chars else [t.pct(c.cer)])))
+    out += _table([t.say(report, h) for h in ["system", "WER", "sub", "del", "ins", "hits",
+                                               "ref words", *([] if chars else ["CER"])]],
+                  rows)
     out += ["## Method", ""] + [f"- {_cell(n)}" for n in t.method_notes(report)] + [""]
     out += ["## Breakdown", ""]
     out += _confusions("before", report.breakdown.before)
@@ -106,15 +116,15 @@ def render_markdown(report: Report) -> str:
                       [(i, by_id[i].before_errors, by_id[i].after_errors,
                         " ".join(by_id[i].after.hypothesis)) for i in ids])
     for key, groups in report.breakdown.by_meta.items():
-        out += [f"### WER by {_cell(key)}", ""]
-        head, rows_ = t.group_table(key, groups)
+        out += [t.say(report, "### WER by ") + _cell(key), ""]
+        head, rows_ = t.group_table(key, groups, report)
         out += _table([_cell(h) for h in head], rows_)
     if report.breakdown.meta_skipped:
         out += ["### Metadata keys not broken down", ""]
         out += _table(["key", "why", "distinct values"],
                       [(k.key, k.reason, k.values) for k in report.breakdown.meta_skipped])
     if report.tuning is not None and report.tuning.depth:
-        out += ["## WER by N-best depth (dev set, from tuning)", ""]
+        out += [t.say(report, "## WER by N-best depth (dev set, from tuning)"), ""]
         out += _table(["k", "1-best", "rescored", "oracle"],
                       [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
                        for r in report.tuning.depth])

@@ -13,6 +13,40 @@ from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT
 
 TITLE = "Release report: WER before and after rescoring"
 
+# under --unit char the report counts characters: it says CER wherever it would say WER
+_CHAR_WORDING = (("WER", "CER"), ("reference words", "reference characters"),
+                 ("ref words", "ref chars"), ("words both systems", "characters both systems"))
+
+
+def unit_of(report: Report) -> str:
+    """The unit the report counts (its provenance's ``unit``; absent: words)."""
+    return str(report.provenance.get("unit", "word"))
+
+
+def say(report: Report, text: str) -> str:
+    """``text`` in the report's unit: unchanged for words; CER for WER, characters for
+    words, under ``--unit char``."""
+    if unit_of(report) != "char":
+        return text
+    for word, char in _CHAR_WORDING:
+        text = text.replace(word, char)
+    return text
+
+
+def title(report: Report) -> str:
+    return say(report, TITLE)
+
+
+def counting_text(report: Report) -> str:
+    """The header's note of the unit and the scoring rules ("" for words and no rules)."""
+    parts = []
+    if unit_of(report) == "char":
+        parts.append("unit: characters, spaces dropped (CER)")
+    rules = report.provenance.get("rules")
+    if isinstance(rules, dict):
+        parts.append(f"scoring rules {rules.get('name')} (SHA-256 {rules.get('sha256')})")
+    return "; ".join(parts)
+
 
 def pct(value: float | None, digits: int = 2) -> str:
     return "-" if value is None else f"{100 * value:.{digits}f}%"
@@ -56,7 +90,8 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
     """(label, display text, report.json key, exact value) rows of the headline table."""
     d, b = report.difference, report.bootstrap
     level = f"{100 * b.confidence:g}%"
-    return [
+    rows: list[tuple[str, str, str, Any]] = [
+
         ("WER before", pct(report.before.wer), "before.wer", report.before.wer),
         ("WER after", pct(report.after.wer), "after.wer", report.after.wer),
         ("Absolute change (after - before)", points(d.absolute), "difference.absolute",
@@ -78,12 +113,15 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
         ("Wilcoxon signed-rank p", p_value(d.wilcoxon_p), "difference.wilcoxon_p",
          d.wilcoxon_p),
     ]
+    return [(say(report, label), shown, key, value) for label, shown, key, value in rows]
 
 
 def method_notes(report: Report) -> list[str]:
-    return [_bootstrap_note(report), _matched_pairs_note(report), _sign_note(report),
-            _wilcoxon_note(report),
-            f"Text normalisation on both sides: {report.provenance.get('normalisation')}."]
+    notes = [_bootstrap_note(report), _matched_pairs_note(report), _sign_note(report),
+             _wilcoxon_note(report),
+             f"Text normalisation on both sides: {report.provenance.get('normalisation')}."]
+    counted = counting_text(report)
+    return [say(report, n) for n in notes] + ([f"Counting: {counted}."] if counted else [])
 
 
 def _bootstrap_note(report: Report) -> str:
@@ -142,10 +180,13 @@ def weights_text(weights: dict[str, Any]) -> str:
     return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"
 
 
-def group_table(key: str, groups: tuple[GroupRow, ...]) -> tuple[list[str], list[tuple[Any, ...]]]:
+def group_table(key: str, groups: tuple[GroupRow, ...], report: Report | None = None
+                ) -> tuple[list[str], list[tuple[Any, ...]]]:
     """Head and rows of a WER-by-metadata table; a ``note`` column marks the groups too
     small to compare, and appears only when there is one."""
     head = [key, "utterances", "ref words", "WER before", "WER after"]
+    if report is not None:
+        head = [key, *(say(report, h) for h in head[1:])]
     rows: list[tuple[Any, ...]] = [(g.value, g.utterances, g.reference_words,
                                     pct(g.before_wer), pct(g.after_wer)) for g in groups]
     if any(g.too_small for g in groups):

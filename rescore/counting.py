@@ -46,6 +46,21 @@ def characters(words: Sequence[str]) -> list[str]:
     return [c for w in words for c in w]
 
 
+# under --unit char a report and a table say CER wherever they would say WER
+_CHAR_WORDING = (("WER", "CER"), ("reference words", "reference characters"),
+                 ("ref words", "ref chars"), ("words both systems", "characters both systems"))
+
+
+def in_unit(text: str, unit: str) -> str:
+    """``text`` worded for ``unit``: unchanged for words; for ``char``, CER for WER and
+    characters for reference words."""
+    if unit != "char":
+        return text
+    for word, char in _CHAR_WORDING:
+        text = text.replace(word, char)
+    return text
+
+
 def plural(unit: str) -> str:
     """``words`` or ``characters``, as messages name a unit."""
     return "characters" if unit == "char" else f"{unit}s"

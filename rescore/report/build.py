@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from rescore.counting import PLAIN, Counting
+from rescore.counting import PLAIN, Counting, in_unit
 from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
@@ -316,7 +316,8 @@ def build_report(
         after_cer=corpus_cer(refs, hyp_a, spaces=counting.unit == "word"),
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
         breakdown=breakdown,
-        utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
+        utterances=rows, provenance=prov, tuning=tuning,
+        warnings=tuple(in_unit(w, counting.unit) for w in warnings),
         critical=critical_words(rows, builtin_classes() if critical_classes is None
                                 else critical_classes),
         overlap=overlap,
@@ -326,7 +327,8 @@ def build_report(
 def gate_failures(report: Report, *, max_wer: float | None = None,
                   max_regression: float | None = None) -> list[str]:
     """Why the release gates fail (empty when they pass or none is set)."""
-    reasons = []
+    reasons: list[str] = []
+    unit = str(report.provenance.get("unit", "word"))
     # in the report's units: WERs in percent, their change in percentage points
     if max_wer is not None and report.after.wer > max_wer:
         reasons.append(f"after WER {100 * report.after.wer:.2f}% is above --max-wer "
@@ -334,7 +336,7 @@ def gate_failures(report: Report, *, max_wer: float | None = None,
     if max_regression is not None and report.difference.absolute > max_regression:
         reasons.append(f"WER change {100 * report.difference.absolute:+.2f} points is above "
                        f"--max-regression {100 * max_regression:g} points")
-    return reasons
+    return [in_unit(r, unit) for r in reasons]
 
 
 def with_gate(report: Report, *, max_wer: float | None, max_regression: float | None) -> Report:

@@ -6,17 +6,13 @@ import json
 import math
 from typing import Any
 
+from rescore.counting import in_unit
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
 from rescore.report.build import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.build import Report
 from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT
 
 TITLE = "Release report: WER before and after rescoring"
-
-# under --unit char the report counts characters: it says CER wherever it would say WER
-_CHAR_WORDING = (("WER", "CER"), ("reference words", "reference characters"),
-                 ("ref words", "ref chars"), ("words both systems", "characters both systems"))
-
 
 def unit_of(report: Report) -> str:
     """The unit the report counts (its provenance's ``unit``; absent: words)."""
@@ -26,11 +22,7 @@ def unit_of(report: Report) -> str:
 def say(report: Report, text: str) -> str:
     """``text`` in the report's unit: unchanged for words; CER for WER, characters for
     words, under ``--unit char``."""
-    if unit_of(report) != "char":
-        return text
-    for word, char in _CHAR_WORDING:
-        text = text.replace(word, char)
-    return text
+    return in_unit(text, unit_of(report))
 
 
 def title(report: Report) -> str:

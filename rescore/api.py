@@ -18,7 +18,7 @@ from rescore.lm import NGramModel, read_corpus
 from rescore.lm import load_model as _load_model
 from rescore.lm import save_model as _save_model
 from rescore.nbest import Utterance, iter_nbest, one_best, read_refs
-from rescore.report import Report, build_report, load_system, write_report
+from rescore.report import Report, report_files
 from rescore.scoring import FeatureMatrix, LanguageModel, build_matrix
 from rescore.text import NORMALISATION, tokens
 from rescore.tune import TuneResult
@@ -349,8 +349,8 @@ def release_report(before: str | Path, after: str | Path, *, out_dir: str | Path
     refs : str, Path or mapping, optional
         References by id (needed for transcript files).
     **options
-        Further settings of :func:`rescore.report.build_report` (``resamples``,
-        ``seed``...).
+        Further settings of :func:`rescore.report.report_files` (``tuning``,
+        ``weights``, ``terms``, ``models``, ``resamples``, ``seed``, ``max_wer``...).
 
     Returns
     -------
@@ -368,12 +368,7 @@ def release_report(before: str | Path, after: str | Path, *, out_dir: str | Path
     >>> r = release_report("test.jsonl", "test.rescored.jsonl")  # doctest: +SKIP
     >>> r.after.wer < r.before.wer  # doctest: +SKIP
     """
-    ref_map = _refs(refs)
-    result = build_report(load_system(before, refs=ref_map), load_system(after, refs=ref_map),
-                          **options)
-    if out_dir is not None:
-        write_report(result, out_dir)
-    return result
+    return report_files(before, after, out_dir, refs=_refs(refs), **options).report
 
 
 # --- the boundary's conversions ----------------------------------------------------------

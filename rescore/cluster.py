@@ -12,7 +12,7 @@ import contextlib
 from collections.abc import Iterator
 from typing import Any
 
-from rescore.errors import UsageError
+from rescore.errors import ParameterError
 
 LOCAL = "local"
 
@@ -25,8 +25,8 @@ def dask_client(address: str, workers: int) -> Iterator[Any]:
     try:
         import distributed
     except ImportError:
-        raise UsageError("--cluster needs dask.distributed: pip install 'rescore[cluster]'") \
-            from None
+        raise ParameterError("needs dask.distributed: pip install 'rescore[cluster]'",
+                             field="cluster") from None
     import dask
 
     Client: Any = distributed.Client
@@ -46,7 +46,8 @@ def dask_client(address: str, workers: int) -> Iterator[Any]:
             try:
                 client = Client(address, timeout="20s")
             except OSError as exc:
-                raise UsageError(f"--cluster {address}: cannot connect ({exc})") from None
+                raise ParameterError(f"{address}: cannot connect ({exc})",
+                                     field="cluster") from None
             try:
                 yield client
             finally:

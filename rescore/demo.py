@@ -18,11 +18,10 @@ from rescore.errors import InputError
 from rescore.lm import NGramModel, load_model, perplexity, read_corpus, save_model
 from rescore.lm.compare import SharedVocabulary
 from rescore.lm.mix import compare_models, mix_models
-from rescore.lm.overlap import overlap_summary
 from rescore.nbest import iter_nbest, one_best
 from rescore.outputs import write_text_atomic
-from rescore.provenance import run_provenance, weights_provenance
-from rescore.report import build_report, load_system, write_report
+from rescore.provenance import run_provenance
+from rescore.report import report_files
 from rescore.scoring import OOV, oov_features, oracle_rows
 from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
@@ -213,11 +212,7 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,
             provenance: dict[str, Any], model: Path) -> list[Path]:
-    before_pairs = load_system(before)
     # the test references against the tuned model's training text (the leakage check)
-    overlap = overlap_summary([(model.name, load_model(model))],
-                              [list(p.reference) for p in before_pairs])
-    report = build_report(before_pairs, load_system(after),
-                          provenance={**provenance, "weights": weights_provenance(weights)},
-                          tuning=json.loads(tuning.read_text()), overlap=overlap)
-    return write_report(report, folder)
+    made = report_files(before, after, folder, tuning=tuning, weights=weights,
+                        models=[(model.name, load_model(model))], provenance=provenance)
+    return list(made.written)

@@ -319,13 +319,24 @@ def iter_nbest(
                                               limits=limits)
     parser = RecordParser(str(path), convention, refs, require_references, limits)
     ledger = IdLedger(str(path), refs)
-    for number, line in iter_text_lines(path, limits.max_line_bytes):
-        if number == header_line or not line.strip():
-            continue
-        utt = parser.parse(number, line)
+    for number, utt in iter_records(path, parser, skip_line=header_line):
         ledger.admit(number, utt["id"], "reference" in utt)
         yield number, utt
     ledger.finish()
+
+
+def iter_records(path: str | Path, parser: RecordParser, *, skip_line: int = 0,
+                 start: int = 0, end: int | None = None, first_line: int = 1
+                 ) -> Iterator[tuple[int, Utterance]]:
+    """The reader's loop over the lines of ``path`` from byte ``start`` to ``end``: every
+    record but blank lines and ``skip_line`` (the header), validated one by one by
+    ``parser``. The whole-file rules (:class:`IdLedger`) are the caller's: :func:`iter_nbest`
+    keeps them for a whole file, a parallel run for all its shards together."""
+    for number, line in iter_text_lines(path, parser.limits.max_line_bytes, start=start,
+                                        end=end, first_line=first_line):
+        if number == skip_line or not line.strip():
+            continue
+        yield number, parser.parse(number, line)
 
 
 def read_nbest(path: str | Path, **options: Any) -> Iterator[Utterance]:

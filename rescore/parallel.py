@@ -43,10 +43,11 @@ from rescore.nbest import (
     RecordParser,
     ScoreConvention,
     id_digest,
+    iter_records,
     read_refs,
 )
 from rescore.outputs import atomic_outputs, disk_full_error, is_disk_full
-from rescore.readers import inflate, iter_text_lines
+from rescore.readers import inflate
 from rescore.shards import line_shards
 from rescore.weights import Weights
 
@@ -123,20 +124,17 @@ def run_shard(task: ShardTask) -> ShardResult:
     stats = ListStats()
 
     def records() -> Iterator[tuple[int, Any]]:
-        for number, line in iter_text_lines(task.path, task.limits.max_line_bytes,
+        try:
+            for number, utt in iter_records(task.path, parser, skip_line=task.skip_line,
                                             start=task.start, end=task.end,
                                             first_line=task.first_line):
-            if number == task.skip_line or not line.strip():
-                continue
-            try:
-                utt = parser.parse(number, line)
-            except InputError as exc:
-                exc.path = task.display_path
-                raise
-            lines.append(number)
-            digests.append(id_digest(utt["id"]))
-            has_ref.append("reference" in utt)
-            yield number, utt
+                lines.append(number)
+                digests.append(id_digest(utt["id"]))
+                has_ref.append("reference" in utt)
+                yield number, utt
+        except InputError as exc:  # the file as the user named it, not a gzip's unpacked copy
+            exc.path = task.display_path
+            raise
 
     # shard outputs live in the run's scratch folder, which the main process removes on any
     # failure; only the joined output is written atomically (and synced to disk)

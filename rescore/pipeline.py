@@ -31,7 +31,7 @@ from rescore.checksum import sha256_file
 from rescore.counting import PLAIN, Counting
 from rescore.decode.choice import Rule
 from rescore.decode.fit import DecodeFit, fit_decoding, read_dev_texts
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, ParameterError
 from rescore.finite import check_tunable
 from rescore.listcheck import ListStats, score_stats, text_stats
 from rescore.lm import load_model
@@ -113,9 +113,9 @@ def load_lms(specs: Sequence[str]) -> dict[str, NamedModel]:
         if not eq:
             name, path = LM, spec
         if not name or not path:
-            raise UsageError(f"--lm {spec!r}: expected MODEL or NAME=MODEL")
+            raise ParameterError(f"{spec!r}: expected MODEL or NAME=MODEL", field="lm")
         if name in out:
-            raise UsageError(f"--lm: the name {name!r} is given twice")
+            raise ParameterError(f"the name {name!r} is given twice", field="lm")
         out[name] = NamedModel(name, Path(path))
     return out
 
@@ -173,8 +173,8 @@ def check_weighted(weights: Weights, models: Mapping[str, object]) -> list[str]:
     needed |= {k[3:] for k, v in weights.features.items() if v != 0.0 and k.startswith("lm:")}
     missing = sorted(needed - set(models))
     if missing:
-        raise UsageError(f"the weights give LM weight to {', '.join(missing)} but no such --lm "
-                         "was given")
+        raise ParameterError(f"the weights give LM weight to {', '.join(missing)} but no such "
+                             "model was given", field="lm")
     return features
 
 
@@ -270,7 +270,8 @@ def apply_file(
     features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
         if refs is not None and refs_path is None:
-            raise UsageError("parallel runs take references as a file path (refs_path)")
+            raise ParameterError("parallel runs take references as a file path",
+                                 field="refs_path")
         convention, header_line = read_convention(path, log_base=log_base, costs=costs,
                                                   limits=limits)
         total, counts, stats, shards = apply_sharded(

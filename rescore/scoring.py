@@ -11,16 +11,17 @@ matrix-vector product and a segmented argmax, ties going to the earlier hypothes
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Protocol
 
 import numpy as np
 
 from rescore.counting import PLAIN, Counting
-from rescore.errors import InputError, UsageError
+from rescore.errors import InputError, ParameterError, UsageError
 from rescore.nbest import Utterance
 from rescore.text import word_counts
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
+from rescore.wer import UNDEFINED_WER
 
 
 @dataclass(frozen=True)
@@ -85,6 +86,63 @@ class FeatureMatrix:
             errors=None if self.errors is None else self.errors[rows],
             ref_words=self.ref_words,
         )
+
+
+@dataclass(frozen=True, eq=False)
+class DevMatrix(FeatureMatrix):
+    """A feature matrix checked once for tuning (:meth:`check`): a reference for every
+    utterance, at least one hypothesis in each list, finite scores, and reference words.
+    Its subsets and truncations stay checked without checking again (a fold may hold no
+    reference words: ``words`` is then 0). ``word_errors`` is ``errors`` as int64."""
+
+    word_errors: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    words: int = 0
+
+    @classmethod
+    def check(cls, matrix: FeatureMatrix) -> DevMatrix:
+        """``matrix`` checked for tuning (returned as it is when it already is)."""
+        if isinstance(matrix, DevMatrix):
+            return matrix
+        if matrix.errors is None or matrix.ref_words is None:
+            raise InputError("tuning needs a reference for every utterance")
+        if matrix.n_utterances == 0:
+            raise InputError("no utterances to tune on")
+        if np.any(np.diff(matrix.offsets) < 1):
+            raise InputError("every utterance needs at least one hypothesis")
+        if not np.isfinite(matrix.values).all():
+            raise InputError("scores must be finite (NaN or infinite value in the feature "
+                             "matrix)")
+        checked = cls._of(matrix)
+        if checked.words == 0:
+            raise InputError(UNDEFINED_WER)
+        return checked
+
+    @classmethod
+    def _of(cls, m: FeatureMatrix) -> DevMatrix:
+        assert m.errors is not None and m.ref_words is not None
+        return cls(m.names, m.values, m.offsets, m.ids, m.errors, m.ref_words,
+                   word_errors=m.errors.astype(np.int64), words=int(m.ref_words.sum()))
+
+    def subset(self, utterances: np.ndarray) -> DevMatrix:
+        return DevMatrix._of(super().subset(utterances))
+
+    def truncate(self, depth: int) -> DevMatrix:
+        return DevMatrix._of(super().truncate(depth))
+
+    def index(self, name: str) -> int:
+        """The column of ``name``; a column not in the matrix is a :class:`ParameterError`."""
+        if name not in self.names:
+            raise ParameterError(f"no column {name!r} to tune; columns are "
+                                 f"{', '.join(self.names)}", field="tune")
+        return self.names.index(name)
+
+    def first_errors(self) -> int:
+        """Word errors of the recognizer's 1-best (the first hypothesis of every list)."""
+        return int(self.word_errors[self.offsets[:-1]].sum())
+
+    def oracle_errors(self) -> int:
+        """Word errors of the fewest-error hypothesis of every list."""
+        return int(self.word_errors[oracle_rows(self)].sum())
 
 
 def segment_argmax(scores: np.ndarray, offsets: np.ndarray) -> np.ndarray:

@@ -14,9 +14,11 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any, Literal
 
 import numpy as np
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError
+from pydantic_core import PydanticCustomError
 
 from rescore.decode.confidence import IsotonicCalibration
 from rescore.errors import InputError
@@ -86,6 +88,47 @@ _WEIGHT_KEYS = (ACOUSTIC_SCALE, LM_WEIGHT, INSERTION_PENALTY)
 _DECODING_KEYS = ("posterior_scale", "calibration", "choose")
 _FILE_KEYS = (*_WEIGHT_KEYS, "features", *_DECODING_KEYS, "provenance")
 
+FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
+
+
+def _not_reserved(features: dict[str, float]) -> dict[str, float]:
+    for name in features:
+        if name in COLUMNS:
+            raise PydanticCustomError("reserved", "{reason}", {
+                "reason": f"{name!r} is a reserved column, not a feature", "key": name})
+    return features
+
+
+def _calibration(raw: dict[str, Any]) -> dict[str, Any]:
+    try:
+        IsotonicCalibration.from_dict(raw)
+    except (ValueError, TypeError, KeyError) as exc:
+        raise PydanticCustomError("calibration", "{reason}",
+                                  {"reason": str(exc).strip("'")}) from None
+    return raw
+
+
+class WeightsFile(BaseModel):
+    """The weights file, validated strictly: unknown keys, missing weights, values that are
+    not finite numbers are errors (:func:`read_weights` turns the first into one line)."""
+
+    model_config = ConfigDict(extra="forbid", strict=True, frozen=True)
+
+    acoustic_scale: FiniteFloat
+    lm_weight: FiniteFloat
+    insertion_penalty: FiniteFloat
+    features: Annotated[dict[str, FiniteFloat], AfterValidator(_not_reserved)] = {}
+    posterior_scale: Annotated[float, Field(ge=0, allow_inf_nan=False)] | None = None
+    calibration: Annotated[dict[str, Any], AfterValidator(_calibration)] | None = None
+    choose: Literal["best", "min-risk", "consensus"] | None = None
+    provenance: dict[str, Any] | None = None
+
+    def weights(self) -> Weights:
+        return Weights(acoustic_scale=self.acoustic_scale, lm_weight=self.lm_weight,
+                       insertion_penalty=self.insertion_penalty, features=dict(self.features),
+                       posterior_scale=self.posterior_scale, calibration=self.calibration,
+                       choose=self.choose)
+
 
 def _decoding_dict(weights: Weights) -> dict[str, Any]:
     """The decoding keys that are set (none for weights tuned before them)."""
@@ -99,29 +142,30 @@ def _decoding_dict(weights: Weights) -> dict[str, Any]:
     return out
 
 
-def _decoding(data: Mapping[str, Any], where: str) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    if "posterior_scale" in data:
-        scale = _number(data["posterior_scale"], where, "posterior_scale")
-        if scale < 0:
-            raise InputError("must be non-negative", path=where, field="posterior_scale")
-        out["posterior_scale"] = scale
-    if "calibration" in data:
-        raw = data["calibration"]
-        try:
-            if not isinstance(raw, dict):
-                raise ValueError("expected an object with method, x and y")
-            IsotonicCalibration.from_dict(raw)
-        except (ValueError, TypeError, KeyError) as exc:
-            raise InputError(str(exc).strip("'"), path=where, field="calibration") from None
-        out["calibration"] = raw
-    if "choose" in data:
-        rule = data["choose"]
-        if rule not in ("best", "min-risk", "consensus"):
-            raise InputError(f"expected best, min-risk or consensus, got {json.dumps(rule)}",
-                             path=where, field="choose")
-        out["choose"] = rule
-    return out
+def _message(error: Any) -> tuple[str, str]:
+    """(field, message) of one validation error, in the weights file's words."""
+    loc = [str(part) for part in error["loc"] if not str(part).startswith(("function-", "dict["))]
+    kind, value = error["type"], error.get("input")
+    if kind == "reserved":
+        return f"features.{error['ctx']['key']}", str(error["msg"])
+    field = ".".join(loc)
+    if kind == "extra_forbidden":
+        return field, f"unknown key; expected {', '.join(_FILE_KEYS)}"
+    if kind == "missing":
+        return field, "missing"
+    if kind == "finite_number":
+        return field, "must be a finite number"
+    if kind == "greater_than_equal":
+        return field, "must be non-negative"
+    if kind == "literal_error":
+        return field, f"expected best, min-risk or consensus, got {json.dumps(value)}"
+    if kind == "dict_type":
+        what = {"features": "an object of feature weights",
+                "calibration": "an object with method, x and y"}.get(field, "an object")
+        return field, f"expected {what}"
+    if kind == "calibration":
+        return field, str(error["msg"])
+    return field, f"expected a number, got {json.dumps(value, default=str)}"
 
 
 def _number(value: object, path: str, name: str) -> float:
@@ -173,28 +217,17 @@ def read_weights(path: str | Path) -> Weights:
 def _from_dict(data: object, where: str) -> Weights:
     if not isinstance(data, dict):
         raise InputError("expected a JSON object", path=where)
-    unknown = sorted(set(data) - set(_FILE_KEYS))
-    if unknown:
-        raise InputError(f"unknown key; expected {', '.join(_FILE_KEYS)}", path=where,
-                         field=unknown[0])
-    for key in _WEIGHT_KEYS:
-        if key not in data:
-            raise InputError("missing", path=where, field=key)
-    values = {key: _number(data[key], where, key) for key in _WEIGHT_KEYS}
-    raw = data.get("features", {})
-    if not isinstance(raw, dict):
-        raise InputError("expected an object of feature weights", path=where, field="features")
-    feats: dict[str, float] = {}
-    for name, value in raw.items():
-        if name in (ACOUSTIC, LM, WORDS):
-            raise InputError(f"{name!r} is a reserved column, not a feature", path=where,
-                             field=f"features.{name}")
-        feats[name] = _number(value, where, f"features.{name}")
-    if "provenance" in data and not isinstance(data["provenance"], dict):
-        raise InputError("expected an object", path=where, field="provenance")
-    return Weights(acoustic_scale=values["acoustic_scale"], lm_weight=values["lm_weight"],
-                   insertion_penalty=values["insertion_penalty"], features=feats,
-                   **_decoding(data, where))
+    try:
+        return WeightsFile.model_validate(data).weights()
+    except ValidationError as exc:
+        errors = exc.errors(include_url=False)
+        # a misspelt key is the likeliest fix, then a missing weight, then the first value
+        rank = {"extra_forbidden": 0, "missing": 1}
+        first = min(errors, key=lambda e: (rank.get(e["type"], 2),
+                                           str(e["loc"][0]) if rank.get(e["type"]) == 0
+                                           else ""))
+        field, message = _message(first)
+        raise InputError(message, path=where, field=field) from None
 
 
 def read_weights_provenance(path: str | Path) -> dict[str, Any]:

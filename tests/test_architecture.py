@@ -18,7 +18,7 @@ PACKAGE = Path(__file__).resolve().parent.parent / "rescore"
 
 # (module, function, imported module): why the import waits for the call
 ALLOWED_INNER = {
-    ("rescore.report", "render_all", "rescore.report.html"):
+    ("rescore.report.write", "render_all", "rescore.report.html"):
         "matplotlib: importing rescore.report.html costs about 830 ms (median of 5, "
         "-X importtime run after rescore.cli), paid only by the HTML report",
     ("rescore.cluster", "dask_client", "distributed"):

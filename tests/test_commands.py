@@ -133,7 +133,7 @@ def test_apply_lm_weight_without_model_is_usage_error(tmp_path: Path) -> None:
     out = tmp_path / "out.jsonl"
     result = run(["apply", TWO, "--weights", weights, "-o", out])
     assert result.exit_code == 2
-    assert "LM weight to lm but no such --lm was given" in result.stderr
+    assert "--lm: the weights give LM weight to lm but no such model was given" in result.stderr
     assert not out.exists()
 
 

@@ -7,6 +7,7 @@ import re
 from html import unescape
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from rescore.errors import InputError
@@ -16,14 +17,14 @@ from rescore.report import (
     build_report,
     gate_failures,
     render_all,
-    tuning_from_dict,
     with_gate,
     write_report,
 )
-from rescore.report.build import CAUTION, Surface, Tuning
+from rescore.report.build import CAUTION
 from rescore.report.html import marked_words
 from rescore.report.plots import chosen_cell, colour_limits
 from rescore.text import NORMALISATION
+from rescore.tune.results import DepthRow, Surface, TuningRecord
 from rescore.wer import align
 
 
@@ -257,13 +258,13 @@ def test_gates() -> None:
 def test_heatmap_star_marks_the_chosen_weights() -> None:
     # derived by hand: the first grid minimum (2 errors) is at LM 0, penalty -1, but the
     # tuner chose LM 2, penalty 0 (a plateau centre): the star goes where the title says
-    surface = Surface((0.0, 1.0, 2.0), (-1.0, 0.0, 1.0),
-                      ((2.0, 3.0, 4.0), (3.0, 2.0, 3.0), (2.0, 2.0, 2.0)))
-    assert chosen_cell(surface, Tuning(surface, (), 2.0, 0.0)) == (2, 1)
+    surface = Surface(np.array([0.0, 1.0, 2.0]), np.array([-1.0, 0.0, 1.0]),
+                      np.array([[2.0, 3.0, 4.0], [3.0, 2.0, 3.0], [2.0, 2.0, 2.0]]))
+    assert chosen_cell(surface, TuningRecord(surface, (), 2.0, 0.0)) == (2, 1)
     # weights between grid points take the nearest cell (1.4 -> 1.0, 0.6 -> 1.0)
-    assert chosen_cell(surface, Tuning(surface, (), 1.4, 0.6)) == (1, 2)
+    assert chosen_cell(surface, TuningRecord(surface, (), 1.4, 0.6)) == (1, 2)
     # no chosen weights recorded: the first minimum in row order
-    assert chosen_cell(surface, Tuning(surface)) == (0, 0)
+    assert chosen_cell(surface, TuningRecord(surface)) == (0, 0)
 
 
 def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
@@ -276,14 +277,23 @@ def test_heatmap_colour_scale_stops_at_the_90th_percentile() -> None:
     assert colour_limits([[1, 5], [5, 5]]) == (1.0, 5.0, False)
 
 
-def test_tuning_reader_ignores_absent_parts_and_checks_shapes() -> None:
-    assert tuning_from_dict({"lm_weight": 0.8}).surface is None
-    depth = tuning_from_dict({"depth": [{"depth": 1, "one_best_wer": 0.2, "tuned_wer": 0.2,
-                                         "oracle_wer": 0.2}, {"depth": 5, "tuned_wer": 0.1}]}).depth
-    assert depth[1].oracle_wer is None and depth[1].tuned_wer == 0.1
+def test_tuning_record_reads_what_tune_writes_and_checks_shapes() -> None:
+    # one schema both ways: the record of a run, written and read back, is the same record
+    surface = Surface(np.array([0.0, 1.0]), np.array([-1.0, 0.0, 1.0]),
+                      np.array([[5.0, 4.0, 6.0], [3.0, 2.0, 3.0]]))
+    rows = (DepthRow(1, "1", 0.2, 0.2, 0.2), DepthRow(5, "all", 0.2, 0.1, 0.05))
+    record = TuningRecord(surface, rows, 1.0, 0.0)
+    again = TuningRecord.from_dict(json.loads(json.dumps(record.to_dict())))
+    assert again.to_dict() == record.to_dict() and again.depth == rows
+    assert TuningRecord.from_dict({"lm_weight": 0.8}).surface is None
+    assert TuningRecord.from_dict({"surface": None, "depth": []}).to_dict() == {}
+    # a row missing a value names it, as every reader error does
+    with pytest.raises(InputError, match=r"depth\[1\]\.oracle_wer"):
+        TuningRecord.from_dict({"depth": [rows[0].to_dict(), {"depth": 5, "one_best_wer": 0.2,
+                                                              "tuned_wer": 0.1}]})
     with pytest.raises(InputError, match=r"surface\.errors"):
-        tuning_from_dict({"surface": {"lm_weight": [0, 1], "insertion_penalty": [0],
-                                      "errors": [[1, 2]]}})
+        TuningRecord.from_dict({"surface": {"lm_weight": [0, 1], "insertion_penalty": [0],
+                                            "errors": [[1, 2]]}})
 
 
 @pytest.mark.parametrize(("value", "resamples", "shown"), [

@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 
 from rescore.cli.flags import in_flags
 from rescore.errors import InputError, ParameterError
-from rescore.scoring import FeatureMatrix, choose
+from rescore.scoring import DevMatrix, FeatureMatrix, choose
 from rescore.text import tokens
 from rescore.tune import (
     driver,
@@ -556,6 +556,16 @@ GOOD = '{"acoustic_scale": 1, "lm_weight": 0.8, "insertion_penalty": -0.5, "feat
     ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 1e999}', "insertion_penalty",
      "finite"),
     ("[1, 2]", None, "JSON object"),
+    # the decoding keys: the scale of a probability is not negative, the rule is one of three
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "posterior_scale": -1}',
+     "posterior_scale", "non-negative"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "choose": "vote"}',
+     "choose", "expected best, min-risk or consensus"),
+    ('{"acoustic_scale": 1, "lm_weight": 1, "insertion_penalty": 0, "provenance": 3}',
+     "provenance", "expected an object"),
+    # a misspelt key is named before the weight it leaves missing
+    ('{"acoustic_scale": 1, "lm_wieght": 1, "insertion_penalty": 0}', "lm_wieght",
+     "unknown key"),
 ])
 def test_read_weights_is_strict(tmp_path: Path, text: str, field: str | None,
                                 message: str) -> None:
@@ -588,3 +598,26 @@ def test_write_weights_leaves_nothing_on_failure(tmp_path: Path) -> None:
     assert [p.name for p in tmp_path.iterdir()] == ["w.json"]
     with pytest.raises(InputError, match="does not exist"):
         write_weights(tmp_path / "missing" / "w.json", Weights(), {})
+
+
+@pytest.mark.parametrize("search", ["grid", "exact"])
+def test_tune_checks_the_dev_set_once(monkeypatch: pytest.MonkeyPatch, search: str) -> None:
+    # the checks (references, list sizes, finite scores, reference words) run at the entry
+    # point only; the searches, folds, widenings and depth rows reuse the checked matrix
+    rng = np.random.default_rng(3)
+    sizes = [3, 4, 2, 5, 3, 4]
+    n = sum(sizes)
+    matrix = make_matrix(rng.normal(size=(n, len(NAMES))), sizes, rng.integers(0, 4, n),
+                         [5, 6, 4, 7, 5, 6])
+    real = DevMatrix.check.__func__  # type: ignore[attr-defined]
+    checked: list[type] = []
+
+    def counting(cls: type[DevMatrix], m: FeatureMatrix) -> DevMatrix:
+        if not isinstance(m, DevMatrix):
+            checked.append(type(m))
+        return real(cls, m)  # type: ignore[no-any-return]
+
+    monkeypatch.setattr(DevMatrix, "check", classmethod(counting))
+    tune(matrix, search=search, features=("f",) if search == "exact" else (),
+         lm_grid=[0.0, 1.0, 2.0], penalty_grid=[-1.0, 0.0, 1.0], folds=3)
+    assert checked == [FeatureMatrix]

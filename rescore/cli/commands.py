@@ -26,9 +26,11 @@ from rescore.cli.options import (
     RulesOpt,
     UnitOpt,
 )
-from rescore.cli.report import WarnOverlapOpt, gate_rate, leakage
+from rescore.cli.report import WarnOverlapOpt, gate_rate
 from rescore.counting import counting_of, unit_name
 from rescore.errors import UsageError
+from rescore.lm import load_model
+from rescore.lm.overlap import overlap_summary
 from rescore.nbest import read_refs
 from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
@@ -72,9 +74,10 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
     ref_map = _refs(refs)
     result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
                                  batch_size=batch_size, counting=counting)
-    overlap = None if not lm else leakage(
-        [(str(p), p) for p in lm],
-        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs), threshold)
+    overlap = None if not lm else overlap_summary(
+        [(str(p), load_model(p)) for p in lm],
+        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs),
+        threshold=threshold)
     for line in [] if overlap is None else overlap.warnings():
         warn(line)
     _warn(result.warnings)

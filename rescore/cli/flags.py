@@ -17,6 +17,10 @@ FLAGS: dict[str, str] = {
     "bounds": "--bounds",
     "weights": "--weights",
     "tune_on": "--tune-on",
+    "lm": "--lm",
+    "refs_path": "--refs",
+    "cluster": "--cluster",
+    "quantize": "--quantize",
     "unit": "--unit",
     "rules": "--rules",
 }

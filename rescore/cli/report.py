@@ -3,38 +3,19 @@
 from __future__ import annotations
 
 import math
-from dataclasses import replace
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated
 
 import typer
 
 from rescore import pipeline
-from rescore.checksum import sha256_file
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt, RulesOpt, UnitOpt
-from rescore.counting import Counting, counting_of, unit_name
-from rescore.errors import GateError, InputError, UsageError
-from rescore.limits import ANALYSIS_FILE_LIMIT
-from rescore.lm import load_model
-from rescore.lm.overlap import OverlapSummary, overlap_summary
-from rescore.nbest import read_refs
+from rescore.counting import counting_of, unit_name
+from rescore.errors import GateError, UsageError
 from rescore.outputs import check_not_inputs
-from rescore.provenance import data_hashes, weights_provenance
-from rescore.readers import read_json
-from rescore.report import (
-    FILES,
-    build_report,
-    gate_failures,
-    load_system,
-    tuning_from_dict,
-    with_gate,
-    write_report,
-)
-from rescore.report.confidence import load_confidences
-from rescore.report.critical import classes_with_terms, read_terms
+from rescore.report import FILES, report_files
 from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
-from rescore.weights import read_weights_provenance
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]
@@ -61,56 +42,6 @@ def gate_rate(text: str | None, option: str) -> float | None:
         raise UsageError(f"{option} {text!r}: expected a percentage from 0% to 100% (5%) or a "
                          "fraction from 0 to 1 (0.05)")
     return value / 100.0 if percent else value
-
-
-def _leak_models(lm: list[Path] | None, weights: Path | None) -> list[tuple[str, Path]]:
-    """The models to check for leakage: those given, else those the weights file records
-    whose file is still at its recorded path with its recorded SHA-256."""
-    if lm:
-        return [(str(p), p) for p in lm]
-    if weights is None:
-        return []
-    recorded = _read_tuning(weights).get("provenance", {})
-    models = recorded.get("models", {}) if isinstance(recorded, dict) else {}
-    out = []
-    for name, entry in (models.items() if isinstance(models, dict) else ()):
-        path = Path(str(entry.get("path", ""))) if isinstance(entry, dict) else None
-        if path is not None and path.is_file() and sha256_file(path) == entry.get("sha256"):
-            out.append((str(name), path))
-    return out
-
-
-def leakage(models: list[tuple[str, Path]], references: list[list[str]],
-            threshold: float) -> OverlapSummary:
-    """The overlap of the references with the named models' training text."""
-    return overlap_summary([(name, load_model(path)) for name, path in models], references,
-                           threshold=threshold)
-
-
-def _read_tuning(path: Path) -> dict[str, Any]:
-    data = read_json(path, ANALYSIS_FILE_LIMIT)
-    if not isinstance(data, dict):
-        raise InputError("expected a JSON object", path=path)
-    return data
-
-
-def _tuning_record(path: Path) -> dict[str, Any]:
-    data = _read_tuning(path)
-    if "surface" not in data and "depth" not in data:
-        raise InputError("not a tuning record: it has neither 'surface' nor 'depth' (write "
-                         "one with 'rescore tune --analysis FILE')", path=path)
-    return data
-
-
-def _check_counted(counting: Counting, tuning: Path | None, weights: Path | None) -> None:
-    """Refuse a tuning record or a weights file counted at another unit or under other
-    scoring rules than the report's: their errors and the report's would not compare."""
-    if tuning is not None:
-        counting.check_record(_read_tuning(tuning).get("provenance"), "the tuning record's "
-                              "errors", path=tuning)
-    if weights is not None:
-        counting.check_record(read_weights_provenance(weights), "the weights' tuning errors",
-                              path=weights)
 
 
 @guarded
@@ -165,34 +96,15 @@ def report(
         given = pipeline.load_lms([str(p) for p in lm])
         for other in pipeline.check_models(weights, given, allow_other=allow_other_model):
             info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
-    classes = classes_with_terms({} if terms is None else read_terms(terms))
-    ref_map = None if refs is None else read_refs(refs)
-    _check_counted(counting, tuning, weights)
-    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs,
-                               counting=counting)
-    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs,
-                              counting=counting)
-    tuning_data = None if tuning is None else tuning_from_dict(_tuning_record(tuning),
-                                                               path=str(tuning))
-    files = [p for p in (before, after, refs, tuning, terms, rules) if p is not None]
-    provenance: dict[str, Any] = {"data_sha256": data_hashes(files)}
-    if weights is not None:
-        provenance["weights"] = weights_provenance(weights)
-    models = _leak_models(lm, weights)
-    overlap = None
-    if models:
-        overlap = leakage(models, [list(p.reference) for p in before_pairs],
-                          overlap_threshold or 0.0)
-        provenance["overlap_models"] = {name: sha256_file(path) for name, path in models}
+    lms = [(str(p), p) for p in lm] if lm else None
     with stages("report") as report_progress:
-        result = build_report(before_pairs, after_pairs, provenance=provenance,
-                              tuning=tuning_data, resamples=resamples, seed=seed,
-                              critical_classes=classes, overlap=overlap,
-                              progress=report_progress, counting=counting)
-    result = replace(result, confidence=load_confidences(after, refs=ref_map, log_base=log_base,
-                                                         costs=costs))
-    result = with_gate(result, max_wer=max_wer_rate, max_regression=max_regression_rate)
-    written = write_report(result, out)
+        made = report_files(before, after, out, refs=refs, tuning=tuning, weights=weights,
+                            terms=terms, models=lms, overlap_threshold=overlap_threshold or 0.0,
+                            resamples=resamples, seed=seed, max_wer=max_wer_rate,
+                            max_regression=max_regression_rate, log_base=log_base,
+                            costs=costs, progress=report_progress,
+                            counting=counting)
+    result = made.report
     data = result.to_dict()
     if as_json:
         emit_json({k: data[k] for k in ("before", "after", "difference", "provenance")}
@@ -211,13 +123,11 @@ def report(
     for warning in result.warnings:
         warn(warning)
     warn(CAUTION, label="caution")
-    reasons = gate_failures(result, max_wer=max_wer_rate,
-                            max_regression=max_regression_rate)
-    if reasons:
+    if made.gate_reasons:
         # the one line of a failed gate also says where the report is
-        raise GateError("release gate failed: " + "; ".join(reasons)
+        raise GateError("release gate failed: " + "; ".join(made.gate_reasons)
                         + f" (report written to {out})")
-    info("wrote " + ", ".join(str(p) for p in written))
+    info("wrote " + ", ".join(str(p) for p in made.written))
 
 
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:

@@ -326,17 +326,7 @@ def merge_runs(runs: Sequence[Run], block: int, spill: Path | None = None
     dtype = runs[0].dtype if runs else np.dtype(np.uint64)
     if spill is not None:
         return _merge_to_disk(readers, spill, dtype)
-    while True:
-        for r in readers:
-            r.refill()
-        live = [r for r in readers if len(r.keys)]
-        if not live:
-            break
-        bounds = [r.keys[-1] for r in live if r.more_on_disk]
-        cut = min(bounds) if bounds else None
-        pieces = [r.take_through(cut) for r in live]
-        keys, counts = sum_duplicates(np.concatenate([p[0] for p in pieces]),
-                                      np.concatenate([p[1] for p in pieces]))
+    for keys, counts in _merge_steps(readers):
         out_keys.append(keys)
         out_counts.append(counts)
     if not out_keys:

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 import numpy.typing as npt
 
-from rescore.errors import UsageError
+from rescore.errors import ParameterError
 from rescore.lm.tables import BackoffTables, Coded
 
 F64 = npt.NDArray[np.float64]
@@ -79,7 +79,7 @@ def _refine(data: F64, book: F64) -> F64:
 def quantize(tables: BackoffTables, bits: int) -> BackoffTables:
     """``tables`` in compact form with every order from 2 coded at ``bits`` bits."""
     if bits not in BITS:
-        raise UsageError(f"--quantize takes 8 or 16 bits, got {bits}")
+        raise ParameterError(f"takes 8 or 16 bits, got {bits}", field="quantize")
     tables = tables.compact()
     logp: list[F64] = [tables.logp[0]]
     bow: list[F64] = [tables.bow[0]] if tables.order > 1 else []

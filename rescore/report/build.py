@@ -32,7 +32,7 @@ from rescore.significance import (
     sign_test,
     wilcoxon_signed_rank,
 )
-from rescore.weights import INSERTION_PENALTY, LM_WEIGHT
+from rescore.tune.results import TuningRecord
 from rescore.wer import (
     CerResult,
     WerResult,
@@ -78,47 +78,6 @@ class Pair:
 
 
 @dataclass(frozen=True)
-class Surface:
-    """Tuning errors on a grid: ``errors[i][j]`` at ``lm_values[i]``, ``penalty_values[j]``."""
-
-    lm_values: tuple[float, ...]
-    penalty_values: tuple[float, ...]
-    errors: tuple[tuple[float, ...], ...]
-
-
-@dataclass(frozen=True)
-class DepthRow:
-    k: int
-    one_best_wer: float | None
-    tuned_wer: float | None
-    oracle_wer: float | None
-
-
-@dataclass(frozen=True)
-class Tuning:
-    """What the report shows of a tuning run; any part may be absent."""
-
-    surface: Surface | None = None
-    depth: tuple[DepthRow, ...] = ()
-    lm_weight: float | None = None
-    insertion_penalty: float | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {}
-        if self.surface is not None:
-            out["surface"] = {"lm_values": list(self.surface.lm_values),
-                              "penalty_values": list(self.surface.penalty_values),
-                              "errors": [list(r) for r in self.surface.errors]}
-        if self.depth:
-            out["depth"] = [vars(r).copy() for r in self.depth]
-        if self.lm_weight is not None:
-            out[LM_WEIGHT] = self.lm_weight
-        if self.insertion_penalty is not None:
-            out[INSERTION_PENALTY] = self.insertion_penalty
-        return out
-
-
-@dataclass(frozen=True)
 class Difference:
     """The contract's ``difference`` object: after minus before, with its evidence."""
 
@@ -149,7 +108,7 @@ class Report:
     breakdown: Breakdown
     utterances: tuple[UtteranceRow, ...]
     provenance: Mapping[str, Any]
-    tuning: Tuning | None = None
+    tuning: TuningRecord | None = None
     gate: Mapping[str, Any] | None = None
     warnings: tuple[str, ...] = ()
     critical: tuple[ClassResult, ...] = ()
@@ -234,7 +193,7 @@ def build_report(
     after_pairs: Sequence[Pair],
     *,
     provenance: Mapping[str, Any] | None = None,
-    tuning: Tuning | Mapping[str, Any] | None = None,
+    tuning: TuningRecord | Mapping[str, Any] | None = None,
     resamples: int = DEFAULT_RESAMPLES,
     seed: int = DEFAULT_SEED,
     confidence: float = DEFAULT_CONFIDENCE,
@@ -246,18 +205,19 @@ def build_report(
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
-    ``tuning`` is a :class:`Tuning` or the tuning output as parsed JSON (its ``surface``
-    and ``depth`` are shown when present). ``progress`` (see :mod:`rescore.progress`)
-    hears of the bootstrap, resample by resample. ``critical_classes`` are the classes
-    of critical words counted apart (default: the built-in numbers and negations; see
-    :mod:`rescore.report.critical`). ``overlap`` is the test references' overlap with the
-    language models' training text (:func:`rescore.lm.overlap.overlap_summary`); above
-    its threshold the report warns first of all. ``counting`` is the unit and the
-    scoring rules the pairs were read under (:meth:`Pair.from_text`): the alignments
-    follow the rules, and both go into the provenance.
+    ``tuning`` is a :class:`~rescore.tune.results.TuningRecord` or the tuning output as
+    parsed JSON (its ``surface`` and ``depth`` are shown when present). ``progress`` (see
+    :mod:`rescore.progress`) hears of the bootstrap, resample by resample.
+    ``critical_classes`` are the classes of critical words counted apart (default: the
+    built-in numbers and negations; see :mod:`rescore.report.critical`). ``overlap`` is the
+    test references' overlap with the language models' training text
+    (:func:`rescore.lm.overlap.overlap_summary`); above its threshold the report warns first
+    of all. ``counting`` is the unit and the scoring rules the pairs were read
+    under (:meth:`Pair.from_text`): the alignments follow the rules, and both go into
+    the provenance.
     """
-    if tuning is not None and not isinstance(tuning, Tuning):
-        tuning = tuning_from_dict(tuning)
+    if tuning is not None and not isinstance(tuning, TuningRecord):
+        tuning = TuningRecord.from_dict(tuning)
     matched = _match(before_pairs, after_pairs)
     refs = [b.reference for b, _ in matched]
     hyp_b = [b.hypothesis for b, _ in matched]
@@ -347,40 +307,3 @@ def with_gate(report: Report, *, max_wer: float | None, max_regression: float | 
     gate = {"max_wer": max_wer, "max_regression": max_regression,
             "passed": not reasons, "reasons": reasons}
     return replace(report, gate=gate)
-
-
-def tuning_from_dict(data: Mapping[str, Any], *, path: str | None = None) -> Tuning:
-    """Read the parts of a tuning result the report shows; absent parts are skipped."""
-    surface = None
-    raw = data.get("surface")
-    if isinstance(raw, Mapping):
-        try:
-            # the one spelling `rescore tune --analysis` writes (tune.results.Surface.to_dict)
-            lm = tuple(float(v) for v in raw[LM_WEIGHT])
-            pen = tuple(float(v) for v in raw[INSERTION_PENALTY])
-            errors = tuple(tuple(float(v) for v in row) for row in raw["errors"])
-        except (KeyError, TypeError, ValueError) as exc:
-            raise InputError(f"cannot read the error surface ({exc})", path=path,
-                             field="surface") from None
-        if len(errors) != len(lm) or any(len(r) != len(pen) for r in errors):
-            raise InputError(
-                f"errors should be {len(lm)} rows of {len(pen)} values (one row per LM weight)",
-                path=path, field="surface.errors")
-        surface = Surface(lm, pen, errors)
-    depth: list[DepthRow] = []
-    rows = data.get("depth")
-    if isinstance(rows, Sequence):
-        for i, row in enumerate(rows):
-            try:
-                depth.append(DepthRow(int(row["depth"]), *(
-                    None if row.get(key) is None else float(row[key])
-                    for key in ("one_best_wer", "tuned_wer", "oracle_wer"))))
-            except (KeyError, TypeError, ValueError, AttributeError) as exc:
-                raise InputError(f"cannot read a depth row ({exc})", path=path,
-                                 field=f"depth[{i}]") from None
-
-    def number(key: str) -> float | None:
-        v = data.get(key)
-        return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
-
-    return Tuning(surface, tuple(depth), number(LM_WEIGHT), number(INSERTION_PENALTY))

@@ -237,7 +237,7 @@ def _tuning(report: Report) -> str:
                      + "</h3><figure>" + plots.depth_curve(tuning, t.say(report, "WER"))
                      + "</figure>"
                      + _table(["k", "1-best", "rescored", "oracle"],
-                              [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
+                              [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
                                 t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
     return f'<h2>Tuning (dev set)</h2><div class="row">{"".join(cards)}</div>'
 

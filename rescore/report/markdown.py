@@ -126,7 +126,7 @@ def render_markdown(report: Report) -> str:
     if report.tuning is not None and report.tuning.depth:
         out += [t.say(report, "## WER by N-best depth (dev set, from tuning)"), ""]
         out += _table(["k", "1-best", "rescored", "oracle"],
-                      [(r.k, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
+                      [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
                        for r in report.tuning.depth])
     out += ["## Provenance", ""]
     out += _table(["item", "value"], t.provenance_rows(report))

@@ -13,13 +13,15 @@ from contextlib import contextmanager
 
 import matplotlib
 import numpy as np
+import numpy.typing as npt
 
 matplotlib.use("Agg")
 
 from matplotlib import rc_context
 from matplotlib.figure import Figure
 
-from rescore.report.build import Report, Surface, Tuning
+from rescore.report.build import Report
+from rescore.tune.results import Surface, TuningRecord
 
 _BEFORE = "#8a8f98"
 _AFTER = "#2f7d4f"
@@ -67,7 +69,7 @@ def wer_intervals(report: Report, rate: str = "WER") -> str:
         return _svg(fig, f"{rate} of each system with its interval")
 
 
-def surface_heatmap(surface: Surface, tuning: Tuning) -> str:
+def surface_heatmap(surface: Surface, tuning: TuningRecord) -> str:
     """Dev errors over the grid, the chosen weights starred.
 
     Far-off corners (an LM weight of 0, say) can hold several times the errors of the best
@@ -80,9 +82,9 @@ def surface_heatmap(surface: Surface, tuning: Tuning) -> str:
         low, high, capped = colour_limits(surface.errors)
         image = ax.imshow(surface.errors, origin="lower", aspect="auto", cmap="viridis_r",
                           vmin=low, vmax=high)
-        n_lm, n_pen = len(surface.lm_values), len(surface.penalty_values)
-        ax.set_yticks(*_ticks(surface.lm_values))
-        ax.set_xticks(*_ticks(surface.penalty_values))
+        n_lm, n_pen = len(surface.lm), len(surface.penalty)
+        ax.set_yticks(*_ticks(surface.lm.tolist()))
+        ax.set_xticks(*_ticks(surface.penalty.tolist()))
         ax.set_ylabel("LM weight")
         ax.set_xlabel("insertion penalty")
         i, j = chosen_cell(surface, tuning)
@@ -97,7 +99,7 @@ def surface_heatmap(surface: Surface, tuning: Tuning) -> str:
         return _svg(fig, "tuning error surface")
 
 
-def colour_limits(errors: Sequence[Sequence[float]]) -> tuple[float, float, bool]:
+def colour_limits(errors: npt.ArrayLike) -> tuple[float, float, bool]:
     """Colour scale of the surface: its minimum to its 90th percentile (capped) or maximum."""
     values = np.asarray(errors, dtype=np.float64)
     low, high = float(values.min()), float(values.max())
@@ -107,13 +109,14 @@ def colour_limits(errors: Sequence[Sequence[float]]) -> tuple[float, float, bool
     return low, high, False
 
 
-def chosen_cell(surface: Surface, tuning: Tuning) -> tuple[int, int]:
+def chosen_cell(surface: Surface, tuning: TuningRecord) -> tuple[int, int]:
     """(LM row, penalty column) of the chosen weights, or of the first grid minimum when the
     tuning result does not name them; weights between grid points take the nearest cell."""
     if tuning.lm_weight is not None and tuning.insertion_penalty is not None:
-        return (_nearest(surface.lm_values, tuning.lm_weight),
-                _nearest(surface.penalty_values, tuning.insertion_penalty))
-    _, i, j = min((v, i, j) for i, row in enumerate(surface.errors) for j, v in enumerate(row))
+        return (_nearest(surface.lm.tolist(), tuning.lm_weight),
+                _nearest(surface.penalty.tolist(), tuning.insertion_penalty))
+    _, i, j = min((v, i, j) for i, row in enumerate(surface.errors.tolist())
+                  for j, v in enumerate(row))
     return i, j
 
 
@@ -121,17 +124,17 @@ def _nearest(values: Sequence[float], x: float) -> int:
     return min(range(len(values)), key=lambda k: (abs(values[k] - x), k))
 
 
-def _ticks(values: tuple[float, ...], most: int = 8) -> tuple[list[int], list[str]]:
+def _ticks(values: Sequence[float], most: int = 8) -> tuple[list[int], list[str]]:
     step = max(1, -(-len(values) // most))
     idx = list(range(0, len(values), step))
     return idx, [f"{values[i]:g}" for i in idx]
 
 
-def depth_curve(tuning: Tuning, rate: str = "WER") -> str:
+def depth_curve(tuning: TuningRecord, rate: str = "WER") -> str:
     with _style("depth"):
         fig = Figure(figsize=(5.6, 3.0))
         ax = fig.add_subplot()
-        ks = [r.k for r in tuning.depth]
+        ks = [r.depth for r in tuning.depth]
         for key, label, style in (("one_best_wer", "recognizer 1-best", "--"),
                                   ("tuned_wer", "rescored", "-"),
                                   ("oracle_wer", "oracle", ":")):

@@ -35,7 +35,15 @@ from rescore.tune.driver import cross_validate, depth_table, tune
 from rescore.tune.grid import edge_points, grid_search, low_points, plateau_centre
 from rescore.tune.grids import parse_bounds, parse_grid
 from rescore.tune.line import ErrorCurve, exact_search, line_errors
-from rescore.tune.results import CrossValidation, DepthRow, Fold, Surface, TuneResult, Widening
+from rescore.tune.results import (
+    CrossValidation,
+    DepthRow,
+    Fold,
+    Surface,
+    TuneResult,
+    TuningRecord,
+    Widening,
+)
 from rescore.tune.widening import grid_edge_warning, region_edges, widen_grid
 
 __all__ = [
@@ -50,6 +58,7 @@ __all__ = [
     "Fold",
     "Surface",
     "TuneResult",
+    "TuningRecord",
     "Widening",
     "cross_validate",
     "depth_table",

@@ -11,15 +11,12 @@ import numpy as np
 
 from rescore.errors import ParameterError
 from rescore.progress import Advance, Report, Steps
-from rescore.scoring import FeatureMatrix, chosen_errors
+from rescore.scoring import DevMatrix, FeatureMatrix, chosen_errors
 from rescore.tune.common import (
     DEFAULT_LM_GRID,
     DEFAULT_PENALTY_GRID,
     DEPTHS,
     MAX_WIDENINGS,
-    _check_matrix,
-    _first_errors,
-    _oracle_errors,
     _set,
 )
 from rescore.tune.grid import edge_points, grid_search, low_points
@@ -82,8 +79,8 @@ def _row_starts(matrix: FeatureMatrix, grid: TuneResult, lm_column: str, keep: i
     best interval, which may lie between the grid's penalty values; the ``keep`` best rows
     give starting points.
     """
-    assert grid.surface is not None and matrix.errors is not None
-    errors = matrix.errors.astype(np.int64)
+    assert grid.surface is not None
+    errors = DevMatrix.check(matrix).word_errors
     lo, hi = _bounds_for((WORDS,), bounds)
     words = matrix.values[:, matrix.names.index(WORDS)]
     found = []
@@ -116,7 +113,7 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
     Utterances are shuffled with ``seed`` and split into k nearly equal folds (k capped at
     the number of utterances). The WER is all held-out errors over all reference words.
     """
-    _check_matrix(matrix)
+    matrix = DevMatrix.check(matrix)
     assert matrix.ref_words is not None
     k = min(folds, matrix.n_utterances)
     if k < 2:
@@ -128,7 +125,7 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
     for held in parts:
         train = np.setdiff1d(np.arange(matrix.n_utterances), held)
         train_m = matrix.subset(train)
-        if int(train_m.ref_words.sum()) == 0:  # type: ignore[union-attr]
+        if train_m.words == 0:
             weights = Weights()
             if steps is not None:
                 steps(_search_units(search, lm_values))
@@ -148,7 +145,8 @@ def cross_validate(matrix: FeatureMatrix, *, search: str, features: Sequence[str
 
 def depth_table(matrix: FeatureMatrix, weights: Weights) -> tuple[DepthRow, ...]:
     """One-best, tuned (at ``weights``, not re-tuned) and oracle WER for k = 1, 2, 5, 10, all."""
-    _, words = _check_matrix(matrix)
+    matrix = DevMatrix.check(matrix)
+    words = matrix.words
     deepest = int(np.diff(matrix.offsets).max())
     depths = [k for k in DEPTHS if k < deepest] + [deepest]
     rows = []
@@ -156,9 +154,9 @@ def depth_table(matrix: FeatureMatrix, weights: Weights) -> tuple[DepthRow, ...]
         part = matrix.truncate(k)
         rows.append(DepthRow(
             depth=k, label="all" if k == deepest else str(k),
-            one_best_wer=_first_errors(part) / words,
+            one_best_wer=part.first_errors() / words,
             tuned_wer=chosen_errors(part, weights) / words,
-            oracle_wer=_oracle_errors(part) / words,
+            oracle_wer=part.oracle_errors() / words,
         ))
     return tuple(rows)
 
@@ -211,6 +209,8 @@ def tune(
                              field="cv_warn")
     lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "lm_grid")
     pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "penalty_grid")
+    # the dev set is checked here, once; every search, fold and depth below reuses it
+    matrix = DevMatrix.check(matrix)
     widenings: tuple[Widening, ...] = ()
     widened: TuneResult | None = None
     if method == "grid" and widen:

@@ -8,13 +8,11 @@ from collections.abc import Sequence
 import numpy as np
 
 from rescore.progress import Advance
-from rescore.scoring import FeatureMatrix, segment_argmax
+from rescore.scoring import DevMatrix, FeatureMatrix, segment_argmax
 from rescore.tune.common import (
     _BLOCK,
     DEFAULT_LM_GRID,
     DEFAULT_PENALTY_GRID,
-    _check_matrix,
-    _column_index,
     _result,
     _set,
 )
@@ -231,16 +229,17 @@ def grid_search(
     are reduced to the best of them at each LM weight; the remaining scores of many penalty
     values are evaluated in one (utterances x points x slots) block and an argmax.
     """
-    errors, _ = _check_matrix(matrix)
+    matrix = DevMatrix.check(matrix)
+    errors = matrix.word_errors
     lm_values = _as_grid(lm_grid, DEFAULT_LM_GRID, "lm_grid")
     pen_values = _as_grid(penalty_grid, DEFAULT_PENALTY_GRID, "penalty_grid")
-    wi = _column_index(matrix, WORDS)
+    wi = matrix.index(WORDS)
     vec = base.vector(matrix.names)
     vec[wi] = 0.0
     if lm_column is None:
         lm_values, lm = np.zeros(1), np.zeros(matrix.n_hypotheses)
     else:
-        li = _column_index(matrix, lm_column)
+        li = matrix.index(lm_column)
         vec[li], lm = 0.0, matrix.values[:, li]
     fixed = matrix.values @ vec
     surface = _grid_errors(matrix, errors, fixed, lm, matrix.values[:, wi], lm_values,

@@ -12,13 +12,11 @@ import numpy as np
 
 from rescore.errors import ParameterError
 from rescore.progress import Advance
-from rescore.scoring import FeatureMatrix, chosen_errors
+from rescore.scoring import DevMatrix, FeatureMatrix, chosen_errors
 from rescore.tune.common import (
     _MAX_SWEEPS,
     _MIN_WIDTH,
     DEFAULT_BOUND,
-    _check_matrix,
-    _column_index,
     _result,
     _set,
 )
@@ -146,10 +144,11 @@ def _envelope_curve(a: np.ndarray, b: np.ndarray, offsets: np.ndarray, errors: n
 def line_errors(matrix: FeatureMatrix, start: Weights,
                 direction: Mapping[str, float]) -> ErrorCurve:
     """Exact corpus error curve along ``start + step * direction`` (Och, 2003)."""
-    errors, _ = _check_matrix(matrix)
+    matrix = DevMatrix.check(matrix)
+    errors = matrix.word_errors
     d = np.zeros(len(matrix.names))
     for name, value in direction.items():
-        d[_column_index(matrix, name)] = value
+        d[matrix.index(name)] = value
     a = matrix.values @ start.vector(matrix.names)
     b = matrix.values @ d
     return _envelope_curve(a, b, matrix.offsets, errors)
@@ -297,12 +296,13 @@ def exact_search(
     acoustic scale, 1) stay as in ``start``. ``progress`` is called with 1 after each run
     (``1 + len(also_from) + restarts`` of them).
     """
-    errors, _ = _check_matrix(matrix)
+    matrix = DevMatrix.check(matrix)
+    errors = matrix.word_errors
     tuned = tuple(dict.fromkeys(tune))
     if not tuned:
         raise ParameterError("nothing to tune", field="tune")
     names = tuple(dict.fromkeys((*matrix.names, *start.features)))
-    idx = np.array([_column_index(matrix, t) for t in tuned])
+    idx = np.array([matrix.index(t) for t in tuned])
     lo, hi = _bounds_for(tuned, bounds)
     rng = np.random.default_rng(seed)
     best, best_errors = np.zeros(0), np.iinfo(np.int64).max

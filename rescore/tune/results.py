@@ -3,12 +3,14 @@ grid widenings."""
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from rescore.errors import InputError
 from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT, Weights
 
 _SIDE_LABELS = {"lm_low": "lowest LM weight", "lm_high": "highest LM weight",
@@ -26,6 +28,23 @@ class Surface:
     def to_dict(self) -> dict[str, Any]:
         return {LM_WEIGHT: self.lm.tolist(), INSERTION_PENALTY: self.penalty.tolist(),
                 "errors": self.errors.tolist()}
+
+    @classmethod
+    def from_dict(cls, raw: Any, *, path: str | Path | None = None) -> Surface:
+        """The surface as :meth:`to_dict` spells it; a bad one is an :class:`InputError`
+        that names the field."""
+        try:
+            lm = np.array([float(v) for v in raw[LM_WEIGHT]], dtype=np.float64)
+            pen = np.array([float(v) for v in raw[INSERTION_PENALTY]], dtype=np.float64)
+            rows = [[float(v) for v in row] for row in raw["errors"]]
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"cannot read the error surface ({exc})", path=path,
+                             field="surface") from None
+        if len(rows) != len(lm) or any(len(r) != len(pen) for r in rows):
+            raise InputError(
+                f"errors should be {len(lm)} rows of {len(pen)} values (one row per LM weight)",
+                path=path, field="surface.errors")
+        return cls(lm, pen, np.array(rows, dtype=np.float64).reshape(len(lm), len(pen)))
 
 
 @dataclass(frozen=True)
@@ -75,6 +94,65 @@ class DepthRow:
     def to_dict(self) -> dict[str, Any]:
         return {"depth": self.depth, "label": self.label, "one_best_wer": self.one_best_wer,
                 "tuned_wer": self.tuned_wer, "oracle_wer": self.oracle_wer}
+
+    @classmethod
+    def from_dict(cls, row: Any, *, path: str | Path | None = None,
+                  where: str = "depth") -> DepthRow:
+        """A row as :meth:`to_dict` spells it (``label`` defaults to the depth)."""
+        if not isinstance(row, Mapping):
+            raise InputError("a depth row must be an object", path=path, field=where)
+        for key in ("depth", "one_best_wer", "tuned_wer", "oracle_wer"):
+            value = row.get(key)
+            if isinstance(value, bool) or not isinstance(value, int | float):
+                raise InputError(f"expected a number, got {value!r}", path=path,
+                                 field=f"{where}.{key}")
+        return cls(depth=int(row["depth"]), label=str(row.get("label", row["depth"])),
+                   one_best_wer=float(row["one_best_wer"]), tuned_wer=float(row["tuned_wer"]),
+                   oracle_wer=float(row["oracle_wer"]))
+
+
+@dataclass(frozen=True, eq=False)
+class TuningRecord:
+    """The tuning record: what ``tune --analysis`` writes of a run beside the weights and
+    what ``report --tuning`` shows of it (error surface, depth table, chosen weights), one
+    schema both ways. Any part may be absent."""
+
+    surface: Surface | None = None
+    depth: tuple[DepthRow, ...] = ()
+    lm_weight: float | None = None
+    insertion_penalty: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """The record's keys as :meth:`TuneResult.to_dict` spells them; absent parts left out."""
+        out: dict[str, Any] = {}
+        if self.surface is not None:
+            out["surface"] = self.surface.to_dict()
+        if self.depth:
+            out["depth"] = [row.to_dict() for row in self.depth]
+        if self.lm_weight is not None:
+            out[LM_WEIGHT] = self.lm_weight
+        if self.insertion_penalty is not None:
+            out[INSERTION_PENALTY] = self.insertion_penalty
+        return out
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any], *, path: str | Path | None = None
+                  ) -> TuningRecord:
+        """Read a tuning record (a whole ``tune --analysis`` file is one); absent or null
+        parts are skipped, a malformed one is an :class:`InputError` naming its field."""
+        raw = data.get("surface")
+        surface = None if raw is None else Surface.from_dict(raw, path=path)
+        rows = data.get("depth")
+        if rows is not None and (isinstance(rows, str | bytes) or not isinstance(rows, Sequence)):
+            raise InputError("expected a list of rows", path=path, field="depth")
+        depth = tuple(DepthRow.from_dict(row, path=path, where=f"depth[{i}]")
+                      for i, row in enumerate(rows or ()))
+
+        def number(key: str) -> float | None:
+            v = data.get(key)
+            return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
+
+        return cls(surface, depth, number(LM_WEIGHT), number(INSERTION_PENALTY))
 
 
 @dataclass(frozen=True)
@@ -133,6 +211,11 @@ class TuneResult:
     def cv_gap(self) -> float | None:
         """Cross-validated WER minus dev WER, absolute (positive: worse on held-out data)."""
         return None if self.cv is None else self.cv.wer - self.dev_wer
+
+    def record(self) -> TuningRecord:
+        """The part of the run a report shows (:class:`TuningRecord`)."""
+        return TuningRecord(self.surface, self.depth, self.weights.lm_weight,
+                            self.weights.insertion_penalty)
 
     def search_record(self) -> dict[str, Any]:
         """How the weights were found, for the weights file's provenance: the search

@@ -10,7 +10,7 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 
 from rescore.progress import Report, Steps
-from rescore.scoring import FeatureMatrix
+from rescore.scoring import DevMatrix, FeatureMatrix
 from rescore.tune.common import MAX_WIDENINGS
 from rescore.tune.grid import grid_search
 from rescore.tune.line import _bounds_for
@@ -78,6 +78,7 @@ def widen_grid(matrix: FeatureMatrix, lm_grid: np.ndarray, penalty_grid: np.ndar
     the last grid and the widenings made; each is also logged and reported to
     ``progress`` as a stage of its own.
     """
+    matrix = DevMatrix.check(matrix)
     lm_lo, lm_hi = _bounds_for((LM if lm_column is None else lm_column,), bounds)
     pen_lo, pen_hi = _bounds_for((WORDS,), bounds)
     done: list[Widening] = []

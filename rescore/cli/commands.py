@@ -28,6 +28,7 @@ from rescore.cli.options import (
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
 from rescore.counting import counting_of, unit_name
+from rescore.demo_kana import run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
 from rescore.lm.overlap import overlap_summary
@@ -285,8 +286,19 @@ def demo(
         "--data", metavar="DIR",
         help="Scenario data folder (default: the bundled scenario).")] = None,
     as_json: JsonOpt = False,
+    scenario: Annotated[str, typer.Option(
+        "--scenario", metavar="larkspur|kana",
+        help="larkspur: the English logbook, in words; kana: the Midoridani mushroom "
+        "cellar's Japanese log, written without spaces, in characters (CER).")] = "larkspur",
 ) -> None:
-    """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
+    """The whole job on a bundled scenario (the Larkspur Growhouse logbook by default):
+    build, tune, rescore, report."""
+    if scenario not in ("larkspur", "kana"):
+        raise UsageError(f"unknown scenario {scenario!r}; expected larkspur or kana",
+                         field="--scenario")
+    if scenario == "kana":
+        _kana_demo(out, data, as_json)
+        return
     result = demo_lib.run_demo(out, data_dir=data, progress=info)
     if as_json:
         emit_json(result.summary)
@@ -315,6 +327,24 @@ def demo(
             info("mixture weights (EM on dev.txt): " + ", ".join(
                 f"{k} {v:.4f}" for k, v in mixed["mixture_weights"].items()))
     info(f"outputs in {out}/ (summary.json, models, weights, rescored files, report)")
+
+
+def _kana_demo(out: Path, data: Path | None, as_json: bool) -> None:
+    result = run_kana_demo(out, data_dir=data, progress=info)
+    if as_json:
+        emit_json(result.summary)
+        return
+    s = result.summary
+    heading = "Midoridani mushroom cellar" if data is None else str(data)
+    table(f"{heading} test set: before and after rescoring, in characters",
+          ["", "CER", "sub", "del", "ins", "hits", "ref chars"],
+          _wer_rows([("before (recognizer 1-best)", result.before.to_dict()),
+                     ("after (rescored)", result.after.to_dict()),
+                     ("oracle (best in list)", result.oracle.to_dict())]))
+    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
+         f"CER {pct(s['cer_before'])} -> {pct(s['cer_after'])} on {s['utterances']} "
+         "utterances")
+    info(f"outputs in {out}/ (summary.json, character model, weights, rescored file, report)")
 
 
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:

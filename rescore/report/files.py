@@ -134,8 +134,11 @@ def report_files(
     report = build_report(before_pairs, after_pairs, provenance=prov, tuning=record,
                           resamples=resamples, seed=seed, critical_classes=classes,
                           overlap=overlap, progress=progress, counting=counting)
-    report = replace(report, confidence=load_confidences(after, refs=ref_map,
-                                                         log_base=log_base, costs=costs))
+    if counting.unit == "word":
+        # word confidences are per space-separated word: a text written without spaces
+        # has one "word" per utterance, so under --unit char the section is left out
+        report = replace(report, confidence=load_confidences(after, refs=ref_map,
+                                                             log_base=log_base, costs=costs))
     report = with_gate(report, max_wer=max_wer, max_regression=max_regression)
     written = () if out_dir is None else tuple(write_report(report, out_dir))
     reasons = tuple(gate_failures(report, max_wer=max_wer, max_regression=max_regression))

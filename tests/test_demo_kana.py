@@ -64,6 +64,10 @@ def test_demo_shows_a_cer_fall(tmp_path: Path) -> None:
     assert report["after"]["wer"] == pytest.approx(s["cer_after"])
     md = (tmp_path / "out" / "report" / "report.md").read_text(encoding="utf-8")
     assert md.startswith("# Release report: CER before and after rescoring")
+    # the README quotes this run's figures
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    assert (f"CER {100 * s['cer_before']:.2f}% before,\n{100 * s['cer_after']:.2f}% after, "
+            f"oracle {100 * s['oracle_cer']:.2f}%") in readme
 
 
 def test_demo_command_takes_the_scenario(tmp_path: Path) -> None:

@@ -24,7 +24,14 @@ from rescore.align import CompiledRules, align_with_rules
 from rescore.errors import InputError, ParameterError
 from rescore.rules import RulesFile, load_rules
 from rescore.text import tokens, tokens_many
-from rescore.wer import Alignment, align_many, word_errors
+from rescore.wer import (
+    Alignment,
+    UtteranceCounts,
+    align_many,
+    counts_from_alignments,
+    utterance_counts,
+    word_errors,
+)
 
 Unit = Literal["word", "char"]
 UNITS: tuple[Unit, ...] = ("word", "char")
@@ -108,6 +115,14 @@ class Counting:
         if self.rules is None:
             return align_many(refs, hyps)
         return align_with_rules(refs, hyps, self.rules.rules, unit=self.unit)
+
+    def counts(self, refs: Sequence[str], hyps: Sequence[str]) -> UtteranceCounts:
+        """Per-utterance counts of texts paired by position (plain: exactly today's)."""
+        ref_t = [self.score_tokens(t) for t in refs]
+        hyp_t = [self.score_tokens(t) for t in hyps]
+        if self.rules is None:
+            return utterance_counts(ref_t, hyp_t)
+        return counts_from_alignments(self.align_many(ref_t, hyp_t))
 
     def errors(self, ref: Sequence[str], hyp: Sequence[str]) -> int:
         """The errors of one hypothesis (the edit distance without rules)."""

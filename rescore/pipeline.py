@@ -67,11 +67,8 @@ from rescore.weights import (
 )
 from rescore.wer import (
     UNDEFINED_WER,
-    UtteranceCounts,
     WerResult,
-    counts_from_alignments,
     summarise,
-    utterance_counts,
     wer_from_totals,
 )
 
@@ -324,8 +321,8 @@ def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
     n_utt = n_scored = 0
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                     require_references=True), batch_size):
-        counts = _counts(counting, [u["reference"] for _, u in batch],
-                         [one_best(u)["text"] for _, u in batch])
+        counts = counting.counts([u["reference"] for _, u in batch],
+                                 [one_best(u)["text"] for _, u in batch])
         totals += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
                                           counts.insertions, counts.hits)]
         n_utt += len(batch)
@@ -337,15 +334,6 @@ def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
     if s + d + h == 0:
         raise InputError(UNDEFINED_WER, path=path)
     return wer_from_totals(s, d, i, h, utterances=n_utt)
-
-
-def _counts(counting: Counting, refs: Sequence[str], hyps: Sequence[str]) -> UtteranceCounts:
-    """Per-utterance counts of texts under ``counting`` (plain: exactly today's)."""
-    ref_t = [counting.score_tokens(t) for t in refs]
-    hyp_t = [counting.score_tokens(t) for t in hyps]
-    if counting.rules is None:
-        return utterance_counts(ref_t, hyp_t)
-    return counts_from_alignments(counting.align_many(ref_t, hyp_t))
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path, *,
@@ -364,7 +352,7 @@ def wer_transcripts(refs_path: Path, hyps_path: Path, *,
     ids = list(refs)
     if not any(counting.score_tokens(refs[i]) for i in ids):
         raise InputError(UNDEFINED_WER, path=refs_path)
-    result = summarise(_counts(counting, [refs[i] for i in ids], [hyps[i] for i in ids]))
+    result = summarise(counting.counts([refs[i] for i in ids], [hyps[i] for i in ids]))
     check_accounting(hyps_path, len(ids), result.utterances, "scored")
     return result
 

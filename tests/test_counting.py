@@ -13,8 +13,11 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from rescore import word_error_rate
 from rescore.counting import PLAIN, Counting, characters, counting_of, parse_unit
 from rescore.errors import InputError, ParameterError
+from rescore.lm import NGramModel, load_model, save_model
+from rescore.lm.corpus import char_sentences
 from rescore.rules import parse_rules
 from rescore.text import tokens
 from rescore.wer import counts_from_alignments, summarise, utterance_counts
@@ -256,3 +259,31 @@ def test_check_with_rules_counts_the_oracle_under_them(tmp_path: Path) -> None:
     plain = json.loads(run(["check", nbest, "--json"]).stdout)
     ruled = json.loads(run(["check", nbest, "--json", "--rules", rules]).stdout)
     assert plain["one_best_wer"] == pytest.approx(1 / 3) and ruled["one_best_wer"] == 0.0
+
+
+def test_unit_in_model_files(tmp_path: Path) -> None:
+    # a word model's file says nothing of its unit (its bytes are those of before), and
+    # reads as a word model; ARPA text cannot say, so a model read from it is taken as either
+    words = NGramModel(order=2).fit([["pump", "two"], ["pump", "three"]])
+    save_model(words, tmp_path / "w.lm")
+    loaded = load_model(tmp_path / "w.lm")
+    assert "unit" not in loaded.metadata and loaded.unit == "word"
+    chars = NGramModel(order=2).fit(char_sentences([["ポンプ"], ["ポンプ", "三"]]))
+    save_model(chars.mark_unit("char"), tmp_path / "c.lm")
+    assert load_model(tmp_path / "c.lm").unit == "char"
+    save_model(load_model(tmp_path / "c.lm"), tmp_path / "c.arpa")
+    arpa = load_model(tmp_path / "c.arpa")
+    assert arpa.unit is None
+    PLAIN.check_model(arpa, path="c.arpa")
+    CHARS.check_model(arpa, path="c.arpa")
+    with pytest.raises(InputError, match="built on words"):
+        CHARS.check_model(loaded, path="w.lm")
+
+
+def test_python_api_counts_characters_and_rules(tmp_path: Path) -> None:
+    # by hand: 三号泵 against 三号: one deletion of 3 characters
+    assert word_error_rate(["三号泵"], ["三号"], unit="char").wer == pytest.approx(1 / 3)
+    rules = tmp_path / "r.toml"
+    rules.write_bytes(b"optional = ['um']\n")
+    assert word_error_rate(["um vent"], ["vent"], rules=rules).wer == 0.0
+    assert word_error_rate(["um vent"], ["vent"]).wer == 0.5

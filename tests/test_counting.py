@@ -211,6 +211,18 @@ def test_char_model_records_its_unit_and_scores_characters(tmp_path: Path) -> No
     data = json.loads(got.stdout)
     expected = math.log10(0.5) + 2 * math.log10(0.25)
     assert data["tokens"] == 3 and data["log10_prob"] == pytest.approx(expected)
+    # per sentence: one line each, blank lines skipped but counted in the line numbers
+    test.write_text("ab\n\nb a\n", encoding="utf-8")
+    scores = tmp_path / "scores.jsonl"
+    got = run(["lm", "perplexity", model, test, "--unit", "char", "--json",
+               "--per-sentence", scores])
+    assert got.exit_code == 0, got.stderr
+    rows = [json.loads(line) for line in scores.read_text().splitlines()]
+    assert [(r["line"], r["text"], r["words"], r["tokens"]) for r in rows] == [
+        (1, "ab", 2, 3), (3, "b a", 2, 3)]
+    # "ba" by hand: log10(1/4) + log10(1/2) + log10(1/4), the same sum as "ab"
+    assert rows[1]["log10_prob"] == pytest.approx(expected)
+    assert json.loads(got.stdout)["log10_prob"] == pytest.approx(2 * expected)
     # the word unit refuses the character model, naming the fix
     word = run(["lm", "perplexity", model, test])
     assert word.exit_code == 1

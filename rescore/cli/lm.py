@@ -180,15 +180,11 @@ def perplexity_cmd(
     token_unit = parse_unit(unit)
     model = load_model(model_path)
     Counting(token_unit).check_model(model, path=model_path)
-    if token_unit == "char":
-        if scores_out is not None:
-            raise UsageError("--per-sentence writes word lines; leave it out with --unit char",
-                             field="--per-sentence")
-        result = perplexity(model, char_sentences(read_corpus(text)))
-    elif scores_out is None:
-        result = perplexity(model, read_corpus(text))
+    if scores_out is None:
+        corpus = read_corpus(text)
+        result = perplexity(model, corpus if token_unit == "word" else char_sentences(corpus))
     else:
-        result = write_sentence_scores(model, text, scores_out)
+        result = write_sentence_scores(model, text, scores_out, unit=token_unit)
         info(f"wrote {scores_out}: {result.sentences} sentences")
     if as_json:
         emit_json(result.to_dict())

@@ -116,7 +116,11 @@ def test_char_unit_report_says_cer() -> None:
         assert "WER" not in shown, name
         assert "CER before" in files[name]
     assert "unit: characters, spaces dropped (CER)" in files["report.md"]
-    assert json.loads(files["report.json"])["provenance"]["unit"] == "char"
+    data = json.loads(files["report.json"])
+    assert data["provenance"]["unit"] == "char"
+    # transcripts are shown as written, the characters not spaced apart
+    assert data["utterances"][0]["reference"] == "ポンプ止"
+    assert '<span class="w-sub" title="reference: ポ">ボ</span>ンプ止' in files["report.html"]
 
 
 def test_right_to_left_transcripts_get_dir_auto() -> None:

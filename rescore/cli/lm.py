@@ -187,7 +187,7 @@ def perplexity_cmd(
         result = write_sentence_scores(model, text, scores_out, unit=token_unit)
         info(f"wrote {scores_out}: {result.sentences} sentences")
     if as_json:
-        emit_json(result.to_dict())
+        emit_json(result.to_dict() | Counting(token_unit).provenance())
         return
     table(None, ["measure", "value"], [
         ("perplexity", result.perplexity),

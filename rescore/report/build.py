@@ -115,7 +115,14 @@ class Report:
     overlap: OverlapSummary | None = None
     confidence: Any = None  # rescore.report.confidence.ConfidenceSummary (word confidences)
 
+    @property
+    def joiner(self) -> str:
+        """What goes between tokens when a transcript is shown: a space between words,
+        nothing between characters (``--unit char``, a script written without spaces)."""
+        return "" if self.provenance.get("unit") == "char" else " "
+
     def to_dict(self) -> dict[str, Any]:
+        sep = self.joiner
         out: dict[str, Any] = {
             "before": self.before.to_dict(),
             "after": self.after.to_dict(),
@@ -134,9 +141,9 @@ class Report:
             "utterances": [
                 {"id": u.id, "reference_words": u.reference_words,
                  "before_errors": u.before_errors, "after_errors": u.after_errors,
-                 "reference": " ".join(u.before.reference),
-                 "before": " ".join(u.before.hypothesis),
-                 "after": " ".join(u.after.hypothesis)}
+                 "reference": sep.join(u.before.reference),
+                 "before": sep.join(u.before.hypothesis),
+                 "after": sep.join(u.after.hypothesis)}
                 for u in self.utterances
             ],
         }

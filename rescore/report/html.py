@@ -181,8 +181,9 @@ def _confusions(name: str, c: Confusions) -> str:
             + "</div>")
 
 
-def marked_words(alignment: Alignment) -> str:
-    """The hypothesis with its differences from the reference marked word by word."""
+def marked_words(alignment: Alignment, sep: str = " ") -> str:
+    """The hypothesis with its differences from the reference marked word by word
+    (``sep`` between them: nothing between characters under ``--unit char``)."""
     parts = []
     for op in alignment.ops:
         if op.kind == "equal":
@@ -196,19 +197,20 @@ def marked_words(alignment: Alignment) -> str:
             # correct under the scoring rules: the hypothesis's spelling, the reference's
             # on hover, and a dotted underline so it is seen not to be the same words
             parts.append(f'<span class="w-eqv" title="equivalent under the scoring rules to '
-                         f'the reference: {_e(op.ref)}">{_e(op.hyp)}</span>')
+                         f'the reference: {_e(op.ref)}">{_e(str(op.hyp).replace(" ", sep))}'
+                         "</span>")
         elif op.kind == "optional":
             parts.append(f'<span class="w-opt" title="optional word left out (no error)">'
-                         f'({_e(op.ref)})</span>')
+                         f'({_e(str(op.ref).replace(" ", sep))})</span>')
         else:
             parts.append(f'<del title="deleted">{_e(op.ref)}</del>')
-    return " ".join(parts) if parts else '<span class="sub-title">(no words)</span>'
+    return sep.join(parts) if parts else '<span class="sub-title">(no words)</span>'
 
 
-def _utterance(index: int, u: UtteranceRow) -> str:
+def _utterance(index: int, u: UtteranceRow, sep: str = " ") -> str:
     tone = " better" if u.change < 0 else (" worse" if u.change > 0 else "")
     meta = ", ".join(f"{k}={v}" for k, v in sorted(u.meta.items(), key=lambda kv: kv[0]))
-    ref = " ".join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
+    ref = sep.join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
     words = [*u.before.reference, *u.before.hypothesis, *u.after.hypothesis]
     ltr = _dir(words)
     return (
@@ -218,8 +220,8 @@ def _utterance(index: int, u: UtteranceRow) -> str:
         + (f' <span class="sub-title">{_e(meta)}</span>' if meta else "")
         + '<table class="words"><tbody>'
         f"<tr><td>reference</td><td{ltr}>{ref}</td></tr>"
-        f"<tr><td>before</td><td{ltr}>{marked_words(u.before)}</td></tr>"
-        f"<tr><td>after</td><td{ltr}>{marked_words(u.after)}</td></tr>"
+        f"<tr><td>before</td><td{ltr}>{marked_words(u.before, sep)}</td></tr>"
+        f"<tr><td>after</td><td{ltr}>{marked_words(u.after, sep)}</td></tr>"
         "</tbody></table></li>"
     )
 
@@ -320,7 +322,8 @@ def render_html(report: Report) -> str:
     confusions = (_confusions("before", report.breakdown.before)
                   + _confusions("after", report.breakdown.after))
     notes = "".join(f"<li>{_e(n)}</li>" for n in t.method_notes(report))
-    utterances = "".join(_utterance(i, u) for i, u in enumerate(report.utterances))
+    utterances = "".join(_utterance(i, u, report.joiner)
+                         for i, u in enumerate(report.utterances))
     provenance = _table(["item", "value"], t.provenance_rows(report), numeric_from=9)
     return f"""<!DOCTYPE html>
 <html lang="en">

@@ -114,7 +114,7 @@ def render_markdown(report: Report) -> str:
         out += [f"### {title}", ""]
         out += _table(["id", "errors before", "errors after", "after"],
                       [(i, by_id[i].before_errors, by_id[i].after_errors,
-                        " ".join(by_id[i].after.hypothesis)) for i in ids])
+                        report.joiner.join(by_id[i].after.hypothesis)) for i in ids])
     for key, groups in report.breakdown.by_meta.items():
         out += [t.say(report, "### WER by ") + _cell(key), ""]
         head, rows_ = t.group_table(key, groups, report)

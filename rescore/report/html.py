@@ -212,16 +212,16 @@ def _utterance(index: int, u: UtteranceRow, sep: str = " ") -> str:
     meta = ", ".join(f"{k}={v}" for k, v in sorted(u.meta.items(), key=lambda kv: kv[0]))
     ref = sep.join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
     words = [*u.before.reference, *u.before.hypothesis, *u.after.hypothesis]
-    ltr = _dir(words)
+    direction = _dir(words)
     return (
         f'<li class="utt" id="u{index}" data-change="{u.change}">'
         f'<span class="change{tone}">errors {u.before_errors} &rarr; {u.after_errors}</span>'
         f'<span class="uid">{_e(u.id)}</span>'
         + (f' <span class="sub-title">{_e(meta)}</span>' if meta else "")
         + '<table class="words"><tbody>'
-        f"<tr><td>reference</td><td{ltr}>{ref}</td></tr>"
-        f"<tr><td>before</td><td{ltr}>{marked_words(u.before, sep)}</td></tr>"
-        f"<tr><td>after</td><td{ltr}>{marked_words(u.after, sep)}</td></tr>"
+        f"<tr><td>reference</td><td{direction}>{ref}</td></tr>"
+        f"<tr><td>before</td><td{direction}>{marked_words(u.before, sep)}</td></tr>"
+        f"<tr><td>after</td><td{direction}>{marked_words(u.after, sep)}</td></tr>"
         "</tbody></table></li>"
     )
 

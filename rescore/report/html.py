@@ -109,6 +109,8 @@ _RULES_CSS = """
 .w-eqv { border-bottom: 2px dotted #5a8f5a; }
 .w-opt { color: #777; font-style: italic; }
 """
+_RULES_LEGEND = ('<span class="w-eqv">equivalent under the rules</span>'
+                 '<span class="w-opt">(optional, left out)</span>')
 _RULED = frozenset({"equivalent", "optional"})
 _RIGHT_TO_LEFT = frozenset({"R", "AL"})  # Unicode bidirectional classes of RTL letters
 
@@ -371,7 +373,7 @@ def render_html(report: Report) -> str:
 <span id="utt-count" class="sub-title"></span>
 </div>
 <p class="legend sub-title"><span class="w-sub">substituted</span><ins>inserted</ins>
-<del>deleted</del> (hover a substitution for the reference word)</p>
+<del>deleted</del>{_RULES_LEGEND if ruled else ""} (hover a substitution for the reference word)</p>
 <ol class="utts">{utterances}</ol>
 </main>
 <footer>

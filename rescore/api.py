@@ -187,7 +187,7 @@ def tune_weights(nbest: NBest, *, lm: LanguageModel | str | Path | None = None,
     Returns
     -------
     TuneResult
-        ``.weights`` the tuned :class:`Weights`; ``.dev_wer``, ``.baseline_wer``,
+        ``.weights`` the tuned :class:`Weights`; ``.dev_wer``, ``.one_best_wer``,
         ``.oracle_wer`` and the search record.
 
     Raises

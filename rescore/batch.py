@@ -57,7 +57,7 @@ def record_bytes(utt: Utterance) -> int:
 @dataclass(frozen=True)
 class WriteCounts:
     """What :func:`write_scored` wrote: 1-best changed from the first hypothesis, and
-    chosen hypotheses without words."""
+    outputs without words (the chosen text under ``--choose``, else the 1-best)."""
 
     changed: int = 0
     empty: int = 0
@@ -75,8 +75,8 @@ def check_accounting(path: str | Path, read: int, done: int, what: str) -> None:
 
 def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None, *,
                  path: str = "", lines: Sequence[int] = ()) -> WriteCounts:
-    """Write rescored records (and their 1-best text); returns how many changed 1-best
-    and how many chose a hypothesis without words.
+    """Write rescored records (and their output text); returns how many changed 1-best
+    and how many output no words (see :func:`_output_words`).
 
     ``path`` and ``lines`` (the records' line numbers) name an id that the ``id<TAB>text``
     file cannot hold.
@@ -90,11 +90,20 @@ def write_scored(scored: Sequence[Utterance], fh: TextSink, tsv: TextSink | None
             f"{utt['id']}\t{_one_line(utt.get('chosen', one_best(utt)['text']))}\n"
             for utt in scored))
     changed = sum(1 for utt in scored if utt.get("best", 0) != 0)
-    # ``words`` is set on every hypothesis by rescore_batch; records written as they were
-    # read may lack it, and then the text is counted
-    empty = sum(1 for utt in scored if not one_best(utt).get("words", len(tokens(
-        one_best(utt)["text"]))))
+    empty = sum(1 for utt in scored if not _output_words(utt))
     return WriteCounts(changed, empty)
+
+
+def _output_words(utt: Utterance) -> int:
+    """Words of the text the record outputs: ``chosen`` when the choice rule ran (it may
+    be words no hypothesis holds, or empty while the top-scoring hypothesis is not), else
+    the 1-best's."""
+    if "chosen" in utt:
+        return len(tokens(utt["chosen"]))
+    # ``word_count`` is set on every hypothesis by rescore_batch; records written as they were
+    # read may lack it, and then the text is counted
+    best = one_best(utt)
+    return best.get("word_count", len(tokens(best["text"])))
 
 
 def _check_tsv_ids(scored: Sequence[Utterance], path: str, lines: Sequence[int]) -> None:
@@ -122,8 +131,8 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
                   lms: Mapping[str, LanguageModel], features: Sequence[str],
                   weights: Weights, counting: Counting = PLAIN
                   ) -> tuple[list[Utterance], ListStats]:
-    """The batch's records with ``lm``, ``words``, ``total`` and ``best`` filled in, and
-    the sign and order counts of their acoustic scores (``words`` counts the tokens of
+    """The batch's records with ``lm``, ``word_count``, ``total`` and ``best`` filled in, and
+    the sign and order counts of their acoustic scores (``word_count`` counts the tokens of
     ``counting``'s unit: characters for ``char``)."""
     m = build_matrix(batch, path=path, lms=lms, features=features, counting=counting).matrix
     with np.errstate(over="ignore", invalid="ignore"):  # refused below, naming the weight
@@ -138,10 +147,12 @@ def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
     if LM in m.names:
         for hyp, lm, w, t in zip(hyps, m.values[:, m.names.index(LM)].tolist(), words, scores,
                                  strict=True):
-            hyp["lm"], hyp["words"], hyp["total"] = lm, w, t
+            hyp.pop("words", None)  # the name before word_count, on a file rescored again
+            hyp["lm"], hyp["word_count"], hyp["total"] = lm, w, t
     else:
         for hyp, w, t in zip(hyps, words, scores, strict=True):
-            hyp["words"], hyp["total"] = w, t
+            hyp.pop("words", None)
+            hyp["word_count"], hyp["total"] = w, t
     for (_, utt), b in zip(batch, best.tolist(), strict=True):
         utt["best"] = b
     choose_in_batch([utt for _, utt in batch], m.offsets, total, weights)  # --choose

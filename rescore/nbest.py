@@ -36,7 +36,8 @@ class Hypothesis(TypedDict):
     features: NotRequired[dict[str, FiniteFloat]]
     # Added by `rescore apply`; accepted on input so that rescored files can be read back.
     lm: NotRequired[FiniteFloat]
-    words: NotRequired[Annotated[int, Field(ge=0)]]
+    word_count: NotRequired[Annotated[int, Field(ge=0)]]
+    words: NotRequired[Annotated[int, Field(ge=0)]]  # word_count's name in earlier releases
     total: NotRequired[FiniteFloat]
 
 
@@ -429,6 +430,12 @@ def _overflow(path: str, number: int, field: str, factor: float) -> InputError:
 def one_best(utt: Utterance) -> Hypothesis:
     """The utterance's 1-best: the hypothesis at ``best`` when present, else the first."""
     return utt["hypotheses"][utt.get("best", 0)]
+
+
+def output_text(utt: Utterance) -> str:
+    """The text a rescored record outputs: ``chosen`` when a choice rule wrote it (it may be
+    words no single hypothesis holds), else the 1-best's."""
+    return utt.get("chosen", one_best(utt)["text"])
 
 
 def dumps(utt: Utterance) -> str:

@@ -38,8 +38,9 @@ from rescore.lm import load_model
 from rescore.nbest import (
     DEFAULT_LIMITS,
     ReadLimits,
+    Utterance,
     iter_nbest,
-    one_best,
+    output_text,
     read_convention,
     read_refs,
 )
@@ -75,7 +76,7 @@ from rescore.wer import (
 log = logging.getLogger(__name__)
 
 TUNE_JSON_KEYS = (LM_WEIGHT, INSERTION_PENALTY, "features", "dev_errors", "dev_wer",
-                  "baseline_wer", "oracle_wer", "search")
+                  "one_best_wer", "oracle_wer", "search")
 
 
 class NamedModel:
@@ -245,7 +246,7 @@ class ApplyResult:
     utterances: int
     changed: int
     shards: int = 1  # pieces of the input processed separately (1: one process, in order)
-    empty: int = 0  # utterances whose chosen hypothesis has no words
+    empty: int = 0  # utterances whose output (chosen text, else the 1-best) has no words
     lists: ListStats = field(default_factory=ListStats)
     warnings: tuple[str, ...] = ()
 
@@ -315,25 +316,50 @@ def apply_file(
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
              log_base: float | None = None, costs: bool | None = None,
              batch_size: int = DEFAULT_BATCH, counting: Counting = PLAIN) -> WerResult:
-    """Corpus WER of the file's 1-best, counted batch by batch (memory stays flat); CER
+    """Corpus WER of the file's output text (:func:`rescore.nbest.output_text`: the chosen
+    text of a choice rule, else the 1-best), counted batch by batch (memory stays flat); CER
     (the same counts, of characters) under ``counting``'s unit ``char``."""
-    totals = np.zeros(4, dtype=np.int64)  # substitutions, deletions, insertions, hits
+    return _wers(path, [output_text], refs=refs, log_base=log_base, costs=costs,
+                 batch_size=batch_size, counting=counting)[0]
+
+
+def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH,
+                     counting: Counting = PLAIN) -> tuple[WerResult, WerResult] | None:
+    """WER of a rescored file's first hypotheses (the recognizer's 1-best) and of its output
+    text, in one pass; ``None`` when its records carry no references."""
+    first = next(iter_nbest(path), None)
+    if first is None or "reference" not in first[1]:
+        return None
+    before, after = _wers(path, [lambda u: u["hypotheses"][0]["text"], output_text],
+                          batch_size=batch_size, counting=counting)
+    return before, after
+
+
+def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
+          refs: Mapping[str, str] | None = None, log_base: float | None = None,
+          costs: bool | None = None, batch_size: int = DEFAULT_BATCH,
+          counting: Counting = PLAIN) -> list[WerResult]:
+    """Corpus WER of each way of taking a text from the records, in one pass."""
+    totals = np.zeros((len(texts), 4), dtype=np.int64)  # sub, del, ins, hits per way
     n_utt = n_scored = 0
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                     require_references=True), batch_size):
-        counts = counting.counts([u["reference"] for _, u in batch],
-                                 [one_best(u)["text"] for _, u in batch])
-        totals += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
-                                          counts.insertions, counts.hits)]
+        refs_text = [u["reference"] for _, u in batch]
+        for k, text in enumerate(texts):
+            counts = counting.counts(refs_text, [text(u) for _, u in batch])
+            totals[k] += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
+                                                 counts.insertions, counts.hits)]
         n_utt += len(batch)
         n_scored += len(counts.substitutions)
     if n_utt == 0:
         raise InputError("no utterances in the file", path=path)
     check_accounting(path, n_utt, n_scored, "scored")
-    s, d, i, h = (int(t) for t in totals)
-    if s + d + h == 0:
-        raise InputError(UNDEFINED_WER, path=path)
-    return wer_from_totals(s, d, i, h, utterances=n_utt)
+    out = []
+    for s, d, i, h in totals.tolist():
+        if s + d + h == 0:
+            raise InputError(UNDEFINED_WER, path=path)
+        out.append(wer_from_totals(s, d, i, h, utterances=n_utt))
+    return out
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path, *,

@@ -157,7 +157,7 @@ def main() -> None:
     exact = median_seconds(lambda: exact_search(matrix, tune=tuned, start=Weights()), repeats)
     print(f"exact search over 4 weights (bare exact_search from the zero point): median "
           f"{exact:.2f} s; {found.dev_errors} errors, WER {found.dev_wer:.4f} (grid best "
-          f"{result.dev_errors}); baseline WER {found.baseline_wer:.4f}, oracle "
+          f"{result.dev_errors}); baseline WER {found.one_best_wer:.4f}, oracle "
           f"{found.oracle_wer:.4f}")
     print(f"  {verdict(exact, n_utt)}")
 

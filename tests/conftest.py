@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import importlib.util
 import os
+import sys
 from collections.abc import Sequence
 from pathlib import Path
+from types import ModuleType
 
 import pytest
 from click.testing import Result
@@ -23,6 +26,16 @@ settings.register_profile("default", deadline=None, print_blob=True)
 settings.register_profile("fuzz", deadline=None, max_examples=int(
     os.environ.get("RESCORE_FUZZ_EXAMPLES", "20000")))
 settings.load_profile("fuzz" if os.environ.get("RESCORE_FUZZ_EXAMPLES") else "default")
+
+
+def load_script(path: Path) -> ModuleType:
+    """A script of scripts/ loaded as a module (its functions called, its main not run)."""
+    spec = importlib.util.spec_from_file_location(path.stem, path)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module  # dataclasses look the module up while it loads
+    spec.loader.exec_module(module)
+    return module
 
 
 def run(args: Sequence[str | os.PathLike[str]]) -> Result:

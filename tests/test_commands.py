@@ -120,7 +120,7 @@ def test_apply_with_recognizer_weights_reproduces_its_choice(sample_dir: Path,
         assert result.exit_code == 0, result.stderr
         records = [json.loads(line) for line in out.read_text().splitlines()]
         assert len(records) == 30 and all(r["best"] == 0 for r in records)
-        assert all({"words", "total"} <= set(h) and "lm" not in h
+        assert all({"word_count", "total"} <= set(h) and "lm" not in h
                    for r in records for h in r["hypotheses"])
         first = [f"{r['id']}\t{r['hypotheses'][0]['text']}" for r in records]
         assert tsv.read_text().splitlines() == first
@@ -161,8 +161,8 @@ def test_tune_then_apply_on_the_demo_scenario(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.stderr
     data = json.loads(result.stdout)
     assert {"lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
-            "baseline_wer", "oracle_wer", "search"} <= set(data)
-    assert data["oracle_wer"] <= data["dev_wer"] < data["baseline_wer"]
+            "one_best_wer", "oracle_wer", "search"} <= set(data)
+    assert data["oracle_wer"] <= data["dev_wer"] < data["one_best_wer"]
     out = tmp_path / "test.out.jsonl"
     assert run(["apply", demo / "test.jsonl", "--lm", model, "--weights", weights,
                 "-o", out]).exit_code == 0
@@ -184,7 +184,8 @@ def test_verbose_logs_to_stderr_only(tmp_path: Path) -> None:
         for handler in list(root.handlers):
             root.removeHandler(handler)
     assert result.exit_code == 0
-    assert result.stdout == ""
+    # stdout holds the WER table alone (the records carry references); the log is on stderr
+    assert "rescore.pipeline" not in result.stdout and "WER before and after" in result.stdout
     assert "rescore.pipeline: rescored lines 1-3 (2 utterances so far)" in result.stderr
 
 
@@ -246,17 +247,30 @@ def test_tune_cv_warning_follows_warn_cv_gap(sample_dir: Path, tmp_path: Path) -
     nbest = sample_dir / "warehouse_espeak.jsonl"
     base = ["-q", "tune", nbest, "--feature", "first_pass_lm", "--feature", "filler_penalty",
             "-o", tmp_path / "w.json"]
-    data = json.loads(run([*base, "--json", "--warn-cv-gap", "100"]).stdout)
+    data = json.loads(run([*base, "--json", "--warn-cv-gap", "100%"]).stdout)
     gap_points = 100 * abs(data["cv_wer"] - data["dev_wer"])
     assert data["cv_warning"] is None and gap_points > 1.0
     # the default threshold is one point (as the README's tuning section documents)
     assert "warning: cross-validated WER" in run(base[1:]).stderr
     for points, warns in ((gap_points / 2, True), (gap_points * 2, False), (0.0, True)):
-        result = run([*base[1:], "--warn-cv-gap", f"{points:.6f}"])
-        assert result.exit_code == 0, result.stderr
-        assert ("warning: cross-validated WER" in result.stderr) == warns, points
-        printed = json.loads(run([*base, "--json", "--warn-cv-gap", f"{points:.6f}"]).stdout)
-        assert (printed["cv_warning"] is not None) == warns, points
+        # the same threshold as percentage points (N%) and as a fraction, as the gates take it
+        for given in (f"{points:.6f}%", f"{points / 100:.8f}"):
+            result = run([*base[1:], "--warn-cv-gap", given])
+            assert result.exit_code == 0, result.stderr
+            assert ("warning: cross-validated WER" in result.stderr) == warns, given
+            printed = json.loads(run([*base, "--json", "--warn-cv-gap", given]).stdout)
+            assert (printed["cv_warning"] is not None) == warns, given
+
+
+def test_tune_warn_cv_gap_says_how_an_old_bare_number_is_read(tmp_path: Path) -> None:
+    # "2" once meant two points; as a fraction it is 200 points, and one line says so
+    result = run(["tune", TWO, "-o", tmp_path / "w.json", "--warn-cv-gap", "2"])
+    assert result.exit_code == 2 and "expected a percentage" in result.stderr
+    result = run(["tune", TWO, "-o", tmp_path / "w.json", "--folds", "0",
+                  "--warn-cv-gap", "0.5"])
+    assert result.exit_code == 0, result.stderr
+    assert "--warn-cv-gap 0.5 is read as a fraction (50 points); for percentage points " \
+        "write 0.5%" in result.stderr
 
 
 def test_tune_warn_cv_gap_must_not_be_negative(tmp_path: Path) -> None:
@@ -424,3 +438,30 @@ def test_output_that_is_a_folder_is_refused_before_the_work(
     assert result.exit_code == 1
     assert result.stderr == f"error: {folder}: is a folder, expected a file path\n"
     assert "Traceback" not in result.stderr
+
+
+def test_apply_prints_wer_before_and_after_when_references_exist(demo_lm: Path,
+                                                                tmp_path: Path) -> None:
+    # the figures apply prints are the ones wer prints of its input (the recognizer's
+    # 1-best) and of its output: one measurement, two routes
+    test = FIXTURES / "demo" / "test.jsonl"
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1, "lm_weight": 9, "insertion_penalty": 2}')
+    out = tmp_path / "out.jsonl"
+    result = run(["apply", test, "--lm", demo_lm, "--weights", weights, "-o", out, "--json"])
+    assert result.exit_code == 0, result.stderr
+    data = json.loads(result.stdout)
+    assert data["before"] == json.loads(run(["wer", test, "--json"]).stdout)
+    assert data["after"] == json.loads(run(["wer", out, "--json"]).stdout)
+    assert data["after"]["wer"] < data["before"]["wer"] and data["utterances"] == 500
+    shown = run(["apply", test, "--lm", demo_lm, "--weights", weights, "-o", out]).stdout
+    assert "before (recognizer 1-best)" in shown and "after (rescored)" in shown
+    # without references there is nothing to score: no table, nulls in the JSON
+    bare = tmp_path / "bare.jsonl"
+    bare.write_text("".join(json.dumps({k: v for k, v in json.loads(line).items()
+                                        if k != "reference"}) + "\n"
+                            for line in test.read_text().splitlines()[:5]))
+    quiet = run(["apply", bare, "--lm", demo_lm, "--weights", weights, "-o", out, "--json"])
+    assert json.loads(quiet.stdout)["before"] is None
+    assert run(["apply", bare, "--weights", weights, "--lm", demo_lm, "-o", "-",
+                "--json"]).exit_code == 2

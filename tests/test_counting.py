@@ -249,7 +249,7 @@ def test_tune_and_apply_at_the_char_unit(tmp_path: Path) -> None:
     assert got.exit_code == 0, got.stderr
     data = json.loads(got.stdout)
     # 1 substitution of 4 characters in each utterance before, none once the LM weighs in
-    assert data["baseline_wer"] == pytest.approx(0.25) and data["dev_wer"] == 0.0
+    assert data["one_best_wer"] == pytest.approx(0.25) and data["dev_wer"] == 0.0
     assert data["unit"] == "char"
     assert json.loads(weights.read_text())["provenance"]["unit"] == "char"
     out = tmp_path / "out.jsonl"
@@ -259,8 +259,8 @@ def test_tune_and_apply_at_the_char_unit(tmp_path: Path) -> None:
     ok = run(["apply", dev, "--lm", model, "--weights", weights, "-o", out, "--unit", "char"])
     assert ok.exit_code == 0, ok.stderr
     first = json.loads(out.read_text(encoding="utf-8").splitlines()[0])
-    # the words column counts characters under --unit char (4 each)
-    assert first["best"] == 1 and first["hypotheses"][0]["words"] == 4
+    # the word_count column counts characters under --unit char (4 each)
+    assert first["best"] == 1 and first["hypotheses"][0]["word_count"] == 4
 
 
 def test_check_with_rules_counts_the_oracle_under_them(tmp_path: Path) -> None:

@@ -8,7 +8,6 @@ into being too easy, too hard, or leaking the truth.
 
 from __future__ import annotations
 
-import importlib.util
 import itertools
 import json
 import math
@@ -26,6 +25,7 @@ import jiwer
 import pytest
 
 from rescore.text import normalise
+from tests.conftest import load_script
 
 ROOT = Path(__file__).resolve().parent.parent
 SCRIPT = ROOT / "scripts" / "make_demo_data.py"
@@ -37,12 +37,7 @@ SCORE_TOLERANCE = 1e-6
 
 
 def _load_script() -> ModuleType:
-    spec = importlib.util.spec_from_file_location("make_demo_data", SCRIPT)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module  # dataclasses look the module up while it loads
-    spec.loader.exec_module(module)
-    return module
+    return load_script(SCRIPT)
 
 
 @pytest.fixture(scope="module")

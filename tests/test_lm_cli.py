@@ -10,6 +10,7 @@ import pytest
 from typer.testing import CliRunner
 
 from rescore.cli import app
+from tests.conftest import run
 
 runner = CliRunner()
 
@@ -168,3 +169,26 @@ def test_sentence_scores_not_written_on_bad_input(text: Path, tmp_path: Path) ->
     # bad input: one line naming file and line, and no half-written output (project rule)
     assert code == 1 and err.startswith(f"error: {bad}:2: invalid UTF-8")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.txt", "logbook.txt", "m.lm"]
+
+
+def test_build_and_convert_print_json_with_lm_checks_keys(tmp_path: Path) -> None:
+    # one key per quantity: --json of lm build and lm convert uses lm check's names for the
+    # order, n-gram counts and bytes, and the numbers agree with lm check's own
+    corpus = tmp_path / "train.txt"
+    corpus.write_text("vent bay two opened\nvent bay three closed\nrow two misted\n")
+    model = tmp_path / "m.lm"
+    built = run(["lm", "build", corpus, "-o", model, "--json"])
+    assert built.exit_code == 0, built.stderr
+    data = json.loads(built.stdout)
+    checked = json.loads(run(["lm", "check", model, "--json"]).stdout)
+    for key in ("order", "ngrams", "bytes", "bytes_per_ngram"):
+        assert data[key] == checked[key], key
+    assert data["out"] == str(model) and data["method"] == "mkn"
+    arpa = tmp_path / "m.arpa"
+    converted = run(["lm", "convert", model, "-o", arpa, "--json"])
+    assert converted.exit_code == 0, converted.stderr
+    again = json.loads(converted.stdout)
+    assert again["ngrams"] == data["ngrams"] and again["bytes"] == arpa.stat().st_size
+    # the output once: as OUT or as -o, not both and not neither
+    assert run(["lm", "convert", model, arpa, "-o", arpa]).exit_code == 2
+    assert run(["lm", "convert", model]).exit_code == 2

@@ -162,3 +162,22 @@ def test_real_recognizer_files_read_cleanly(sample_dir: Path) -> None:
         utts = list(read_nbest(sample_dir / name, require_references=True))
         assert len(utts) == 30
         assert max(len(u["hypotheses"]) for u in utts) == 20
+
+
+def test_rescored_files_of_either_release_read_and_rescore_to_word_count(tmp_path: Path) -> None:
+    # a rescored hypothesis carries word_count; files written before it was named so carry
+    # words: both read, and rescoring such a file again writes word_count alone
+    old = tmp_path / "old.jsonl"
+    old.write_text(_line(hypotheses=[{"text": "row two", "acoustic": -1.0, "lm": -2.0,
+                                      "words": 2, "total": -3.0}], best=0) + "\n")
+    new = tmp_path / "new.jsonl"
+    new.write_text(_line(hypotheses=[{"text": "row two", "acoustic": -1.0, "lm": -2.0,
+                                      "word_count": 2, "total": -3.0}], best=0) + "\n")
+    assert [u["hypotheses"][0].get("words") for u in read_nbest(old)] == [2]
+    assert [u["hypotheses"][0].get("word_count") for u in read_nbest(new)] == [2]
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1, "lm_weight": 0, "insertion_penalty": 0.5}')
+    out = tmp_path / "again.jsonl"
+    assert run(["apply", old, "--weights", weights, "-o", out]).exit_code == 0
+    (hyp,) = json.loads(out.read_text())["hypotheses"]
+    assert hyp["word_count"] == 2 and "words" not in hyp

@@ -65,7 +65,7 @@ def test_tune_oov_feature_stores_a_weight_that_apply_uses(tmp_path: Path) -> Non
     hyp = rec["hypotheses"][0]
     oov = int(model.oov_counts([tokens(hyp["text"])])[0])
     expected = (w["acoustic_scale"] * hyp["acoustic"] + w["lm_weight"] * hyp["lm"]
-                + w["insertion_penalty"] * hyp["words"] + w["features"]["oov_count"] * oov)
+                + w["insertion_penalty"] * hyp["word_count"] + w["features"]["oov_count"] * oov)
     assert np.isclose(hyp["total"], expected, rtol=1e-9)
 
 

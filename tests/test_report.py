@@ -35,7 +35,7 @@ def w(text: str) -> list[str]:
 ROOT = Path(__file__).resolve().parent.parent
 TOL = 1e-12
 CONTRACT_DIFFERENCE = {"absolute", "relative", "ci_low", "ci_high",
-                       "probability_of_improvement", "mapsswe_p", "sign_test_p", "wilcoxon_p"}
+                       "probability_of_improvement", "matched_pairs_p", "sign_test_p", "wilcoxon_p"}
 WER_KEYS = {"wer", "substitutions", "deletions", "insertions", "hits", "reference_words",
             "utterances"}
 HOSTILE_ID = 'bay<script>window.__pwned=1</script>"onload=alert(1)'
@@ -110,9 +110,15 @@ def test_breakdown_counts_and_meta_groups() -> None:
     before, after = systems()
     b = build_report(before, after, provenance={}, resamples=200).breakdown
     # derived by hand from the transcripts in systems()
-    assert set(b.before.substitutions) == {("vent", "went", 1), ("four", "for", 1),
-                                           ("two", "to", 1)}
-    assert b.after.insertions == (("six", 1),)
+    # before: went, for and to each once; after: to once and the insertion of six. One
+    # table, each error counted in both systems, the most frequent first, then the count
+    # before, the kind (substitution, deletion, insertion) and the words
+    table = [(c.kind, c.reference, c.hypothesis, c.before, c.after, c.change)
+             for c in b.confusions]
+    assert table == [("substitution", "four", "for", 1, 0, -1),
+                     ("substitution", "two", "to", 1, 1, 0),
+                     ("substitution", "vent", "went", 1, 0, -1),
+                     ("insertion", "", "six", 0, 1, 1)]
     assert b.improved == ("lark-0001", "lark-0002")
     assert b.worsened == ("lark-0003",)
     speakers = {g.value: (g.before_errors, g.after_errors) for g in b.by_meta["speaker"]}
@@ -212,7 +218,7 @@ def test_matched_pairs_fallback_is_shown_in_every_output() -> None:
     data = json.loads(files["report.json"])
     mp = data["tests"]["matched_pairs"]
     assert (mp["method"], mp["z"], mp["p_value"]) == ("sign", None, 0.5)
-    assert data["difference"]["mapsswe_p"] == 0.5
+    assert data["difference"]["matched_pairs_p"] == 0.5
     for name in ("report.md", "report.html"):
         assert "Matched-pairs segment test p (exact sign test: W undefined)" in files[name]
         assert "all 2 segment differences equal -1, so W is undefined" in files[name]

@@ -304,7 +304,7 @@ def test_demo_report_page_in_chromium(browser: DevTools, demo_out: Path,
                           "e => [e.dataset.key, e.dataset.value, e.textContent])")
     keys = {k for k, _, _ in cells}
     assert {"before.wer", "after.wer", "difference.absolute", "difference.relative",
-            "difference.probability_of_improvement", "difference.mapsswe_p",
+            "difference.probability_of_improvement", "difference.matched_pairs_p",
             "difference.sign_test_p", "difference.wilcoxon_p"} <= keys
     for key, value, text in cells:
         expected = [_lookup(data, k) for k in key.split(",")]
@@ -336,6 +336,22 @@ def test_demo_report_page_in_chromium(browser: DevTools, demo_out: Path,
                           ("unchanged", sum(c == 0 for c in changes)),
                           ("all", len(changes))):
         assert page.show(choice) == count, choice
+
+    # the confusions table sorts by a column on a click: by the count after, largest first,
+    # then back; the rows are those of report.json's breakdown.confusions either way
+    table = data["breakdown"]["confusions"]
+    read_rows = ("Array.from(document.querySelectorAll('#confusions tbody tr')).map("
+                 "tr => Array.from(tr.cells).map(td => td.textContent))")
+    after_head = "document.querySelectorAll('#confusions th')[4]"
+    page.evaluate(f"{after_head}.click()")
+    shown = page.evaluate(read_rows)
+    assert [int(r[4]) for r in shown] == sorted((c["after"] for c in table), reverse=True)
+    assert page.evaluate(f"{after_head}.getAttribute('aria-sort')") == "descending"
+    page.evaluate(f"{after_head}.click()")
+    assert [int(r[4]) for r in page.evaluate(read_rows)] == sorted(c["after"] for c in table)
+    assert sorted(tuple(r) for r in shown) == sorted(
+        (c["kind"], c["reference"] or "\u2013", c["hypothesis"] or "\u2013", str(c["before"]),
+         str(c["after"]), f"{c['change']:+d}") for c in table)
 
     # the page carries the caution once (beside the headline) and records the weights
     # that made the after system

@@ -52,13 +52,14 @@ def test_rule_steps_are_hits_and_shown_apart() -> None:
     assert report.before.hits == 4
     data = report.to_dict()
     assert data["provenance"]["rules"] == RULES.provenance()
-    matched = {(m["kind"], m["reference"], m["hypothesis"]): m["count"]
-               for m in data["breakdown"]["before"]["rule_matches"]}
-    assert matched == {("optional", "um", ""): 1, ("equivalent", "ok", "okay"): 1,
-                       ("equivalent", "fifteen", "15"): 1}
+    # each step counted in both systems: "um" left out and "okay" only before, "15" in both
+    matched = {(m["kind"], m["reference"], m["hypothesis"]): (m["before"], m["after"])
+               for m in data["breakdown"]["rule_matches"]}
+    assert matched == {("optional", "um", ""): (1, 0), ("equivalent", "ok", "okay"): (1, 0),
+                       ("equivalent", "fifteen", "15"): (1, 1)}
     files = render_all(report)
-    assert "Counted as correct by the scoring rules" in files["report.md"]
-    assert "| optional | um | (left out) | 1 |" in files["report.md"]
+    assert "### Counted as correct by the scoring rules" in files["report.md"]
+    assert "| optional | um | (left out) | 1 | 0 |" in files["report.md"]
     assert "Counting: scoring rules desk (SHA-256 " in files["report.md"]
     html = files["report.html"]
     assert 'class="w-eqv" title="equivalent under the scoring rules to the reference: ok"' \
@@ -129,7 +130,8 @@ def test_right_to_left_transcripts_get_dir_auto() -> None:
     before, after = pairs([("המשאבה נסגרה", "המשאבה נפתחה", "המשאבה נסגרה"),
                            ("pump two", "pump to", "pump two")], Counting())
     html = render_all(build_report(before, after, resamples=200, seed=0))["report.html"]
-    assert html.count('<td dir="auto">') == 3  # reference, before and after of the first
+    utterances = html.split('<ol class="utts">')[1]
+    assert utterances.count('<td dir="auto">') == 3  # reference, before, after of the first
     assert "<td>reference</td><td>pump two</td>" in html
 
 

@@ -300,7 +300,7 @@ def test_perfect_feature_reaches_the_oracle() -> None:
                            ids=base.ids, errors=base.errors, ref_words=base.ref_words)
     result = tune(matrix, features=["perfect"], folds=0)
     assert result.dev_wer == result.oracle_wer
-    assert result.oracle_wer < result.baseline_wer
+    assert result.oracle_wer < result.one_best_wer
 
 
 def test_exact_search_keeps_untuned_weights_and_bounds() -> None:
@@ -338,12 +338,12 @@ def test_tuning_beats_the_baseline_when_the_lm_carries_signal() -> None:
     signal_point = slow_errors(matrix, Weights(lm_weight=5.0, insertion_penalty=10.0))
     first = int(matrix.errors[matrix.offsets[:-1]].sum())
     assert result.dev_errors <= signal_point < first
-    assert result.baseline_wer == first / int(np.asarray(matrix.ref_words).sum())
+    assert result.one_best_wer == first / int(np.asarray(matrix.ref_words).sum())
     # k-fold cross-validation estimates the error on unseen utterances (Hastie, Tibshirani
     # and Friedman, Elements of Statistical Learning, section 7.10, from memory): weights
     # fitted on four fifths must also beat the first choice on the held-out fifth when the
     # signal is real
-    assert result.cv is not None and result.cv.wer < result.baseline_wer
+    assert result.cv is not None and result.cv.wer < result.one_best_wer
 
 
 def test_cross_validation_sums_held_out_errors_over_all_words() -> None:
@@ -378,19 +378,19 @@ def test_depth_rows_are_consistent() -> None:
     assert depths == [1, 2, 5, 10, 12] and result.depth[-1].label == "all"
     first = result.depth[0]
     # one hypothesis per list: one-best, tuned and oracle are the same thing
-    assert first.one_best_wer == first.tuned_wer == first.oracle_wer == result.baseline_wer
+    assert first.one_best_wer == first.tuned_wer == first.oracle_wer == result.one_best_wer
     oracles = [row.oracle_wer for row in result.depth]
     assert all(a >= b for a, b in itertools.pairwise(oracles))
     assert result.depth[-1].oracle_wer == result.oracle_wer
     assert result.depth[-1].tuned_wer == result.dev_wer
-    assert all(row.one_best_wer == result.baseline_wer for row in result.depth)
+    assert all(row.one_best_wer == result.one_best_wer for row in result.depth)
 
 
 def test_to_dict_has_the_contract_keys_and_is_json() -> None:
     result = tune(signal_set(n_utt=40), features=["f"])
     out = result.to_dict()
     for key in ("lm_weight", "insertion_penalty", "features", "dev_errors", "dev_wer",
-                "baseline_wer", "oracle_wer", "search"):
+                "one_best_wer", "oracle_wer", "search"):
         assert key in out
     assert out["features"] == {"f": result.weights.features["f"]}
     json.dumps(out, allow_nan=False)
@@ -469,10 +469,10 @@ def test_tuning_on_the_recognizer_sample(sample_dir: Path, name: str) -> None:
     result = tune(matrix, lm_column="first_pass_lm", lm_grid=np.linspace(0, 20, 41),
                   penalty_grid=np.linspace(-10, 10, 41), folds=3)
     one_best, oracle = SAMPLE_FACTS[name]
-    assert round(result.baseline_wer, 3) == one_best
+    assert round(result.one_best_wer, 3) == one_best
     assert round(result.oracle_wer, 3) == oracle
     # the recognizer's own weights lie inside this grid, so tuning can only match or beat them
-    assert result.dev_wer <= result.baseline_wer
+    assert result.dev_wer <= result.one_best_wer
     assert result.oracle_wer <= result.dev_wer
 
 
@@ -491,7 +491,7 @@ def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str
     extra = ["--feature", "first_pass_lm"] if search == "exact" else []
     result = run(["-q", "tune", dev, "--lm", model, "-o", out, "--analysis", analysis,
                   "--search", search, *extra, "--seed", "7", "--folds", "3",
-                  "--grid-lm", "0:20:41", "--no-widen", "--warn-cv-gap", "2", "--json"])
+                  "--grid-lm", "0:20:41", "--no-widen", "--warn-cv-gap", "2%", "--json"])
     assert result.exit_code == 0, result.stderr
     printed = json.loads(result.stdout)
     body = json.loads(out.read_text())
@@ -519,7 +519,7 @@ def test_tune_command_writes_weights_with_provenance(tmp_path: Path, search: str
     assert settings["seed"] == 7 and settings["folds"] == 3
     assert settings["lm_grid"] == [0.0, 20.0, 41]  # --grid-lm 0:20:41 as given
     assert settings["penalty_grid"] == [-20.0, 20.0, 81]  # the documented default
-    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2 points
+    assert settings["cv_warn"] == 0.02  # --warn-cv-gap 2% (points), a fraction in the file
     if search == "exact":
         assert settings["start"] == "grid" and settings["restarts"] == 3
     # the analysis file records the same provenance; nothing else was left behind

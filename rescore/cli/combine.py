@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 
 from rescore.cli._common import guarded, info
-from rescore.cli.options import CostsOpt, LogBaseOpt, OutOpt
+from rescore.cli.options import CostsOpt, LogBaseOpt, NbestOutOpt
 from rescore.decode.combine import combine_lists
 from rescore.errors import UsageError
 from rescore.nbest import Utterance, dumps, iter_nbest
@@ -33,7 +33,7 @@ def combine(
     systems: Annotated[list[str], typer.Argument(
         help="Two or more N-best files of the same utterances, one per recognizer (FILE, "
         "named by its file name, or NAME=FILE).", show_default=False)],
-    out: OutOpt,
+    out: NbestOutOpt,
     partial: Annotated[str, typer.Option(
         "--partial", help="An id that some files lack: refuse (error) or keep (its missing "
         "systems' scores are 0 and missing:SYSTEM is 1).")] = "refuse",

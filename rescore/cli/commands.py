@@ -21,13 +21,14 @@ from rescore.cli.options import (
     JsonOpt,
     LogBaseOpt,
     NbestArg,
-    OutOpt,
+    NbestOutOpt,
     RefsOpt,
     RulesOpt,
     UnitOpt,
+    WeightsOutOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
-from rescore.counting import counting_of, unit_name
+from rescore.counting import counting_of, in_unit, unit_name
 from rescore.demo_kana import run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
@@ -50,12 +51,20 @@ def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) ->
     for label, r in label_results:
         if r is None:
             continue
-        rows.append([label, pct(float(r["wer"])), r["substitutions"], r["deletions"],
-                     r["insertions"], r["hits"], r["reference_words"]])
+        errors = int(r["substitutions"]) + int(r["deletions"]) + int(r["insertions"])
+        rows.append([label, r["reference_words"], errors, pct(float(r["wer"])),
+                     r["substitutions"], r["deletions"], r["insertions"]])
     return rows
 
 
-WER_COLUMNS = ["", "WER", "sub", "del", "ins", "hits", "ref words"]
+# reference words, errors and WER first; then what the errors are made of (errors = sub +
+# del + ins)
+WER_COLUMNS = ["", "ref words", "errors", "WER", "sub", "del", "ins"]
+
+
+def _columns(unit: str) -> list[str]:
+    """The WER table's columns in the unit's words (CER, ref chars under ``char``)."""
+    return [in_unit(c, unit) for c in WER_COLUMNS]
 
 
 @guarded
@@ -105,6 +114,18 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           [[d, c] for d, c in sorted(result.depths.items())])
 
 
+def cv_gap_rate(text: str) -> float:
+    """``--warn-cv-gap`` as a fraction: ``1%`` or ``0.01``, the forms the gates take. Before
+    this form the option took bare points (``1.0``); a bare value that large is almost surely
+    meant so, and one line says how it is read now."""
+    rate = gate_rate(text, "--warn-cv-gap")
+    assert rate is not None
+    if not text.strip().endswith("%") and rate >= 0.05:
+        warn(f"--warn-cv-gap {text} is read as a fraction ({100 * rate:g} points); for "
+             f"percentage points write {text.strip()}%")
+    return rate
+
+
 def _warn(warnings: Sequence[str]) -> None:
     for line in warnings:
         info(f"warning: {line}")
@@ -115,7 +136,7 @@ def apply(
     nbest: NbestArg,
     weights: Annotated[Path, typer.Option("--weights", help="Weights file from 'rescore tune'.",
                                           show_default=False)],
-    out: OutOpt,
+    out: NbestOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several). Optional when only "
         "file features are weighted.")] = None,
@@ -135,10 +156,14 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    as_json: JsonOpt = False,
     unit: UnitOpt = "word",
 ) -> None:
-    """Rescore an N-best file: add lm, words and total to each hypothesis and the best index."""
+    """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
+    index; with references, print the WER before and after."""
     counting = counting_of(None, unit)
+    if as_json and str(out) == "-":
+        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
@@ -154,6 +179,20 @@ def apply(
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)),
                                      counting=counting)
     _warn(result.warnings)
+    # with references, the WER of the recognizer's 1-best and of the output (read back from
+    # the output just written; nothing to read back when it went to standard output)
+    wers = None if str(out) == "-" else pipeline.before_after_wer(out, batch_size=batch_size,
+                                                                  counting=counting)
+    if as_json:
+        emit_json({"utterances": result.utterances, "changed": result.changed,
+                   "empty": result.empty, "shards": result.shards, "out": str(out),
+                   "before": None if wers is None else wers[0].to_dict(),
+                   "after": None if wers is None else wers[1].to_dict()})
+    elif wers is not None:
+        table(f"{out}: {unit_name(counting.unit)} before and after rescoring",
+              _columns(counting.unit),
+              _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
+                         ("after (rescored)", wers[1].to_dict())]))
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
     info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
          f"{result.empty} chose an empty hypothesis) -> {out}")
@@ -187,15 +226,14 @@ def wer(
         # they were counted when not the default
         emit_json(result.to_dict() | counting.provenance())
         return
-    columns = WER_COLUMNS if counting.unit == "word" else \
-        ["", "CER", "sub", "del", "ins", "hits", "ref chars"]
-    table(None, columns, _wer_rows([("1-best", result.to_dict())]))
+    label = "transcripts" if hyps is not None else "1-best"
+    table(None, _columns(counting.unit), _wer_rows([(label, result.to_dict())]))
 
 
 @guarded
 def tune(
     nbest: NbestArg,
-    out: OutOpt,
+    out: WeightsOutOpt,
     lm: Annotated[list[str] | None, typer.Option(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several).")] = None,
     search: Annotated[str | None, typer.Option(
@@ -210,10 +248,11 @@ def tune(
     folds: Annotated[int, typer.Option("--folds", min=0,
                                        help="Cross-validation folds (0 or 1: none).")] = 5,
     seed: Annotated[int, typer.Option("--seed", help="Seed of restarts and folds.")] = 0,
-    warn_cv_gap: Annotated[float, typer.Option(
-        "--warn-cv-gap", min=0.0, metavar="POINTS",
-        help="Warn when the cross-validated WER and the dev WER differ by more than this "
-        "many percentage points.")] = 1.0,
+    warn_cv_gap: Annotated[str, typer.Option(
+        "--warn-cv-gap", metavar="RATE",
+        help="Warn when the cross-validated WER and the dev WER differ by more than this: "
+        "percentage points (1%) or a fraction (0.01), as the report's gates take them.")
+    ] = "1%",
     analysis: Annotated[Path | None, typer.Option(
         "--analysis", help="Write the error surface, depth curve and cross-validation "
         "here (JSON, for 'rescore report --tuning').")] = None,
@@ -246,7 +285,7 @@ def tune(
             nbest, models=models, search=search, features=feature or [], grid_lm=grid_lm,
             grid_penalty=grid_penalty, folds=folds, seed=seed, refs=_refs(refs),
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
-            cv_warn=warn_cv_gap / 100.0,
+            cv_warn=cv_gap_rate(warn_cv_gap),
             progress=report, widen=not no_widen, bounds=bounds,
             choose=None if choose is None else rule_value(choose), counting=counting,
         )
@@ -265,7 +304,7 @@ def tune(
             ["LM weight", data[LM_WEIGHT]],
             ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
-            [f"baseline {rate}", pct(data["baseline_wer"])],
+            [f"1-best {rate}", pct(data["one_best_wer"])],
             [f"dev {rate} (tuned)", pct(data["dev_wer"])],
             [f"cross-validated {rate}", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
@@ -280,7 +319,7 @@ def tune(
 
 @guarded
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Folder for every output of the demo.")]
+    out: Annotated[Path, typer.Option("-o", "--out", help="Folder for every output of the demo.")]
     = Path("demo-out"),
     data: Annotated[Path | None, typer.Option(
         "--data", metavar="DIR",
@@ -337,7 +376,7 @@ def _kana_demo(out: Path, data: Path | None, as_json: bool) -> None:
     s = result.summary
     heading = "Midoridani mushroom cellar" if data is None else str(data)
     table(f"{heading} test set: before and after rescoring, in characters",
-          ["", "CER", "sub", "del", "ins", "hits", "ref chars"],
+          _columns("char"),
           _wer_rows([("before (recognizer 1-best)", result.before.to_dict()),
                      ("after (rescored)", result.after.to_dict()),
                      ("oracle (best in list)", result.oracle.to_dict())]))

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -128,6 +128,7 @@ def build(
     workers: _Workers = None,
     quantize: _Quantize = None,
     unit: UnitOpt = "word",
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Train an n-gram language model (on characters with --unit char)."""
     token_unit = parse_unit(unit)
@@ -156,11 +157,26 @@ def build(
     if quantize is not None:
         model.quantize(quantize)
     save_model(model, output)
+    if as_json:
+        emit_json(_model_summary(model, output)
+                  | {"fallbacks": dict(model.metadata_.get("fallbacks", {}))})
+        return
     counts = ", ".join(f"{n} {i + 1}-grams" for i, n in enumerate(model.n_ngrams_))
     info(f"wrote {output}: {model.method} order {model.order_}, "
          f"{len(model.vocab_)} tokens in the vocabulary; {counts}")
     for level, why in model.metadata_.get("fallbacks", {}).items():
         info(f"order {level}: {why}")
+
+
+def _model_summary(model: NGramModel, path: Path) -> dict[str, Any]:
+    """What ``--json`` says of a model written to ``path``: lm check's keys where they mean
+    the same (order, ngrams, bytes, bytes_per_ngram), and its method and vocabulary."""
+    counts = [int(n) for n in model.n_ngrams_]
+    size = None if str(path) == "-" else path.stat().st_size
+    return {"out": str(path), "method": model.method, "order": model.order_,
+            "vocabulary": len(model.vocab_), "ngrams": counts, "bytes": size,
+            "bytes_per_ngram": None if size is None else size / max(sum(counts), 1),
+            "quantized_bits": model.metadata_.get("quantized_bits")}
 
 
 @guarded
@@ -203,20 +219,34 @@ def perplexity_cmd(
 def convert(
     source: Annotated[Path, typer.Argument(
         metavar="IN", help="Model to read (.arpa/.arpa.gz or '-' for ARPA text on stdin).")],
-    target: Annotated[Path, typer.Argument(
-        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout).")],
+    target: Annotated[Path | None, typer.Argument(
+        metavar="OUT", help="Model to write (by file ending; '-' for ARPA text on stdout); "
+        "or give it with -o.", show_default=False)] = None,
+    out: Annotated[Path | None, typer.Option(
+        "--out", "-o", metavar="MODEL", help="Model to write, as OUT.",
+        show_default=False)] = None,
     verify: Annotated[bool, typer.Option(
         "--verify", help="Check every value of a native input first (as lm check).")] = False,
     quantize: _Quantize = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
     """Convert a model between ARPA text and the native file."""
+    if (target is None) == (out is None):
+        raise UsageError("give the model to write once: as OUT or with -o/--out")
+    written = target if target is not None else out
+    assert written is not None
+    if as_json and str(written) == "-":
+        raise UsageError("--json and ARPA text on standard output would mix: give a file")
     _check_bits(quantize)
-    check_outputs([target], [source])
+    check_outputs([written], [source])
     model = load_model(source, verify=verify)
     if quantize is not None:
         model.quantize(quantize)
-    save_model(model, target)
-    info(f"wrote {target}")
+    save_model(model, written)
+    if as_json:
+        emit_json({"in": str(source), **_model_summary(model, written)})
+        return
+    info(f"wrote {written}")
 
 
 @guarded

@@ -17,7 +17,13 @@ CostsOpt = Annotated[bool | None, typer.Option(
     "--costs/--no-costs", help="Scores in the file are costs, lower is better "
     "(overrides the header).", show_default=False)]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print one JSON object on stdout.")]
-OutOpt = Annotated[Path, typer.Option("-o", "--out", help="Output file.", show_default=False)]
+WeightsOutOpt = Annotated[Path, typer.Option(
+    "-o", "--out", metavar="WEIGHTS", show_default=False,
+    help="Weights file to write (JSON: the tuned weights and their provenance, for apply "
+    "and report).")]
+NbestOutOpt = Annotated[Path, typer.Option(
+    "-o", "--out", metavar="NBEST", show_default=False,
+    help="N-best file to write (.jsonl, .jsonl.gz compressed; '-' for standard output).")]
 BatchOpt = Annotated[int, typer.Option("--batch-size", min=1,
                                        help="Utterances held in memory at once.")]
 RulesOpt = Annotated[Path | None, typer.Option(

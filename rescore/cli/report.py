@@ -118,7 +118,7 @@ def report(
             ("probability of improvement", "", "",
              share_of_resamples(d.probability_of_improvement, result.bootstrap.resamples)),
             ("p (matched pairs / sign / Wilcoxon)", "", "",
-             " / ".join(p_value(p) for p in (d.mapsswe_p, d.sign_test_p, d.wilcoxon_p))),
+             " / ".join(p_value(p) for p in (d.matched_pairs_p, d.sign_test_p, d.wilcoxon_p))),
         ])
     for warning in result.warnings:
         warn(warning)

@@ -11,7 +11,7 @@ from typing import Any
 from rescore.report.rows import UtteranceRow
 from rescore.wer import Alignment
 
-TOP = 15
+TOP = 30
 CHANGED = 10
 MAX_GROUPS = 50
 # common practice, not law: below this many utterances a subgroup's WER moves too much with
@@ -19,29 +19,32 @@ MAX_GROUPS = 50
 MIN_GROUP_UTTERANCES = 30
 
 
-@dataclass(frozen=True)
-class Confusions:
-    """Most frequent errors of one system, each list sorted by count then words."""
+KINDS = ("substitution", "deletion", "insertion")
+# steps the scoring rules count as correct (rescore.align): no errors, but listed apart so
+# a reader sees how much the rules forgave
+RULE_KINDS = ("equivalent", "optional")
 
-    substitutions: tuple[tuple[str, str, int], ...]
-    insertions: tuple[tuple[str, int], ...]
-    deletions: tuple[tuple[str, int], ...]
-    # what the scoring rules counted as correct (kind ``equivalent`` or ``optional``,
-    # reference, hypothesis or "" for an optional word left out, count): no errors, but
-    # shown so a reader sees how much the rules forgave
-    rule_matches: tuple[tuple[str, str, str, int], ...] = ()
+
+@dataclass(frozen=True)
+class Confusion:
+    """One kind of error, counted in both systems: a reference word taken for a hypothesis
+    word (substitution), a reference word missed (deletion, ``hypothesis`` empty) or a word
+    put in (insertion, ``reference`` empty)."""
+
+    kind: str
+    reference: str
+    hypothesis: str
+    before: int
+    after: int
+
+    @property
+    def change(self) -> int:
+        """After minus before (negative: the error became rarer)."""
+        return self.after - self.before
 
     def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {
-            "substitutions": [{"reference": r, "hypothesis": h, "count": c}
-                              for r, h, c in self.substitutions],
-            "insertions": [{"word": w, "count": c} for w, c in self.insertions],
-            "deletions": [{"word": w, "count": c} for w, c in self.deletions],
-        }
-        if self.rule_matches:  # only under rules that change the alignment
-            out["rule_matches"] = [{"kind": k, "reference": r, "hypothesis": h, "count": c}
-                                   for k, r, h, c in self.rule_matches]
-        return out
+        return {"kind": self.kind, "reference": self.reference, "hypothesis": self.hypothesis,
+                "before": self.before, "after": self.after, "change": self.change}
 
 
 @dataclass(frozen=True)
@@ -87,49 +90,69 @@ class SkippedKey:
 
 @dataclass(frozen=True)
 class Breakdown:
-    before: Confusions
-    after: Confusions
+    confusions: tuple[Confusion, ...]
     improved: tuple[str, ...]
     worsened: tuple[str, ...]
     by_meta: Mapping[str, tuple[GroupRow, ...]]
     meta_skipped: tuple[SkippedKey, ...] = ()
+    # what the scoring rules counted as correct (kinds RULE_KINDS; an optional word left
+    # out has an empty hypothesis), counted in both systems; empty without such rules
+    rule_matches: tuple[Confusion, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "before": self.before.to_dict(),
-            "after": self.after.to_dict(),
+        out = {
+            "confusions": [c.to_dict() for c in self.confusions],
             "most_improved": list(self.improved),
             "most_worsened": list(self.worsened),
             "by_meta": {k: [r.to_dict() for r in rows] for k, rows in self.by_meta.items()},
             "by_meta_skipped": [k.to_dict() for k in self.meta_skipped],
         }
+        if self.rule_matches:  # only under rules that change the alignment
+            out["rule_matches"] = [c.to_dict() for c in self.rule_matches]
+        return out
 
 
-def _ranked(counter: Counter[Any], top: int) -> list[tuple[Any, int]]:
-    return sorted(counter.items(), key=lambda kv: (-kv[1], kv[0]))[:top]
-
-
-def confusions(alignments: Sequence[Alignment], top: int = TOP) -> Confusions:
-    subs: Counter[tuple[str, str]] = Counter()
-    ins: Counter[str] = Counter()
-    dels: Counter[str] = Counter()
-    ruled: Counter[tuple[str, str, str]] = Counter()
+def _count(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
+    counts: Counter[tuple[str, str, str]] = Counter()
     for al in alignments:
         for op in al.ops:
-            if op.kind in ("equivalent", "optional") and op.ref is not None:
-                ruled[(op.kind, op.ref, op.hyp or "")] += 1
-            elif op.kind == "substitute" and op.ref is not None and op.hyp is not None:
-                subs[(op.ref, op.hyp)] += 1
-            elif op.kind == "insert" and op.hyp is not None:
-                ins[op.hyp] += 1
+            if op.kind == "substitute" and op.ref is not None and op.hyp is not None:
+                counts[("substitution", op.ref, op.hyp)] += 1
             elif op.kind == "delete" and op.ref is not None:
-                dels[op.ref] += 1
-    return Confusions(
-        tuple((r, h, c) for (r, h), c in _ranked(subs, top)),
-        tuple(_ranked(ins, top)),
-        tuple(_ranked(dels, top)),
-        tuple((k, r, h, c) for (k, r, h), c in _ranked(ruled, top)),
-    )
+                counts[("deletion", op.ref, "")] += 1
+            elif op.kind == "insert" and op.hyp is not None:
+                counts[("insertion", "", op.hyp)] += 1
+    return counts
+
+
+def _count_ruled(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
+    counts: Counter[tuple[str, str, str]] = Counter()
+    for al in alignments:
+        for op in al.ops:
+            if op.kind in RULE_KINDS and op.ref is not None:
+                counts[(op.kind, op.ref, op.hyp or "")] += 1
+    return counts
+
+
+def confusion_table(before: Sequence[Alignment], after: Sequence[Alignment],
+                    top: int = TOP) -> tuple[Confusion, ...]:
+    """The ``top`` most frequent errors of either system, each counted in both: ranked by
+    the larger of its two counts, then by its count before, kind and words."""
+    return _ranked(_count(before), _count(after), KINDS, top)
+
+
+def rule_table(before: Sequence[Alignment], after: Sequence[Alignment],
+               top: int = TOP) -> tuple[Confusion, ...]:
+    """The ``top`` most frequent steps the scoring rules counted as correct, each counted
+    in both systems and ranked as :func:`confusion_table` ranks errors."""
+    return _ranked(_count_ruled(before), _count_ruled(after), RULE_KINDS, top)
+
+
+def _ranked(b: Counter[tuple[str, str, str]], a: Counter[tuple[str, str, str]],
+            kinds: tuple[str, ...], top: int) -> tuple[Confusion, ...]:
+    keys = sorted(set(b) | set(a), key=lambda k: (-max(b[k], a[k]), -b[k],
+                                                 kinds.index(k[0]), k[1], k[2]))
+    return tuple(Confusion(*k, before=b[k], after=a[k]) for k in keys[:top])
 
 
 def _groupable(value: Any) -> bool:
@@ -180,10 +203,10 @@ def build_breakdown(rows: Sequence[UtteranceRow], top: int = TOP,
     worsened = sorted((r for r in rows if r.change > 0), key=lambda r: (-r.change, r.id))
     groups, skipped = by_meta(rows)
     return Breakdown(
-        before=confusions([r.before for r in rows], top),
-        after=confusions([r.after for r in rows], top),
+        confusions=confusion_table([r.before for r in rows], [r.after for r in rows], top),
         improved=tuple(r.id for r in improved[:changed]),
         worsened=tuple(r.id for r in worsened[:changed]),
         by_meta=groups,
         meta_skipped=skipped,
+        rule_matches=rule_table([r.before for r in rows], [r.after for r in rows], top),
     )

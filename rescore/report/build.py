@@ -86,7 +86,7 @@ class Difference:
     ci_low: float
     ci_high: float
     probability_of_improvement: float
-    mapsswe_p: float
+    matched_pairs_p: float
     sign_test_p: float
     wilcoxon_p: float
 
@@ -248,7 +248,7 @@ def build_report(
         ci_low=boot.difference_ci[0],
         ci_high=boot.difference_ci[1],
         probability_of_improvement=boot.probability_of_improvement,
-        mapsswe_p=mp.p_value,
+        matched_pairs_p=mp.p_value,
         sign_test_p=sign.p_value,
         wilcoxon_p=wil.p_value,
     )

@@ -16,7 +16,7 @@ from html import escape
 
 from rescore.report import plots
 from rescore.report import wording as t
-from rescore.report.breakdown import Confusions
+from rescore.report.breakdown import Confusion
 from rescore.report.build import Report
 from rescore.report.confidence import CONFIDENCE_CAUTION, confidence_lines, confidence_rows
 from rescore.report.rows import UtteranceRow
@@ -70,6 +70,13 @@ footer { color: var(--muted); padding-bottom: 30px; }
 .warning { background: #fbe5e3; border: 1px solid #e8a9a3; color: var(--bad);
            border-radius: 8px; padding: 10px 14px; margin-bottom: 14px; }
 code { font-family: ui-monospace, monospace; font-size: 12px; word-break: break-all; }
+.kinds { display: flex; height: 12px; min-width: 120px; background: #f1f1f1; }
+.kinds span, .key { display: inline-block; height: 12px; }
+.key { width: 12px; vertical-align: middle; margin-right: 4px; }
+.k-sub { background: #e69a28; } .k-del { background: #c4453b; } .k-ins { background: #3b82c4; }
+th.sort { cursor: pointer; user-select: none; }
+th.sort[aria-sort="ascending"]::after { content: " \\25B2"; }
+th.sort[aria-sort="descending"]::after { content: " \\25BC"; }
 """
 
 _SCRIPT = """
@@ -100,6 +107,35 @@ _SCRIPT = """
   box.addEventListener('input', update);
   pick.addEventListener('change', update);
   update();
+  /* sortable tables: a click (or Enter) on a heading sorts by that column, again reverses */
+  Array.prototype.forEach.call(document.querySelectorAll('table.sortable'), function (tbl) {
+    var heads = Array.prototype.slice.call(tbl.querySelectorAll('th.sort'));
+    var body = tbl.tBodies[0];
+    function cell(tr, k) {
+      var td = tr.cells[k];
+      var v = td.getAttribute('data-value');
+      if (v === null) { v = td.textContent; }
+      return heads[k].classList.contains('num') ? Number(v) : v;
+    }
+    function sortBy(k) {
+      var down = heads[k].getAttribute('aria-sort') !== 'descending';
+      var rows = Array.prototype.slice.call(body.rows).map(function (tr, i) {
+        return [cell(tr, k), i, tr];
+      });
+      rows.sort(function (a, b) {
+        if (a[0] === b[0]) { return a[1] - b[1]; }
+        var c = a[0] < b[0] ? -1 : 1;
+        return down ? -c : c;
+      });
+      heads.forEach(function (h) { h.setAttribute('aria-sort', 'none'); });
+      heads[k].setAttribute('aria-sort', down ? 'descending' : 'ascending');
+      rows.forEach(function (r) { body.appendChild(r[2]); });
+    }
+    heads.forEach(function (h, k) {
+      h.addEventListener('click', function () { sortBy(k); });
+      h.addEventListener('keydown', function (e) { if (e.key === 'Enter') { sortBy(k); } });
+    });
+  });
 })();
 """
 
@@ -170,17 +206,60 @@ def _gate(report: Report) -> str:
     return f'<div class="gate fail" id="gate">Release gate failed: {_e(reasons)}</div>'
 
 
-def _confusions(name: str, c: Confusions) -> str:
-    return (f'<div class="card"><h3>{_e(name)}</h3>'
-            "<h3>Substitutions</h3>"
-            + _table(["reference", "hypothesis", "count"], c.substitutions, 2)
-            + "<h3>Insertions</h3>" + _table(["word", "count"], c.insertions)
-            + "<h3>Deletions</h3>" + _table(["word", "count"], c.deletions)
-            + ("" if not c.rule_matches else
-               "<h3>Counted as correct by the scoring rules</h3>"
-               + _table(["kind", "reference", "hypothesis", "count"],
-                        [(k, r, h or "(left out)", n) for k, r, h, n in c.rule_matches], 2))
-            + "</div>")
+def _confusions(rows: Sequence[Confusion]) -> str:
+    """One table of the most frequent errors of either system; a click on a heading sorts
+    it by that column (the page's script; numbers by value, words by text)."""
+    if not rows:
+        return '<p class="sub-title">(none)</p>'
+    head = ["kind", "reference", "hypothesis", "before", "after", "change"]
+    th = "".join(f'<th class="{"num " if i >= 3 else ""}sort" tabindex="0" '
+                 f'aria-sort="none">{_e(h)}</th>' for i, h in enumerate(head))
+    body = []
+    for c in rows:
+        tone = " better" if c.change < 0 else " worse" if c.change > 0 else ""
+        words = "".join(f'<td dir="auto">{_e(w) if w else "&ndash;"}</td>'
+                        for w in (c.reference, c.hypothesis))
+        body.append(f'<tr><td>{_e(c.kind)}</td>{words}<td class="num">{c.before}</td>'
+                    f'<td class="num">{c.after}</td>'
+                    f'<td class="num{tone}" data-value="{c.change}">{c.change:+d}</td></tr>')
+    return (f'<table class="sortable" id="confusions"><thead><tr>{th}</tr></thead>'
+            f'<tbody>{"".join(body)}</tbody></table>')
+
+
+def _counts(report: Report) -> str:
+    """The counts table, each system's errors drawn as a bar split by kind."""
+    rows = t.counts_rows(report)
+    most = max(report.before.errors, report.after.errors, 1)
+    th = "".join(f'<th class="num">{_e(h)}</th>' if i else f"<th>{_e(h)}</th>"
+                 for i, h in enumerate([*t.counts_head(report), "errors by kind"]))
+    body = []
+    for row, w in zip(rows, (report.before, report.after), strict=True):
+        cells = "".join(f'<td class="num">{_e(v)}</td>' if i else f"<td>{_e(v)}</td>"
+                        for i, v in enumerate(row))
+        parts = "".join(
+            f'<span class="{cls}" style="width:{100 * n / most:.2f}%" '
+            f'title="{_e(label)} {n}"></span>'
+            for cls, label, n in (("k-sub", "substitutions", w.substitutions),
+                                  ("k-del", "deletions", w.deletions),
+                                  ("k-ins", "insertions", w.insertions)) if n)
+        body.append(f'<tr>{cells}<td><div class="kinds" role="img" aria-label="'
+                    f'{w.substitutions} substitutions, {w.deletions} deletions, '
+                    f'{w.insertions} insertions">{parts}</div></td></tr>')
+    legend = ('<p class="legend"><span class="k-sub key"></span>substitutions '
+              '<span class="k-del key"></span>deletions '
+              '<span class="k-ins key"></span>insertions</p>')
+    return (f'<table id="counts"><thead><tr>{th}</tr></thead><tbody>{"".join(body)}</tbody>'
+            f"</table>{legend}")
+
+
+def _rule_matches(rows: Sequence[Confusion]) -> str:
+    """What the scoring rules counted as correct, counted in both systems ("" without)."""
+    if not rows:
+        return ""
+    return ('<div class="card" id="rule-matches"><h3>Counted as correct by the scoring '
+            'rules</h3>' + _table(["kind", "reference", "hypothesis", "before", "after"],
+                                  [(c.kind, c.reference, c.hypothesis or "(left out)",
+                                    c.before, c.after) for c in rows], 3) + "</div>")
 
 
 def marked_words(alignment: Alignment, sep: str = " ") -> str:
@@ -309,20 +388,11 @@ def _warnings(report: Report) -> str:
 
 
 def render_html(report: Report) -> str:
-    chars = t.unit_of(report) == "char"  # then the CER is the headline rate, not a column
-    counts = _table(
-        [t.say(report, h) for h in ["system", "WER", "substitutions", "deletions",
-                                    "insertions", "hits", "reference words",
-                                    *([] if chars else ["CER"])]],
-        [(name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
-          w.reference_words, *([] if chars else [t.pct(c.cer)]))
-         for name, w, c in (("before", report.before, report.before_cer),
-                            ("after", report.after, report.after_cer))])
+    counts = _counts(report)
+    confusions = _confusions(report.breakdown.confusions)
     ruled = any(op.kind in _RULED for u in report.utterances
                 for al in (u.before, u.after) for op in al.ops)
     counted = t.counting_text(report)
-    confusions = (_confusions("before", report.breakdown.before)
-                  + _confusions("after", report.breakdown.after))
     notes = "".join(f"<li>{_e(n)}</li>" for n in t.method_notes(report))
     utterances = "".join(_utterance(i, u, report.joiner)
                          for i, u in enumerate(report.utterances))
@@ -359,8 +429,10 @@ def render_html(report: Report) -> str:
 <div class="card"><ul class="notes">{notes}</ul></div>
 {_tuning(report)}
 <h2>Breakdown</h2>
-<div class="row">{confusions}</div>
-{_changed(report)}
+<div class="card"><h3>Confusions</h3><p class="sub-title">The most frequent errors of either
+system, each counted in both (change: after minus before). Click a heading to sort.</p>
+{confusions}</div>
+{_rule_matches(report.breakdown.rule_matches)}{_changed(report)}
 {_by_meta(report)}
 <h2>Utterances</h2>
 <div class="controls">

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
-from rescore.nbest import DEFAULT_LIMITS, iter_nbest, one_best, read_refs
+from rescore.nbest import DEFAULT_LIMITS, iter_nbest, output_text, read_refs
 from rescore.readers import iter_text_lines
 from rescore.report.build import Pair
 from rescore.text import tokens
@@ -38,7 +38,7 @@ def load_system(
     """
     if is_nbest_file(path):
         return [
-            Pair.from_text(u["id"], u["reference"], u.get("chosen", one_best(u)["text"]),
+            Pair.from_text(u["id"], u["reference"], output_text(u),
                            u.get("meta"), counting)
             for _, u in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                    require_references=True)

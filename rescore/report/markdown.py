@@ -6,7 +6,7 @@ import re
 from collections.abc import Sequence
 
 from rescore.report import wording as t
-from rescore.report.breakdown import Confusions
+from rescore.report.breakdown import Confusion
 from rescore.report.build import Report
 from rescore.report.confidence import CONFIDENCE_CAUTION, confidence_lines, confidence_rows
 
@@ -37,27 +37,35 @@ _CONTROLS = {c: " " if chr(c) in "\t\n\r\v\f\u2028\u2029\x85" else "\ufffd"
              for c in [*range(0x20), *range(0x7F, 0xA0), 0x2028, 0x2029]}
 
 
-def _table(head: Sequence[str], rows: Sequence[Sequence[object]]) -> list[str]:
+def _table(head: Sequence[str], rows: Sequence[Sequence[object]],
+           numeric_from: int = 1) -> list[str]:
     if not rows:
         return ["(none)", ""]
     out = ["| " + " | ".join(head) + " |",
-           "|" + "|".join(" --- " if i == 0 else " ---: " for i in range(len(head))) + "|"]
+           "|" + "|".join(" --- " if i < numeric_from else " ---: " for i in range(len(head)))
+           + "|"]
     out += ["| " + " | ".join(_cell(v) for v in row) + " |" for row in rows]
     return [*out, ""]
 
 
-def _confusions(name: str, c: Confusions) -> list[str]:
-    out = [f"### Most frequent errors, {name}", ""]
-    out += ["Substitutions:", ""]
-    out += _table(["reference", "hypothesis", "count"], c.substitutions)
-    out += ["Insertions:", ""]
-    out += _table(["word", "count"], c.insertions)
-    out += ["Deletions:", ""]
-    out += _table(["word", "count"], c.deletions)
-    if c.rule_matches:
-        out += ["Counted as correct by the scoring rules (no errors):", ""]
-        out += _table(["kind", "reference", "hypothesis", "count"],
-                      [(k, r, h or "(left out)", n) for k, r, h, n in c.rule_matches])
+def _confusions(rows: Sequence[Confusion]) -> list[str]:
+    out = ["### Confusions", "",
+           "The most frequent errors of either system, each counted in both (change: after "
+           "minus before).", ""]
+    out += _table(["kind", "reference", "hypothesis", "before", "after", "change"],
+                  [(c.kind, c.reference or "-", c.hypothesis or "-", c.before, c.after,
+                    f"{c.change:+d}") for c in rows], numeric_from=3)
+    return out
+
+
+def _rule_matches(rows: Sequence[Confusion]) -> list[str]:
+    if not rows:
+        return []
+    out = ["### Counted as correct by the scoring rules", "",
+           "No errors: what the rules forgave, counted in both systems.", ""]
+    out += _table(["kind", "reference", "hypothesis", "before", "after"],
+                  [(c.kind, c.reference, c.hypothesis or "(left out)", c.before, c.after)
+                   for c in rows], numeric_from=3)
     return out
 
 
@@ -95,19 +103,11 @@ def render_markdown(report: Report) -> str:
         out += _table(head, rows_)
         out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
-    rows = []
-    chars = t.unit_of(report) == "char"  # then the CER is the headline rate, not a column
-    for name, w, c in (("before", report.before, report.before_cer),
-                       ("after", report.after, report.after_cer)):
-        rows.append((name, t.pct(w.wer), w.substitutions, w.deletions, w.insertions, w.hits,
-                     w.reference_words, *([] if chars else [t.pct(c.cer)])))
-    out += _table([t.say(report, h) for h in ["system", "WER", "sub", "del", "ins", "hits",
-                                               "ref words", *([] if chars else ["CER"])]],
-                  rows)
+    out += _table(t.counts_head(report), t.counts_rows(report))
     out += ["## Method", ""] + [f"- {_cell(n)}" for n in t.method_notes(report)] + [""]
     out += ["## Breakdown", ""]
-    out += _confusions("before", report.breakdown.before)
-    out += _confusions("after", report.breakdown.after)
+    out += _confusions(report.breakdown.confusions)
+    out += _rule_matches(report.breakdown.rule_matches)
     by_id = {u.id: u for u in report.utterances}
     for title, ids in (("Most improved utterances", report.breakdown.improved),
                        ("Most worsened utterances", report.breakdown.worsened)):

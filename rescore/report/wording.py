@@ -78,29 +78,52 @@ def plain_interval(lo: float, hi: float) -> str:
     return f"[{pct(lo)}, {pct(hi)}]"
 
 
+COUNTS_HEAD = ["system", "reference words", "errors", "WER", "interval of WER",
+               "of which substitutions", "deletions", "insertions", "CER"]
+
+
+def counts_head(report: Report) -> list[str]:
+    """The counts table's head in the report's unit (under --unit char the CER is the rate
+    itself, so its own column goes)."""
+    head = COUNTS_HEAD[:-1] if unit_of(report) == "char" else COUNTS_HEAD
+    return [say(report, h) for h in head]
+
+
+def counts_rows(report: Report) -> list[tuple[object, ...]]:
+    """Rows of the counts table: reference words, errors and WER with its bootstrap interval
+    first, then what the errors are made of, then the character error rate."""
+    b = report.bootstrap
+    rows: list[tuple[object, ...]] = [
+        (name, w.reference_words, w.errors, pct(w.wer), plain_interval(*ci),
+         w.substitutions, w.deletions, w.insertions, pct(c.cer))
+        for name, w, c, ci in (("before", report.before, report.before_cer, b.before_ci),
+                               ("after", report.after, report.after_cer, b.after_ci))]
+    return [r[:-1] for r in rows] if unit_of(report) == "char" else rows
+
+
 def headline(report: Report) -> list[tuple[str, str, str, Any]]:
     """(label, display text, report.json key, exact value) rows of the headline table."""
     d, b = report.difference, report.bootstrap
     level = f"{100 * b.confidence:g}%"
     rows: list[tuple[str, str, str, Any]] = [
-
         ("WER before", pct(report.before.wer), "before.wer", report.before.wer),
         ("WER after", pct(report.after.wer), "after.wer", report.after.wer),
         ("Absolute change (after - before)", points(d.absolute), "difference.absolute",
          d.absolute),
-        ("Relative change", signed_pct(d.relative, 1), "difference.relative", d.relative),
+        # the headline of the evidence: the bootstrap interval and probability of improvement
         (f"{level} interval of the change", interval(d.ci_low, d.ci_high),
          "difference.ci_low,difference.ci_high", [d.ci_low, d.ci_high]),
+        ("Probability of improvement",
+         share_of_resamples(d.probability_of_improvement, b.resamples),
+         "difference.probability_of_improvement", d.probability_of_improvement),
+        ("Relative change", signed_pct(d.relative, 1), "difference.relative", d.relative),
         (f"{level} interval of WER before", plain_interval(*b.before_ci),
          "tests.bootstrap.before_ci", list(b.before_ci)),
         (f"{level} interval of WER after", plain_interval(*b.after_ci),
          "tests.bootstrap.after_ci", list(b.after_ci)),
-        ("Probability of improvement",
-         share_of_resamples(d.probability_of_improvement, b.resamples),
-         "difference.probability_of_improvement", d.probability_of_improvement),
         ("Matched-pairs segment test p" + (
             " (exact sign test: W undefined)" if report.matched_pairs.method == "sign" else ""),
-         p_value(d.mapsswe_p), "difference.mapsswe_p", d.mapsswe_p),
+         p_value(d.matched_pairs_p), "difference.matched_pairs_p", d.matched_pairs_p),
         ("Sign test p", p_value(d.sign_test_p), "difference.sign_test_p", d.sign_test_p),
         ("Wilcoxon signed-rank p", p_value(d.wilcoxon_p), "difference.wilcoxon_p",
          d.wilcoxon_p),

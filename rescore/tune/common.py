@@ -32,7 +32,7 @@ def _result(matrix: FeatureMatrix, weights: Weights, search: str, tuned: tuple[s
     errors = chosen_errors(dev, weights)
     return TuneResult(
         weights=weights, dev_errors=errors, dev_wer=errors / words,
-        baseline_wer=dev.first_errors() / words, oracle_wer=dev.oracle_errors() / words,
+        one_best_wer=dev.first_errors() / words, oracle_wer=dev.oracle_errors() / words,
         reference_words=words, utterances=dev.n_utterances, search=search, tuned=tuned,
         surface=surface, settings=dict(settings),
     )

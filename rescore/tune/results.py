@@ -188,7 +188,7 @@ class TuneResult:
     weights: Weights
     dev_errors: int
     dev_wer: float
-    baseline_wer: float
+    one_best_wer: float
     oracle_wer: float
     reference_words: int
     utterances: int
@@ -232,7 +232,7 @@ class TuneResult:
             "features": dict(self.weights.features),
             "dev_errors": self.dev_errors,
             "dev_wer": self.dev_wer,
-            "baseline_wer": self.baseline_wer,
+            "one_best_wer": self.one_best_wer,
             "oracle_wer": self.oracle_wer,
             "search": self.search,
             ACOUSTIC_SCALE: self.weights.acoustic_scale,

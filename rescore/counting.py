@@ -182,6 +182,15 @@ class Counting:
                              f"{unit}, or a model built with --unit {self.unit}", path=path,
                              field=UNIT_KEY)
 
+    def check_choice(self, choose: str | None) -> None:
+        """Refuse a choice rule that works on space-separated words (``min-risk``,
+        ``consensus``) under the character unit: a text written without spaces is one
+        "word" to them, so they would choose whole sentences while the errors count
+        characters."""
+        if self.unit == "char" and choose not in (None, "best"):
+            raise ParameterError(f"the choice rule {choose} works on space-separated words; "
+                                 "with unit char choose best", field="choose")
+
     def describe_rules(self) -> str:
         if self.rules is None:
             return "no rules file"

@@ -265,6 +265,7 @@ def apply_file(
     parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
     the output is the same byte for byte.
     """
+    counting.check_choice(weights.choose)
     features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
         if refs is not None and refs_path is None:
@@ -450,6 +451,7 @@ def tune_file(
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
     """
+    counting.check_choice(choose)
     extra_lms = [lm_column(n) for n in models if n != LM]
     main_lm = LM if LM in models else None
     box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)

@@ -299,3 +299,15 @@ def test_python_api_counts_characters_and_rules(tmp_path: Path) -> None:
     rules.write_bytes(b"optional = ['um']\n")
     assert word_error_rate(["um vent"], ["vent"], rules=rules).wer == 0.0
     assert word_error_rate(["um vent"], ["vent"]).wer == 0.5
+
+
+def test_word_choice_rules_are_refused_at_the_char_unit(tmp_path: Path) -> None:
+    # min-risk and consensus compare space-separated words: a sentence written without
+    # spaces is one word to them, so under --unit char they are refused, naming the flag
+    nbest = _nbest(tmp_path / "n.jsonl", [("u0", "ポンプ", [("ポンプ", -1.0)])])
+    model = _char_lm(tmp_path, ["ポンプ"], "--order", "2")
+    got = run(["tune", nbest, "--lm", model, "--unit", "char", "--choose", "min-risk",
+               "-o", tmp_path / "w.json"])
+    assert got.exit_code == 2 and not (tmp_path / "w.json").exists()
+    assert got.stderr.splitlines()[-1] == ("error: --choose: the choice rule min-risk works on "
+                                           "space-separated words; with unit char choose best")

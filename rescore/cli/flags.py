@@ -22,6 +22,7 @@ FLAGS: dict[str, str] = {
     "cluster": "--cluster",
     "quantize": "--quantize",
     "unit": "--unit",
+    "choose": "--choose",
     "rules": "--rules",
 }
 

@@ -311,3 +311,12 @@ def test_word_choice_rules_are_refused_at_the_char_unit(tmp_path: Path) -> None:
     assert got.exit_code == 2 and not (tmp_path / "w.json").exists()
     assert got.stderr.splitlines()[-1] == ("error: --choose: the choice rule min-risk works on "
                                            "space-separated words; with unit char choose best")
+
+
+def test_lm_mix_refuses_a_character_model(tmp_path: Path) -> None:
+    # the mixture weights are estimated on text read as words: a character model is refused
+    model = _char_lm(tmp_path, ["ポンプ"], "--order", "2")
+    got = run(["lm", "mix", model, model, "--fixed-weights", "0.5,0.5", "-o",
+               tmp_path / "m.lm"])
+    assert got.exit_code == 1 and not (tmp_path / "m.lm").exists()
+    assert "the model was built on characters" in got.stderr

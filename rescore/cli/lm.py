@@ -310,6 +310,8 @@ def mix(
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
                          field="--tune-on")
     loaded = [load_model(p) for p in models]
+    for path, model in zip(models, loaded, strict=True):
+        Counting().check_model(model, path=path)  # the mixture's text is read as words
     text = None if tune_on is None else list(read_corpus(tune_on))
     _, merged, result = mix_models(loaded, text, weights=_weights(weights))
     save_model(merged, output)

@@ -320,3 +320,47 @@ def test_lm_mix_refuses_a_character_model(tmp_path: Path) -> None:
                tmp_path / "m.lm"])
     assert got.exit_code == 1 and not (tmp_path / "m.lm").exists()
     assert "the model was built on characters" in got.stderr
+
+
+@given(st.lists(st.tuples(st.text(alphabet=st.sampled_from(list("ab ,")), max_size=8),
+                          st.text(alphabet=st.sampled_from(list("ab ,")), max_size=8)),
+                min_size=1, max_size=5))
+def test_an_empty_rules_file_counts_as_no_rules(pairs: list[tuple[str, str]]) -> None:
+    # an empty file is the plain rule: the same counts, utterance by utterance, as without
+    # (and so jiwer's: source, tests/test_wer.py's checks of the plain counts against jiwer)
+    empty = Counting(rules=parse_rules(b"", "empty.toml"))
+    refs, hyps = [r for r, _ in pairs], [h for _, h in pairs]
+    got, plain = empty.counts(refs, hyps), PLAIN.counts(refs, hyps)
+    for name in ("substitutions", "deletions", "insertions", "hits"):
+        assert getattr(got, name).tolist() == getattr(plain, name).tolist()
+
+
+def test_tuned_under_rules_the_weights_go_with_those_rules(tmp_path: Path) -> None:
+    corpus = tmp_path / "train.txt"
+    corpus.write_text("vent bay three\nvent bay four\n", encoding="utf-8")
+    model = tmp_path / "w.lm"
+    assert run(["lm", "build", corpus, "--order", "2", "-o", model]).exit_code == 0
+    nbest = _nbest(tmp_path / "dev.jsonl", [
+        (f"u{i}", "um vent bay three", [("went bay three", -1.0), ("vent bay three", -1.2)])
+        for i in range(3)])
+    rules = tmp_path / "desk.toml"
+    rules.write_bytes(b"optional = ['um']\n")
+    weights = tmp_path / "weights.json"
+    got = run(["tune", nbest, "--lm", model, "--rules", rules, "-o", weights, "--folds", "0",
+               "--json"])
+    assert got.exit_code == 0, got.stderr
+    # by hand: "um" left out is no error, so the LM's choice makes no error at all
+    assert json.loads(got.stdout)["dev_wer"] == 0.0
+    recorded = json.loads(weights.read_text())["provenance"]["rules"]
+    assert recorded["name"] == "desk" and recorded["sha256"] == \
+        parse_rules(rules.read_bytes()).sha256
+    out = tmp_path / "out.jsonl"
+    assert run(["apply", nbest, "--lm", model, "--weights", weights, "-o", out]).exit_code == 0
+    ok = run(["report", "--before", nbest, "--after", out, "--weights", weights, "--rules",
+              rules, "-o", tmp_path / "r1", "--resamples", "100"])
+    assert ok.exit_code == 0, ok.stderr
+    refused = run(["report", "--before", nbest, "--after", out, "--weights", weights,
+                   "-o", tmp_path / "r2", "--resamples", "100"])
+    assert refused.exit_code == 1 and not (tmp_path / "r2").exists()
+    assert "the weights' tuning errors were scored under rules 'desk'" in refused.stderr
+    assert "this run under no rules file" in refused.stderr

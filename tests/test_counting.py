@@ -364,3 +364,14 @@ def test_tuned_under_rules_the_weights_go_with_those_rules(tmp_path: Path) -> No
     assert refused.exit_code == 1 and not (tmp_path / "r2").exists()
     assert "the weights' tuning errors were scored under rules 'desk'" in refused.stderr
     assert "this run under no rules file" in refused.stderr
+
+
+def test_check_finds_references_in_a_character_models_text(tmp_path: Path) -> None:
+    # the character model's training sentence "ポンプ止" is a test reference: found (the
+    # fingerprints are of the character sentences the model was trained on)
+    model = _char_lm(tmp_path, ["ポンプ止", "ポンプ三"], "--order", "2")
+    nbest = _nbest(tmp_path / "n.jsonl", [("u0", "ポンプ止", [("ポンプ止", -1.0)]),
+                                          ("u1", "ボンプ", [("ボンプ", -1.0)])])
+    got = run(["check", nbest, "--lm", model, "--unit", "char", "--json"])
+    assert got.exit_code == 0, got.stderr
+    assert json.loads(got.stdout)["overlap"]["found"] == 1

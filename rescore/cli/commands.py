@@ -28,7 +28,7 @@ from rescore.cli.options import (
     WeightsOutOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
-from rescore.counting import counting_of, in_unit, unit_name
+from rescore.counting import characters, counting_of, in_unit, unit_name
 from rescore.demo_kana import run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
@@ -84,10 +84,15 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
     ref_map = _refs(refs)
     result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
                                  batch_size=batch_size, counting=counting)
-    overlap = None if not lm else overlap_summary(
-        [(str(p), load_model(p)) for p in lm],
-        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs),
-        threshold=threshold)
+    overlap = None
+    if lm:
+        loaded = [(str(p), load_model(p)) for p in lm]
+        for path, model in loaded:
+            counting.check_model(model, path=path)
+        sentences = reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs)
+        if counting.unit == "char":  # a character model holds its sentences' characters
+            sentences = [characters(s) for s in sentences]
+        overlap = overlap_summary(loaded, sentences, threshold=threshold)
     for line in [] if overlap is None else overlap.warnings():
         warn(line)
     _warn(result.warnings)

@@ -166,3 +166,21 @@ def test_report_command_refuses_a_tuning_record_under_other_rules(tmp_path: Path
     char = run(["report", "--before", before, "--after", after, "-o", tmp_path / "c",
                 "--unit", "char", "--resamples", "100"])
     assert char.exit_code == 0 and "CER" in char.stdout
+
+
+def test_overlap_reads_references_as_the_models_text_was_read(tmp_path: Path) -> None:
+    # the rules drop "[noise]" before scoring, but the LM's text was normalised plainly
+    # ("[noise]" -> "noise"): the reference "[noise] vent bay" is that text's sentence
+    corpus = tmp_path / "train.txt"
+    corpus.write_text("[noise] vent bay\n", encoding="utf-8")
+    model = tmp_path / "w.lm"
+    assert run(["lm", "build", corpus, "--order", "2", "-o", model]).exit_code == 0
+    before = _nbest(tmp_path / "b.jsonl", [("[noise] vent bay", "vent bay")])
+    rules = tmp_path / "r.toml"
+    rules.write_bytes(b"ignore = ['[noise]']\n")
+    got = run(["report", "--before", before, "--after", before, "--lm", model, "--rules",
+               rules, "-o", tmp_path / "r", "--resamples", "100", "--json"])
+    assert got.exit_code == 0, got.stderr
+    report = json.loads((tmp_path / "r" / "report.json").read_text())
+    assert report["overlap"]["found"] == 1
+    assert report["before"]["wer"] == 0.0  # "[noise]" ignored: "vent bay" against "vent bay"

@@ -126,7 +126,12 @@ def report_files(
     overlap = None
     if named:
         loaded = [(name, m if isinstance(m, NGramModel) else load_model(m)) for name, m in named]
-        overlap = overlap_summary(loaded, [list(p.reference) for p in before_pairs],
+        # the references as the models' text was read (the plain normalisation at the
+        # run's unit), not as the scoring rules read them
+        plain = before_pairs if counting.rules is None else load_system(
+            before, refs=ref_map, log_base=log_base, costs=costs,
+            counting=Counting(counting.unit))
+        overlap = overlap_summary(loaded, [list(p.reference) for p in plain],
                                   threshold=overlap_threshold)
         hashes = {name: sha256_file(m) for name, m in named if not isinstance(m, NGramModel)}
         if hashes:

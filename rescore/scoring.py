@@ -21,7 +21,7 @@ from rescore.errors import InputError, ParameterError, UsageError
 from rescore.nbest import Utterance
 from rescore.text import word_counts
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
-from rescore.wer import UNDEFINED_WER
+from rescore.wer import UNDEFINED_WER, word_errors
 
 
 @dataclass(frozen=True)
@@ -309,13 +309,16 @@ def build_matrix(
         # the scored tokens are the LM's unless rules normalise or drop tokens their way
         scored = toks if counting.rules is None else [counting.score_tokens(hyp["text"])
                                                       for hyp in hyps]
+        # without rules an error count is the edit distance (the method is the same, less
+        # a call per hypothesis)
+        errors_of = word_errors if counting.rules is None else counting.errors
         for u, (line, utt) in enumerate(items):
             if "reference" not in utt:
                 raise InputError("reference needed", path=path, line=line, field="reference")
             ref = counting.score_tokens(utt["reference"])
             ref_words[u] = len(ref)
             for row in range(int(offsets[u]), int(offsets[u + 1])):
-                errors[row] = counting.errors(ref, scored[row])
+                errors[row] = errors_of(ref, scored[row])
     for j, model in enumerate(lms.values()):
         values[:, 1 + j] = model.logprob(toks) if n else 0.0
     matrix = FeatureMatrix(names=names, values=values, offsets=offsets,

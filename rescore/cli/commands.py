@@ -146,7 +146,8 @@ def apply(
         "--lm", help="Language model (MODEL, or NAME=MODEL for several). Optional when only "
         "file features are weighted.")] = None,
     text: Annotated[Path | None, typer.Option(
-        "--text", help="Also write 'id<TAB>best text' lines here.")] = None,
+        "--text", help="Also write 'id<TAB>output text' lines here (the chosen text under "
+        "--choose min-risk or consensus, else the 1-best).")] = None,
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     batch_size: BatchOpt = DEFAULT_BATCH,
     workers: Annotated[int, typer.Option(

@@ -75,16 +75,22 @@ _Out = Annotated[Path, typer.Option(
 _Order = Annotated[int, typer.Option("--order", "-n", help="n-gram order, 1 to 6.")]
 _Method = Annotated[str, typer.Option("--method", "-m", help="mkn, kn, wb, abs, addk or mle.")]
 _Vocab = Annotated[Path | None, typer.Option(
-    "--vocabulary", metavar="FILE", help="Vocabulary file: the words to keep.")]
-_MaxVocab = Annotated[int | None, typer.Option("--max-vocab", help="Keep the K most frequent.")]
+    "--vocabulary", metavar="FILE",
+    help="Vocabulary file: the words to keep, one a line (default: every word seen).")]
+_MaxVocab = Annotated[int | None, typer.Option(
+    "--max-vocab", metavar="K", help="Keep the K most frequent words (default: no cap).")]
 _MinCount = Annotated[int, typer.Option("--min-count", help="Keep words seen at least C times.")]
 _Closed = Annotated[bool, typer.Option(
     "--no-unknown-word", help="Leave unknown words out (no <unk> in the model).")]
 _K = Annotated[float, typer.Option("--k", help="The constant of addk smoothing.")]
 _Cutoffs = Annotated[str | None, typer.Option(
-    "--min-ngram-counts", metavar="N,N,...", help="Least count per order from 2.")]
+    "--min-ngram-counts", metavar="N,N,...",
+    help="Least count of an n-gram to keep it, per order from 2 (default: 1 for every order, "
+    "nothing cut).")]
 _Prune = Annotated[float | None, typer.Option(
-    "--prune-entropy", metavar="X", help="Entropy-pruning threshold.")]
+    "--prune-entropy", metavar="X",
+    help="Drop n-grams whose removal changes the model's relative entropy by less than X, "
+    "e.g. 1e-8 (default: no pruning).")]
 _Memory = Annotated[str | None, typer.Option(
     "--memory", metavar="SIZE",
     help="Memory for counting, e.g. 4G or 500M; a larger text is counted in sorted runs on "

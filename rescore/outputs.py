@@ -9,6 +9,7 @@ import fcntl
 import gzip
 import io
 import os
+import re
 import stat
 import sys
 import tempfile
@@ -112,13 +113,34 @@ def is_direct_output(path: str | Path) -> bool:
     folder once links are followed (a device, a FIFO, a socket, ``/proc/self/fd/1``).
     Renaming over such a file would replace it, so it is never renamed over; atomicity
     then does not apply."""
-    if str(path) == STDOUT_NAME:
+    if str(path) == STDOUT_NAME or names_a_descriptor(path):
         return True
     try:
         mode = os.stat(path).st_mode
     except OSError:
         return False
     return not stat.S_ISREG(mode) and not stat.S_ISDIR(mode)
+
+
+_DESCRIPTOR = re.compile(r"/(?:proc/(?:self|thread-self|\d+)/fd|dev/fd)/\d+|/dev/std(?:in|out|err)")
+
+
+def names_a_descriptor(path: str | Path) -> bool:
+    """Whether ``path`` or a link on the way names an open file descriptor (``/dev/stdout``,
+    ``/dev/fd/3``, ``/proc/self/fd/1``). Such a name is written through even when the
+    descriptor is a regular file (standard output redirected to one): renaming a temporary
+    over it would replace the link itself (``/dev/stdout`` turned into a file of its own),
+    and the shell's file would never see the output."""
+    name = os.path.abspath(path)
+    for _ in range(40):  # the kernel's own limit on links followed
+        if _DESCRIPTOR.fullmatch(name):
+            return True
+        try:
+            target = os.readlink(name)
+        except OSError:
+            return False
+        name = os.path.normpath(os.path.join(os.path.dirname(name), target))
+    return False
 
 
 def check_output_path(path: str | Path | None) -> None:

@@ -465,3 +465,11 @@ def test_apply_prints_wer_before_and_after_when_references_exist(demo_lm: Path,
     assert json.loads(quiet.stdout)["before"] is None
     assert run(["apply", bare, "--weights", weights, "--lm", demo_lm, "-o", "-",
                 "--json"]).exit_code == 2
+
+
+def test_apply_no_wer_skips_the_second_pass(demo_lm: Path, tmp_path: Path) -> None:
+    weights = tmp_path / "w.json"
+    weights.write_text('{"acoustic_scale": 1, "lm_weight": 9, "insertion_penalty": 2}')
+    res = run(["apply", FIXTURES / "demo" / "test.jsonl", "--lm", demo_lm, "--weights",
+               weights, "-o", tmp_path / "o.jsonl", "--no-wer", "--json"])
+    assert res.exit_code == 0 and json.loads(res.stdout)["after"] is None

@@ -99,6 +99,27 @@ def test_dash_and_a_link_to_proc_self_fd_1_write_to_standard_output(
     assert link.is_symlink()
 
 
+def test_a_descriptor_link_with_stdout_redirected_to_a_file_is_written_through(
+        model: dict[str, Path], tmp_path: Path) -> None:
+    # standard output redirected to a regular file makes /proc/self/fd/1 look like a regular
+    # file: a temporary renamed over the name would replace the link itself (and the shell's
+    # file would stay empty). The records go through it, and apply prints no table into it
+    link = tmp_path / "stdout-link"
+    link.symlink_to("/proc/self/fd/1")
+    caught = tmp_path / "caught.jsonl"
+    with open(caught, "w") as fh:
+        res = subprocess.run(
+            [sys.executable, "-m", "rescore", "-q", "apply", str(DEMO / "test.jsonl"), "--lm",
+             str(model["lm"]), "--weights", str(model["weights"]), "-o", str(link)],
+            stdout=fh, stderr=subprocess.PIPE, text=True, timeout=300, cwd=ROOT,
+            env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert res.returncode == 0, res.stderr
+    assert link.is_symlink() and os.readlink(link) == "/proc/self/fd/1"
+    in_file = tmp_path / "file.jsonl"
+    assert _apply(model, in_file).returncode == 0
+    assert caught.read_text() == in_file.read_text()
+
+
 # --- 2: the outputs of one command are checked before the work --------------------------
 
 @pytest.fixture

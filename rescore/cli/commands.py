@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import io
+import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -119,6 +121,18 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           [[d, c] for d, c in sorted(result.depths.items())])
 
 
+def _readable_output(out: Path) -> bool:
+    """Whether an output just written can be read back: a regular file that is not this
+    process's standard output under another name (``/dev/stdout`` redirected to a file)."""
+    if str(out) == "-" or not out.is_file():
+        return False
+    try:
+        here, std = out.stat(), os.fstat(sys.stdout.fileno())
+    except (OSError, ValueError, io.UnsupportedOperation):
+        return True
+    return (here.st_dev, here.st_ino) != (std.st_dev, std.st_ino)
+
+
 def cv_gap_rate(text: str) -> float:
     """``--warn-cv-gap`` as a fraction: ``1%`` or ``0.01``, the forms the gates take. Before
     this form the option took bare points (``1.0``); a bare value that large is almost surely
@@ -162,6 +176,9 @@ def apply(
         "--allow-other-model", help="Go on (with a warning) when a model's SHA-256 differs "
         "from the one the weights were tuned with.")] = False,
     choose: ChooseOpt = None,
+    no_wer: Annotated[bool, typer.Option(
+        "--no-wer", help="Skip the WER before and after: with references, it reads the output "
+        "back once (about as long again as the rescoring on large files).")] = False,
     as_json: JsonOpt = False,
     unit: UnitOpt = "word",
 ) -> None:
@@ -187,16 +204,16 @@ def apply(
     _warn(result.warnings)
     # with references, the WER of the recognizer's 1-best and of the output (read back from
     # the output just written; nothing to read back when it went to standard output)
-    wers = None if str(out) == "-" else pipeline.before_after_wer(out, batch_size=batch_size,
-                                                                  counting=counting)
+    # (or a FIFO, a terminal, /proc/self/fd/1: only a regular file, not stdout, is read back)
+    wers = (pipeline.before_after_wer(out, batch_size=batch_size, counting=counting)
+            if not no_wer and _readable_output(out) else None)
     if as_json:
         emit_json({"utterances": result.utterances, "changed": result.changed,
                    "empty": result.empty, "shards": result.shards, "out": str(out),
                    "before": None if wers is None else wers[0].to_dict(),
                    "after": None if wers is None else wers[1].to_dict()})
     elif wers is not None:
-        table(f"{out}: {unit_name(counting.unit)} before and after rescoring",
-              _columns(counting.unit),
+        table(f"{out}: {unit_name(counting.unit)} before and after", _columns(counting.unit),
               _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
                          ("after (rescored)", wers[1].to_dict())]))
     shards = f" in {result.shards} shards" if result.shards > 1 else ""

@@ -66,8 +66,20 @@ def align_counts(ref: Sequence[str], hyp: Sequence[str]) -> tuple[int, int, int,
         return 0, 0, len(hyp), 0
     if not hyp:
         return 0, len(ref), 0, 0
-    out = jiwer.process_words(" ".join(ref), " ".join(hyp))
-    return int(out.substitutions), int(out.deletions), int(out.insertions), int(out.hits)
+    # jiwer's own counting (jiwer.process_words: words to ints, then rapidfuzz's opcodes),
+    # without its text transforms: the words here are normalised and hold no spaces already
+    ids: dict[str, int] = {}
+    a = [ids.setdefault(w, len(ids)) for w in ref]
+    b = [ids.setdefault(w, len(ids)) for w in hyp]
+    s = d = i = 0
+    for tag, i1, i2, j1, j2 in Levenshtein.opcodes(a, b):
+        if tag == "replace":
+            s += i2 - i1
+        elif tag == "delete":
+            d += i2 - i1
+        elif tag == "insert":
+            i += j2 - j1
+    return s, d, i, len(ref) - s - d
 
 
 def word_errors(ref: Sequence[str], hyp: Sequence[str]) -> int:

@@ -12,7 +12,8 @@ process, whose peak resident memory is read from the kernel (wait4) when it ends
    only when it has more cores than this machine; here it can only cost;
 3. with ``--large``: 10 and 60 million words with ``--memory 4G``: time and peak of each
    and the ratio of the peaks (targets: 60 M under 5 GB and 15 minutes, ratio under 1.2).
-   This takes a long time and about 1 GB of disk; it is off by default.
+   This takes a long time and about 1 GB of disk; it is off by default (``--large-only``:
+   this part alone; ``--large-words 20000000`` for a shorter check of the ratio).
 
 Times are medians of 3 runs (1 with ``--quick`` or ``--large``); peaks are the largest of
 the runs. ``--quick`` uses 1 million words.
@@ -119,6 +120,8 @@ def main() -> None:
                     help="also 10 and 60 million words with --memory 4G (long)")
     ap.add_argument("--large-words", type=int, default=60_000_000, metavar="N",
                     help="with --large: the larger text's words (default 60 million)")
+    ap.add_argument("--large-only", action="store_true",
+                    help="only the --large part (the peaks of the two sizes and their ratio)")
     args = ap.parse_args()
     repeats = 1 if args.quick else 3
     n_tokens = 1_000_000 if args.quick else 10_000_000
@@ -128,40 +131,42 @@ def main() -> None:
         scratch = tmp / "scratch"
         scratch.mkdir()
         text = tmp / "corpus.txt"
-        size = write_text(text, n_tokens)
-        print(f"text: {n_tokens:,} words, {size / 1e6:.0f} MB; 4-gram mkn; "
-              f"times: median of {repeats}")
+        if not args.large_only:
+            size = write_text(text, n_tokens)
+            print(f"text: {n_tokens:,} words, {size / 1e6:.0f} MB; 4-gram mkn; "
+                  f"times: median of {repeats}")
         if args.quick:
             print("--quick: small sizes; the targets are set for the full runs, so 'met' "
                   "here is only indicative")
 
-        base_t, base_peak, base_digest = measure(text, tmp / "base.lm", repeats)
-        grams = sum(load_model(tmp / "base.lm").n_ngrams_)
-        print(f"default build (counted in memory): {base_t:.1f} s, peak {base_peak:.2f} GB; "
-              f"{grams / 1e6:.1f} M n-grams, {base_peak * 1e9 / grams:.0f} bytes of peak per "
-              "n-gram")
+        if not args.large_only:
+            base_t, base_peak, base_digest = measure(text, tmp / "base.lm", repeats)
+            grams = sum(load_model(tmp / "base.lm").n_ngrams_)
+            print(f"default build (counted in memory): {base_t:.1f} s, peak {base_peak:.2f} GB; "
+                  f"{grams / 1e6:.1f} M n-grams, {base_peak * 1e9 / grams:.0f} bytes of peak per "
+                  "n-gram")
 
-        runs_t, runs_peak, runs_digest = measure(text, tmp / "runs.lm", repeats, "--memory",
-                                                 small, "--scratch", str(scratch))
-        assert runs_digest == base_digest, "sorted runs gave another model file"
-        print(f"--memory {small} (several sorted runs): {runs_t:.1f} s, peak "
-              f"{runs_peak:.2f} GB; time ratio {runs_t / base_t:.2f}x, peak ratio "
-              f"{runs_peak / base_peak:.2f}x; model file byte-identical")
+            runs_t, runs_peak, runs_digest = measure(text, tmp / "runs.lm", repeats, "--memory",
+                                                     small, "--scratch", str(scratch))
+            assert runs_digest == base_digest, "sorted runs gave another model file"
+            print(f"--memory {small} (several sorted runs): {runs_t:.1f} s, peak "
+                  f"{runs_peak:.2f} GB; time ratio {runs_t / base_t:.2f}x, peak ratio "
+                  f"{runs_peak / base_peak:.2f}x; model file byte-identical")
 
-        try:
-            import distributed  # noqa: F401
-        except ImportError:
-            print("--cluster local: skipped (dask.distributed is not installed)")
-        else:
-            cl_t, cl_peak, cl_digest = measure(text, tmp / "cluster.lm", repeats,
-                                               "--cluster", "local", "--workers", "2")
-            assert cl_digest == base_digest, "the cluster gave another model file"
-            print(f"--cluster local, 2 workers: {cl_t:.1f} s (start-up of the cluster "
-                  f"included), largest process {cl_peak:.2f} GB; overhead against the "
-                  f"default build {cl_t / base_t:.2f}x on this 2-core machine; model file "
-                  f"byte-identical")
+            try:
+                import distributed  # noqa: F401
+            except ImportError:
+                print("--cluster local: skipped (dask.distributed is not installed)")
+            else:
+                cl_t, cl_peak, cl_digest = measure(text, tmp / "cluster.lm", repeats,
+                                                   "--cluster", "local", "--workers", "2")
+                assert cl_digest == base_digest, "the cluster gave another model file"
+                print(f"--cluster local, 2 workers: {cl_t:.1f} s (start-up of the cluster "
+                      f"included), largest process {cl_peak:.2f} GB; overhead against the "
+                      f"default build {cl_t / base_t:.2f}x on this 2-core machine; model file "
+                      f"byte-identical")
 
-        if args.large:
+        if args.large or args.large_only:
             peaks, counting = {}, {}
             large = args.large_words
             for words in (10_000_000, large):

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import re
 import struct
 import subprocess
 import sys
@@ -160,6 +161,50 @@ def test_other_whitespace_goes_to_the_exact_reader(tmp_path: Path) -> None:
     probe = _probe(model, 5)
     np.testing.assert_array_equal(load_model(spaced).logprob(probe),
                                   load_model(tabbed).logprob(probe))
+
+
+@pytest.mark.parametrize("change", [
+    ("\\n", " \\r\\n", -1),  # a carriage return before each newline
+    ("-0.", "-0.\\x0b", -1),  # a vertical tab inside the numbers
+    ("0\\n", "inf\\n", 1),  # a weight spelled "inf" (not finite)
+    ("0\\n", "nan\\n", 1),  # and "nan"
+    ("0\\n", "NaN\\n", 1),  # in capitals, below "e" in ASCII
+])
+def test_unusual_numbers_go_to_the_exact_reader(tmp_path: Path,
+                                                change: tuple[str, str, int]) -> None:
+    # the fast reader's byte checks: white space other than tab, space and newline, and
+    # numbers that are not finite, leave the fast path; the exact reader (the reference)
+    # then reads the file as it is, or names the bad line
+    model = NGramModel(3, "kn").fit(_corpus(6))
+    good = tmp_path / "good.arpa"
+    save_model(model, good)
+    old, new = (c.encode().decode("unicode_escape") for c in change[:2])
+    text = good.read_text()
+    assert old in text
+    odd = tmp_path / "odd.arpa"
+    odd.write_text(text.replace(old, new, change[2]))
+    with open(odd, "rb") as fh, pytest.raises(arpa_fast.Slow):
+        arpa_fast.read_fast(fh)
+    try:
+        exact, meta = arpa.read_exact(odd)
+    except ModelFileError as exc:  # refused: "FILE:LINE: ..."
+        assert re.search(r"odd\.arpa:\d+: ", str(exc))
+    else:
+        probe = _probe(model, 6)
+        np.testing.assert_array_equal(NGramModel.from_tables(exact, meta).logprob(probe),
+                                      load_model(odd).logprob(probe))
+
+
+def test_bucket_index_of_wide_keys_sorts_by_argsort() -> None:
+    # keys of 63 bits leave no room for the positions beside the hash: the argsort path
+    # must give the same index as the packed sort (compared with a dict, the reference)
+    rng = np.random.default_rng(3)
+    arr = rng.integers(0, 1 << 62, 2000, dtype=np.int64).astype(np.uint64)
+    index, perm = BucketIndex.build(arr, 1 << 63)
+    position = {k: i for i, k in enumerate(arr[perm].tolist())}
+    assert index.find(arr).tolist() == [position[k] for k in arr.tolist()]
+    assert index.keys().tolist() == arr[perm].tolist()
+    assert BucketIndex.build(np.array([7, 3, 7], dtype=np.uint64), 1 << 63)[0].duplicates
 
 
 def test_arpa_imported_from_wb_scores_as_the_original(tmp_path: Path) -> None:

@@ -54,6 +54,9 @@ def test_alignment_agrees_with_jiwer_and_plain_dp(ref: list[str], hyp: list[str]
         out = jiwer.process_words(" ".join(ref), " ".join(hyp) if hyp else "")
         assert (al.substitutions, al.deletions, al.insertions, al.hits) == (
             out.substitutions, out.deletions, out.insertions, out.hits)
+        # the counting path calls rapidfuzz as jiwer does, without jiwer's text transforms
+        assert align_counts(ref, hyp) == (out.substitutions, out.deletions, out.insertions,
+                                          out.hits)
 
 
 @given(st.lists(st.tuples(st.lists(st.sampled_from(VOCAB), min_size=1, max_size=10), words),

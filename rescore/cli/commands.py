@@ -178,7 +178,7 @@ def apply(
     choose: ChooseOpt = None,
     no_wer: Annotated[bool, typer.Option(
         "--no-wer", help="Skip the WER before and after: with references, it reads the output "
-        "back once (about as long again as the rescoring on large files).")] = False,
+        "back once (about half again the rescoring time on large files).")] = False,
     as_json: JsonOpt = False,
     unit: UnitOpt = "word",
 ) -> None:

@@ -27,11 +27,10 @@ from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 
-BLOCK_BYTES = 2 << 20
+BLOCK_BYTES = 1 << 20
 WORD_BYTES = 16  # words up to this length are matched as two integers, longer ones by a dict
 _LOW = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [(1 << 64) - 1], dtype=np.uint64)
-_NUMBER_BYTES = np.zeros(256, dtype=bool)
-_NUMBER_BYTES[list(b"0123456789.+-eE \t\n")] = True
+_KEEP = np.array([255, 0, 255], dtype=np.uint8)  # the number, the words, the rest of a line
 _MIX1 = np.uint64(0x9E3779B97F4A7C15)
 _MIX2 = np.uint64(0xC2B2AE3D27D4EB4F)
 
@@ -143,6 +142,8 @@ class _FastReader:
             raise Slow
         lo, hi = int(starts[0]), int(ends[-1])
         seg = arr[lo:hi + 1]
+        if not seg.all():
+            raise Slow  # a 0 byte: never in a word nor a number
         tabs = np.flatnonzero(seg == 9)
         tabs += lo
         first_tab = np.searchsorted(tabs, starts)
@@ -169,13 +170,23 @@ class _FastReader:
         spaces += lo
         if len(spaces) != n * (k - 1):
             raise Slow
-        # the numbers: the words blanked out, then one parse of the whole run
-        mark = np.zeros(len(seg) + 1, dtype=np.int8)
-        mark[w_start - lo] = 1
-        mark[w_end - lo] = -1
-        in_words = np.cumsum(mark[:-1], dtype=np.int8).view(bool)
-        numbers = np.where(in_words, np.uint8(32), seg)
-        if not _NUMBER_BYTES[numbers].all():
+        # the numbers: the words blanked out (a mask repeated field by field: number and
+        # tab, words, the rest of the line), then one parse of the whole run
+        if has_bow is not None and np.any(has_bow & (ends <= w_end + 1)):
+            raise Slow  # an empty back-off field
+        spans = np.empty((n, 3), dtype=np.int64)
+        spans[:, 0] = w_start - starts
+        spans[:, 1] = w_end - w_start
+        spans[:, 2] = ends + 1 - w_end
+        keep = np.repeat(np.tile(_KEEP, n), spans.reshape(-1))
+        numbers = np.bitwise_and(seg, keep)
+        np.invert(keep, out=keep)
+        keep &= np.uint8(32)
+        numbers |= keep
+        del keep
+        # digits, signs, points, exponents and the three separators only: no letter past
+        # "e" (inf and nan are refused below), no other white space or control byte
+        if int(numbers.max()) > 0x65 or np.any(np.less(numbers - np.uint8(11), 3)):
             raise Slow
         want = n if has_bow is None else n + int(np.count_nonzero(has_bow))
         with warnings.catch_warnings():
@@ -184,7 +195,7 @@ class _FastReader:
                 values = np.fromstring(numbers.tobytes(), dtype=np.float64, sep=" ")
             except (ValueError, DeprecationWarning):
                 raise Slow from None
-        if len(values) != want:
+        if len(values) != want or not np.all(np.isfinite(values)):
             raise Slow
         at = order.filled
         if has_bow is None:
@@ -268,8 +279,16 @@ class _FastReader:
             int(np.count_nonzero(~short)), dtype=np.uint64)
         if len(np.unique(mixed)) != len(mixed) or np.any(mixed == hashindex.NO_KEY):
             raise Slow
-        self.slots = hashindex.build_slots(mixed)
-        self.held = hashindex.slot_keys(self.slots, mixed)
+        # the table holds each slot's word as its two integers: a probe compares both
+        slots = hashindex.build_slots(mixed)
+        self.bits = len(slots).bit_length() - 1
+        # empty slots and long words' slots hold 0, which no query holds: every token
+        # starts with a byte that is not 0 (a block with a 0 byte is the exact reader's)
+        short_slot = slots >= 0
+        short_slot[short_slot] = short[slots[short_slot]]
+        self.held0 = np.where(short_slot, self.x0[slots], np.uint64(0))
+        self.held1 = np.where(short_slot, self.x1[slots], np.uint64(0))
+        self.ids = slots
         self.short = short
         self.long_words = {w: i for i, w in enumerate(encoded) if len(w) > WORD_BYTES}
         self.vocab = vocab
@@ -283,6 +302,29 @@ class _FastReader:
         z ^= z >> np.uint64(31)
         return z
 
+    def _find(self, x0: npt.NDArray[np.uint64], x1: npt.NDArray[np.uint64]) -> I64:
+        """The id of each word given as its two integers, or -1: linear probing from the
+        slot that :func:`hashindex.build_slots` gave the word's mixed value."""
+        mask = len(self.ids) - 1
+        where = hashindex.home(self._mix(x0, x1), self.bits)
+        found = self.ids[where].astype(np.int64)
+        miss = (self.held0[where] != x0) | (self.held1[where] != x1)
+        if not miss.any():
+            return found
+        pending = np.flatnonzero(miss)
+        found[pending] = -1
+        where = where[pending]
+        pending = pending[self.ids[where] >= 0]  # an empty slot: not a word of the file
+        where = where[self.ids[where] >= 0]
+        while pending.size:
+            where = (where + 1) & mask
+            at = self.ids[where]
+            hit = (self.held0[where] == x0[pending]) & (self.held1[where] == x1[pending])
+            found[pending[hit]] = at[hit]
+            more = ~hit & (at >= 0)
+            pending, where = pending[more], where[more]
+        return found
+
     def word_ids(self, padded: npt.NDArray[np.uint64], block: bytes, start: I64,
                  end: I64) -> npt.NDArray[np.int32]:
         length = end - start
@@ -290,9 +332,8 @@ class _FastReader:
         x0 &= _LOW[np.minimum(length, 8)]
         x1 = padded[start + 8]
         x1 &= _LOW[np.clip(length - 8, 0, 8)]
-        found = hashindex.lookup_slotted(self.slots, self.held, self._mix(x0, x1))
+        found = self._find(x0, x1)
         ok = found >= 0
-        ok[ok] = (self.x0[found[ok]] == x0[ok]) & (self.x1[found[ok]] == x1[ok])
         long = length > WORD_BYTES
         if long.any():
             at = np.flatnonzero(long)
@@ -331,6 +372,7 @@ class _FastReader:
         else:
             give_back_freed_memory()  # the blocks' temporaries: the peak comes next
             self.add_order(order)
+            give_back_freed_memory()  # the read arrays given up, before the next order
         self.current = None
 
     def add_order(self, order: _Order) -> None:
@@ -343,10 +385,10 @@ class _FastReader:
         self.index.append(index)
         # the arrays given up are reused: the keys' memory takes the probabilities, the
         # read probabilities' memory the back-off weights
-        logp = np.take(order.prob, perm, out=keys.view(np.float64))
+        logp = _permuted(order.prob, perm, keys.view(np.float64))
         self.logp.append(ln10(logp))
         if order.bow is not None:
-            bow = np.take(order.bow, perm, out=order.prob)
+            bow = _permuted(order.bow, perm, order.prob)
             self.bow.append(ln10(bow))
             order.bow = None
         order.prob = np.zeros(0)
@@ -356,6 +398,15 @@ class _FastReader:
             raise Slow
         return BackoffTables(self.vocab, self.logp, self.bow, [], [], self.index)
 
+
+
+def _permuted(values: F64, perm: npt.NDArray[Any], out: F64) -> F64:
+    """``values[perm]`` into ``out``, a slice at a time (numpy widens 32-bit positions to
+    a temporary copy: a slice's, not the whole permutation's)."""
+    step = 1 << 18
+    for at in range(0, len(perm), step):
+        np.take(values, perm[at:at + step], out=out[at:at + step])
+    return out
 
 
 def read_fast(fh: Any) -> tuple[BackoffTables, dict[str, Any]]:

@@ -138,16 +138,16 @@ def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
     ext[:, 5:10] = chars[low_half]
     ext[:, 10], ext[:, 11], ext[:, 12] = ord("."), ord("0"), ord("-")
     code = np.where(ok, (e + 4) * 2 + neg, len(_LAYOUTS)).astype(np.int8)
-    perm = np.argsort(code, kind="stable")  # a radix sort of small integers
-    bounds = np.searchsorted(code[perm], np.arange(len(_LAYOUTS) + 1))
-    ext = ext[perm]
-    grouped = np.zeros((n, 16), dtype=np.uint8)
+    present = np.bincount(code, minlength=len(_LAYOUTS) + 1)
     for c in range(len(_LAYOUTS)):
-        a, b = int(bounds[c]), int(bounds[c + 1])
-        if b > a:
-            src = _LAYOUTS[c]
-            grouped[a:b, :len(src)] = ext[a:b, src]
-    out[perm, :16] = grouped
+        if present[c] == 0:
+            continue
+        src = _LAYOUTS[c]
+        if present[c] == n:  # one layout for the whole block (common): no row selection
+            out[:, :len(src)] = ext[:, src]
+            break
+        rows = np.flatnonzero(code == c)
+        out[rows, :len(src)] = ext[rows][:, src]
     lead = e >= 0
     int_len = np.where(lead, e + 1, 0)
     frac_len = np.where(lead, np.maximum(kept - int_len, 0), kept)
@@ -225,12 +225,23 @@ def write_fast(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = 
     unigram_rows = np.array([i for i in range(tables.vsize)
                              if not (closed_vocab and i == UNK_ID)], dtype=np.int64)
     counts = [len(unigram_rows)] + [len(tables.logp[k - 1]) for k in range(2, order + 1)]
+    below: npt.NDArray[np.int32] | None = None  # the word matrix of the order below
     with atomic_output(path, "wb") as fh:
         fh.write(("\n\\data\\\n" + "".join(f"ngram {k}={n}\n" for k, n in
                                             enumerate(counts, start=1))).encode("ascii"))
         for k in range(1, order + 1):
             fh.write(f"\n\\{k}-grams:\n".encode("ascii"))
-            words = unigram_rows[:, None] if k == 1 else tables.words_of(k)
+            if k == 1:
+                words: npt.NDArray[Any] = unigram_rows[:, None]
+            else:  # as tables.words_of(k), from the order below's: one derivation an order
+                suffix, first = tables.suffix_first(k)
+                words = np.empty((len(first), k), dtype=np.int32)
+                words[:, 0] = first
+                del first
+                words[:, 1:] = (np.arange(tables.vsize, dtype=np.int32)[:, None]
+                                if below is None else below)[suffix]
+                del suffix
+                below = words if k < order else None
             rows = unigram_rows if k == 1 else None
             for at in range(0, counts[k - 1], ROWS_PER_BLOCK):
                 part = slice(at, at + ROWS_PER_BLOCK)

@@ -26,6 +26,7 @@ from rescore.lm.counts import OrderCounts
 from rescore.lm.smoothing import OrderStats, Smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
+from rescore.process import give_back_freed_memory
 from rescore.progress import Report, Steps
 
 
@@ -40,9 +41,21 @@ class _Work:
     prob: list[F64] = field(default_factory=list)
     gamma: list[F64] = field(default_factory=list)  # gamma[k-1]: over order-k n-grams
     keep: list[B] = field(default_factory=list)
+    sizes: list[int] = field(default_factory=list)  # n-grams of each order
+    # per order, the n-grams whose count reaches the cutoff (the raw counts are let go as
+    # soon as their order is estimated)
+    counted: list[B] = field(default_factory=list)
     # hash slots of the unpruned keys of some orders, built while finding contexts; the
     # final tables reuse them where an order and every order below it lose nothing
     slots: dict[int, npt.NDArray[np.int32]] = field(default_factory=dict)
+
+
+def _narrow(ids: I64) -> I64:
+    """``ids`` as 32-bit integers where they fit (the same values: every use of the ids
+    indexes with them or widens them first)."""
+    if len(ids) and int(ids.max()) < (1 << 31) and int(ids.min()) >= 0:
+        return ids.astype(np.int32, copy=False)
+    return ids
 
 
 def _keys(suffix: I64, first: I64, v: int) -> npt.NDArray[np.uint64]:
@@ -93,20 +106,32 @@ def estimate(
     cutoffs: Sequence[int] | None,
     prune: float | None,
     progress: Report | None = None,
+    consume: bool = False,
 ) -> tuple[BackoffTables, dict[str, Any]]:
     """The back-off tables and metadata; ``progress`` hears of smoothing, pruning and
-    indexing order by order (see :mod:`rescore.progress`)."""
+    indexing order by order (see :mod:`rescore.progress`).
+
+    With ``consume``, ``counts`` is emptied and its arrays are let go as soon as they are
+    used (the peak memory of a build: the caller keeps no other reference to them)."""
     order = len(counts)
     v = len(vocab)
+    sizes = [len(c) for c in counts]
     smoothing = Steps(progress, "smoothing", order + 1)
     prefixes, slots = _prefixes(counts, v)
-    work = _Work(
-        suffix=[c.suffix for c in counts],
-        first=[c.first for c in counts],
-        prefix=prefixes,
-        raw=[c.count.astype(np.float64) for c in counts],
-        slots=slots,
-    )
+    work = _Work(suffix=[], first=[], prefix=prefixes, raw=[], slots=slots, sizes=sizes)
+    for k, c in enumerate(counts):
+        work.raw.append(c.count.astype(np.float64))
+        if consume:  # the caller's arrays are let go: the ids in half the bytes
+            counts[k] = OrderCounts(c.suffix[:0], c.first[:0], c.count[:0])
+            work.suffix.append(_narrow(c.suffix))
+            work.first.append(_narrow(c.first))
+            work.prefix[k] = _narrow(work.prefix[k])
+        else:
+            work.suffix.append(c.suffix)
+            work.first.append(c.first)
+        del c
+    if consume:
+        counts.clear()
     smoothing()  # the context of every n-gram found
     predictable = np.ones(v, dtype=bool)
     predictable[BOS_ID] = False
@@ -120,7 +145,7 @@ def estimate(
     for k in range(1, order + 1):
         used = _used_counts(work, smoother, k, order)
         prefix = work.prefix[k - 1]
-        n_ctx = 1 if k == 1 else len(counts[k - 2])
+        n_ctx = 1 if k == 1 else sizes[k - 2]
         if k == 1:
             full = np.full(v, order == 1)
         else:
@@ -132,6 +157,8 @@ def estimate(
         if est.fallback:
             meta["fallbacks"][str(k)] = est.fallback
         dropped = work.raw[k - 1] < cut[k - 1]
+        work.counted.append(~dropped)
+        work.raw[k - 1] = work.raw[k - 1][:0]  # the last use of this order's counts
         numer = np.where(dropped, 0.0, est.numer)
         denom = stats.per_context(used) + est.extra
         lost = stats.per_context(est.numer - numer)  # the share of n-grams below a cutoff
@@ -144,18 +171,26 @@ def estimate(
         else:
             work.gamma.append(gamma)
         smoothing()
-    work.gamma.append(np.ones(len(counts[-1])))  # the top order backs off to nothing
+    work.gamma.append(np.ones(0))  # the top order backs off to nothing: no weights
 
     p1 = alphas[0] + gamma0 / n_pred
     p1[~predictable] = 0.0
     work.prob.append(p1)
     for k in range(2, order + 1):
         ctx_gamma = work.gamma[k - 2][work.prefix[k - 1]]
-        work.prob.append(alphas[k - 1] + ctx_gamma * work.prob[k - 2][work.suffix[k - 1]])
+        alpha, alphas[k - 1] = alphas[k - 1], alphas[0][:0]
+        ctx_gamma *= work.prob[k - 2][work.suffix[k - 1]]
+        ctx_gamma += alpha
+        work.prob.append(ctx_gamma)
+        del alpha, ctx_gamma
+    del alphas
 
-    _mark_kept(work, cut)
+    _mark_kept(work)
     if prune is not None and prune > 0:
         _entropy_prune(work, prune, Steps(progress, "pruning", order - 1))
+    # the tables need the words, the probabilities, the weights and what is kept
+    work.prefix = [p[:0] for p in work.prefix]
+    give_back_freed_memory()  # the estimation's temporaries: the peak comes next
     tables = _compact(work, vocab, Steps(progress, "indexing", order))
     meta["uniform_tokens"] = n_pred
     return tables, meta
@@ -163,22 +198,22 @@ def estimate(
 
 def _protect(work: _Work, k: int) -> B:
     """Order-k n-grams that a kept (k+1)-gram needs as its context or its suffix."""
-    need = np.zeros(len(work.raw[k - 1]), dtype=bool)
-    if k < len(work.raw):
+    need = np.zeros(work.sizes[k - 1], dtype=bool)
+    if k < len(work.sizes):
         kept = work.keep[k]
         need[work.suffix[k][kept]] = True
         need[work.prefix[k][kept]] = True
     return need
 
 
-def _mark_kept(work: _Work, cut: list[int]) -> None:
-    order = len(work.raw)
+def _mark_kept(work: _Work) -> None:
+    order = len(work.sizes)
     work.keep = [np.ones(0, bool)] * order
     for k in range(order, 0, -1):
         if k == 1:
-            work.keep[0] = np.ones(len(work.raw[0]), dtype=bool)
+            work.keep[0] = np.ones(work.sizes[0], dtype=bool)
         else:
-            work.keep[k - 1] = (work.raw[k - 1] >= cut[k - 1]) | _protect(work, k)
+            work.keep[k - 1] = work.counted[k - 1] | _protect(work, k)
 
 
 def _marginals(work: _Work) -> list[F64]:
@@ -187,7 +222,7 @@ def _marginals(work: _Work) -> list[F64]:
         first = np.log(work.prob[0])
     first[BOS_ID] = 0.0  # a history that begins a sentence begins with certainty
     out = [first]
-    for k in range(2, len(work.raw) + 1):
+    for k in range(2, len(work.sizes) + 1):
         with np.errstate(divide="ignore"):
             own = np.log(work.prob[k - 1])
         out.append(out[k - 2][work.prefix[k - 1]] + own)
@@ -196,7 +231,7 @@ def _marginals(work: _Work) -> list[F64]:
 
 def _entropy_prune(work: _Work, threshold: float, tick: Steps) -> None:
     """Stolcke (1998): drop n-grams whose removal raises perplexity by less than threshold."""
-    order = len(work.raw)
+    order = len(work.sizes)
     marg = _marginals(work)
     changed: list[B] = [np.zeros(len(g), dtype=bool) for g in work.gamma]
     for k in range(order, 1, -1):
@@ -204,7 +239,7 @@ def _entropy_prune(work: _Work, threshold: float, tick: Steps) -> None:
         prefix, suffix = work.prefix[k - 1], work.suffix[k - 1]
         p = work.prob[k - 1]
         pb = work.prob[k - 2][suffix]
-        n_ctx = len(work.raw[k - 2])
+        n_ctx = work.sizes[k - 2]
         listed = np.bincount(prefix, weights=np.where(keep, p, 0.0), minlength=n_ctx)
         listed_b = np.bincount(prefix, weights=np.where(keep, pb, 0.0), minlength=n_ctx)
         left = np.maximum(1.0 - listed, 0.0)[prefix]  # unlisted mass under h
@@ -233,7 +268,7 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
     prefix = work.prefix[k - 1]
     p = np.where(keep, work.prob[k - 1], 0.0)
     pb = np.where(keep, work.prob[k - 2][work.suffix[k - 1]], 0.0)
-    n_ctx = len(work.raw[k - 2])
+    n_ctx = work.sizes[k - 2]
     left = np.maximum(1.0 - np.bincount(prefix, weights=p, minlength=n_ctx), 0.0)
     left_b = np.maximum(1.0 - np.bincount(prefix, weights=pb, minlength=n_ctx), 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -241,20 +276,35 @@ def _reweigh(work: _Work, k: int, contexts: B) -> None:
     work.gamma[k - 2] = np.where(contexts, new, work.gamma[k - 2])
 
 
+def _let_go(work: _Work, k: int) -> None:
+    """Drop the estimation arrays of order ``k`` (its tables are made)."""
+    for ids in (work.suffix, work.first):
+        ids[k - 1] = ids[k - 1][:0]
+    for values in (work.prob, work.gamma):
+        if len(values) >= k:
+            values[k - 1] = values[k - 1][:0]
+    work.slots.pop(k, None)
+
+
 def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
-    order = len(work.raw)
+    order = len(work.sizes)
     v = len(vocab)
-    # ids of the kept n-grams of each order (the unigrams are all kept)
-    new_ids: list[I64] = [np.arange(v, dtype=np.int64)]
+    # ids of the kept n-grams of each order (None: all kept, the ids are unchanged)
+    new_ids: list[I64 | None] = [None]
     for k in range(2, order):
-        new_ids.append(np.cumsum(work.keep[k - 1]) - 1)
+        keep = work.keep[k - 1]
+        new_ids.append(None if keep.all() else np.cumsum(keep) - 1)
     whole = np.logical_and.accumulate([bool(keep.all()) for keep in work.keep])
 
     def index(k: int) -> tuple[npt.NDArray[np.uint64], npt.NDArray[np.int32]]:
         if k == 1:
             return np.zeros(0, dtype=np.uint64), np.zeros(0, dtype=np.int32)
         keep = work.keep[k - 1]
-        kk = _keys(new_ids[k - 2][work.suffix[k - 1][keep]], work.first[k - 1][keep], v)
+        suffix, first = work.suffix[k - 1], work.first[k - 1]
+        if not keep.all():
+            suffix, first = suffix[keep], first[keep]
+        below = new_ids[k - 2]
+        kk = _keys(suffix if below is None else below[suffix], first, v)
         # no order up to k lost an n-gram: ids and keys are those of the counts
         built = work.slots.get(k) if whole[k - 1] else None
         return kk, built if built is not None else hashindex.build_slots(kk)
@@ -263,15 +313,26 @@ def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
     bow: list[F64] = []
     keys: list[npt.NDArray[np.uint64]] = []
     slots: list[npt.NDArray[np.int32]] = []
-    # the orders' hash tables are independent; numpy releases the GIL while building them
+    # the orders' hash tables are independent; numpy releases the GIL while building them:
+    # two orders at a time, and each order's estimation arrays let go once it is done
     with ThreadPoolExecutor(max_workers=2) as pool:
-        for k, (kk, ss) in enumerate(pool.map(index, range(1, order + 1)), 1):
+        pending = {k: pool.submit(index, k) for k in range(1, min(order, 2) + 1)}
+        for k in range(1, order + 1):
+            kk, ss = pending.pop(k).result()
+            if k + 2 <= order:
+                pending[k + 2] = pool.submit(index, k + 2)
             keep = work.keep[k - 1]
+            every = bool(keep.all())  # then the log is taken in place (the arrays go next)
             with np.errstate(divide="ignore"):
-                logp.append(np.log(work.prob[k - 1][keep]))
+                prob = work.prob[k - 1]
+                logp.append(np.log(prob, out=prob) if every else np.log(prob[keep]))
                 if k < order:
-                    bow.append(np.log(work.gamma[k - 1][keep]))
+                    gamma = work.gamma[k - 1]
+                    bow.append(np.log(gamma, out=gamma) if every else np.log(gamma[keep]))
+                del prob
             keys.append(kk)
             slots.append(ss)
+            del kk, ss
+            _let_go(work, k)
             tick()
     return BackoffTables(vocab, logp, bow, keys, slots)

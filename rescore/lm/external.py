@@ -212,20 +212,34 @@ class KeyCodec:
             keys.append(self.extend(keys[k - 2][t.suffix], t.first))
         return keys
 
-    def tables_of(self, unigram_counts: I64, keys: Sequence[Keys], counts: Sequence[I64]
+    def tables_of(self, unigram_counts: I64, keys: list[Keys], counts: list[I64]
                   ) -> list[OrderCounts]:
-        """Count tables from each order's merged keys and counts (index 0: orders >= 2)."""
+        """Count tables from each order's merged keys and counts (index 0: orders >= 2).
+
+        ``keys`` and ``counts`` are emptied as they are used (an order's keys are let go
+        once the order above has found its suffixes among them), and the tables' ids are
+        32-bit integers where they fit: the peak of a build comes soon after."""
         v = self.vocab_size
         tables = [OrderCounts(np.zeros(v, np.int64), np.arange(v, dtype=np.int64),
                               unigram_counts)]
         below = self.unigrams()
-        for k_keys, k_counts in zip(keys, counts, strict=True):
+        for i in range(len(keys)):
+            k_keys, k_counts = keys[i], counts[i]
+            keys[i], counts[i] = k_keys[:0], k_counts[:0]
             suffix_keys, first = self.split(k_keys)
-            suffix = np.searchsorted(below, suffix_keys).astype(np.int64)
+            suffix = _narrow_ids(np.searchsorted(below, suffix_keys))
             del suffix_keys
-            tables.append(OrderCounts(suffix, first, k_counts))
+            tables.append(OrderCounts(suffix, _narrow_ids(first), k_counts))
+            del first, suffix
             below = k_keys
         return tables
+
+
+def _narrow_ids(ids: I64) -> I64:
+    """``ids`` as 32-bit integers when they fit (the same values)."""
+    if len(ids) < (1 << 31) and (not len(ids) or int(ids.max()) < (1 << 31)):
+        return ids.astype(np.int32)
+    return ids
 
 
 def _be32(ids: npt.NDArray[np.integer[Any]]) -> npt.NDArray[np.uint8]:

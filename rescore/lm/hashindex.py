@@ -30,39 +30,57 @@ def table_bits(n_keys: int) -> int:
     return max(4, int(np.ceil(max(n_keys, 1) / MAX_LOAD) - 1).bit_length())
 
 
-def _home(keys: U64, bits: int) -> I64:
+def home(keys: U64, bits: int) -> I64:
+    """The slot where probing for each key starts in a table of ``2**bits`` slots."""
     with np.errstate(over="ignore"):
         mixed = keys * _GOLDEN
     return (mixed >> np.uint64(64 - bits)).astype(np.int64)
 
 
+BATCH = 1 << 20  # keys inserted, or queries looked up, at a time: temporaries stay small
+
+
 def build_slots(keys: U64) -> I32:
-    """The slot array for ``keys`` (which must be unique): slot -> key position, or -1."""
+    """The slot array for ``keys`` (which must be unique): slot -> key position, or -1.
+
+    Keys go in a batch at a time (the batch's temporaries, not every key's, are held);
+    which slot a key takes depends on the batches, but every look-up finds the same
+    position whatever the layout."""
     bits = table_bits(len(keys))
     mask = (1 << bits) - 1
     slots = np.full(1 << bits, EMPTY, dtype=np.int32)
-    pending = np.arange(len(keys), dtype=np.int64)
-    where = _home(keys, bits)
-    while pending.size:
-        free = slots[where] == EMPTY
-        cand = pending[free]
-        cand_slot = where[free]
-        slots[cand_slot] = cand  # among keys racing for one slot, one write wins
-        won = slots[cand_slot] == cand
-        lost = np.concatenate([pending[~free], cand[~won]])
-        lost_slot = np.concatenate([where[~free], cand_slot[~won]])
-        pending = lost
-        where = (lost_slot + 1) & mask
+    for lo in range(0, len(keys), BATCH):
+        pending = np.arange(lo, min(lo + BATCH, len(keys)), dtype=np.int64)
+        where = home(keys[lo:lo + BATCH], bits)
+        while pending.size:
+            free = slots[where] == EMPTY
+            cand = pending[free]
+            cand_slot = where[free]
+            slots[cand_slot] = cand  # among keys racing for one slot, one write wins
+            won = slots[cand_slot] == cand
+            lost = np.concatenate([pending[~free], cand[~won]])
+            lost_slot = np.concatenate([where[~free], cand_slot[~won]])
+            pending = lost
+            where = (lost_slot + 1) & mask
     return slots
 
 
 def lookup(slots: I32, keys: U64, queries: U64) -> I64:
-    """Position of each query in ``keys``, or -1 where absent."""
+    """Position of each query in ``keys``, or -1 where absent (a batch at a time)."""
+    if len(queries) <= BATCH:
+        return _lookup(slots, keys, queries)
+    result = np.empty(len(queries), dtype=np.int64)
+    for lo in range(0, len(queries), BATCH):
+        result[lo:lo + BATCH] = _lookup(slots, keys, queries[lo:lo + BATCH])
+    return result
+
+
+def _lookup(slots: I32, keys: U64, queries: U64) -> I64:
     bits = len(slots).bit_length() - 1
     mask = len(slots) - 1
     result = np.full(len(queries), -1, dtype=np.int64)
     active = np.arange(len(queries), dtype=np.int64)
-    where = _home(queries, bits)
+    where = home(queries, bits)
     q = queries
     while active.size:
         at = slots[where].astype(np.int64)
@@ -104,7 +122,7 @@ def lookup_values(held: U64, values: I32, queries: U64, missing: int) -> I32:
     gather fewer (the value is read from the slot it was found in)."""
     bits = len(held).bit_length() - 1
     mask = len(held) - 1
-    where = _home(queries, bits)
+    where = home(queries, bits)
     got = held[where]
     out = values[where]
     miss = got != queries
@@ -167,9 +185,10 @@ class BucketIndex:
 
     @classmethod
     def build(cls, keys: U64, key_space: int, *, overwrite: bool = False
-              ) -> tuple[BucketIndex, I64]:
+              ) -> tuple[BucketIndex, npt.NDArray[Any]]:
         """The index of ``keys`` (each below ``key_space``) and the permutation that puts
-        them (and anything stored beside them) in its order: ``keys[perm]``. A key given
+        them (and anything stored beside them) in its order: ``keys[perm]`` (32-bit
+        positions when they fit, else 64-bit). A key given
         twice sets ``duplicates``. ``overwrite`` lets the hashes replace ``keys`` in place
         (less memory; the caller gives the array up)."""
         bits = cls.key_bits(key_space)
@@ -185,25 +204,51 @@ class BucketIndex:
         h &= mask
         count_type = np.uint32 if len(keys) < (1 << 32) else np.uint64
         del keys
-        perm = np.argsort(h)  # introsort: no buffer beside the result (equal keys: any order)
-        # the rests in sorted order, a slice at a time (no sorted copy of every hash)
         rest_type = np.uint32 if shift <= 32 else np.uint64
         rest = np.empty(len(h), dtype=rest_type)
         low = np.uint64((1 << shift) - 1)
-        duplicates = False
-        step = 1 << 20
-        for at in range(0, len(h), step):
-            part = h[perm[max(at - 1, 0):at + step]]
-            duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
-            part &= low
-            rest[at:at + step] = part[1:] if at else part
-        h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
-        starts = np.zeros((1 << b) + 1, dtype=count_type)
-        np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
+        step = 1 << 18  # temporaries of 2 MiB at most
+        place_bits = max(1, (len(h) - 1).bit_length())
+        if bits + place_bits <= 64:
+            # each hash with its position in the low bits, sorted in place: the order of
+            # the hashes (unique keys: the same as an argsort's) at a plain sort's speed
+            h <<= np.uint64(place_bits)
+            for at in range(0, len(h), step):
+                h[at:at + step] |= np.arange(at, min(at + step, len(h)), dtype=np.uint64)
+            h.sort()
+            # the positions (4 bytes each when they fit), the hashes, their rests
+            perm: npt.NDArray[Any] = np.empty(len(h), np.int32 if place_bits < 32 else np.int64)
+            places = np.uint64((1 << place_bits) - 1)
+            for at in range(0, len(h), step):
+                part = h[at:at + step]
+                perm[at:at + step] = part & places
+                part >>= np.uint64(place_bits)  # the hash, in place
+                rest[at:at + step] = part & low
+            duplicates = False
+            for at in range(0, len(h), step):
+                part = h[max(at - 1, 0):at + step]
+                duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
+            h >>= np.uint64(shift)  # each key's bucket, in increasing order
+            starts = np.empty((1 << b) + 1, dtype=count_type)
+            for at in range(0, len(starts), step):  # the first key of each bucket
+                starts[at:at + step] = np.searchsorted(
+                    h, np.arange(at, min(at + step, len(starts)), dtype=np.uint64))
+        else:
+            perm = np.argsort(h)  # introsort: no buffer beside the result
+            # the rests in sorted order, a slice at a time (no sorted copy of every hash)
+            duplicates = False
+            for at in range(0, len(h), step):
+                part = h[perm[max(at - 1, 0):at + step]]
+                duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
+                part &= low
+                rest[at:at + step] = part[1:] if at else part
+            h >>= np.uint64(shift)  # now each key's bucket (the counts need no order)
+            starts = np.zeros((1 << b) + 1, dtype=count_type)
+            np.cumsum(np.bincount(h.view(np.int64), minlength=1 << b), out=starts[1:])
         del h
         index = cls(bits, shift, starts, rest)
         index.duplicates = duplicates
-        return index, perm.astype(np.int64, copy=False)
+        return index, perm
 
     def __len__(self) -> int:
         return len(self.rest)
@@ -225,19 +270,26 @@ class BucketIndex:
         if not len(self.rest):
             return np.full(len(queries), EMPTY, dtype=np.int64)
         h = self._hash(queries)
-        bucket = (h >> np.uint64(self.shift)).astype(np.intp)
         want = (h & np.uint64((1 << self.shift) - 1)).astype(self.rest.dtype)
-        at = self.starts[bucket].astype(np.intp)
-        end = self.starts[bucket + 1].astype(np.intp)
+        h >>= np.uint64(self.shift)
+        bucket = h.view(np.int64)  # each query's bucket, in place
+        at = self.starts.take(bucket).astype(np.intp)
+        bucket += 1
+        end = self.starts.take(bucket).astype(np.intp)
+        del h, bucket
         rest = self.rest
         got = rest.take(at, mode="clip")  # an empty last bucket points one past the end
-        hit = (got == want) & (at < end)
-        result = np.where(hit, at, EMPTY).astype(np.int64, copy=False)
+        live = at < end
+        result = np.where((got == want) & live, at, EMPTY)
+        live &= got < want
+        pending = np.flatnonzero(live)
+        at = at[pending]
         at += 1
-        pending = np.flatnonzero((got < want) & (at < end))
-        at, end, want = at[pending], end[pending], want[pending]
+        end, want = end[pending], want[pending]
+        more = at < end
+        pending, at, end, want = pending[more], at[more], end[more], want[more]
         while pending.size:
-            got = rest[at]
+            got = rest.take(at)
             hit = got == want
             if hit.any():
                 result[pending[hit]] = at[hit]

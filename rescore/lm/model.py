@@ -116,8 +116,8 @@ class NGramModel:
             counted = count_external(recorder, self.order, self._choose_vocab,
                                      closed_vocab=self.closed_vocab, memory=memory,
                                      scratch=scratch, progress=progress)
-            return self.fit_counts(dataclasses.replace(
-                counted, sentence_hashes=recorder.result()), progress=progress)
+            counted = dataclasses.replace(counted, sentence_hashes=recorder.result())
+            return self._fit_counted(counted, progress, consume=True)
         # text from files, not yet read: whole blocks to ids at once
         if isinstance(sentences, Corpus) and sentences.unread:
             blocks = BlockRecorder(clean for _, clean in sentences.blocks())
@@ -134,9 +134,11 @@ class NGramModel:
         ngram_counts = count_ngrams(stream.tokens, floor, self.order, len(vocab),
                                     progress=counting)
         counting.finish()
-        return self.fit_counts(CorpusCounts(
-            vocab, ngram_counts, len(lengths), len(body),
-            int(np.count_nonzero(stream.tokens == UNK_ID)), 0, hashes()), progress=progress)
+        oov = int(np.count_nonzero(stream.tokens == UNK_ID))
+        n_words = len(body)
+        del stream, floor, body  # the counts are all the estimation needs
+        return self._fit_counted(CorpusCounts(vocab, ngram_counts, len(lengths), n_words,
+                                              oov, 0, hashes()), progress, consume=True)
 
     def fit_on_cluster(self, paths: Sequence[str | Path], cluster: str, *,
                        memory: int | None = None, scratch: str | Path | None = None,
@@ -156,7 +158,7 @@ class NGramModel:
             paths, self.order, self._choose_vocab, closed_vocab=self.closed_vocab,
             cluster=cluster, memory=default_memory() if memory is None else memory,
             scratch=scratch, workers=workers, progress=progress)
-        return self.fit_counts(counted, progress=progress)
+        return self._fit_counted(counted, progress, consume=True)
 
     def _choose_vocab(self, words: Sequence[str], counts: npt.NDArray[np.int64]) -> Vocabulary:
         return Vocabulary.from_words(
@@ -167,11 +169,17 @@ class NGramModel:
     def fit_counts(self, counted: CorpusCounts, *, progress: Report | None = None
                    ) -> NGramModel:
         """Learn from n-gram counts already made (by the external or the cluster counter)."""
+        return self._fit_counted(counted, progress, consume=False)
+
+    def _fit_counted(self, counted: CorpusCounts, progress: Report | None, *,
+                     consume: bool) -> NGramModel:
+        """As :meth:`fit_counts`; with ``consume``, the count tables are emptied as they
+        are used (the caller made them for this and keeps no other reference)."""
         self._check_settings()
         tables, meta = estimate(
             counted.tables, make_smoother(self.method, self.k), counted.vocab,
             closed_vocab=self.closed_vocab, cutoffs=self.cutoffs, prune=self.prune,
-            progress=progress,
+            progress=progress, consume=consume,
         )
         self._set_fitted(tables, {
             **meta,

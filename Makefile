@@ -42,6 +42,7 @@ fuzz: $(VENV)/.installed-dev
 
 demo-data: $(VENV)/.installed
 	$(PY) scripts/make_demo_data.py --out fixtures/demo
+	$(PY) scripts/make_kana_demo_data.py --out rescore/demo_data/kana
 
 clean:
 	rm -rf $(VENV) demo-out .pytest_cache .mypy_cache .ruff_cache

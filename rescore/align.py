@@ -60,19 +60,31 @@ class CompiledRules:
     optional: frozenset[str]
     ignore: frozenset[str]
     first_words: frozenset[str]
+    # optional entries of more than one token (the characters of a word, ``unit="char"``)
+    optional_phrases: frozenset[tuple[str, ...]] = frozenset()
 
     @classmethod
-    def of(cls, rules: ScoringRules) -> CompiledRules:
+    def of(cls, rules: ScoringRules, *, unit: str = "word") -> CompiledRules:
+        """The rules compiled for tokens of ``unit``: words, or (``"char"``) characters,
+        where every spelling and optional entry becomes its characters, spaces dropped."""
+        def toks(entry: str) -> tuple[str, ...]:
+            words = rules.normalised(entry)
+            return tuple("".join(words)) if unit == "char" else tuple(words)
+
         phrases: dict[tuple[str, ...], int] = {}
         for gid, group in enumerate(rules.equivalent):
             for spelling in group:
-                words = tuple(rules.normalised(spelling))
+                words = toks(spelling)
                 if words:  # a spelling is in one group only (ScoringRules checks)
                     phrases[words] = gid
-        optional = frozenset(w for entry in rules.optional for w in rules.normalised(entry))
+        entries = {toks(entry) for entry in rules.optional}
+        optional = frozenset(e[0] for e in entries if len(e) == 1)
+        longer = frozenset(e for e in entries if len(e) > 1)
+        # ignored tokens go before the characters are taken (see rescore.counting)
         return cls(phrases=phrases, longest=max(map(len, phrases), default=0),
-                   optional=optional, ignore=frozenset(rules.ignore),
-                   first_words=frozenset(p[0] for p in phrases))
+                   optional=optional, ignore=frozenset(rules.ignore) if unit != "char"
+                   else frozenset(), first_words=frozenset(p[0] for p in phrases),
+                   optional_phrases=longer)
 
     def _spans(self, words: Sequence[str]) -> list[list[tuple[int, int]]]:
         """For each position, the (length, group) of every phrase that starts there."""
@@ -86,6 +98,15 @@ class CompiledRules:
                     out[i].append((n, gid))
         return out
 
+    def _optional_spans(self, words: Sequence[str]) -> list[list[int]]:
+        """For each position, the length of every multi-token optional entry there."""
+        out: list[list[int]] = [[] for _ in words]
+        for i in range(len(words)):
+            for entry in self.optional_phrases:
+                if tuple(words[i:i + len(entry)]) == entry:
+                    out[i].append(len(entry))
+        return out
+
     def kept(self, words: Sequence[str]) -> list[str]:
         """``words`` without the ignored tokens."""
         return [w for w in words if w not in self.ignore]
@@ -94,6 +115,8 @@ class CompiledRules:
         """Whether a rule can apply: an optional reference word, or a spelling of some
         group on each side (ignored tokens already removed)."""
         if any(w in self.optional for w in ref):
+            return True
+        if self.optional_phrases and any(self._optional_spans(ref)):
             return True
         if not self.phrases:
             return False
@@ -107,6 +130,7 @@ class CompiledRules:
         h = [w for w in hyp if w not in self.ignore]
         n, m = len(r), len(h)
         rs, hs = self._spans(r), self._spans(h)
+        skips = self._optional_spans(r) if self.optional_phrases else [[] for _ in r]
         cost: list[list[_Cost]] = [[_WORST] * (m + 1) for _ in range(n + 1)]
         back: list[list[tuple[int, int, WordOp] | None]] = [[None] * (m + 1)
                                                              for _ in range(n + 1)]
@@ -137,6 +161,9 @@ class CompiledRules:
                               WordOp("optional", r[i], None))
                     relax(i, j, i + 1, j, (e + 1, neg_hits, neg_sim),
                           WordOp("delete", r[i], None))
+                    for lo in skips[i]:
+                        relax(i, j, i + lo, j, (e, neg_hits, neg_sim),
+                              WordOp("optional", " ".join(r[i:i + lo]), None))
                 if j < m:
                     relax(i, j, i, j + 1, (e + 1, neg_hits, neg_sim),
                           WordOp("insert", None, h[j]))
@@ -160,15 +187,16 @@ class CompiledRules:
 
 def align_with_rules(
     refs: Sequence[Sequence[str]], hyps: Sequence[Sequence[str]],
-    rules: ScoringRules | None = None,
+    rules: ScoringRules | None = None, *, unit: str = "word",
 ) -> list[Alignment]:
     """Word alignments of hypotheses against references paired by position, under
-    ``rules``; with none (or rules that only normalise) exactly :func:`align_many`'s."""
+    ``rules``; with none (or rules that only normalise) exactly :func:`align_many`'s.
+    ``unit="char"``: the tokens are characters (see :meth:`CompiledRules.of`)."""
     if rules is None or not rules.changes_alignment:
         return align_many(refs, hyps)
     if len(refs) != len(hyps):
         raise ValueError(f"{len(refs)} references for {len(hyps)} hypotheses")
-    compiled = CompiledRules.of(rules)
+    compiled = CompiledRules.of(rules, unit=unit)
     out: list[Alignment | None] = [None] * len(refs)
     plain: list[int] = []
     kept_r: list[list[str]] = []

@@ -13,6 +13,7 @@ from typing import Any
 
 from rescore import pipeline
 from rescore.batch import rescore_batch
+from rescore.counting import counting_of
 from rescore.errors import ParameterError
 from rescore.lm import NGramModel, read_corpus
 from rescore.lm import load_model as _load_model
@@ -25,7 +26,7 @@ from rescore.tune import TuneResult
 from rescore.tune import tune as _tune
 from rescore.version import __version__
 from rescore.weights import LM, Weights, write_weights
-from rescore.wer import WerResult, corpus_wer
+from rescore.wer import WerResult, corpus_wer, summarise
 
 Source = str | Path | Iterable[str]
 NBest = str | Path | Sequence[Utterance]
@@ -292,8 +293,10 @@ def apply_file(nbest: str | Path, out: str | Path, weights: Weights, *,
 
 
 def word_error_rate(nbest_or_references: NBest | Sequence[str],
-        hypotheses: Sequence[str] | None = None) -> WerResult:
-    """Corpus word error rate, text normalised as everywhere in rescore.
+        hypotheses: Sequence[str] | None = None, *, unit: str = "word",
+        rules: str | Path | None = None) -> WerResult:
+    """Corpus word error rate, text normalised as everywhere in rescore (or the character
+    error rate with ``unit="char"``, and under a scoring-rules file with ``rules``).
 
     Parameters
     ----------
@@ -302,6 +305,10 @@ def word_error_rate(nbest_or_references: NBest | Sequence[str],
         at ``best``, is scored), or the reference texts when ``hypotheses`` is given.
     hypotheses : list of str, optional
         Hypothesis texts, one per reference.
+    unit : {"word", "char"}
+        The unit counted: words, or characters with the spaces dropped (CER).
+    rules : str or Path, optional
+        A scoring-rules file (TOML; see :mod:`rescore.rules`).
 
     Returns
     -------
@@ -319,7 +326,20 @@ def word_error_rate(nbest_or_references: NBest | Sequence[str],
     --------
     >>> word_error_rate(["the pump is on"], ["the pump on"]).wer
     0.25
+    >>> word_error_rate(["三号泵"], ["三号"], unit="char").wer
+    0.3333333333333333
     """
+    counting = counting_of(rules, unit)
+    if not counting.plain:
+        if hypotheses is not None:
+            refs_t = [str(r) for r in nbest_or_references]  # type: ignore[union-attr]
+            if len(refs_t) != len(hypotheses):
+                raise ParameterError(f"{len(refs_t)} references for {len(hypotheses)} "
+                                     "hypotheses", field="hypotheses")
+            return summarise(counting.counts(refs_t, list(hypotheses)))
+        found = _items(nbest_or_references, require_references=True)  # type: ignore[arg-type]
+        return summarise(counting.counts([u["reference"] for _, u in found],
+                                         [one_best(u)["text"] for _, u in found]))
     if hypotheses is not None:
         refs = [str(r) for r in nbest_or_references]  # type: ignore[union-attr]
         if len(refs) != len(hypotheses):

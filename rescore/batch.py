@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from rescore.counting import PLAIN, Counting
 from rescore.decode.apply_rule import choose_in_batch
 from rescore.errors import AccountingError, InputError
 from rescore.finite import check_totals
@@ -128,10 +129,12 @@ _TSV_BREAKS = str.maketrans("\t\n\r", "   ")
 
 def rescore_batch(batch: Sequence[tuple[int, Utterance]], *, path: str,
                   lms: Mapping[str, LanguageModel], features: Sequence[str],
-                  weights: Weights) -> tuple[list[Utterance], ListStats]:
+                  weights: Weights, counting: Counting = PLAIN
+                  ) -> tuple[list[Utterance], ListStats]:
     """The batch's records with ``lm``, ``word_count``, ``total`` and ``best`` filled in, and
-    the sign and order counts of their acoustic scores."""
-    m = build_matrix(batch, path=path, lms=lms, features=features).matrix
+    the sign and order counts of their acoustic scores (``word_count`` counts the tokens of
+    ``counting``'s unit: characters for ``char``)."""
+    m = build_matrix(batch, path=path, lms=lms, features=features, counting=counting).matrix
     with np.errstate(over="ignore", invalid="ignore"):  # refused below, naming the weight
         total = totals(m, weights)
     check_totals(total, m, weights.vector(m.names), path=path,

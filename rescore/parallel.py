@@ -32,6 +32,7 @@ import numpy as np
 from rescore.batch import WriteCounts, batches, check_accounting, rescore_batch, write_scored
 from rescore.cluster import dask_client
 from rescore.compression import is_gzip_file
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
 from rescore.leftovers import scratch_folder
 from rescore.listcheck import ListStats
@@ -76,6 +77,7 @@ class ShardTask:
     batch_size: int
     display_path: str
     target: str = ""  # the output the shard is for, named when its disk fills
+    counting: Counting = PLAIN  # the unit of the LMs' tokens and the words column
 
 
 @dataclass(frozen=True)
@@ -115,6 +117,8 @@ def run_shard(task: ShardTask) -> ShardResult:
     parser = RecordParser(task.display_path, task.convention, _refs(task.refs_path),
                           task.require_references, task.limits)
     lms = _models(task.models)
+    for (_, model_path), model in zip(task.models, lms.values(), strict=True):
+        task.counting.check_model(model, path=model_path)
     lines, digests, has_ref = array.array("q"), array.array("q"), bytearray()
     counts = WriteCounts()
     stats = ListStats()
@@ -143,7 +147,8 @@ def run_shard(task: ShardTask) -> ShardResult:
             for batch in batches(records(), task.batch_size):
                 scored, batch_stats = rescore_batch(batch, path=task.display_path, lms=lms,
                                                     features=task.features,
-                                                    weights=task.weights)
+                                                    weights=task.weights,
+                                                    counting=task.counting)
                 stats += batch_stats
                 counts += write_scored(scored, fh, tsv, path=task.display_path,
                                        lines=[line for line, _ in batch])
@@ -266,6 +271,7 @@ def apply_sharded(
     convention: ScoreConvention, header_line: int, limits: ReadLimits, batch_size: int,
     workers: int, cluster: str | None, require_references: bool = False,
     progress: Callable[[int], None] | None = None, shard_bytes: int | None = None,
+    counting: Counting = PLAIN,
 ) -> tuple[int, WriteCounts, ListStats, int]:
     """Rescore ``path`` into ``out`` with shards; returns (utterances, what was written,
     the lists' score counts, shards). The input is cut into at most ``4 * workers``
@@ -276,7 +282,7 @@ def apply_sharded(
                          convention=convention, header_line=header_line, limits=limits,
                          batch_size=batch_size, workers=workers, cluster=cluster,
                          require_references=require_references, progress=progress,
-                         shard_bytes=shard_bytes)
+                         shard_bytes=shard_bytes, counting=counting)
 
 
 def _apply_in(
@@ -285,7 +291,7 @@ def _apply_in(
     refs_path: Path | None, convention: ScoreConvention, header_line: int,
     limits: ReadLimits, batch_size: int, workers: int, cluster: str | None,
     require_references: bool, progress: Callable[[int], None] | None,
-    shard_bytes: int | None,
+    shard_bytes: int | None, counting: Counting = PLAIN,
 ) -> tuple[int, WriteCounts, ListStats, int]:
     runner: _Runner | None = None
     try:
@@ -312,7 +318,7 @@ def _apply_in(
             refs_path=None if refs_path is None else str(refs_path),
             require_references=require_references, models=tuple(models), weights=weights,
             features=tuple(features), batch_size=batch_size, display_path=str(path),
-            target=str(out),
+            target=str(out), counting=counting,
         ) for i, (a, b, first) in enumerate(shards)]
         log.info("%d shards of %s for %s", len(tasks), source,
                  f"cluster {cluster}" if cluster else f"{workers} worker processes")

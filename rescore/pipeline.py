@@ -28,6 +28,7 @@ from rescore.batch import (
     write_scored,
 )
 from rescore.checksum import sha256_file
+from rescore.counting import PLAIN, Counting
 from rescore.decode.choice import Rule
 from rescore.decode.fit import DecodeFit, fit_decoding, read_dev_texts
 from rescore.errors import InputError, ParameterError
@@ -55,7 +56,6 @@ from rescore.scoring import (
     oracle_rows,
 )
 from rescore.shards import count_lines
-from rescore.text import tokens
 from rescore.weights import (
     ACOUSTIC,
     INSERTION_PENALTY,
@@ -69,8 +69,7 @@ from rescore.weights import (
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
-    corpus_wer,
-    utterance_counts,
+    summarise,
     wer_from_totals,
 )
 
@@ -157,8 +156,12 @@ def check_models(weights_path: str | Path, models: Mapping[str, NamedModel], *,
     return other
 
 
-def _models(models: Mapping[str, NamedModel]) -> dict[str, LanguageModel]:
-    return {name: m.model for name, m in models.items()}
+def _models(models: Mapping[str, NamedModel], counting: Counting = PLAIN
+            ) -> dict[str, LanguageModel]:
+    out = {name: m.model for name, m in models.items()}
+    for name, m in models.items():
+        counting.check_model(out[name], path=m.path)
+    return out
 
 
 def check_weighted(weights: Weights, models: Mapping[str, object]) -> list[str]:
@@ -199,7 +202,7 @@ class CheckResult:
 
 def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
                log_base: float | None = None, costs: bool | None = None,
-               batch_size: int = DEFAULT_BATCH) -> CheckResult:
+               batch_size: int = DEFAULT_BATCH, counting: Counting = PLAIN) -> CheckResult:
     depths: Counter[int] = Counter()
     n_utt = n_hyp = 0
     errors_1 = errors_o = words = 0
@@ -209,7 +212,7 @@ def check_file(path: Path, *, refs: Mapping[str, str] | None = None,
                           batch_size):
         if with_refs is None:
             with_refs = "reference" in batch[0][1]
-        built = build_matrix(batch, path=str(path), with_errors=with_refs)
+        built = build_matrix(batch, path=str(path), with_errors=with_refs, counting=counting)
         m = built.matrix
         stats += score_stats(m.column(ACOUSTIC), m.offsets) + text_stats(built.tokens,
                                                                          m.offsets)
@@ -254,7 +257,7 @@ def apply_file(
     refs_path: Path | None = None, log_base: float | None = None, costs: bool | None = None,
     batch_size: int = DEFAULT_BATCH, workers: int = 1, cluster: str | None = None,
     limits: ReadLimits = DEFAULT_LIMITS, progress: Callable[[int], None] | None = None,
-    shard_bytes: int | None = None,
+    shard_bytes: int | None = None, counting: Counting = PLAIN,
 ) -> ApplyResult:
     """Rescore ``path`` into ``out`` (and ``text_path``); both appear only when complete.
 
@@ -262,6 +265,7 @@ def apply_file(
     parallel (see :mod:`rescore.parallel`; ``shard_bytes`` is the least size of a shard);
     the output is the same byte for byte.
     """
+    counting.check_choice(weights.choose)
     features = check_weighted(weights, models)
     if workers > 1 or cluster is not None:
         if refs is not None and refs_path is None:
@@ -274,12 +278,12 @@ def apply_file(
             weights=weights, features=features, text_path=text_path, refs_path=refs_path,
             convention=convention, header_line=header_line, limits=limits,
             batch_size=batch_size, workers=workers, cluster=cluster, progress=progress,
-            shard_bytes=shard_bytes)
+            shard_bytes=shard_bytes, counting=counting)
         return ApplyResult(total, counts.changed, shards, counts.empty, stats,
                            stats.warnings(costs=convention.scores_are_costs))
     if refs_path is not None and refs is None:
         refs = read_refs(refs_path)
-    lms = _models(models)
+    lms = _models(models, counting)
     read = 0
     counts = WriteCounts()
     stats = ListStats()
@@ -291,7 +295,8 @@ def apply_file(
         for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                         limits=limits), batch_size):
             scored, batch_stats = rescore_batch(batch, path=str(path), lms=lms,
-                                                features=features, weights=weights)
+                                                features=features, weights=weights,
+                                                counting=counting)
             stats += batch_stats
             counts += write_scored(scored, written[0], tsv, path=str(path),
                                    lines=[line for line, _ in batch])
@@ -311,36 +316,38 @@ def apply_file(
 
 def wer_file(path: Path, *, refs: Mapping[str, str] | None = None,
              log_base: float | None = None, costs: bool | None = None,
-             batch_size: int = DEFAULT_BATCH) -> WerResult:
+             batch_size: int = DEFAULT_BATCH, counting: Counting = PLAIN) -> WerResult:
     """Corpus WER of the file's output text (:func:`rescore.nbest.output_text`: the chosen
-    text of a choice rule, else the 1-best), counted batch by batch (memory stays flat)."""
+    text of a choice rule, else the 1-best), counted batch by batch (memory stays flat); CER
+    (the same counts, of characters) under ``counting``'s unit ``char``."""
     return _wers(path, [output_text], refs=refs, log_base=log_base, costs=costs,
-                 batch_size=batch_size)[0]
+                 batch_size=batch_size, counting=counting)[0]
 
 
-def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH
-                     ) -> tuple[WerResult, WerResult] | None:
+def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH,
+                     counting: Counting = PLAIN) -> tuple[WerResult, WerResult] | None:
     """WER of a rescored file's first hypotheses (the recognizer's 1-best) and of its output
     text, in one pass; ``None`` when its records carry no references."""
     first = next(iter_nbest(path), None)
     if first is None or "reference" not in first[1]:
         return None
     before, after = _wers(path, [lambda u: u["hypotheses"][0]["text"], output_text],
-                          batch_size=batch_size)
+                          batch_size=batch_size, counting=counting)
     return before, after
 
 
 def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
           refs: Mapping[str, str] | None = None, log_base: float | None = None,
-          costs: bool | None = None, batch_size: int = DEFAULT_BATCH) -> list[WerResult]:
+          costs: bool | None = None, batch_size: int = DEFAULT_BATCH,
+          counting: Counting = PLAIN) -> list[WerResult]:
     """Corpus WER of each way of taking a text from the records, in one pass."""
     totals = np.zeros((len(texts), 4), dtype=np.int64)  # sub, del, ins, hits per way
     n_utt = n_scored = 0
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                     require_references=True), batch_size):
-        refs_words = [tokens(u["reference"]) for _, u in batch]
+        refs_text = [u["reference"] for _, u in batch]
         for k, text in enumerate(texts):
-            counts = utterance_counts(refs_words, [tokens(text(u)) for _, u in batch])
+            counts = counting.counts(refs_text, [text(u) for _, u in batch])
             totals[k] += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
                                                  counts.insertions, counts.hits)]
         n_utt += len(batch)
@@ -356,7 +363,8 @@ def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
     return out
 
 
-def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
+def wer_transcripts(refs_path: Path, hyps_path: Path, *,
+                    counting: Counting = PLAIN) -> WerResult:
     refs = read_refs(refs_path)
     hyps = read_refs(hyps_path)
     missing = sorted(set(refs) - set(hyps))
@@ -369,9 +377,9 @@ def wer_transcripts(refs_path: Path, hyps_path: Path) -> WerResult:
     if not refs:
         raise InputError("no references in the file", path=refs_path)
     ids = list(refs)
-    if not any(tokens(refs[i]) for i in ids):
+    if not any(counting.score_tokens(refs[i]) for i in ids):
         raise InputError(UNDEFINED_WER, path=refs_path)
-    result = corpus_wer([tokens(refs[i]) for i in ids], [tokens(hyps[i]) for i in ids])
+    result = summarise(counting.counts([refs[i] for i in ids], [hyps[i] for i in ids]))
     check_accounting(hyps_path, len(ids), result.utterances, "scored")
     return result
 
@@ -392,14 +400,16 @@ class TuneOutcome:
 
 def load_matrix(path: Path, *, models: Mapping[str, NamedModel], features: Sequence[str],
                 refs: Mapping[str, str] | None = None, log_base: float | None = None,
-                costs: bool | None = None, progress: Advance | None = None) -> FeatureMatrix:
+                costs: bool | None = None, progress: Advance | None = None,
+                counting: Counting = PLAIN) -> FeatureMatrix:
     """The whole tuning set as one compact matrix (records are not kept); ``progress`` is
     called with the number of utterances of each batch scored."""
     parts: list[FeatureMatrix] = []
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                      require_references=True), DEFAULT_BATCH):
-        parts.append(build_matrix(batch, path=str(path), lms=_models(models),
-                                  features=features, with_errors=True).matrix)
+        parts.append(build_matrix(batch, path=str(path), lms=_models(models, counting),
+                                  features=features, with_errors=True,
+                                  counting=counting).matrix)
         if progress is not None:
             progress(len(batch))
     if not parts:
@@ -429,23 +439,27 @@ def tune_file(
     seed: int, refs: Mapping[str, str] | None, log_base: float | None, costs: bool | None,
     weights_path: Path, analysis_path: Path | None, cv_warn: float = 0.01,
     progress: Report | None = None, widen: bool = True, bounds: str | None = None,
-    choose: Rule | None = None,
+    choose: Rule | None = None, counting: Counting = PLAIN,
 ) -> TuneOutcome:
     """Read and score the dev set, tune, write the weights (and the analysis).
 
     ``widen`` lets the grid search widen its grid (see :func:`rescore.tune.widen_grid`);
     ``bounds`` is ``LM_LOW:LM_HIGH,PEN_LOW:PEN_HIGH``, the exact search's box.
+    ``counting`` is the token unit and the scoring rules of the errors (and of the LMs'
+    tokens); both go into the provenance when not the default.
 
     ``progress`` (see :mod:`rescore.progress`) hears of the scoring, utterance by utterance
     (the total is the file's line count), and of the tuning.
     """
+    counting.check_choice(choose)
     extra_lms = [lm_column(n) for n in models if n != LM]
     main_lm = LM if LM in models else None
     box = None if bounds is None else tuning.parse_bounds(bounds, main_lm)
     scoring = Steps(progress, "scoring the dev set",
                     None if progress is None else count_lines(path))
     matrix = load_matrix(path, models=models, features=features, refs=refs,
-                         log_base=log_base, costs=costs, progress=scoring)
+                         log_base=log_base, costs=costs, progress=scoring,
+                         counting=counting)
     scoring.finish()
     check_tunable(matrix, [c for c in matrix.names if c != WORDS], path=str(path))
     stats = score_stats(matrix.column(ACOUSTIC), matrix.offsets)
@@ -460,7 +474,8 @@ def tune_file(
     )
     # one provenance for the weights file and the analysis file: package version,
     # normalisation, data and model checksums, then how the search ran
-    prov = run_provenance(data=[path], models=models, extra=result.search_record())
+    prov = run_provenance(data=[path], models=models, extra=result.search_record(),
+                          counting=counting)
     # decoding: posterior scale, calibration (and the rule) fitted with the tuned weights
     decoding = fit_decoding(matrix, result.weights, read_dev_texts(
         path, refs=refs, log_base=log_base, costs=costs), choose)

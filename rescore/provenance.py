@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from rescore.checksum import sha256_file
+from rescore.counting import PLAIN, Counting
 from rescore.text import NORMALISATION
 from rescore.version import __version__
 from rescore.weights import read_weights
@@ -26,9 +27,11 @@ class HashedModel(Protocol):
     def sha256(self) -> str: ...
 
 
-def header() -> dict[str, Any]:
-    """The package, its version and the text normalisation: every record starts so."""
-    return {"package": "rescore", "version": __version__, "normalisation": NORMALISATION}
+def header(counting: Counting = PLAIN) -> dict[str, Any]:
+    """The package, its version and the text normalisation: every record starts so; then
+    the token unit and the scoring rules, when not the default (words, no rules file)."""
+    return {"package": "rescore", "version": __version__, "normalisation": NORMALISATION,
+            **counting.provenance()}
 
 
 def data_hashes(paths: Iterable[str | Path]) -> dict[str, str]:
@@ -37,9 +40,10 @@ def data_hashes(paths: Iterable[str | Path]) -> dict[str, str]:
 
 
 def run_provenance(*, data: Iterable[Path], models: Mapping[str, HashedModel],
-                   extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+                   extra: Mapping[str, Any] | None = None,
+                   counting: Counting = PLAIN) -> dict[str, Any]:
     """A tuning run's provenance: the header, its data and models, then ``extra``."""
-    out: dict[str, Any] = header() | {
+    out: dict[str, Any] = header(counting) | {
         "data_sha256": data_hashes(data),
         "models": {name: {"path": str(m.path), "sha256": m.sha256} for name, m in models.items()},
     }

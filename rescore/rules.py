@@ -41,7 +41,8 @@ from pydantic import (
 from rescore.errors import InputError
 from rescore.spool import local
 
-Step = Literal["nfc", "lowercase", "apostrophe", "punctuation"]
+Step = Literal["nfc", "nfkc", "lowercase", "apostrophe", "punctuation"]
+STEPS: tuple[Step, ...] = ("nfc", "nfkc", "lowercase", "apostrophe", "punctuation")
 # the order and the steps of rescore.text.tokens (NORMALISATION "nfc-lower-strip-punct-v1")
 DEFAULT_STEPS: tuple[Step, ...] = ("nfc", "lowercase", "apostrophe", "punctuation")
 _KEEP_INSIDE = "'-"  # kept inside a word, stripped at its ends, as in rescore.text
@@ -51,7 +52,9 @@ def normalise_words(text: str, steps: Sequence[Step] = DEFAULT_STEPS,
                     keep_punctuation: Sequence[str] = ()) -> list[str]:
     """The words of ``text`` after the named normalisation steps, applied in the order given.
 
-    ``nfc``: Unicode NFC. ``lowercase``: ``str.lower``. ``apostrophe``: U+2019 becomes
+    ``nfc``: Unicode NFC. ``nfkc``: Unicode NFKC, which also folds compatibility forms
+    (full-width ``ＯＫ`` to ``OK``, half-width katakana to full-width, the ligature ``ﬁ`` to
+    ``fi``); not a default step. ``lowercase``: ``str.lower``. ``apostrophe``: U+2019 becomes
     ``'``. ``punctuation``: every punctuation character (category P*) becomes a space, except
     the marks in ``keep_punctuation`` and ``'`` and ``-``, which survive inside a word only.
     With the default steps the result is :func:`rescore.text.tokens`'s.
@@ -59,6 +62,8 @@ def normalise_words(text: str, steps: Sequence[Step] = DEFAULT_STEPS,
     for step in steps:
         if step == "nfc":
             text = unicodedata.normalize("NFC", text)
+        elif step == "nfkc":
+            text = unicodedata.normalize("NFKC", text)
         elif step == "lowercase":
             text = text.lower()
         elif step == "apostrophe":
@@ -216,7 +221,7 @@ def _first_error(exc: ValidationError) -> tuple[str, str, str]:
         key, msg = msg.split(": ", 1)
         field = key
     elif first["type"] == "literal_error":
-        msg = f"unknown step {first['input']!r}; expected one of {', '.join(DEFAULT_STEPS)}"
+        msg = f"unknown step {first['input']!r}; expected one of {', '.join(STEPS)}"
     return field or "rules", msg, key
 
 

@@ -16,9 +16,10 @@ from typing import Protocol
 
 import numpy as np
 
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError, ParameterError, UsageError
 from rescore.nbest import Utterance
-from rescore.text import tokens, tokens_many, word_counts
+from rescore.text import word_counts
 from rescore.weights import ACOUSTIC, LM, WORDS, Weights
 from rescore.wer import UNDEFINED_WER, word_errors
 
@@ -266,8 +267,12 @@ def build_matrix(
     lms: Mapping[str, LanguageModel] | None = None,
     features: Sequence[str] = (),
     with_errors: bool = False,
+    counting: Counting = PLAIN,
 ) -> Batch:
     """The feature matrix of ``items`` (``(line, utterance)`` pairs from the reader).
+
+    ``counting`` says what a token is (a word, or a character) for the LMs, the words
+    column and the errors, and under which scoring rules the errors are counted.
 
     Columns: acoustic, one per language model, words, then each named feature. A named
     feature missing from a hypothesis is an error naming its line and field, except an
@@ -281,7 +286,7 @@ def build_matrix(
     n = int(offsets[-1])
     values = np.empty((n, len(names)), dtype=np.float64)
     hyps = [hyp for _, utt in items for hyp in utt["hypotheses"]]
-    toks = tokens_many([hyp["text"] for hyp in hyps])
+    toks = counting.lm_tokens_many([hyp["text"] for hyp in hyps])
     values[:, 0] = [hyp["acoustic"] for hyp in hyps]
     first_feature = 1 + len(lms) + 1
     values[:, first_feature - 1] = word_counts(toks)
@@ -301,13 +306,19 @@ def build_matrix(
     ref_words = np.zeros(len(items), dtype=np.int64) if with_errors else None
     if with_errors:
         assert errors is not None and ref_words is not None
+        # the scored tokens are the LM's unless rules normalise or drop tokens their way
+        scored = toks if counting.rules is None else [counting.score_tokens(hyp["text"])
+                                                      for hyp in hyps]
+        # without rules an error count is the edit distance (the method is the same, less
+        # a call per hypothesis)
+        errors_of = word_errors if counting.rules is None else counting.errors
         for u, (line, utt) in enumerate(items):
             if "reference" not in utt:
                 raise InputError("reference needed", path=path, line=line, field="reference")
-            ref = tokens(utt["reference"])
+            ref = counting.score_tokens(utt["reference"])
             ref_words[u] = len(ref)
             for row in range(int(offsets[u]), int(offsets[u + 1])):
-                errors[row] = word_errors(ref, toks[row])
+                errors[row] = errors_of(ref, scored[row])
     for j, model in enumerate(lms.values()):
         values[:, 1 + j] = model.logprob(toks) if n else 0.0
     matrix = FeatureMatrix(names=names, values=values, offsets=offsets,

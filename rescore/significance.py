@@ -192,11 +192,14 @@ def _slot_errors(alignment: Alignment) -> tuple[IntArray, IntArray, npt.NDArray[
         if op.kind == "insert":
             gap_ins[j] += 1
             continue
-        if op.kind == "equal":
-            hit[j] = True
+        # a step the scoring rules count as correct may cover several reference words
+        width = op.ref.count(" ") + 1 if op.kind in ("equivalent", "optional") and op.ref \
+            else 1
+        if op.kind in ("equal", "equivalent", "optional"):
+            hit[j:j + width] = True
         else:
             word_err[j] = 1
-        j += 1
+        j += width
     return word_err, gap_ins, hit
 
 

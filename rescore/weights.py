@@ -230,6 +230,16 @@ def _from_dict(data: object, where: str) -> Weights:
         raise InputError(message, path=where, field=field) from None
 
 
+def read_weights_provenance(path: str | Path) -> dict[str, Any]:
+    """The provenance object of a weights file (empty when it has none)."""
+    try:
+        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise InputError(str(exc), path=str(path)) from None
+    prov = data.get("provenance") if isinstance(data, dict) else None
+    return prov if isinstance(prov, dict) else {}
+
+
 def read_weights_models(path: str | Path) -> dict[str, str]:
     """The SHA-256 of each model the weights were tuned with, by name, as the weights
     file's provenance records them (empty when it records none)."""

@@ -135,8 +135,9 @@ class WordOp:
     Under scoring rules (:mod:`rescore.align`) two more kinds occur: ``equivalent``, where
     ``ref`` and ``hyp`` are spellings of one equivalence group (each may be a phrase, its
     words joined by single spaces), and ``optional``, an optional reference word the
-    hypothesis left out (``hyp`` None). Both are correct words: every reference word of
-    theirs counts as a hit.
+    hypothesis left out (``hyp`` None; with characters as the unit an optional entry of
+    several characters is one step, its characters joined by single spaces). Both are
+    correct words: every reference token of theirs counts as a hit.
     """
 
     kind: OpKind
@@ -145,6 +146,7 @@ class WordOp:
 
 
 _CORRECT = ("equal", "equivalent", "optional")
+_PHRASES = ("equivalent", "optional")  # steps whose words are joined by single spaces
 
 
 @dataclass(frozen=True)
@@ -158,7 +160,7 @@ class Alignment:
 
     @property
     def hits(self) -> int:
-        return sum(1 if op.kind != "equivalent" else op.ref.count(" ") + 1
+        return sum(1 if op.kind == "equal" else op.ref.count(" ") + 1
                    for op in self.ops if op.kind in _CORRECT and op.ref is not None)
 
     @property
@@ -180,12 +182,12 @@ class Alignment:
     @property
     def reference(self) -> list[str]:
         return [w for op in self.ops if op.ref is not None
-                for w in (op.ref.split(" ") if op.kind == "equivalent" else (op.ref,))]
+                for w in (op.ref.split(" ") if op.kind in _PHRASES else (op.ref,))]
 
     @property
     def hypothesis(self) -> list[str]:
         return [w for op in self.ops if op.hyp is not None
-                for w in (op.hyp.split(" ") if op.kind == "equivalent" else (op.hyp,))]
+                for w in (op.hyp.split(" ") if op.kind in _PHRASES else (op.hyp,))]
 
     def counts(self) -> tuple[int, int, int, int]:
         """(substitutions, deletions, insertions, hits), the order of :func:`align_counts`."""

@@ -9,7 +9,11 @@ import numpy as np
 import pytest
 
 from rescore import pipeline
+from rescore.counting import Counting
+from rescore.demo_kana import BUNDLED_KANA
 from rescore.errors import InputError
+from rescore.lm import NGramModel, read_corpus, save_model
+from rescore.lm.corpus import char_sentences
 from rescore.weights import Weights
 
 WEIGHTS = Weights(1.0, 0.0, 0.7, {"first_pass_lm": 4.0})
@@ -165,3 +169,24 @@ def test_reference_missing_in_a_later_shard_names_its_line(tmp_path: Path) -> No
                             workers=2, shard_bytes=100_000)
     assert one.value.line == two.value.line == 2501
     assert sorted(p.name for p in tmp_path.iterdir()) == ["mixed.jsonl"]
+
+
+def test_character_unit_in_workers_byte_identical(tmp_path: Path) -> None:
+    # the second demo's test set, a character model and its unit carried to each worker:
+    # the same bytes as one process; a word run of the character model is refused there too
+    chars = Counting("char")
+    model_path = tmp_path / "chars.lm"
+    model = NGramModel(order=4).fit(char_sentences(read_corpus([BUNDLED_KANA / "train.txt"])))
+    save_model(model.mark_unit("char"), model_path)
+    models = pipeline.load_lms([str(model_path)])
+    weights = Weights(1.0, 0.5, 2.0, {})
+    one, many = tmp_path / "one.jsonl", tmp_path / "many.jsonl"
+    pipeline.apply_file(BUNDLED_KANA / "test.jsonl", one, models=models, weights=weights,
+                        counting=chars)
+    result = pipeline.apply_file(BUNDLED_KANA / "test.jsonl", many, models=models,
+                                 weights=weights, counting=chars, workers=2, shard_bytes=20_000)
+    assert result.shards > 1 and one.read_bytes() == many.read_bytes()
+    with pytest.raises(InputError, match="built on characters"):
+        pipeline.apply_file(BUNDLED_KANA / "test.jsonl", tmp_path / "w.jsonl", models=models,
+                            weights=weights, workers=2, shard_bytes=20_000)
+    assert not (tmp_path / "w.jsonl").exists()

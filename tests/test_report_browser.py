@@ -429,3 +429,31 @@ def test_hostile_text_stays_text_in_chromium(browser: DevTools, tmp_path: Path) 
     assert page.evaluate("document.querySelectorAll('img').length") == 0
     # the filter finds the hostile utterance by its id, as text
     assert page.show("all", "row7<script>") == 1
+
+
+def test_right_to_left_transcripts_render_right_to_left_in_chromium(
+        browser: DevTools, tmp_path: Path) -> None:
+    # dir="auto" on a transcript cell (HTML Living Standard: the direction of the first
+    # strong character, here a Hebrew letter of bidirectional class R) makes Chromium lay
+    # the Hebrew utterance out right to left, and leaves the English one left to right
+    rows = [("u-he", "המשאבה נסגרה בשעה שלוש", "המשאבה נפתחה בשעה שלוש"),
+            ("u-en", "pump two closed", "pump to closed")]
+    before = [Pair.from_text(i, r, h) for i, r, h in rows]
+    after = [Pair.from_text(i, r, r) for i, r, _ in rows]
+    out = tmp_path / "report"
+    write_report(build_report(before, after, resamples=200, seed=0), out)
+    page = Page(browser, out / "report.html")
+    assert page.errors() == []
+    directions = page.evaluate(
+        "Array.from(document.querySelectorAll('li.utt')).map(li => [li.id,"
+        " Array.from(li.querySelectorAll('table.words td:nth-child(2)'))"
+        ".map(td => getComputedStyle(td).direction)])")
+    assert directions == [["u0", ["rtl", "rtl", "rtl"]], ["u1", ["ltr", "ltr", "ltr"]]]
+    # laid out right to left: the first word of the reference sits right of the second
+    order = page.evaluate(
+        "(() => { const td = document.querySelector('#u0 table.words td:nth-child(2)');"
+        " const r = document.createRange(); const t = td.firstChild;"
+        " r.setStart(t, 0); r.setEnd(t, 1); const first = r.getBoundingClientRect().left;"
+        " r.setStart(t, t.length - 1); r.setEnd(t, t.length);"
+        " return first > r.getBoundingClientRect().left; })()")
+    assert order is True

@@ -63,7 +63,7 @@ def test_empty_file_is_the_plain_rule() -> None:
     (b"equivalent = [['ok', 'okay'], ['alright']]\n",
      "team.toml:1: equivalent[1]: ['alright'] needs at least two spellings"),
     (b"\n\nnormalise = ['nfc', 'casefold']\n",
-     "team.toml:3: normalise[1]: unknown step 'casefold'; expected one of nfc, lowercase"),
+     "team.toml:3: normalise[1]: unknown step 'casefold'; expected one of nfc, nfkc, lowercase"),
     (b"optional = ['uh huh']\n", "team.toml:1: optional[0]: 'uh huh' must be one token"),
     (b"keep_punctuation = ['ab']\n",
      "team.toml:1: keep_punctuation[0]: 'ab' is not one punctuation character"),

@@ -25,9 +25,13 @@ from rescore.cli.options import (
     NbestArg,
     NbestOutOpt,
     RefsOpt,
+    RulesOpt,
+    UnitOpt,
     WeightsOutOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
+from rescore.counting import characters, counting_of, in_unit, unit_name
+from rescore.demo_kana import run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
 from rescore.lm.overlap import overlap_summary
@@ -36,7 +40,7 @@ from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.scoring import oov_features
 from rescore.shards import count_lines
-from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights
+from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights, read_weights_provenance
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -60,6 +64,11 @@ def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) ->
 WER_COLUMNS = ["", "ref words", "errors", "WER", "sub", "del", "ins"]
 
 
+def _columns(unit: str) -> list[str]:
+    """The WER table's columns in the unit's words (CER, ref chars under ``char``)."""
+    return [in_unit(c, unit) for c in WER_COLUMNS]
+
+
 @guarded
 def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           costs: CostsOpt = None, as_json: JsonOpt = False,
@@ -67,31 +76,40 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
           lm: Annotated[list[Path] | None, typer.Option(
               "--lm", help="Count the references found verbatim in this LM's training text "
               "(repeatable).", show_default=False)] = None,
-          warn_overlap: WarnOverlapOpt = "1%") -> None:
+          warn_overlap: WarnOverlapOpt = "1%", rules: RulesOpt = None,
+          unit: UnitOpt = "word") -> None:
     """Validate an N-best file: counts, list depths, 1-best and oracle WER with references."""
+    counting = counting_of(rules, unit)
     threshold = gate_rate(warn_overlap, "--warn-overlap") or 0.0
     if lm and str(nbest) == "-":
         raise UsageError("check --lm reads the references a second time: give a file, not -")
     ref_map = _refs(refs)
     result = pipeline.check_file(nbest, refs=ref_map, log_base=log_base, costs=costs,
-                                 batch_size=batch_size)
-    overlap = None if not lm else overlap_summary(
-        [(str(p), load_model(p)) for p in lm],
-        reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs),
-        threshold=threshold)
+                                 batch_size=batch_size, counting=counting)
+    overlap = None
+    if lm:
+        loaded = [(str(p), load_model(p)) for p in lm]
+        for path, model in loaded:
+            counting.check_model(model, path=path)
+        sentences = reference_sentences(nbest, refs=ref_map, log_base=log_base, costs=costs)
+        if counting.unit == "char":  # a character model holds its sentences' characters
+            sentences = [characters(s) for s in sentences]
+        overlap = overlap_summary(loaded, sentences, threshold=threshold)
     for line in [] if overlap is None else overlap.warnings():
         warn(line)
     _warn(result.warnings)
     if as_json:
-        emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()}))
+        emit_json(result.to_dict() | ({} if overlap is None else {"overlap": overlap.to_dict()})
+                  | counting.provenance())
         return
+    rate = unit_name(counting.unit)
     table(f"{nbest}", ["", "value"], [
         ["utterances", result.utterances],
         ["hypotheses", result.hypotheses],
         ["max depth", result.max_depth],
         ["mean depth", result.hypotheses / max(result.utterances, 1)],
-        ["1-best WER", pct(result.one_best_wer)],
-        ["oracle WER", pct(result.oracle_wer)],
+        [f"1-best {rate}", pct(result.one_best_wer)],
+        [f"oracle {rate}", pct(result.oracle_wer)],
         *([] if overlap is None else [
             ["references in the LM text", f"{overlap.found} of {overlap.references} "
              f"({pct(overlap.share)})"]]),
@@ -162,26 +180,32 @@ def apply(
         "--no-wer", help="Skip the WER before and after: with references, it reads the output "
         "back once (about half again the rescoring time on large files).")] = False,
     as_json: JsonOpt = False,
+    unit: UnitOpt = "word",
 ) -> None:
     """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
     index; with references, print the WER before and after."""
+    counting = counting_of(None, unit)
     if as_json and str(out) == "-":
         raise UsageError("--json and -o - would both write to standard output: give -o FILE")
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
+    # weights tuned at one unit weigh the tokens of that unit: refuse the other
+    counting.check_record(read_weights_provenance(weights), "the weights", path=weights,
+                          rules=False)
     for other in pipeline.check_models(weights, models, allow_other=allow_other_model):
         info(f"warning: {weights}: {other.describe()} (--allow-other-model)")
     with progress("rescoring", count_lines(nbest) if sys.stdout.isatty() else None) as step:
         result = pipeline.apply_file(nbest, out, models=models, weights=w, text_path=text,
                                      refs_path=refs, log_base=log_base, costs=costs,
                                      batch_size=batch_size, workers=workers, cluster=cluster,
-                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)))
+                                     progress=step, shard_bytes=round(shard_mb * (1 << 20)),
+                                     counting=counting)
     _warn(result.warnings)
     # with references, the WER of the recognizer's 1-best and of the output (read back from
     # the output just written; nothing to read back when it went to standard output)
     # (or a FIFO, a terminal, /proc/self/fd/1: only a regular file, not stdout, is read back)
-    wers = (pipeline.before_after_wer(out, batch_size=batch_size)
+    wers = (pipeline.before_after_wer(out, batch_size=batch_size, counting=counting)
             if not no_wer and _readable_output(out) else None)
     if as_json:
         emit_json({"utterances": result.utterances, "changed": result.changed,
@@ -189,7 +213,7 @@ def apply(
                    "before": None if wers is None else wers[0].to_dict(),
                    "after": None if wers is None else wers[1].to_dict()})
     elif wers is not None:
-        table(f"{out}: WER before and after", WER_COLUMNS,
+        table(f"{out}: {unit_name(counting.unit)} before and after", _columns(counting.unit),
               _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
                          ("after (rescored)", wers[1].to_dict())]))
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
@@ -205,24 +229,28 @@ def wer(
     hyps: Annotated[Path | None, typer.Option(
         "--hyps", help="Transcripts as 'id<TAB>text' lines (with --refs).")] = None,
     log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
-    batch_size: BatchOpt = DEFAULT_BATCH,
+    batch_size: BatchOpt = DEFAULT_BATCH, rules: RulesOpt = None, unit: UnitOpt = "word",
 ) -> None:
-    """Word error rate of an N-best file's 1-best, or of a transcript file against --refs."""
+    """Word error rate of an N-best file's 1-best, or of a transcript file against --refs
+    (character error rate with --unit char)."""
+    counting = counting_of(rules, unit)
     if (nbest is None) == (hyps is None):
         raise UsageError("give either an N-best file or --refs FILE --hyps FILE")
     if hyps is not None:
         if refs is None:
             raise UsageError("--hyps needs --refs")
-        result = pipeline.wer_transcripts(refs, hyps)
+        result = pipeline.wer_transcripts(refs, hyps, counting=counting)
     else:
         assert nbest is not None
         result = pipeline.wer_file(nbest, refs=_refs(refs), log_base=log_base, costs=costs,
-                                   batch_size=batch_size)
+                                   batch_size=batch_size, counting=counting)
     if as_json:
-        emit_json(result.to_dict())
+        # the contract's keys (a CER under --unit char: counts of characters), then how
+        # they were counted when not the default
+        emit_json(result.to_dict() | counting.provenance())
         return
     label = "transcripts" if hyps is not None else "1-best"
-    table(None, WER_COLUMNS, _wer_rows([(label, result.to_dict())]))
+    table(None, _columns(counting.unit), _wer_rows([(label, result.to_dict())]))
 
 
 @guarded
@@ -264,8 +292,11 @@ def tune(
     refs: RefsOpt = None, log_base: LogBaseOpt = None, costs: CostsOpt = None,
     choose: ChooseOpt = None,
     as_json: JsonOpt = False,
+    rules: RulesOpt = None,
+    unit: UnitOpt = "word",
 ) -> None:
     """Tune LM weight and insertion penalty (and feature weights) on a dev set."""
+    counting = counting_of(rules, unit)
     models = pipeline.load_lms(lm or [])
     if oov_feature:
         if not models:
@@ -279,7 +310,7 @@ def tune(
             log_base=log_base, costs=costs, weights_path=out, analysis_path=analysis,
             cv_warn=cv_gap_rate(warn_cv_gap),
             progress=report, widen=not no_widen, bounds=bounds,
-            choose=None if choose is None else rule_value(choose),
+            choose=None if choose is None else rule_value(choose), counting=counting,
         )
     data = outcome.to_dict()
     _warn(outcome.warnings)
@@ -288,18 +319,19 @@ def tune(
     if as_json:
         emit_json({k: data[k] for k in pipeline.TUNE_JSON_KEYS if k in data} | {
             k: data.get(k) for k in ("cv_wer", "cv_gap", "cv_warning", "edge_warning",
-                                     "widenings", "warnings")})
+                                     "widenings", "warnings")} | counting.provenance())
     else:
         gap = data.get("cv_gap")
+        rate = unit_name(counting.unit)
         table(f"tuned on {nbest} ({data['search']} search)", ["", "value"], [
             ["LM weight", data[LM_WEIGHT]],
             ["insertion penalty", data[INSERTION_PENALTY]],
             *[[f"feature {k}", v] for k, v in data["features"].items()],
-            ["1-best WER", pct(data["one_best_wer"])],
-            ["dev WER (tuned)", pct(data["dev_wer"])],
-            ["cross-validated WER", pct(data.get("cv_wer"))],
+            [f"1-best {rate}", pct(data["one_best_wer"])],
+            [f"dev {rate} (tuned)", pct(data["dev_wer"])],
+            [f"cross-validated {rate}", pct(data.get("cv_wer"))],
             ["cross-validated - dev", "-" if gap is None else f"{100 * gap:+.2f} points"],
-            ["oracle WER", pct(data["oracle_wer"])],
+            [f"oracle {rate}", pct(data["oracle_wer"])],
             *decoding_rows(outcome.decoding),
         ])
     for key in ("cv_warning", "edge_warning"):
@@ -316,8 +348,19 @@ def demo(
         "--data", metavar="DIR",
         help="Scenario data folder (default: the bundled scenario).")] = None,
     as_json: JsonOpt = False,
+    scenario: Annotated[str, typer.Option(
+        "--scenario", metavar="larkspur|kana",
+        help="larkspur: the English logbook, in words; kana: the Midoridani mushroom "
+        "cellar's Japanese log, written without spaces, in characters (CER).")] = "larkspur",
 ) -> None:
-    """The whole job on the bundled Larkspur Growhouse logbook: build, tune, rescore, report."""
+    """The whole job on a bundled scenario (the Larkspur Growhouse logbook by default):
+    build, tune, rescore, report."""
+    if scenario not in ("larkspur", "kana"):
+        raise UsageError(f"unknown scenario {scenario!r}; expected larkspur or kana",
+                         field="--scenario")
+    if scenario == "kana":
+        _kana_demo(out, data, as_json)
+        return
     result = demo_lib.run_demo(out, data_dir=data, progress=info)
     if as_json:
         emit_json(result.summary)
@@ -346,6 +389,24 @@ def demo(
             info("mixture weights (EM on dev.txt): " + ", ".join(
                 f"{k} {v:.4f}" for k, v in mixed["mixture_weights"].items()))
     info(f"outputs in {out}/ (summary.json, models, weights, rescored files, report)")
+
+
+def _kana_demo(out: Path, data: Path | None, as_json: bool) -> None:
+    result = run_kana_demo(out, data_dir=data, progress=info)
+    if as_json:
+        emit_json(result.summary)
+        return
+    s = result.summary
+    heading = "Midoridani mushroom cellar" if data is None else str(data)
+    table(f"{heading} test set: before and after rescoring, in characters",
+          _columns("char"),
+          _wer_rows([("before (recognizer 1-best)", result.before.to_dict()),
+                     ("after (rescored)", result.after.to_dict()),
+                     ("oracle (best in list)", result.oracle.to_dict())]))
+    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
+         f"CER {pct(s['cer_before'])} -> {pct(s['cer_after'])} on {s['utterances']} "
+         "utterances")
+    info(f"outputs in {out}/ (summary.json, character model, weights, rescored file, report)")
 
 
 def register(app: typer.Typer, lm_app: typer.Typer) -> None:

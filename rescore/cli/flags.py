@@ -21,6 +21,9 @@ FLAGS: dict[str, str] = {
     "refs_path": "--refs",
     "cluster": "--cluster",
     "quantize": "--quantize",
+    "unit": "--unit",
+    "choose": "--choose",
+    "rules": "--rules",
 }
 
 

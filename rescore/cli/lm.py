@@ -8,6 +8,8 @@ from typing import Annotated, Any
 import typer
 
 from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
+from rescore.cli.options import UnitOpt
+from rescore.counting import Counting, characters, parse_unit
 from rescore.errors import UsageError
 from rescore.lm import (
     NGramModel,
@@ -19,6 +21,7 @@ from rescore.lm import (
     store,
     write_sentence_scores,
 )
+from rescore.lm.corpus import char_sentences
 from rescore.lm.external import MIN_MEMORY, default_memory, parse_size
 from rescore.lm.mix import mix_models
 from rescore.outputs import check_outputs
@@ -58,10 +61,11 @@ def _lines(paths: list[Path]) -> int | None:
     return None if any(c is None for c in counts) else sum(c or 0 for c in counts)
 
 
-def _vocab_words(path: Path | None) -> list[str] | None:
+def _vocab_words(path: Path | None, unit: str = "word") -> list[str] | None:
     if path is None:
         return None
-    return [w for _, line in iter_text_lines(path) for w in tokens(line)]
+    words = [w for _, line in iter_text_lines(path) for w in tokens(line)]
+    return list(dict.fromkeys(characters(words))) if unit == "char" else words
 
 
 _Text = Annotated[list[Path], typer.Argument(
@@ -129,14 +133,19 @@ def build(
     cluster: _Cluster = None,
     workers: _Workers = None,
     quantize: _Quantize = None,
+    unit: UnitOpt = "word",
     as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False,
 ) -> None:
-    """Train an n-gram language model."""
+    """Train an n-gram language model (on characters with --unit char)."""
+    token_unit = parse_unit(unit)
+    if token_unit == "char" and cluster is not None:
+        raise UsageError("--cluster counts words; build a character model without it",
+                         field="--unit")
     _check_bits(quantize)
     check_outputs([output], [*text, vocab])
     budget = default_memory() if memory is None else _memory_size(memory)
     model = NGramModel(
-        order, method, k=k, vocab=_vocab_words(vocab), max_vocab=max_vocab,
+        order, method, k=k, vocab=_vocab_words(vocab, token_unit), max_vocab=max_vocab,
         min_count=min_count, closed_vocab=closed_vocab, cutoffs=_cutoffs(cutoffs), prune=prune,
     )
     lines = _lines(text) if bars_shown() and cluster is None else None
@@ -147,8 +156,10 @@ def build(
             model.fit_on_cluster(text, cluster, memory=budget, scratch=scratch,
                                  workers=workers, progress=report)
         else:
-            model.fit(read_corpus(text, progress=Steps(report, "reading text", lines)),
+            corpus = read_corpus(text, progress=Steps(report, "reading text", lines))
+            model.fit(corpus if token_unit == "word" else char_sentences(corpus),
                       progress=report, memory=budget, scratch=scratch)
+    model.mark_unit(token_unit)
     if quantize is not None:
         model.quantize(quantize)
     save_model(model, output)
@@ -184,16 +195,21 @@ def perplexity_cmd(
         "--per-sentence", metavar="FILE",
         help="Also write one JSON line per sentence: line, text, words, tokens, oov, "
              "log10_prob.")] = None,
+    unit: UnitOpt = "word",
 ) -> None:
-    """Perplexity, log10 probability, token and OOV counts of a text."""
+    """Perplexity, log10 probability, token and OOV counts of a text (per character with
+    --unit char)."""
+    token_unit = parse_unit(unit)
     model = load_model(model_path)
+    Counting(token_unit).check_model(model, path=model_path)
     if scores_out is None:
-        result = perplexity(model, read_corpus(text))
+        corpus = read_corpus(text)
+        result = perplexity(model, corpus if token_unit == "word" else char_sentences(corpus))
     else:
-        result = write_sentence_scores(model, text, scores_out)
+        result = write_sentence_scores(model, text, scores_out, unit=token_unit)
         info(f"wrote {scores_out}: {result.sentences} sentences")
     if as_json:
-        emit_json(result.to_dict())
+        emit_json(result.to_dict() | Counting(token_unit).provenance())
         return
     table(None, ["measure", "value"], [
         ("perplexity", result.perplexity),
@@ -300,6 +316,8 @@ def mix(
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",
                          field="--tune-on")
     loaded = [load_model(p) for p in models]
+    for path, model in zip(models, loaded, strict=True):
+        Counting().check_model(model, path=path)  # the mixture's text is read as words
     text = None if tune_on is None else list(read_corpus(tune_on))
     _, merged, result = mix_models(loaded, text, weights=_weights(weights))
     save_model(merged, output)

@@ -26,3 +26,10 @@ NbestOutOpt = Annotated[Path, typer.Option(
     help="N-best file to write (.jsonl, .jsonl.gz compressed; '-' for standard output).")]
 BatchOpt = Annotated[int, typer.Option("--batch-size", min=1,
                                        help="Utterances held in memory at once.")]
+RulesOpt = Annotated[Path | None, typer.Option(
+    "--rules", metavar="FILE", help="Scoring rules (TOML): equivalent spellings, optional "
+    "and ignored words, normalisation steps; their name and SHA-256 go into the provenance.",
+    show_default=False)]
+UnitOpt = Annotated[str, typer.Option(
+    "--unit", metavar="word|char", help="Unit of counting and scoring: words, or characters "
+    "with spaces dropped (character LMs and CER, for scripts written without spaces).")]

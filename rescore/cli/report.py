@@ -10,7 +10,8 @@ import typer
 
 from rescore import pipeline
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
-from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt
+from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt, RulesOpt, UnitOpt
+from rescore.counting import counting_of, unit_name
 from rescore.errors import GateError, UsageError
 from rescore.outputs import check_not_inputs
 from rescore.report import FILES, report_files
@@ -80,8 +81,11 @@ def report(
     log_base: LogBaseOpt = None,
     costs: CostsOpt = None,
     as_json: JsonOpt = False,
+    rules: RulesOpt = None,
+    unit: UnitOpt = "word",
 ) -> None:
     """Release report of BEFORE against AFTER: JSON, Markdown and self-contained HTML."""
+    counting = counting_of(rules, unit)
     max_wer_rate = gate_rate(max_wer, "--max-wer")
     max_regression_rate = gate_rate(max_regression, "--max-regression")
     overlap_threshold = gate_rate(warn_overlap, "--warn-overlap")
@@ -98,7 +102,8 @@ def report(
                             terms=terms, models=lms, overlap_threshold=overlap_threshold or 0.0,
                             resamples=resamples, seed=seed, max_wer=max_wer_rate,
                             max_regression=max_regression_rate, log_base=log_base,
-                            costs=costs, progress=report_progress)
+                            costs=costs, progress=report_progress,
+                            counting=counting)
     result = made.report
     data = result.to_dict()
     if as_json:
@@ -107,7 +112,8 @@ def report(
     else:
         d = result.difference
         table(None, ["", "before", "after", "change"], [
-            ("WER", pct(result.before.wer), pct(result.after.wer), points(d.absolute)),
+            (unit_name(counting.unit), pct(result.before.wer), pct(result.after.wer),
+             points(d.absolute)),
             ("interval of the change", "", "", interval(d.ci_low, d.ci_high)),
             ("probability of improvement", "", "",
              share_of_resamples(d.probability_of_improvement, result.bootstrap.resamples)),

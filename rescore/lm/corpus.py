@@ -83,4 +83,11 @@ def read_corpus(paths: str | Path | Iterable[str | Path], *,
     return Corpus(list(paths), progress)
 
 
-__all__ = ["Corpus", "read_corpus"]
+def char_sentences(sentences: Iterable[Sequence[str]]) -> Iterator[list[str]]:
+    """Each sentence's characters, the spaces between its words dropped: the tokens of a
+    character model (``lm build --unit char``)."""
+    for words in sentences:
+        yield [c for w in words for c in w]
+
+
+__all__ = ["Corpus", "char_sentences", "read_corpus"]

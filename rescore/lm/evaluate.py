@@ -191,17 +191,38 @@ def summarise(scores: Iterable[SentenceScore]) -> PerplexityResult:
     return _result(np.array(log10s, dtype=np.float64), n_tokens, n_oov, n_words)
 
 
-def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path
-                          ) -> PerplexityResult:
+def _char_scores(model: NGramModel, corpus: Corpus) -> Iterator[tuple[int, SentenceScore]]:
+    """(line, score) of each sentence scored as its characters, spaces dropped: ``text``
+    is its normalised words, ``words`` its characters (the unit's tokens)."""
+    for first_line, clean in corpus.blocks():
+        found = clean_words(clean)
+        flat, bounds = found.flat, found.bounds.tolist()
+        lines = [(first_line + i, flat[a:b]) for i, (a, b) in enumerate(pairwise(bounds))
+                 if b > a]
+        sentences = [[c for w in words for c in w] for _, words in lines]
+        for (line, words), sc in zip(lines, sentence_scores(model, sentences), strict=True):
+            yield line, SentenceScore(" ".join(words), sc.words, sc.tokens, sc.oov,
+                                      sc.log10_prob)
+
+
+def write_sentence_scores(model: NGramModel, text: str | Path, out: str | Path,
+                          unit: str = "word") -> PerplexityResult:
     """Score ``text`` and write one JSON object per sentence to ``out``, atomically.
 
     Each line holds the sentence's ``line`` in ``text`` (blank lines are skipped, as in
     :func:`read_corpus`) and the keys of :meth:`SentenceScore.to_dict`. Returns the totals.
+    ``unit="char"`` scores each sentence as its characters (a character model).
     """
 
     with atomic_output(out) as fh:
 
         def written() -> Iterator[SentenceScore]:
+            if unit == "char":
+                for line, sc in _char_scores(model, read_corpus(text)):
+                    fh.write(json.dumps({"line": line, **sc.to_dict()}, ensure_ascii=False,
+                                        allow_nan=False) + "\n")
+                    yield sc
+                return
             for b in _text_batches(model, read_corpus(text)):
                 for i, (line, words) in enumerate(zip(b.lines.tolist(), b.texts(),
                                                       strict=True)):

@@ -237,6 +237,25 @@ class NGramModel:
         return tables
 
     @property
+    def unit(self) -> str | None:
+        """The token the model was trained on: ``word`` (a native file without the key),
+        ``char``, or None for a model read from ARPA text, which does not say."""
+        self._fitted()
+        unit = self.metadata_.get("unit")
+        if unit is not None:
+            return str(unit)
+        return None if self.method == "arpa" else "word"
+
+    def mark_unit(self, unit: str) -> NGramModel:
+        """Record the token unit in the metadata (``word``, the default, is left unsaid
+        so word models keep their bytes)."""
+        self._fitted()
+        if unit != "word":
+            self.metadata_["unit"] = unit
+            self._checksum = None
+        return self
+
+    @property
     def metadata(self) -> dict[str, Any]:
         self._fitted()
         return dict(self.metadata_)

@@ -20,6 +20,9 @@ MIN_GROUP_UTTERANCES = 30
 
 
 KINDS = ("substitution", "deletion", "insertion")
+# steps the scoring rules count as correct (rescore.align): no errors, but listed apart so
+# a reader sees how much the rules forgave
+RULE_KINDS = ("equivalent", "optional")
 
 
 @dataclass(frozen=True)
@@ -92,15 +95,21 @@ class Breakdown:
     worsened: tuple[str, ...]
     by_meta: Mapping[str, tuple[GroupRow, ...]]
     meta_skipped: tuple[SkippedKey, ...] = ()
+    # what the scoring rules counted as correct (kinds RULE_KINDS; an optional word left
+    # out has an empty hypothesis), counted in both systems; empty without such rules
+    rule_matches: tuple[Confusion, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
-        return {
+        out = {
             "confusions": [c.to_dict() for c in self.confusions],
             "most_improved": list(self.improved),
             "most_worsened": list(self.worsened),
             "by_meta": {k: [r.to_dict() for r in rows] for k, rows in self.by_meta.items()},
             "by_meta_skipped": [k.to_dict() for k in self.meta_skipped],
         }
+        if self.rule_matches:  # only under rules that change the alignment
+            out["rule_matches"] = [c.to_dict() for c in self.rule_matches]
+        return out
 
 
 def _count(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
@@ -116,13 +125,33 @@ def _count(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
     return counts
 
 
+def _count_ruled(alignments: Sequence[Alignment]) -> Counter[tuple[str, str, str]]:
+    counts: Counter[tuple[str, str, str]] = Counter()
+    for al in alignments:
+        for op in al.ops:
+            if op.kind in RULE_KINDS and op.ref is not None:
+                counts[(op.kind, op.ref, op.hyp or "")] += 1
+    return counts
+
+
 def confusion_table(before: Sequence[Alignment], after: Sequence[Alignment],
                     top: int = TOP) -> tuple[Confusion, ...]:
     """The ``top`` most frequent errors of either system, each counted in both: ranked by
     the larger of its two counts, then by its count before, kind and words."""
-    b, a = _count(before), _count(after)
+    return _ranked(_count(before), _count(after), KINDS, top)
+
+
+def rule_table(before: Sequence[Alignment], after: Sequence[Alignment],
+               top: int = TOP) -> tuple[Confusion, ...]:
+    """The ``top`` most frequent steps the scoring rules counted as correct, each counted
+    in both systems and ranked as :func:`confusion_table` ranks errors."""
+    return _ranked(_count_ruled(before), _count_ruled(after), RULE_KINDS, top)
+
+
+def _ranked(b: Counter[tuple[str, str, str]], a: Counter[tuple[str, str, str]],
+            kinds: tuple[str, ...], top: int) -> tuple[Confusion, ...]:
     keys = sorted(set(b) | set(a), key=lambda k: (-max(b[k], a[k]), -b[k],
-                                                 KINDS.index(k[0]), k[1], k[2]))
+                                                 kinds.index(k[0]), k[1], k[2]))
     return tuple(Confusion(*k, before=b[k], after=a[k]) for k in keys[:top])
 
 
@@ -179,4 +208,5 @@ def build_breakdown(rows: Sequence[UtteranceRow], top: int = TOP,
         worsened=tuple(r.id for r in worsened[:changed]),
         by_meta=groups,
         meta_skipped=skipped,
+        rule_matches=rule_table([r.before for r in rows], [r.after for r in rows], top),
     )

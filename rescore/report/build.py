@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from rescore.counting import PLAIN, Counting, in_unit
 from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
@@ -31,12 +32,10 @@ from rescore.significance import (
     sign_test,
     wilcoxon_signed_rank,
 )
-from rescore.text import tokens
 from rescore.tune.results import TuningRecord
 from rescore.wer import (
     CerResult,
     WerResult,
-    align_many,
     corpus_cer,
     counts_from_alignments,
     summarise,
@@ -71,9 +70,11 @@ class Pair:
 
     @classmethod
     def from_text(cls, id: str, reference: str, hypothesis: str,
-                  meta: Mapping[str, Any] | None = None) -> Pair:
-        """Normalise both sides with :func:`rescore.text.tokens`."""
-        return cls(id, tuple(tokens(reference)), tuple(tokens(hypothesis)), dict(meta or {}))
+                  meta: Mapping[str, Any] | None = None, counting: Counting = PLAIN) -> Pair:
+        """Both sides as ``counting`` scores them (by default :func:`rescore.text.tokens`'s
+        words; the rules' tokens, or characters, otherwise)."""
+        return cls(id, tuple(counting.score_tokens(reference)),
+                   tuple(counting.score_tokens(hypothesis)), dict(meta or {}))
 
 
 @dataclass(frozen=True)
@@ -114,7 +115,14 @@ class Report:
     overlap: OverlapSummary | None = None
     confidence: Any = None  # rescore.report.confidence.ConfidenceSummary (word confidences)
 
+    @property
+    def joiner(self) -> str:
+        """What goes between tokens when a transcript is shown: a space between words,
+        nothing between characters (``--unit char``, a script written without spaces)."""
+        return "" if self.provenance.get("unit") == "char" else " "
+
     def to_dict(self) -> dict[str, Any]:
+        sep = self.joiner
         out: dict[str, Any] = {
             "before": self.before.to_dict(),
             "after": self.after.to_dict(),
@@ -133,9 +141,9 @@ class Report:
             "utterances": [
                 {"id": u.id, "reference_words": u.reference_words,
                  "before_errors": u.before_errors, "after_errors": u.after_errors,
-                 "reference": " ".join(u.before.reference),
-                 "before": " ".join(u.before.hypothesis),
-                 "after": " ".join(u.after.hypothesis)}
+                 "reference": sep.join(u.before.reference),
+                 "before": sep.join(u.before.hypothesis),
+                 "after": sep.join(u.after.hypothesis)}
                 for u in self.utterances
             ],
         }
@@ -200,6 +208,7 @@ def build_report(
     critical_classes: Sequence[CriticalClass] | None = None,
     overlap: OverlapSummary | None = None,
     progress: ProgressReport | None = None,
+    counting: Counting = PLAIN,
 ) -> Report:
     """Compare two systems on the same utterances: WER, CER, tests and breakdowns.
 
@@ -210,7 +219,9 @@ def build_report(
     built-in numbers and negations; see :mod:`rescore.report.critical`). ``overlap`` is the
     test references' overlap with the language models' training text
     (:func:`rescore.lm.overlap.overlap_summary`); above its threshold the report warns first
-    of all.
+    of all. ``counting`` is the unit and the scoring rules the pairs were read
+    under (:meth:`Pair.from_text`): the alignments follow the rules, and both go into
+    the provenance.
     """
     if tuning is not None and not isinstance(tuning, TuningRecord):
         tuning = TuningRecord.from_dict(tuning)
@@ -218,8 +229,8 @@ def build_report(
     refs = [b.reference for b, _ in matched]
     hyp_b = [b.hypothesis for b, _ in matched]
     hyp_a = [a.hypothesis for _, a in matched]
-    al_b = align_many(refs, hyp_b)
-    al_a = align_many(refs, hyp_a)
+    al_b = counting.align_many(refs, hyp_b)
+    al_a = counting.align_many(refs, hyp_a)
     counts_b = counts_from_alignments(al_b)
     counts_a = counts_from_alignments(al_a)
     wer_b, wer_a = summarise(counts_b), summarise(counts_a)
@@ -245,7 +256,7 @@ def build_report(
         UtteranceRow(b.id, len(b.reference), x, y, dict(b.meta) or dict(a.meta))
         for (b, a), x, y in zip(matched, al_b, al_a, strict=True)
     )
-    prov: dict[str, Any] = header() | {
+    prov: dict[str, Any] = header(counting) | {
         "bootstrap": {"resamples": resamples, "seed": seed, "confidence": confidence,
                       "generator": f"numpy {np.__version__} default_rng (PCG64)"},
         "matched_pairs": {"min_run": min_run},
@@ -266,10 +277,14 @@ def build_report(
                         f"{', '.join(small)}) are too small to compare; they are marked")
     return Report(
         before=wer_b, after=wer_a,
-        before_cer=corpus_cer(refs, hyp_b), after_cer=corpus_cer(refs, hyp_a),
+        # characters with spaces between words; under --unit char the tokens are
+        # characters already, and the CER is the error rate itself
+        before_cer=corpus_cer(refs, hyp_b, spaces=counting.unit == "word"),
+        after_cer=corpus_cer(refs, hyp_a, spaces=counting.unit == "word"),
         difference=difference, bootstrap=boot, matched_pairs=mp, sign=sign, wilcoxon=wil,
         breakdown=breakdown,
-        utterances=rows, provenance=prov, tuning=tuning, warnings=tuple(warnings),
+        utterances=rows, provenance=prov, tuning=tuning,
+        warnings=tuple(in_unit(w, counting.unit) for w in warnings),
         critical=critical_words(rows, builtin_classes() if critical_classes is None
                                 else critical_classes),
         overlap=overlap,
@@ -279,7 +294,8 @@ def build_report(
 def gate_failures(report: Report, *, max_wer: float | None = None,
                   max_regression: float | None = None) -> list[str]:
     """Why the release gates fail (empty when they pass or none is set)."""
-    reasons = []
+    reasons: list[str] = []
+    unit = str(report.provenance.get("unit", "word"))
     # in the report's units: WERs in percent, their change in percentage points
     if max_wer is not None and report.after.wer > max_wer:
         reasons.append(f"after WER {100 * report.after.wer:.2f}% is above --max-wer "
@@ -287,7 +303,7 @@ def gate_failures(report: Report, *, max_wer: float | None = None,
     if max_regression is not None and report.difference.absolute > max_regression:
         reasons.append(f"WER change {100 * report.difference.absolute:+.2f} points is above "
                        f"--max-regression {100 * max_regression:g} points")
-    return reasons
+    return [in_unit(r, unit) for r in reasons]
 
 
 def with_gate(report: Report, *, max_wer: float | None, max_regression: float | None) -> Report:

@@ -193,6 +193,12 @@ def count_alignment(cls: CriticalClass, alignment: Alignment) -> ClassCounts:
     for op in alignment.ops:
         if op.kind == "insert":
             hyp_ref.append(None)
+        elif op.kind in ("equivalent", "optional"):
+            # correct under the scoring rules: each reference word of the step is right,
+            # each hypothesis word faces the step's first reference word
+            assert op.ref is not None
+            hyp_ref += [len(ref_kind)] * (0 if op.hyp is None else op.hyp.count(" ") + 1)
+            ref_kind += ["equal"] * (op.ref.count(" ") + 1)
         else:
             if op.kind != "delete":
                 hyp_ref.append(len(ref_kind))

@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from rescore.checksum import sha256_file
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
 from rescore.limits import ANALYSIS_FILE_LIMIT
 from rescore.lm import NGramModel, load_model
@@ -85,6 +86,7 @@ def report_files(
     log_base: float | None = None,
     costs: bool | None = None,
     progress: ProgressReport | None = None,
+    counting: Counting = PLAIN,
 ) -> ReportFiles:
     """Build the release report of ``before`` against ``after`` and write it to ``out_dir``
     (nothing is written when it is ``None``).
@@ -95,12 +97,24 @@ def report_files(
     then the data files' SHA-256 (unless ``provenance`` gives its own ``data_sha256``), the
     weights file's entry and the checked models' SHA-256. A failed gate does not raise:
     its reasons are returned, the report (with its verdict) is still written.
+
+    ``counting`` is the unit and the scoring rules both systems are scored under; a tuning
+    record file or a weights file whose provenance records another is refused (their
+    errors and the report's would not compare).
     """
+    if isinstance(tuning, str | Path):
+        counting.check_record(_json_object(tuning).get("provenance"),
+                              "the tuning record's errors", path=tuning)
+    if weights is not None:
+        counting.check_record(_json_object(weights).get("provenance"),
+                              "the weights' tuning errors", path=weights)
     ref_map = read_refs(refs) if isinstance(refs, str | Path) else refs
     classes: list[CriticalClass] = (builtin_classes() if terms is None
                                     else classes_with_terms(read_terms(terms)))
-    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs)
-    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs)
+    before_pairs = load_system(before, refs=ref_map, log_base=log_base, costs=costs,
+                               counting=counting)
+    after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs,
+                              counting=counting)
     record = (read_tuning_record(tuning) if isinstance(tuning, str | Path) else tuning)
     prov: dict[str, Any] = dict(provenance or {})
     if "data_sha256" not in prov:
@@ -112,16 +126,24 @@ def report_files(
     overlap = None
     if named:
         loaded = [(name, m if isinstance(m, NGramModel) else load_model(m)) for name, m in named]
-        overlap = overlap_summary(loaded, [list(p.reference) for p in before_pairs],
+        # the references as the models' text was read (the plain normalisation at the
+        # run's unit), not as the scoring rules read them
+        plain = before_pairs if counting.rules is None else load_system(
+            before, refs=ref_map, log_base=log_base, costs=costs,
+            counting=Counting(counting.unit))
+        overlap = overlap_summary(loaded, [list(p.reference) for p in plain],
                                   threshold=overlap_threshold)
         hashes = {name: sha256_file(m) for name, m in named if not isinstance(m, NGramModel)}
         if hashes:
             prov["overlap_models"] = hashes
     report = build_report(before_pairs, after_pairs, provenance=prov, tuning=record,
                           resamples=resamples, seed=seed, critical_classes=classes,
-                          overlap=overlap, progress=progress)
-    report = replace(report, confidence=load_confidences(after, refs=ref_map,
-                                                         log_base=log_base, costs=costs))
+                          overlap=overlap, progress=progress, counting=counting)
+    if counting.unit == "word":
+        # word confidences are per space-separated word: a text written without spaces
+        # has one "word" per utterance, so under --unit char the section is left out
+        report = replace(report, confidence=load_confidences(after, refs=ref_map,
+                                                             log_base=log_base, costs=costs))
     report = with_gate(report, max_wer=max_wer, max_regression=max_regression)
     written = () if out_dir is None else tuple(write_report(report, out_dir))
     reasons = tuple(gate_failures(report, max_wer=max_wer, max_regression=max_regression))

@@ -10,6 +10,7 @@ from __future__ import annotations
 import base64
 import hashlib
 import json
+import unicodedata
 from collections.abc import Iterable, Sequence
 from html import escape
 
@@ -139,6 +140,25 @@ _SCRIPT = """
 """
 
 
+# added to the page only when a transcript has a step the scoring rules counted as correct
+_RULES_CSS = """
+.w-eqv { border-bottom: 2px dotted #5a8f5a; }
+.w-opt { color: #777; font-style: italic; }
+"""
+_RULES_LEGEND = ('<span class="w-eqv">equivalent under the rules</span>'
+                 '<span class="w-opt">(optional, left out)</span>')
+_RULED = frozenset({"equivalent", "optional"})
+_RIGHT_TO_LEFT = frozenset({"R", "AL"})  # Unicode bidirectional classes of RTL letters
+
+
+def _dir(words: Iterable[str]) -> str:
+    """``dir="auto"`` for text holding right-to-left letters, so the browser lays it out
+    from its first strong character (Hebrew, Arabic) instead of the page's left-to-right;
+    left-to-right text is laid out the same either way and keeps its bytes."""
+    return ' dir="auto"' if any(unicodedata.bidirectional(c) in _RIGHT_TO_LEFT
+                                for w in words for c in w) else ""
+
+
 def _e(value: object) -> str:
     return escape(str(value), quote=True)
 
@@ -211,7 +231,7 @@ def _counts(report: Report) -> str:
     rows = t.counts_rows(report)
     most = max(report.before.errors, report.after.errors, 1)
     th = "".join(f'<th class="num">{_e(h)}</th>' if i else f"<th>{_e(h)}</th>"
-                 for i, h in enumerate([*t.COUNTS_HEAD, "errors by kind"]))
+                 for i, h in enumerate([*t.counts_head(report), "errors by kind"]))
     body = []
     for row, w in zip(rows, (report.before, report.after), strict=True):
         cells = "".join(f'<td class="num">{_e(v)}</td>' if i else f"<td>{_e(v)}</td>"
@@ -232,8 +252,19 @@ def _counts(report: Report) -> str:
             f"</table>{legend}")
 
 
-def marked_words(alignment: Alignment) -> str:
-    """The hypothesis with its differences from the reference marked word by word."""
+def _rule_matches(rows: Sequence[Confusion]) -> str:
+    """What the scoring rules counted as correct, counted in both systems ("" without)."""
+    if not rows:
+        return ""
+    return ('<div class="card" id="rule-matches"><h3>Counted as correct by the scoring '
+            'rules</h3>' + _table(["kind", "reference", "hypothesis", "before", "after"],
+                                  [(c.kind, c.reference, c.hypothesis or "(left out)",
+                                    c.before, c.after) for c in rows], 3) + "</div>")
+
+
+def marked_words(alignment: Alignment, sep: str = " ") -> str:
+    """The hypothesis with its differences from the reference marked word by word
+    (``sep`` between them: nothing between characters under ``--unit char``)."""
     parts = []
     for op in alignment.ops:
         if op.kind == "equal":
@@ -243,24 +274,35 @@ def marked_words(alignment: Alignment) -> str:
                          "</span>")
         elif op.kind == "insert":
             parts.append(f'<ins title="inserted">{_e(op.hyp)}</ins>')
+        elif op.kind == "equivalent":
+            # correct under the scoring rules: the hypothesis's spelling, the reference's
+            # on hover, and a dotted underline so it is seen not to be the same words
+            parts.append(f'<span class="w-eqv" title="equivalent under the scoring rules to '
+                         f'the reference: {_e(op.ref)}">{_e(str(op.hyp).replace(" ", sep))}'
+                         "</span>")
+        elif op.kind == "optional":
+            parts.append(f'<span class="w-opt" title="optional word left out (no error)">'
+                         f'({_e(str(op.ref).replace(" ", sep))})</span>')
         else:
             parts.append(f'<del title="deleted">{_e(op.ref)}</del>')
-    return " ".join(parts) if parts else '<span class="sub-title">(no words)</span>'
+    return sep.join(parts) if parts else '<span class="sub-title">(no words)</span>'
 
 
-def _utterance(index: int, u: UtteranceRow) -> str:
+def _utterance(index: int, u: UtteranceRow, sep: str = " ") -> str:
     tone = " better" if u.change < 0 else (" worse" if u.change > 0 else "")
     meta = ", ".join(f"{k}={v}" for k, v in sorted(u.meta.items(), key=lambda kv: kv[0]))
-    ref = " ".join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
+    ref = sep.join(_e(w) for w in u.before.reference) or '<span class="sub-title">(empty)</span>'
+    words = [*u.before.reference, *u.before.hypothesis, *u.after.hypothesis]
+    direction = _dir(words)
     return (
         f'<li class="utt" id="u{index}" data-change="{u.change}">'
         f'<span class="change{tone}">errors {u.before_errors} &rarr; {u.after_errors}</span>'
         f'<span class="uid">{_e(u.id)}</span>'
         + (f' <span class="sub-title">{_e(meta)}</span>' if meta else "")
         + '<table class="words"><tbody>'
-        f"<tr><td>reference</td><td>{ref}</td></tr>"
-        f"<tr><td>before</td><td>{marked_words(u.before)}</td></tr>"
-        f"<tr><td>after</td><td>{marked_words(u.after)}</td></tr>"
+        f"<tr><td>reference</td><td{direction}>{ref}</td></tr>"
+        f"<tr><td>before</td><td{direction}>{marked_words(u.before, sep)}</td></tr>"
+        f"<tr><td>after</td><td{direction}>{marked_words(u.after, sep)}</td></tr>"
         "</tbody></table></li>"
     )
 
@@ -274,8 +316,9 @@ def _tuning(report: Report) -> str:
         cards.append('<div class="card"><h3>Error surface on the tuning set</h3><figure>'
                      + plots.surface_heatmap(tuning.surface, tuning) + "</figure></div>")
     if tuning.depth:
-        cards.append('<div class="card"><h3>WER by N-best depth (dev set)</h3><figure>'
-                     + plots.depth_curve(tuning) + "</figure>"
+        cards.append('<div class="card"><h3>' + t.say(report, "WER by N-best depth (dev set)")
+                     + "</h3><figure>" + plots.depth_curve(tuning, t.say(report, "WER"))
+                     + "</figure>"
                      + _table(["k", "1-best", "rescored", "oracle"],
                               [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer),
                                 t.pct(r.oracle_wer)) for r in tuning.depth]) + "</div>")
@@ -297,8 +340,8 @@ def _changed(report: Report) -> str:
 def _by_meta(report: Report) -> str:
     out = []
     for key, groups in report.breakdown.by_meta.items():
-        head, rows = t.group_table(key, groups)
-        out.append(f'<div class="card"><h3>WER by {_e(key)}</h3>'
+        head, rows = t.group_table(key, groups, report)
+        out.append(f'<div class="card"><h3>{t.say(report, "WER")} by {_e(key)}</h3>'
                    + _table(head, rows) + "</div>")
     skipped = report.breakdown.meta_skipped
     if skipped:
@@ -347,8 +390,12 @@ def _warnings(report: Report) -> str:
 def render_html(report: Report) -> str:
     counts = _counts(report)
     confusions = _confusions(report.breakdown.confusions)
+    ruled = any(op.kind in _RULED for u in report.utterances
+                for al in (u.before, u.after) for op in al.ops)
+    counted = t.counting_text(report)
     notes = "".join(f"<li>{_e(n)}</li>" for n in t.method_notes(report))
-    utterances = "".join(_utterance(i, u) for i, u in enumerate(report.utterances))
+    utterances = "".join(_utterance(i, u, report.joiner)
+                         for i, u in enumerate(report.utterances))
     provenance = _table(["item", "value"], t.provenance_rows(report), numeric_from=9)
     return f"""<!DOCTYPE html>
 <html lang="en">
@@ -357,21 +404,22 @@ def render_html(report: Report) -> str:
 <meta http-equiv="Content-Security-Policy" content="{_e(_csp())}">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <meta name="referrer" content="no-referrer">
-<title>{_e(t.TITLE)}</title>
-<style>{_CSS}</style>
+<title>{_e(t.title(report))}</title>
+<style>{_CSS}{_RULES_CSS if ruled else ""}</style>
 </head>
 <body>
 <header>
-<h1>{_e(t.TITLE)}</h1>
+<h1>{_e(t.title(report))}</h1>
 <p class="sub-title">{report.before.utterances} utterances, {report.before.reference_words}
-reference words; normalisation {_e(report.provenance.get("normalisation", ""))}</p>
+{t.say(report, "reference words")}; normalisation {_e(report.provenance.get("normalisation", ""))}\
+{"" if not counted else "; " + _e(counted)}</p>
 </header>
 <main>
 {_warnings(report)}
 {_gate(report)}
 <div class="row">
 <div class="card">{_headline(report)}</div>
-<div class="card"><figure>{plots.wer_intervals(report)}</figure></div>
+<div class="card"><figure>{plots.wer_intervals(report, t.say(report, "WER"))}</figure></div>
 </div>
 <div class="caution" id="caution"><strong>Caution.</strong> {_e(t.CAUTION)}</div>
 {_critical(report)}
@@ -384,7 +432,7 @@ reference words; normalisation {_e(report.provenance.get("normalisation", ""))}<
 <div class="card"><h3>Confusions</h3><p class="sub-title">The most frequent errors of either
 system, each counted in both (change: after minus before). Click a heading to sort.</p>
 {confusions}</div>
-{_changed(report)}
+{_rule_matches(report.breakdown.rule_matches)}{_changed(report)}
 {_by_meta(report)}
 <h2>Utterances</h2>
 <div class="controls">
@@ -397,7 +445,7 @@ system, each counted in both (change: after minus before). Click a heading to so
 <span id="utt-count" class="sub-title"></span>
 </div>
 <p class="legend sub-title"><span class="w-sub">substituted</span><ins>inserted</ins>
-<del>deleted</del> (hover a substitution for the reference word)</p>
+<del>deleted</del>{_RULES_LEGEND if ruled else ""} (hover a substitution for the reference word)</p>
 <ol class="utts">{utterances}</ol>
 </main>
 <footer>

@@ -6,6 +6,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from pathlib import Path
 
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
 from rescore.nbest import DEFAULT_LIMITS, iter_nbest, output_text, read_refs
 from rescore.readers import iter_text_lines
@@ -27,8 +28,9 @@ def load_system(
     refs: Mapping[str, str] | None = None,
     log_base: float | None = None,
     costs: bool | None = None,
+    counting: Counting = PLAIN,
 ) -> list[Pair]:
-    """The pairs of one system, in file order.
+    """The pairs of one system, in file order, read as ``counting`` scores them.
 
     An N-best file gives its 1-best (the hypothesis at ``best``, else the first) with the
     file's references, or ``refs`` in their place, and its ``meta``. A transcript file
@@ -37,7 +39,7 @@ def load_system(
     if is_nbest_file(path):
         return [
             Pair.from_text(u["id"], u["reference"], output_text(u),
-                           u.get("meta"))
+                           u.get("meta"), counting)
             for _, u in iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                    require_references=True)
         ]
@@ -53,7 +55,7 @@ def load_system(
                          + "; ".join(detail), path=path)
     if not hyps:
         raise InputError("no utterances in the file", path=path)
-    return [Pair.from_text(k, refs[k], hyps[k]) for k in refs]
+    return [Pair.from_text(k, refs[k], hyps[k], counting=counting) for k in refs]
 
 
 def reference_sentences(path: str | Path, *, refs: Mapping[str, str] | None = None,

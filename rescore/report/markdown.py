@@ -58,8 +58,22 @@ def _confusions(rows: Sequence[Confusion]) -> list[str]:
     return out
 
 
+def _rule_matches(rows: Sequence[Confusion]) -> list[str]:
+    if not rows:
+        return []
+    out = ["### Counted as correct by the scoring rules", "",
+           "No errors: what the rules forgave, counted in both systems.", ""]
+    out += _table(["kind", "reference", "hypothesis", "before", "after"],
+                  [(c.kind, c.reference, c.hypothesis or "(left out)", c.before, c.after)
+                   for c in rows], numeric_from=3)
+    return out
+
+
 def render_markdown(report: Report) -> str:
-    out = [f"# {t.TITLE}", ""]
+    out = [f"# {t.title(report)}", ""]
+    counted = t.counting_text(report)
+    if counted:  # the header names the unit and the rules when they are not the default
+        out += [f"Counting: {_cell(counted)}.", ""]
     for warning in report.warnings:
         out += [f"> **Warning.** {_cell(warning)}", ""]
     out += _table(["measure", "value"],
@@ -89,27 +103,28 @@ def render_markdown(report: Report) -> str:
         out += _table(head, rows_)
         out += [t.OVERLAP_NOTE, ""]
     out += ["## Counts", ""]
-    out += _table(t.COUNTS_HEAD, t.counts_rows(report))
+    out += _table(t.counts_head(report), t.counts_rows(report))
     out += ["## Method", ""] + [f"- {_cell(n)}" for n in t.method_notes(report)] + [""]
     out += ["## Breakdown", ""]
     out += _confusions(report.breakdown.confusions)
+    out += _rule_matches(report.breakdown.rule_matches)
     by_id = {u.id: u for u in report.utterances}
     for title, ids in (("Most improved utterances", report.breakdown.improved),
                        ("Most worsened utterances", report.breakdown.worsened)):
         out += [f"### {title}", ""]
         out += _table(["id", "errors before", "errors after", "after"],
                       [(i, by_id[i].before_errors, by_id[i].after_errors,
-                        " ".join(by_id[i].after.hypothesis)) for i in ids])
+                        report.joiner.join(by_id[i].after.hypothesis)) for i in ids])
     for key, groups in report.breakdown.by_meta.items():
-        out += [f"### WER by {_cell(key)}", ""]
-        head, rows_ = t.group_table(key, groups)
+        out += [t.say(report, "### WER by ") + _cell(key), ""]
+        head, rows_ = t.group_table(key, groups, report)
         out += _table([_cell(h) for h in head], rows_)
     if report.breakdown.meta_skipped:
         out += ["### Metadata keys not broken down", ""]
         out += _table(["key", "why", "distinct values"],
                       [(k.key, k.reason, k.values) for k in report.breakdown.meta_skipped])
     if report.tuning is not None and report.tuning.depth:
-        out += ["## WER by N-best depth (dev set, from tuning)", ""]
+        out += [t.say(report, "## WER by N-best depth (dev set, from tuning)"), ""]
         out += _table(["k", "1-best", "rescored", "oracle"],
                       [(r.depth, t.pct(r.one_best_wer), t.pct(r.tuned_wer), t.pct(r.oracle_wer))
                        for r in report.tuning.depth])

@@ -48,8 +48,9 @@ def _svg(fig: Figure, name: str) -> str:
     return text.replace("<svg ", f'<svg role="img" aria-label="{name}" ', 1)
 
 
-def wer_intervals(report: Report) -> str:
-    """Corpus WER of each system with its bootstrap interval."""
+def wer_intervals(report: Report, rate: str = "WER") -> str:
+    """Corpus WER (``rate``: its name, CER under --unit char) of each system with its
+    bootstrap interval."""
     b = report.bootstrap
     with _style("wer"):
         fig = Figure(figsize=(5.2, 2.2))
@@ -63,9 +64,9 @@ def wer_intervals(report: Report) -> str:
         ax.set_yticks([0, 1], ["before", "after"])
         ax.set_ylim(-0.6, 1.6)
         ax.invert_yaxis()
-        ax.set_xlabel(f"WER (%), {100 * b.confidence:g}% bootstrap interval")
+        ax.set_xlabel(f"{rate} (%), {100 * b.confidence:g}% bootstrap interval")
         ax.grid(axis="x", alpha=0.3)
-        return _svg(fig, "WER of each system with its interval")
+        return _svg(fig, f"{rate} of each system with its interval")
 
 
 def surface_heatmap(surface: Surface, tuning: TuningRecord) -> str:
@@ -129,7 +130,7 @@ def _ticks(values: Sequence[float], most: int = 8) -> tuple[list[int], list[str]
     return idx, [f"{values[i]:g}" for i in idx]
 
 
-def depth_curve(tuning: TuningRecord) -> str:
+def depth_curve(tuning: TuningRecord, rate: str = "WER") -> str:
     with _style("depth"):
         fig = Figure(figsize=(5.6, 3.0))
         ax = fig.add_subplot()
@@ -143,7 +144,7 @@ def depth_curve(tuning: TuningRecord) -> str:
                 ax.plot([k for k, _ in pts], [100 * v for _, v in pts], style, marker="o",
                         label=label)
         ax.set_xlabel("N-best depth k")
-        ax.set_ylabel("WER (%)")
+        ax.set_ylabel(f"{rate} (%)")
         ax.grid(alpha=0.3)
         ax.legend(frameon=False, loc="best", fontsize=9)
-        return _svg(fig, "WER by N-best depth")
+        return _svg(fig, f"{rate} by N-best depth")

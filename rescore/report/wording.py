@@ -6,12 +6,38 @@ import json
 import math
 from typing import Any
 
+from rescore.counting import in_unit
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
 from rescore.report.build import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.build import Report
 from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT
 
 TITLE = "Release report: WER before and after rescoring"
+
+def unit_of(report: Report) -> str:
+    """The unit the report counts (its provenance's ``unit``; absent: words)."""
+    return str(report.provenance.get("unit", "word"))
+
+
+def say(report: Report, text: str) -> str:
+    """``text`` in the report's unit: unchanged for words; CER for WER, characters for
+    words, under ``--unit char``."""
+    return in_unit(text, unit_of(report))
+
+
+def title(report: Report) -> str:
+    return say(report, TITLE)
+
+
+def counting_text(report: Report) -> str:
+    """The header's note of the unit and the scoring rules ("" for words and no rules)."""
+    parts = []
+    if unit_of(report) == "char":
+        parts.append("unit: characters, spaces dropped (CER)")
+    rules = report.provenance.get("rules")
+    if isinstance(rules, dict):
+        parts.append(f"scoring rules {rules.get('name')} (SHA-256 {rules.get('sha256')})")
+    return "; ".join(parts)
 
 
 def pct(value: float | None, digits: int = 2) -> str:
@@ -56,21 +82,30 @@ COUNTS_HEAD = ["system", "reference words", "errors", "WER", "interval of WER",
                "of which substitutions", "deletions", "insertions", "CER"]
 
 
+def counts_head(report: Report) -> list[str]:
+    """The counts table's head in the report's unit (under --unit char the CER is the rate
+    itself, so its own column goes)."""
+    head = COUNTS_HEAD[:-1] if unit_of(report) == "char" else COUNTS_HEAD
+    return [say(report, h) for h in head]
+
+
 def counts_rows(report: Report) -> list[tuple[object, ...]]:
     """Rows of the counts table: reference words, errors and WER with its bootstrap interval
     first, then what the errors are made of, then the character error rate."""
     b = report.bootstrap
-    return [(name, w.reference_words, w.errors, pct(w.wer), plain_interval(*ci),
-             w.substitutions, w.deletions, w.insertions, pct(c.cer))
-            for name, w, c, ci in (("before", report.before, report.before_cer, b.before_ci),
-                                   ("after", report.after, report.after_cer, b.after_ci))]
+    rows: list[tuple[object, ...]] = [
+        (name, w.reference_words, w.errors, pct(w.wer), plain_interval(*ci),
+         w.substitutions, w.deletions, w.insertions, pct(c.cer))
+        for name, w, c, ci in (("before", report.before, report.before_cer, b.before_ci),
+                               ("after", report.after, report.after_cer, b.after_ci))]
+    return [r[:-1] for r in rows] if unit_of(report) == "char" else rows
 
 
 def headline(report: Report) -> list[tuple[str, str, str, Any]]:
     """(label, display text, report.json key, exact value) rows of the headline table."""
     d, b = report.difference, report.bootstrap
     level = f"{100 * b.confidence:g}%"
-    return [
+    rows: list[tuple[str, str, str, Any]] = [
         ("WER before", pct(report.before.wer), "before.wer", report.before.wer),
         ("WER after", pct(report.after.wer), "after.wer", report.after.wer),
         ("Absolute change (after - before)", points(d.absolute), "difference.absolute",
@@ -93,12 +128,15 @@ def headline(report: Report) -> list[tuple[str, str, str, Any]]:
         ("Wilcoxon signed-rank p", p_value(d.wilcoxon_p), "difference.wilcoxon_p",
          d.wilcoxon_p),
     ]
+    return [(say(report, label), shown, key, value) for label, shown, key, value in rows]
 
 
 def method_notes(report: Report) -> list[str]:
-    return [_bootstrap_note(report), _matched_pairs_note(report), _sign_note(report),
-            _wilcoxon_note(report),
-            f"Text normalisation on both sides: {report.provenance.get('normalisation')}."]
+    notes = [_bootstrap_note(report), _matched_pairs_note(report), _sign_note(report),
+             _wilcoxon_note(report),
+             f"Text normalisation on both sides: {report.provenance.get('normalisation')}."]
+    counted = counting_text(report)
+    return [say(report, n) for n in notes] + ([f"Counting: {counted}."] if counted else [])
 
 
 def _bootstrap_note(report: Report) -> str:
@@ -157,10 +195,13 @@ def weights_text(weights: dict[str, Any]) -> str:
     return f"{', '.join(parts)}; file {weights.get('file')}, sha256 {weights['sha256']}"
 
 
-def group_table(key: str, groups: tuple[GroupRow, ...]) -> tuple[list[str], list[tuple[Any, ...]]]:
+def group_table(key: str, groups: tuple[GroupRow, ...], report: Report | None = None
+                ) -> tuple[list[str], list[tuple[Any, ...]]]:
     """Head and rows of a WER-by-metadata table; a ``note`` column marks the groups too
     small to compare, and appears only when there is one."""
     head = [key, "utterances", "ref words", "WER before", "WER after"]
+    if report is not None:
+        head = [key, *(say(report, h) for h in head[1:])]
     rows: list[tuple[Any, ...]] = [(g.value, g.utterances, g.reference_words,
                                     pct(g.before_wer), pct(g.after_wer)) for g in groups]
     if any(g.too_small for g in groups):

@@ -15,17 +15,24 @@ from rescore.wer import corpus_cer, corpus_wer
 from tests.conftest import run
 
 
-def test_greek_and_devanagari_wer_equals_jiwer(tmp_path: Path) -> None:
-    # jiwer as the reference, on the same normalised words
-    refs = ["Η αντλία τρία άνοιξε", "पंप तीन बंद"]
-    hyps = ["η αντλία δύο άνοιξε.", "पंप तीन"]
+def _wer_and_jiwer(tmp_path: Path, refs: list[str], hyps: list[str]) -> tuple[float, float]:
+    """``rescore wer --refs --hyps`` of the texts, and jiwer's WER of the same normalised
+    words (the reference)."""
     refs_file, hyps_file = tmp_path / "refs.tsv", tmp_path / "hyps.tsv"
     refs_file.write_text("".join(f"u{i}\t{t}\n" for i, t in enumerate(refs)), encoding="utf-8")
     hyps_file.write_text("".join(f"u{i}\t{t}\n" for i, t in enumerate(hyps)), encoding="utf-8")
     result = run(["wer", "--refs", refs_file, "--hyps", hyps_file, "--json"])
     assert result.exit_code == 0, result.stderr
     expected = jiwer.wer([" ".join(tokens(r)) for r in refs], [" ".join(tokens(h)) for h in hyps])
-    assert json.loads(result.stdout)["wer"] == pytest.approx(expected)
+    return float(json.loads(result.stdout)["wer"]), float(expected)
+
+
+def test_greek_and_devanagari_wer_equals_jiwer(tmp_path: Path) -> None:
+    # jiwer as the reference, on the same normalised words
+    refs = ["Η αντλία τρία άνοιξε", "पंप तीन बंद"]
+    hyps = ["η αντλία δύο άνοιξε.", "पंप तीन"]
+    got, expected = _wer_and_jiwer(tmp_path, refs, hyps)
+    assert got == pytest.approx(expected)
     assert expected == pytest.approx(2 / 7)  # one substitution, one deletion, 7 words
 
 
@@ -57,12 +64,8 @@ def test_right_to_left_words_are_scored_in_logical_order(tmp_path: Path) -> None
     #   المضخة                          -> 1 deletion of 2
     refs = ["המשאבה נסגרה בשעה שלוש", "المضخة مغلقة"]
     hyps = ["המשאבה נפתחה בשעה שלוש.", "المضخة،"]
-    refs_file, hyps_file = tmp_path / "refs.tsv", tmp_path / "hyps.tsv"
-    refs_file.write_text("".join(f"u{i}\t{t}\n" for i, t in enumerate(refs)), encoding="utf-8")
-    hyps_file.write_text("".join(f"u{i}\t{t}\n" for i, t in enumerate(hyps)), encoding="utf-8")
-    got = json.loads(run(["wer", "--refs", refs_file, "--hyps", hyps_file, "--json"]).stdout)
-    expected = jiwer.wer([" ".join(tokens(r)) for r in refs], [" ".join(tokens(h)) for h in hyps])
-    assert got["wer"] == pytest.approx(expected) == pytest.approx(2 / 6)
+    got, expected = _wer_and_jiwer(tmp_path, refs, hyps)
+    assert got == pytest.approx(expected) == pytest.approx(2 / 6)
     # the Arabic comma U+060C is punctuation (category Po) and goes, like "."
     assert tokens("المضخة،") == ["المضخة"]
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 from typing import Any
 
@@ -13,6 +14,7 @@ from rescore.decode.combine import combine_lists
 from rescore.errors import InputError
 from rescore.nbest import Utterance, iter_nbest, write_nbest
 from rescore.text import tokens
+from tests.conftest import run
 
 
 def _utt(uid: str, hyps: list[tuple[str, float]], **extra: Any) -> Utterance:
@@ -125,3 +127,20 @@ def test_voting_three_systems_with_independent_errors_beats_each() -> None:
     for texts in outputs.values():  # each system alone: one error per utterance
         assert all(t != r for t, r in zip(texts, refs, strict=True))
     np.testing.assert_allclose(got.confidences[0], [1.0, 2 / 3, 2 / 3, 2 / 3])
+
+
+def test_combine_json_counts_what_it_wrote(tmp_path: Path) -> None:
+    # --json: the utterances, systems and hypotheses of the written file, and the kept
+    # partial ids with the systems they lack
+    a, b = tmp_path / "A.jsonl", tmp_path / "B.jsonl"
+    write_nbest(a, [{"id": "u1", "hypotheses": [{"text": "vent open", "acoustic": -1.0}]},
+                    {"id": "u2", "hypotheses": [{"text": "row two", "acoustic": -2.0}]}])
+    write_nbest(b, [{"id": "u1", "hypotheses": [{"text": "vent opened", "acoustic": -1.5}]}])
+    out = tmp_path / "c.jsonl"
+    res = run(["combine", a, b, "-o", out, "--partial", "keep", "--json"])
+    assert res.exit_code == 0, res.stderr
+    data = json.loads(res.stdout)
+    written = [json.loads(line) for line in out.read_text().splitlines()]
+    assert data["utterances"] == len(written) == 2 and data["systems"] == ["A", "B"]
+    assert data["hypotheses"] == sum(len(u["hypotheses"]) for u in written) == 3
+    assert data["partial"] == [{"id": "u2", "missing": ["B"]}]

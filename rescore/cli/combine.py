@@ -8,8 +8,8 @@ from typing import Annotated
 
 import typer
 
-from rescore.cli._common import guarded, info
-from rescore.cli.options import CostsOpt, LogBaseOpt, NbestOutOpt
+from rescore.cli._common import emit_json, guarded, info
+from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, NbestOutOpt
 from rescore.decode.combine import combine_lists
 from rescore.errors import UsageError
 from rescore.nbest import Utterance, dumps, iter_nbest
@@ -37,7 +37,7 @@ def combine(
     partial: Annotated[str, typer.Option(
         "--partial", help="An id that some files lack: refuse (error) or keep (its missing "
         "systems' scores are 0 and missing:SYSTEM is 1).")] = "refuse",
-    log_base: LogBaseOpt = None, costs: CostsOpt = None,
+    log_base: LogBaseOpt = None, costs: CostsOpt = None, as_json: JsonOpt = False,
 ) -> None:
     """Merge several recognizers' lists: acoustic:SYSTEM, FEATURE:SYSTEM and missing:SYSTEM
     on every hypothesis."""
@@ -50,6 +50,8 @@ def combine(
     if len(set(names)) != len(names):
         raise UsageError(f"two files share a system name ({', '.join(names)}); "
                          "give them as NAME=FILE")
+    if as_json and str(out) == "-":
+        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
     check_outputs([out], [p for _, p in named])
     read: list[tuple[str, list[Utterance]]] = [
         (name, [utt for _, utt in iter_nbest(path, log_base=log_base, costs=costs)])
@@ -57,6 +59,12 @@ def combine(
     merged = combine_lists(read, partial="keep" if partial == "keep" else "refuse")
     with atomic_output(out) as fh:
         fh.write("".join(dumps(utt) + "\n" for utt in merged.utterances))
+    if as_json:
+        emit_json({"utterances": len(merged.utterances), "systems": names,
+                   "hypotheses": sum(len(u["hypotheses"]) for u in merged.utterances),
+                   "partial": [{"id": key, "missing": list(lacking)}
+                               for key, lacking in merged.partial], "out": str(out)})
+        return
     kept = f", {len(merged.partial)} kept without every system" if merged.partial else ""
     info(f"combined {len(merged.utterances)} utterances from {', '.join(names)}{kept} -> {out}")
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Generator, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, NotRequired
@@ -309,7 +309,7 @@ def iter_nbest(
     costs: bool | None = None,
     require_references: bool = False,
     limits: ReadLimits = DEFAULT_LIMITS,
-) -> Iterator[tuple[int, Utterance]]:
+) -> Generator[tuple[int, Utterance], None, None]:
     """Yield ``(line_number, utterance)`` for every record, validated and converted.
 
     ``refs`` (from ``--refs``) replaces references in the file and must cover exactly the

@@ -6,6 +6,7 @@ returns a small result; none of them prints.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import itertools
 import json
@@ -328,7 +329,8 @@ def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH,
                      counting: Counting = PLAIN) -> tuple[WerResult, WerResult] | None:
     """WER of a rescored file's first hypotheses (the recognizer's 1-best) and of its output
     text, in one pass; ``None`` when its records carry no references."""
-    first = next(iter_nbest(path), None)
+    with contextlib.closing(iter_nbest(path)) as records:  # the file closed at once
+        first = next(records, None)
     if first is None or "reference" not in first[1]:
         return None
     before, after = _wers(path, [lambda u: u["hypotheses"][0]["text"], output_text],

@@ -244,12 +244,7 @@ def read_weights_models(path: str | Path) -> dict[str, str]:
     """The SHA-256 of each model the weights were tuned with, by name, as the weights
     file's provenance records them (empty when it records none)."""
     where = str(path)
-    try:
-        data = read_json(path, WEIGHTS_FILE_LIMIT, parse_constant=_reject_constant)
-    except ValueError as exc:
-        raise InputError(str(exc), path=where) from None
-    prov = data.get("provenance") if isinstance(data, dict) else None
-    models = prov.get("models") if isinstance(prov, dict) else None
+    models = read_weights_provenance(path).get("models")
     if not isinstance(models, dict):
         return {}
     out = {}

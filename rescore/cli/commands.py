@@ -202,9 +202,9 @@ def apply(
                                      progress=step, shard_bytes=round(shard_mb * (1 << 20)),
                                      counting=counting)
     _warn(result.warnings)
-    # with references, the WER of the recognizer's 1-best and of the output (read back from
-    # the output just written; nothing to read back when it went to standard output)
-    # (or a FIFO, a terminal, /proc/self/fd/1: only a regular file, not stdout, is read back)
+    # with references, the WER of the recognizer's 1-best and of the output, read back from
+    # the output just written: only from a regular file that is not standard output (not
+    # from -, a FIFO, a terminal or /proc/self/fd/1)
     wers = (pipeline.before_after_wer(out, batch_size=batch_size, counting=counting)
             if not no_wer and _readable_output(out) else None)
     if as_json:

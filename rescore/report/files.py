@@ -25,7 +25,6 @@ from rescore.report.build import (
     DEFAULT_SEED,
     Report,
     build_report,
-    gate_failures,
     with_gate,
 )
 from rescore.report.confidence import load_confidences
@@ -47,7 +46,10 @@ class ReportFiles:
 
 def read_tuning_record(path: str | Path) -> TuningRecord:
     """The tuning record of a ``tune --analysis`` file (the same model tune writes)."""
-    data = _json_object(path)
+    return _tuning_record(_json_object(path), path)
+
+
+def _tuning_record(data: Mapping[str, Any], path: str | Path) -> TuningRecord:
     if "surface" not in data and "depth" not in data:
         raise InputError("not a tuning record: it has neither 'surface' nor 'depth' (write "
                          "one with 'rescore tune --analysis FILE')", path=path)
@@ -57,7 +59,11 @@ def read_tuning_record(path: str | Path) -> TuningRecord:
 def recorded_models(weights: str | Path) -> list[tuple[str, Path]]:
     """The models a weights file records whose file is still at its recorded path with its
     recorded SHA-256 (the others cannot be checked, so they are left out)."""
-    recorded = _json_object(weights).get("provenance", {})
+    return _recorded_models(_json_object(weights))
+
+
+def _recorded_models(data: Mapping[str, Any]) -> list[tuple[str, Path]]:
+    recorded = data.get("provenance", {})
     models = recorded.get("models", {}) if isinstance(recorded, dict) else {}
     out = []
     for name, entry in (models.items() if isinstance(models, dict) else ()):
@@ -102,12 +108,16 @@ def report_files(
     record file or a weights file whose provenance records another is refused (their
     errors and the report's would not compare).
     """
-    if isinstance(tuning, str | Path):
-        counting.check_record(_json_object(tuning).get("provenance"),
-                              "the tuning record's errors", path=tuning)
-    if weights is not None:
-        counting.check_record(_json_object(weights).get("provenance"),
-                              "the weights' tuning errors", path=weights)
+    # each file read once: its provenance checked, then its contents used
+    tuning_path = tuning if isinstance(tuning, str | Path) else None
+    tuning_data = None if tuning_path is None else _json_object(tuning_path)
+    if tuning_data is not None:
+        counting.check_record(tuning_data.get("provenance"), "the tuning record's errors",
+                              path=tuning_path)
+    weights_data = None if weights is None else _json_object(weights)
+    if weights_data is not None:
+        counting.check_record(weights_data.get("provenance"), "the weights' tuning errors",
+                              path=weights)
     ref_map = read_refs(refs) if isinstance(refs, str | Path) else refs
     classes: list[CriticalClass] = (builtin_classes() if terms is None
                                     else classes_with_terms(read_terms(terms)))
@@ -115,14 +125,17 @@ def report_files(
                                counting=counting)
     after_pairs = load_system(after, refs=ref_map, log_base=log_base, costs=costs,
                               counting=counting)
-    record = (read_tuning_record(tuning) if isinstance(tuning, str | Path) else tuning)
+    record = (_tuning_record(tuning_data, tuning_path)
+              if tuning_data is not None and tuning_path is not None
+              else tuning if isinstance(tuning, TuningRecord) else None)
     prov: dict[str, Any] = dict(provenance or {})
     if "data_sha256" not in prov:
         files = [p for p in (before, after, refs, tuning, terms) if isinstance(p, str | Path)]
         prov["data_sha256"] = data_hashes(files)
     if weights is not None:
         prov["weights"] = weights_provenance(weights)
-    named = list(models) if models else (recorded_models(weights) if weights else [])
+    named = list(models) if models else (
+        _recorded_models(weights_data) if weights_data is not None else [])
     overlap = None
     if named:
         loaded = [(name, m if isinstance(m, NGramModel) else load_model(m)) for name, m in named]
@@ -146,7 +159,7 @@ def report_files(
                                                              log_base=log_base, costs=costs))
     report = with_gate(report, max_wer=max_wer, max_regression=max_regression)
     written = () if out_dir is None else tuple(write_report(report, out_dir))
-    reasons = tuple(gate_failures(report, max_wer=max_wer, max_regression=max_regression))
+    reasons = () if report.gate is None else tuple(report.gate["reasons"])
     return ReportFiles(report, written, reasons)
 
 

@@ -240,12 +240,12 @@ class _Runner:
             return
         assert self._pool is not None
         submitted: list[Future[ShardResult]] = [self._pool.submit(fn, t) for t in tasks]
-        try:
-            for f in submitted:
-                yield f.result()
-        finally:
-            for f in submitted:
-                f.cancel()
+        # no Future.cancel() from this thread when a shard fails: abort() has the pool's own
+        # thread cancel what is pending. On Python 3.11, a future cancelled here and then
+        # marked broken by that thread (the workers are terminated) raises InvalidStateError
+        # inside it, which printed a stray line after the one-line error.
+        for f in submitted:
+            yield f.result()
 
     def close(self) -> None:
         self._stack.close()
@@ -255,6 +255,7 @@ class _Runner:
         worker processes terminated, rather than waiting for the shards they are running."""
         if self._pool is not None:
             processes = list(getattr(self._pool, "_processes", {}).values())
+            manager = getattr(self._pool, "_executor_manager_thread", None)
             self._pool.shutdown(wait=False, cancel_futures=True)
             for process in processes:
                 with contextlib.suppress(Exception):
@@ -262,6 +263,9 @@ class _Runner:
             for process in processes:
                 with contextlib.suppress(Exception):
                     process.join(timeout=5)
+            if isinstance(manager, threading.Thread):
+                # the pool's thread settles the futures before the error is printed
+                manager.join(timeout=5)
         self.close()
 
 

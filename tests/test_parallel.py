@@ -190,3 +190,38 @@ def test_character_unit_in_workers_byte_identical(tmp_path: Path) -> None:
         pipeline.apply_file(BUNDLED_KANA / "test.jsonl", tmp_path / "w.jsonl", models=models,
                             weights=weights, workers=2, shard_bytes=20_000)
     assert not (tmp_path / "w.jsonl").exists()
+
+
+def _fail_first(task: int) -> int:
+    import time
+    if task == 0:
+        raise ValueError("shard 0 is bad")
+    time.sleep(0.2)
+    return task
+
+
+def test_a_failed_shard_then_a_broken_pool_raises_nothing_in_the_pool_thread(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # Python's ProcessPoolExecutor (3.11) marks every pending future failed when a worker
+    # dies; a future this side had cancelled makes its own thread raise InvalidStateError,
+    # which printed a stray traceback line after the one-line error (seen in CI). Here the
+    # worker dies before abort() on purpose, the order that lost the race.
+    import threading
+
+    from rescore.parallel import _Runner
+
+    raised: list[BaseException | None] = []
+    monkeypatch.setattr(threading, "excepthook", lambda args: raised.append(args.exc_value))
+    runner = _Runner(2, None)
+    results = runner.map(_fail_first, list(range(40)))  # type: ignore[arg-type]
+    with pytest.raises(ValueError, match="shard 0 is bad"):
+        next(results)
+    pool = runner._pool
+    assert pool is not None
+    manager: threading.Thread = getattr(pool, "_executor_manager_thread")  # noqa: B009
+    for process in list(getattr(pool, "_processes").values()):  # noqa: B009
+        process.terminate()
+    manager.join(timeout=10)
+    assert not manager.is_alive()
+    runner.abort()
+    assert raised == []

@@ -1,66 +1,81 @@
 """The fast ARPA reader: whole blocks of lines parsed with numpy.
 
-Whole blocks of lines are parsed with numpy: the positions of newlines, tabs and spaces
-give every field; the numbers of a block are read by one ``np.fromstring`` call after
-the words are blanked out; each word (up to 16 bytes) becomes two little-endian integers
-looked up in a hash table of the vocabulary, and the n-grams of each order go straight
-into the compact tables of the native file. Anything this path does not expect (other
-whitespace, "inf", an unknown word, a missing suffix, a duplicate, a count that does not
-match, a damaged gzip stream...) hands the file to the exact reader, which reads any
-valid file and names the line of any error.
+The file is read a block at a time into one buffer. One scan of a block finds its
+separators (newlines, tabs, spaces, and points, the only bytes at or below the space or
+equal to "." that a clean file holds), which give every field of every line; the numbers
+are read with integer arithmetic over the bytes (:mod:`rescore.lm.arpa_numbers`); each word
+(up to 16 bytes) becomes two little-endian integers looked up in a hash table of the
+vocabulary whose most probable words sit in their first slot, and the n-grams of each
+order go straight into the compact tables of the native file. Anything this path does
+not expect (other white space or control bytes, "inf", an unknown word, a missing suffix,
+a duplicate, a count that does not match, a damaged gzip stream...) hands the file to the
+exact reader, which reads any valid file and names the line of any error.
 """
 
 from __future__ import annotations
 
 import math
-import warnings
 import zlib
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from rescore.lm import hashindex
+from rescore.lm.arpa_numbers import MARGIN, parse_fields, parse_texts
 from rescore.lm.arpa_text import F64, I64, MAX_LINE_BYTES, NGRAM_LINE, SECTION, ln10
+from rescore.lm.arpa_words import WordIds
 from rescore.lm.model import MAX_ORDER
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 
 BLOCK_BYTES = 1 << 20
-WORD_BYTES = 16  # words up to this length are matched as two integers, longer ones by a dict
-_LOW = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [(1 << 64) - 1], dtype=np.uint64)
-_KEEP = np.array([255, 0, 255], dtype=np.uint8)  # the number, the words, the rest of a line
-_MIX1 = np.uint64(0x9E3779B97F4A7C15)
-_MIX2 = np.uint64(0xC2B2AE3D27D4EB4F)
+U64 = npt.NDArray[np.uint64]
 
 
 class Slow(Exception):
     """The fast reader met something it leaves to the exact reader."""
 
 
+class _Buffer:
+    """One buffer for every block: MARGIN bytes before a block and 16 after it are always
+    there to be read (their content is undefined), so that 8-byte words can be read at any
+    byte of the block."""
 
-def _blocks(fh: Any) -> Any:
-    """Blocks of whole lines (each ending in a newline), about BLOCK_BYTES each."""
-    carry = b""
-    while True:
-        try:
-            chunk = fh.read(BLOCK_BYTES)
-        except (OSError, EOFError, zlib.error):
-            raise Slow from None
-        if not chunk:
-            if carry:
-                yield carry + b"\n"
-            return
-        data = carry + chunk if carry else chunk
-        cut = data.rfind(b"\n") + 1
-        if cut == 0:
-            if len(data) > MAX_LINE_BYTES + 2:
-                raise Slow
-            carry = data
-            continue
-        carry = data[cut:]
-        yield data[:cut]
+    def __init__(self) -> None:
+        size = MARGIN + BLOCK_BYTES + MAX_LINE_BYTES + 2 + 1 + 16
+        self.raw = bytearray(size)
+        self.bytes = np.frombuffer(self.raw, dtype=np.uint8)
+        # the little-endian 64-bit word at every byte offset
+        self.words: U64 = np.ndarray((size - 7,), dtype="<u8", buffer=self.raw, strides=(1,))
+
+    def blocks(self, fh: Any) -> Iterator[tuple[int, int]]:
+        """Bounds in the buffer of blocks of whole lines (each ending in a newline), about
+        BLOCK_BYTES each; a block is overwritten by the next."""
+        raw, view = self.raw, memoryview(self.raw)
+        have = MARGIN
+        while True:
+            try:
+                got = fh.readinto(view[have:have + BLOCK_BYTES])
+            except (OSError, EOFError, zlib.error):
+                raise Slow from None
+            if not got:
+                if have > MARGIN:
+                    raw[have] = 10
+                    yield MARGIN, have + 1
+                return
+            have += got
+            cut = raw.rfind(b"\n", MARGIN, have) + 1
+            if cut == 0:
+                if have - MARGIN > MAX_LINE_BYTES + 2:
+                    raise Slow
+                continue
+            yield MARGIN, cut
+            rest = have - cut
+            raw[MARGIN:MARGIN + rest] = raw[cut:have]
+            have = MARGIN + rest
 
 
 class _Order:
@@ -81,7 +96,8 @@ class _Order:
 
 
 class _FastReader:
-    def __init__(self) -> None:
+    def __init__(self, buf: _Buffer) -> None:
+        self.buf = buf
         self.declared: list[int] = []
         self.state = "start"
         self.current: _Order | None = None
@@ -130,92 +146,98 @@ class _FastReader:
             return
         raise Slow
 
-    # -- a run of n-gram lines ------------------------------------------------------------
+    # -- a block: its lines, runs of n-gram lines between the others ------------------------
 
-    def grams(self, arr: npt.NDArray[np.uint8], padded: npt.NDArray[np.uint64],
-              block: bytes, starts: I64, ends: I64) -> None:
+    def block(self, lo: int, hi: int) -> None:
+        buf, raw = self.buf.bytes, self.buf.raw
+        arr = buf[lo:hi]
+        found = arr <= 32
+        found |= arr == 46
+        at = np.flatnonzero(found)  # the separators (and any other byte below "!")
+        del found
+        at += lo
+        what = buf[at]
+        nl = np.flatnonzero(what == 10)
+        ends = at[nl]
+        starts = np.empty_like(ends)
+        starts[0] = lo
+        starts[1:] = ends[:-1] + 1
+        i = 0
+        if self.state != "grams":  # the header: line by line until a section mark is taken
+            while i < len(ends) and self.state not in ("grams", "end"):
+                self.line(bytes(raw[starts[i]:ends[i]]))
+                i += 1
+            if self.state != "grams":
+                return
+        # lines that are not n-grams: blank or starting with a backslash; everything
+        # between two of them is one run of n-grams
+        other = ends[i:] == starts[i:]
+        other |= buf[starts[i:]] == 0x5C
+        run = i
+        for m in [*(np.flatnonzero(other) + i).tolist(), len(ends)]:
+            if m > run:
+                first = int(nl[run - 1]) + 1 if run else 0
+                last = int(nl[m - 1]) + 1
+                self.grams(at[first:last], what[first:last], nl[run:m] - first,
+                           starts[run:m], ends[run:m])
+            if m < len(ends):
+                self.line(bytes(raw[starts[m]:ends[m]]))
+                if self.state == "end":
+                    return
+            run = m + 1
+
+    def grams(self, at: I64, what: npt.NDArray[np.uint8], nl: I64, starts: I64,
+              ends: I64) -> None:
+        """A run of n-gram lines, given its separators (``at``: positions, ``what``: bytes),
+        the index among them of each line's newline, and the lines' bounds."""
         order = self.current
         if self.state != "grams" or order is None:
             raise Slow
         n, k = len(starts), order.k
         if order.filled + n > order.count or int((ends - starts).max()) > MAX_LINE_BYTES:
             raise Slow
-        lo, hi = int(starts[0]), int(ends[-1])
-        seg = arr[lo:hi + 1]
-        if not seg.all():
-            raise Slow  # a 0 byte: never in a word nor a number
-        tabs = np.flatnonzero(seg == 9)
-        tabs += lo
-        first_tab = np.searchsorted(tabs, starts)
-        n_tabs = np.searchsorted(tabs, ends) - first_tab
-        if order.top:
-            if np.any(n_tabs != 1):
-                raise Slow
-            has_bow = None
-        else:
-            if np.any((n_tabs != 1) & (n_tabs != 2)):
-                raise Slow
-            has_bow = n_tabs == 2
-        if not len(tabs) or int(first_tab[-1]) >= len(tabs):
+        is_tab = what == 9
+        is_space = what == 32
+        is_point = what == 46
+        n_tabs = int(np.count_nonzero(is_tab))
+        n_points = int(np.count_nonzero(is_point))
+        spaces = np.flatnonzero(is_space)
+        if n_tabs + len(spaces) + n_points + n != len(what) or len(spaces) != n * (k - 1):
+            raise Slow  # a byte below the space other than tab and newline
+        # each line: [point] TAB words [TAB [point]] NEWLINE, points in words aside
+        line_first = np.empty(n, dtype=np.int64)
+        line_first[0] = 0
+        line_first[1:] = nl[:-1] + 1
+        prob_point = is_point[line_first]
+        tab1 = line_first + prob_point
+        if not is_tab[tab1].all():
             raise Slow
-        t1 = tabs[first_tab]
+        last = nl - 1
+        bow_point = is_point[last]
+        tab2 = last - bow_point
+        has_bow = is_tab[tab2] & (tab2 > tab1)
+        n_bows = int(np.count_nonzero(has_bow))
+        if n_tabs != n + n_bows or (order.top and n_bows):
+            raise Slow
+        t1 = at[tab1]
         w_start = t1 + 1
-        if has_bow is None:
-            w_end = ends
-        else:
-            w_end = np.where(has_bow, tabs[np.minimum(first_tab + 1, len(tabs) - 1)], ends)
+        w_end = np.where(has_bow, at[tab2], ends) if n_bows else ends
         if np.any(w_end <= w_start) or np.any(t1 <= starts):
             raise Slow
-        spaces = np.flatnonzero(seg == 32)
-        spaces += lo
-        if len(spaces) != n * (k - 1):
-            raise Slow
-        # the numbers: the words blanked out (a mask repeated field by field: number and
-        # tab, words, the rest of the line), then one parse of the whole run
-        if has_bow is not None and np.any(has_bow & (ends <= w_end + 1)):
+        if n_bows and np.any(has_bow & (ends <= w_end + 1)):
             raise Slow  # an empty back-off field
-        spans = np.empty((n, 3), dtype=np.int64)
-        spans[:, 0] = w_start - starts
-        spans[:, 1] = w_end - w_start
-        spans[:, 2] = ends + 1 - w_end
-        keep = np.repeat(np.tile(_KEEP, n), spans.reshape(-1))
-        numbers = np.bitwise_and(seg, keep)
-        np.invert(keep, out=keep)
-        keep &= np.uint8(32)
-        numbers |= keep
-        del keep
-        # digits, signs, points, exponents and the three separators only: no letter past
-        # "e" (inf and nan are refused below), no other white space or control byte
-        if int(numbers.max()) > 0x65 or np.any(np.less(numbers - np.uint8(11), 3)):
-            raise Slow
-        want = n if has_bow is None else n + int(np.count_nonzero(has_bow))
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
-            try:
-                values = np.fromstring(numbers.tobytes(), dtype=np.float64, sep=" ")
-            except (ValueError, DeprecationWarning):
-                raise Slow from None
-        if len(values) != want or not np.all(np.isfinite(values)):
-            raise Slow
-        at = order.filled
-        if has_bow is None:
-            prob = values
-        else:
-            pos = np.zeros(n, dtype=np.int64)
-            np.cumsum(1 + has_bow[:-1], out=pos[1:])
-            prob = values[pos]
-            assert order.bow is not None
-            got = order.bow[at:at + n]
-            got[has_bow] = values[pos[has_bow] + 1]
-            if not np.all(np.isfinite(got)):
-                raise Slow
-        if not np.all(prob <= 0):
-            raise Slow
-        order.prob[at:at + n] = prob
+        # the numbers
+        at_fill = order.filled
+        prob_point = np.where(prob_point, at[line_first], t1)
+        bow_point = np.where(bow_point, at[last], ends) if n_bows else ends
+        self.fill_numbers(order, at_fill, starts, prob_point, t1, has_bow, n_bows, w_end,
+                          bow_point, ends)
         # the words
+        spaces = at[spaces]
         if k == 1:
-            order.unigrams.extend(block[a:b] for a, b in zip(w_start.tolist(), w_end.tolist(),
-                                                               strict=True))
+            raw = self.buf.raw
+            order.unigrams.extend(bytes(raw[a:b]) for a, b in zip(w_start.tolist(),
+                                                                  w_end.tolist(), strict=True))
         else:
             if k > 2:
                 gaps = spaces.reshape(n, k - 1)
@@ -230,26 +252,68 @@ class _FastReader:
                 tok_start = np.stack([w_start, spaces + 1], axis=1)
                 tok_end = np.stack([spaces, w_end], axis=1)
             assert order.keys is not None
-            words = self.word_ids(padded, block, tok_start.reshape(-1),
-                                  tok_end.reshape(-1)).reshape(n, k)
-            order.keys[at:at + n] = self.key_of(words)
+            words = self.word_ids(tok_start.reshape(-1), tok_end.reshape(-1)).reshape(n, k)
+            order.keys[at_fill:at_fill + n] = self.key_of(words)
         order.filled += n
 
+    def fill_numbers(self, order: _Order, at: int, starts: I64, prob_point: I64, t1: I64,
+                     has_bow: npt.NDArray[np.bool_], n_bows: int, w_end: I64,
+                     bow_point: I64, ends: I64) -> None:
+        n = len(starts)
+        prob = self.numbers(starts, prob_point, t1)
+        if not np.all(prob <= 0):
+            raise Slow
+        order.prob[at:at + n] = prob
+        if n_bows:
+            assert order.bow is not None
+            if n_bows == n:
+                order.bow[at:at + n] = self.numbers(w_end + 1, bow_point, ends)
+            else:
+                got = order.bow[at:at + n]
+                got[has_bow] = self.numbers(w_end[has_bow] + 1, bow_point[has_bow],
+                                            ends[has_bow])
+
+    def numbers(self, start: I64, point: I64, end: I64) -> F64:
+        values, done = parse_fields(self.buf.words, self.buf.bytes, start, point, end)
+        if not done.all():
+            odd = np.flatnonzero(~done)
+            raw = self.buf.raw
+            try:
+                values[odd] = parse_texts([bytes(raw[a:b]) for a, b in
+                                           zip(start[odd].tolist(), end[odd].tolist(),
+                                               strict=True)])
+            except ValueError:
+                raise Slow from None
+        return values
+
     def key_of(self, words: npt.NDArray[np.int32]) -> npt.NDArray[np.uint64]:
-        """Each row's key: its suffix found order by order in the tables made so far."""
+        """Each row's key: its suffix found order by order in the tables made so far (once
+        for each run of rows with the same suffix, as in a file sorted by suffix)."""
         assert self.vocab is not None
-        k = words.shape[1]
+        n, k = words.shape
         v = np.uint64(len(self.vocab))
-        suffix = words[:, k - 1].astype(np.int64)
+        if k > 2:
+            new = np.empty(n, dtype=bool)
+            new[0] = True
+            np.not_equal(words[1:, 1], words[:-1, 1], out=new[1:])
+            for j in range(2, k):
+                new[1:] |= words[1:, j] != words[:-1, j]
+            heads = np.flatnonzero(new)
+            tails = words[heads] if len(heads) < n else words
+        else:
+            tails = words
+        suffix = tails[:, k - 1].astype(np.int64)
         for j in range(2, k):
             index = self.index[j - 1]
             assert index is not None
             key = suffix.astype(np.uint64)
             key *= v
-            key += words[:, k - j].astype(np.uint64)
+            key += tails[:, k - j].astype(np.uint64)
             suffix = index.find(key)
             if np.any(suffix < 0):
                 raise Slow  # a suffix the file does not list: the exact reader adds it
+        if len(suffix) < n:
+            suffix = np.repeat(suffix, np.diff(heads, append=n))
         key = suffix.astype(np.uint64)
         key *= v
         key += words[:, 0].astype(np.uint64)
@@ -257,7 +321,7 @@ class _FastReader:
 
     # -- words to ids -----------------------------------------------------------------------
 
-    def set_vocabulary(self, unigrams: list[bytes]) -> I64:
+    def set_vocabulary(self, unigrams: list[bytes], log10: F64) -> I64:
         try:
             words = [w.decode("utf-8") for w in unigrams]
         except UnicodeDecodeError:
@@ -269,81 +333,20 @@ class _FastReader:
         encoded = [w.encode("utf-8") for w in vocab.words]
         if any(b"\0" in w for w in encoded):
             raise Slow
-        short = np.array([len(w) <= WORD_BYTES for w in encoded])
-        joined = b"".join(w.ljust(WORD_BYTES, b"\0")[:WORD_BYTES] for w in encoded)
-        pairs = np.frombuffer(joined, dtype="<u8").reshape(-1, 2)
-        self.x0 = np.ascontiguousarray(pairs[:, 0])
-        self.x1 = np.ascontiguousarray(pairs[:, 1])
-        mixed = self._mix(self.x0, self.x1)
-        mixed[~short] = hashindex.NO_KEY - np.uint64(1) - np.arange(  # never matched
-            int(np.count_nonzero(~short)), dtype=np.uint64)
-        if len(np.unique(mixed)) != len(mixed) or np.any(mixed == hashindex.NO_KEY):
-            raise Slow
-        # the table holds each slot's word as its two integers: a probe compares both
-        slots = hashindex.build_slots(mixed)
-        self.bits = len(slots).bit_length() - 1
-        # empty slots and long words' slots hold 0, which no query holds: every token
-        # starts with a byte that is not 0 (a block with a 0 byte is the exact reader's)
-        short_slot = slots >= 0
-        short_slot[short_slot] = short[slots[short_slot]]
-        self.held0 = np.where(short_slot, self.x0[slots], np.uint64(0))
-        self.held1 = np.where(short_slot, self.x1[slots], np.uint64(0))
-        self.ids = slots
-        self.short = short
-        self.long_words = {w: i for i, w in enumerate(encoded) if len(w) > WORD_BYTES}
+        # most probable first (<s> leads: it is the first word of many n-grams, though
+        # never predicted): they take their home slot before the others
+        rank = np.full(len(vocab), -math.inf)
+        rank[rows] = log10
+        rank[BOS_ID] = math.inf
+        self.words = WordIds(encoded, np.argsort(-rank, kind="stable"))
         self.vocab = vocab
         return rows
 
-    @staticmethod
-    def _mix(x0: npt.NDArray[np.uint64], x1: npt.NDArray[np.uint64]) -> npt.NDArray[np.uint64]:
-        with np.errstate(over="ignore"):
-            z = x0 * _MIX1
-            z += x1 * _MIX2
-        z ^= z >> np.uint64(31)
-        return z
-
-    def _find(self, x0: npt.NDArray[np.uint64], x1: npt.NDArray[np.uint64]) -> I64:
-        """The id of each word given as its two integers, or -1: linear probing from the
-        slot that :func:`hashindex.build_slots` gave the word's mixed value."""
-        mask = len(self.ids) - 1
-        where = hashindex.home(self._mix(x0, x1), self.bits)
-        found = self.ids[where].astype(np.int64)
-        miss = (self.held0[where] != x0) | (self.held1[where] != x1)
-        if not miss.any():
-            return found
-        pending = np.flatnonzero(miss)
-        found[pending] = -1
-        where = where[pending]
-        pending = pending[self.ids[where] >= 0]  # an empty slot: not a word of the file
-        where = where[self.ids[where] >= 0]
-        while pending.size:
-            where = (where + 1) & mask
-            at = self.ids[where]
-            hit = (self.held0[where] == x0[pending]) & (self.held1[where] == x1[pending])
-            found[pending[hit]] = at[hit]
-            more = ~hit & (at >= 0)
-            pending, where = pending[more], where[more]
-        return found
-
-    def word_ids(self, padded: npt.NDArray[np.uint64], block: bytes, start: I64,
-                 end: I64) -> npt.NDArray[np.int32]:
-        length = end - start
-        x0 = padded[start]
-        x0 &= _LOW[np.minimum(length, 8)]
-        x1 = padded[start + 8]
-        x1 &= _LOW[np.clip(length - 8, 0, 8)]
-        found = self._find(x0, x1)
-        ok = found >= 0
-        long = length > WORD_BYTES
-        if long.any():
-            at = np.flatnonzero(long)
-            got = [self.long_words.get(block[a:b], -1)
-                   for a, b in zip(start[at].tolist(), end[at].tolist(), strict=True)]
-            found[at] = got
-            ok[at] = found[at] >= 0
-        if not ok.all():
+    def word_ids(self, start: I64, end: I64) -> npt.NDArray[np.int32]:
+        found = self.words.find(self.buf.words, self.buf.raw, start, end)
+        if np.any(found < 0):
             raise Slow
-        return found.astype(np.int32)
+        return found
 
     # -- each order, once read: straight into the compact tables ---------------------------
 
@@ -354,7 +357,7 @@ class _FastReader:
         if order.filled != order.count:
             raise Slow
         if order.k == 1:
-            rows = self.set_vocabulary(order.unigrams)
+            rows = self.set_vocabulary(order.unigrams, order.prob)
             assert self.vocab is not None
             v = len(self.vocab)
             logp1 = np.full(v, -math.inf)
@@ -410,48 +413,10 @@ def _permuted(values: F64, perm: npt.NDArray[Any], out: F64) -> F64:
 
 
 def read_fast(fh: Any) -> tuple[BackoffTables, dict[str, Any]]:
-    reader = _FastReader()
-    for block in _blocks(fh):
+    buf = _Buffer()
+    reader = _FastReader(buf)
+    for lo, hi in buf.blocks(fh):
+        reader.block(lo, hi)
         if reader.state == "end":
             break
-        arr = np.frombuffer(block, dtype=np.uint8)
-        ends = np.flatnonzero(arr == 10)
-        starts = np.empty_like(ends)
-        starts[0] = 0
-        starts[1:] = ends[:-1] + 1
-        # lines that are not n-grams: blank, starting with a backslash, or anything while
-        # the header is read; everything between two of them is one run of n-grams
-        other = (ends == starts) | (arr[starts] == 0x5C)
-        if reader.state != "grams":
-            # the header: line by line until the first section mark is taken
-            i = 0
-            while i < len(ends) and reader.state != "grams":
-                reader.line(block[starts[i]:ends[i]])
-                i += 1
-                if reader.state == "end":
-                    break
-            if reader.state != "grams":
-                continue
-            other[:i] = True
-            skip_upto = i
-        else:
-            skip_upto = 0
-        padded = _padded(arr)
-        marks = np.flatnonzero(other)
-        run_start = skip_upto
-        for m in [*marks[marks >= skip_upto].tolist(), len(ends)]:
-            if m > run_start:
-                reader.grams(arr, padded, block, starts[run_start:m], ends[run_start:m])
-            if m < len(ends):
-                reader.line(block[starts[m]:ends[m]])
-                if reader.state == "end":
-                    break
-            run_start = m + 1
     return reader.tables(), reader.meta
-
-
-def _padded(arr: npt.NDArray[np.uint8]) -> npt.NDArray[np.uint64]:
-    """A little-endian uint64 at every byte offset of ``arr`` (zeros past its end)."""
-    buf = np.zeros(len(arr) + 16, dtype=np.uint8)
-    buf[:len(arr)] = arr
-    return np.ndarray((len(arr) + 8,), dtype="<u8", buffer=buf, strides=(1,))

@@ -23,7 +23,7 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.lm import hashindex
-from rescore.lm.arpa_numbers import MARGIN, parse_fields, parse_texts
+from rescore.lm.arpa_numbers import MARGIN, chunks, parse_fields, parse_texts
 from rescore.lm.arpa_text import F64, I64, MAX_LINE_BYTES, NGRAM_LINE, SECTION, ln10
 from rescore.lm.arpa_words import WordIds
 from rescore.lm.model import MAX_ORDER
@@ -50,6 +50,7 @@ class _Buffer:
         self.bytes = np.frombuffer(self.raw, dtype=np.uint8)
         # the little-endian 64-bit word at every byte offset
         self.words: U64 = np.ndarray((size - 7,), dtype="<u8", buffer=self.raw, strides=(1,))
+        self.chunks = chunks(self.raw)
 
     def blocks(self, fh: Any) -> Iterator[tuple[int, int]]:
         """Bounds in the buffer of blocks of whole lines (each ending in a newline), about
@@ -274,7 +275,7 @@ class _FastReader:
                                             ends[has_bow])
 
     def numbers(self, start: I64, point: I64, end: I64) -> F64:
-        values, done = parse_fields(self.buf.words, self.buf.bytes, start, point, end)
+        values, done = parse_fields(self.buf.chunks, self.buf.bytes, start, point, end)
         if not done.all():
             odd = np.flatnonzero(~done)
             raw = self.buf.raw
@@ -287,37 +288,36 @@ class _FastReader:
         return values
 
     def key_of(self, words: npt.NDArray[np.int32]) -> npt.NDArray[np.uint64]:
-        """Each row's key: its suffix found order by order in the tables made so far (once
-        for each run of rows with the same suffix, as in a file sorted by suffix)."""
+        """Each row's key: its suffix found order by order in the tables made so far, once
+        for each run of rows with the same suffix (as in a file sorted by suffix)."""
         assert self.vocab is not None
         n, k = words.shape
         v = np.uint64(len(self.vocab))
-        if k > 2:
-            new = np.empty(n, dtype=bool)
-            new[0] = True
-            np.not_equal(words[1:, 1], words[:-1, 1], out=new[1:])
-            for j in range(2, k):
-                new[1:] |= words[1:, j] != words[:-1, j]
-            heads = np.flatnonzero(new)
-            tails = words[heads] if len(heads) < n else words
-        else:
-            tails = words
-        suffix = tails[:, k - 1].astype(np.int64)
+        # new[i]: row i's suffix of j words (the last j) differs from row i-1's
+        new = np.empty(n, dtype=bool)
+        new[0] = True
+        np.not_equal(words[1:, k - 1], words[:-1, k - 1], out=new[1:])
+        heads = np.flatnonzero(new)
+        suffix = words[heads, k - 1].astype(np.uint64)
         for j in range(2, k):
             index = self.index[j - 1]
             assert index is not None
-            key = suffix.astype(np.uint64)
+            run = np.cumsum(new, dtype=np.int64)  # 1 + the run of j - 1 words of each row
+            new[1:] |= words[1:, k - j] != words[:-1, k - j]
+            heads = np.flatnonzero(new)
+            key = suffix[run[heads] - 1]
+            del run
             key *= v
-            key += tails[:, k - j].astype(np.uint64)
-            suffix = index.find(key)
-            if np.any(suffix < 0):
+            key += words[heads, k - j].astype(np.uint64)
+            found = index.find(key)
+            if np.any(found < 0):
                 raise Slow  # a suffix the file does not list: the exact reader adds it
-        if len(suffix) < n:
+            suffix = found.view(np.uint64)
+        if len(heads) < n:
             suffix = np.repeat(suffix, np.diff(heads, append=n))
-        key = suffix.astype(np.uint64)
-        key *= v
-        key += words[:, 0].astype(np.uint64)
-        return key
+        out: npt.NDArray[np.uint64] = suffix * v
+        out += words[:, 0].astype(np.uint64)
+        return out
 
     # -- words to ids -----------------------------------------------------------------------
 

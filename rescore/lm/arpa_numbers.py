@@ -22,8 +22,7 @@ import numpy.typing as npt
 from rescore.lm.arpa_text import F64, I64
 
 U64 = npt.NDArray[np.uint64]
-MARGIN = 24  # readable bytes before a block: a number's digits are read in 8-byte words
-# that start up to 17 bytes before its end
+MARGIN = 24  # readable bytes before a block: a number's last 24 bytes are read at once
 MAX_DIGITS = 15  # 10**15 < 2**53: the integer of the digits is an exact double
 
 # _HIGH[i]: the top i bytes of a 64-bit word (the last i characters of 8 read from memory)
@@ -51,39 +50,56 @@ def _eight(v: U64) -> U64:
     return v
 
 
-def parse_fields(words: U64, buf: npt.NDArray[np.uint8], start: I64, point: I64,
-                 end: I64) -> tuple[F64, npt.NDArray[np.bool_]]:
+def chunks(raw: Any) -> npt.NDArray[np.void]:
+    """The 24 bytes at every byte offset of ``raw`` (read as three 64-bit words)."""
+    return np.ndarray((len(raw) - 23,), dtype="V24", buffer=raw, strides=(1,))
+
+
+def parse_fields(chunk: npt.NDArray[np.void], buf: npt.NDArray[np.uint8], start: I64,
+                 point: I64, end: I64) -> tuple[F64, npt.NDArray[np.bool_]]:
     """Each number ``buf[start:end]``, its point at ``point`` (``end`` when it has none), as
     ``float()`` reads it; and which of them were read (False: an other form, its value
-    undefined). ``words[i]`` is the little-endian 64-bit word at byte ``i`` of ``buf``,
-    which holds at least MARGIN bytes before any ``start`` and 8 after any ``end``."""
+    undefined). ``chunk`` is :func:`chunks` of ``buf``, which holds at least MARGIN bytes
+    before any ``start``."""
     neg = buf[start] == 45  # "-"
     has_point = point < end
-    frac = np.where(has_point, end - point - 1, 0)  # digits after the point
-    digits = point - start - neg + frac
-    ok = (digits >= 1) & (digits <= MAX_DIGITS) & (point >= start + neg)
-    np.clip(frac, 0, MAX_DIGITS, out=frac)
-    np.clip(digits, 0, MAX_DIGITS, out=digits)
-    # the digits without the point, right-aligned in two words: those after the point where
-    # they are, those before it read one byte earlier (closing the point's gap)
+    frac = end - point  # digits after the point
+    frac -= 1
+    np.maximum(frac, 0, out=frac)
+    digits = point - start
+    digits -= neg
+    digits += frac
+    ok = (digits - 1).view(np.uint64) < np.uint64(MAX_DIGITS)  # 1 to 15 digits
+    np.minimum(frac, MAX_DIGITS, out=frac)
+    np.minimum(digits, MAX_DIGITS, out=digits)
+    # which bytes of the last 16 before the end are kept: the fraction's, the digits'
     f_low = np.minimum(frac, 8)
     d_low = np.minimum(digits, 8)
     keep_f0, keep_d0 = _HIGH[f_low], _HIGH[d_low]
     f_low -= frac
-    np.negative(f_low, out=f_low)  # the fraction's digits in the word before
+    np.negative(f_low, out=f_low)
     d_low -= digits
     np.negative(d_low, out=d_low)
     keep_f1, keep_d1 = _HIGH[f_low], _HIGH[d_low]
-    at = end - 8
-    at_int = at - has_point
-    low = words[at]
-    low &= keep_f0
-    low |= words[at_int] & (keep_d0 ^ keep_f0)
-    at -= 8
-    at_int -= 8
-    high = words[at]
-    high &= keep_f1
-    high |= words[at_int] & (keep_d1 ^ keep_f1)
+    # the 24 bytes before the end, in one read: the digits without the point,
+    # right-aligned in two words, those after the point where they are, those before it
+    # moved one byte on (closing the point's gap)
+    got = chunk[end - 24].view("<u8").reshape(-1, 3)
+    c0, c1, c2 = got[:, 0], got[:, 1], got[:, 2]
+    one = has_point.view(np.uint8).astype(np.uint64)
+    shift = one << np.uint64(3)
+    keep_d0 ^= keep_f0  # the digits before the point
+    keep_d1 ^= keep_f1
+    low = c2 << shift
+    low |= (c1 >> np.uint64(56)) * one
+    low &= keep_d0
+    low |= c2 & keep_f0
+    high = c1 << shift
+    high |= (c0 >> np.uint64(56)) * one
+    high &= keep_d1
+    high |= c1 & keep_f1
+    keep_d0 |= keep_f0  # every digit
+    keep_d1 |= keep_f1
     # digits only: each kept byte minus "0" (by XOR) must be 0 to 9
     low ^= _ZEROS & keep_d0
     high ^= _ZEROS & keep_d1

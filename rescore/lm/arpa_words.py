@@ -51,7 +51,8 @@ class _Table:
     """Words (as one or two integers each) to ids, by linear probing."""
 
     def __init__(self, x0: U64, x1: U64 | None, ids: I64) -> None:
-        self.bits = max(4, (2 * len(ids) - 1).bit_length())  # at most half full
+        # at most an eighth full: nearly every look-up ends at its home slot
+        self.bits = max(4, (8 * len(ids) - 1).bit_length())
         self.two = x1 is not None
         slots = slots_in_order(self.home(x0, x1), self.bits)
         filled = np.flatnonzero(slots >= 0)
@@ -76,10 +77,10 @@ class _Table:
     def find(self, x0: U64, x1: U64 | None) -> I32:
         """The id of each word, or -1."""
         where = self.home(x0, x1)
-        found = self.ids[where]
-        miss = self.held0[where] != x0
+        found = self.ids.take(where)
+        miss = self.held0.take(where) != x0
         if self.held1 is not None and x1 is not None:
-            miss |= self.held1[where] != x1
+            miss |= self.held1.take(where) != x1
         if not miss.any():
             return found
         pending = np.flatnonzero(miss)

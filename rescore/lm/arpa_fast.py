@@ -233,25 +233,21 @@ class _FastReader:
         bow_point = np.where(bow_point, at[last], ends) if n_bows else ends
         self.fill_numbers(order, at_fill, starts, prob_point, t1, has_bow, n_bows, w_end,
                           bow_point, ends)
-        # the words
-        spaces = at[spaces]
+        # the words: every one at least a byte long (then each line's spaces, k - 1 in
+        # all of them, lie in its own word field)
         if k == 1:
             raw = self.buf.raw
             order.unigrams.extend(bytes(raw[a:b]) for a, b in zip(w_start.tolist(),
                                                                   w_end.tolist(), strict=True))
         else:
-            if k > 2:
-                gaps = spaces.reshape(n, k - 1)
-                inside = (gaps > w_start[:, None]) & (gaps < w_end[:, None] - 1)
-                if not inside.all() or np.any(np.diff(gaps, axis=1) < 2):
-                    raise Slow
-                tok_start = np.concatenate([w_start[:, None], gaps + 1], axis=1)
-                tok_end = np.concatenate([gaps, w_end[:, None]], axis=1)
-            else:
-                if np.any(spaces <= w_start) or np.any(spaces >= w_end - 1):
-                    raise Slow
-                tok_start = np.stack([w_start, spaces + 1], axis=1)
-                tok_end = np.stack([spaces, w_end], axis=1)
+            gaps = at[spaces].reshape(n, k - 1)
+            tok_start = np.empty((n, k), dtype=np.int64)
+            tok_start[:, 0] = w_start
+            np.add(gaps, 1, out=tok_start[:, 1:])
+            tok_end = np.empty((n, k), dtype=np.int64)
+            tok_end[:, :-1] = gaps
+            tok_end[:, -1] = w_end
+            del gaps
             assert order.keys is not None
             words = self.word_ids(tok_start.reshape(-1), tok_end.reshape(-1)).reshape(n, k)
             order.keys[at_fill:at_fill + n] = self.key_of(words)

@@ -118,11 +118,14 @@ class WordIds:
         self.long = {w: i for i, w in enumerate(encoded) if len(w) > WORD_BYTES}
 
     def find(self, words: U64, raw: bytearray, start: I64, end: I64) -> I32:
-        """The id of each token ``raw[start:end]`` (-1 for a word not in the vocabulary),
-        ``words[i]`` being the little-endian 64-bit word at byte ``i`` of ``raw``."""
+        """The id of each token ``raw[start:end]`` (-1 for a word not in the vocabulary, or
+        an empty token), ``words[i]`` being the little-endian 64-bit word at byte ``i`` of
+        ``raw``."""
         length = end - start
+        if not len(length) or int(length.min()) < 1:
+            return np.full(len(length), -1, dtype=np.int32)
         x0 = words[start]
-        if int(length.max(initial=0)) <= 8:
+        if int(length.max()) <= 8:
             x0 &= _LOW[length]
             return self.short.find(x0, None)
         x0 &= _LOW[np.minimum(length, 8)]

@@ -64,19 +64,20 @@ def write_lines(tables: BackoffTables, path: str | Path, *, closed_vocab: bool =
 
 
 NUMBER_WIDTH = 24
-ROWS_PER_BLOCK = 1 << 18
+ROWS_PER_BLOCK = 1 << 15
 MAX_WORD_WIDTH = 64  # longer words: the line-by-line writer
 _POW10 = 10.0 ** np.arange(0, 14)
 
 
-_FIVE: list[tuple[npt.NDArray[np.uint8], I64]] = []
+_FIVE: list[tuple[npt.NDArray[np.void], I64]] = []
 
 
-def _five_digits() -> tuple[npt.NDArray[np.uint8], I64]:
-    """The characters of 00000 .. 99999 (100000 x 5) and each one's trailing zeros."""
+def _five_digits() -> tuple[npt.NDArray[np.void], I64]:
+    """The characters of 00000 .. 99999 (100000 items of 5 bytes) and each one's trailing
+    zeros."""
     if not _FIVE:
         text = "".join(f"{i:05d}" for i in range(100_000)).encode("ascii")
-        chars = np.frombuffer(text, dtype=np.uint8).reshape(100_000, 5)
+        chars = np.frombuffer(text, dtype="V5")
         tz = np.zeros(100_000, dtype=np.int64)
         for z in range(1, 6):
             tz[np.arange(0, 100_000, 10 ** z)] = z
@@ -84,74 +85,102 @@ def _five_digits() -> tuple[npt.NDArray[np.uint8], I64]:
     return _FIVE[0]
 
 
-def _layout(e: int, neg: bool) -> list[int]:
-    """Source columns (digits 0-9, then '.', '0', '-') of ``%.10g`` with exponent ``e``."""
-    sign = [12] if neg else []
-    if e >= 0:
-        return sign + list(range(e + 1)) + [10] + list(range(e + 1, 10))
-    return sign + [11, 10] + [11] * (-e - 1) + list(range(10))
+_ROW = 16  # a number's row: "0000", its ten digits, two bytes to spare
+_TEXT = 16  # the longest text of the fast path: "-0.000" and ten digits
 
 
-_LAYOUTS = [_layout(e, bool(neg)) for e in range(-4, 10) for neg in (0, 1)]
+def _lane_masks() -> tuple[npt.NDArray[np.uint64], npt.NDArray[np.uint64],
+                           npt.NDArray[np.uint64]]:
+    """By (point position, sign): which of the 16 bytes (two little-endian 64-bit words)
+    come from the text before the point, which from the text after it, and the bytes
+    of the point and the sign themselves."""
+    before = np.zeros((2 * (_TEXT + 1), _TEXT), dtype=np.uint8)
+    after = np.zeros_like(before)
+    marks = np.zeros_like(before)
+    for p in range(_TEXT + 1):
+        for neg in (0, 1):
+            r = 2 * p + neg
+            before[r, neg:p] = 0xFF
+            after[r, p + 1:] = 0xFF
+            if p < _TEXT:
+                marks[r, p] = ord(".")
+            if neg:
+                marks[r, 0] = ord("-")
+    return tuple(np.ascontiguousarray(m.view("<u8").T)  # type: ignore[return-value]
+                 for m in (before, after, marks))
+
+
+_BEFORE, _AFTER, _MARKS = _lane_masks()
 
 
 def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
     """``%.10g`` of each value in log10, as ARPA files carry it (-99 for zero, a value that
-    would print as -99 nudged below it): a (n, NUMBER_WIDTH) byte matrix and lengths."""
+    would print as -99 nudged below it): a (n, NUMBER_WIDTH) byte matrix and lengths.
+
+    Each text is cut from a row of "0000" and the ten rounded digits: from the digits
+    (|x| >= 1) or from the zeros the value needs after "0." (|x| < 1), with the point put
+    after the digits before it and the sign in front (by masks over two 64-bit words)."""
     x = ln_values * LOG10E
     n = len(x)
-    out = np.zeros((n, NUMBER_WIDTH), dtype=np.uint8)
-    length = np.zeros(n, dtype=np.int64)
+    out = np.empty((n, NUMBER_WIDTH), dtype=np.uint8)
+    words = out.view("<u8")  # three a row
+    words[:, 2] = 0
     finite = np.isfinite(x)
     ax = np.abs(np.where(finite, x, 1.0))
     with np.errstate(divide="ignore"):
         e = np.floor(np.log10(np.where(ax > 0, ax, 1.0))).astype(np.int64)
     ok = finite & (ax >= 1e-4) & (ax < 1e10)
-    e = np.clip(e, -4, 9)
+    np.clip(e, -4, 9, out=e)
     y = ax * _POW10[9 - e]
     low = ok & (y < 999999999.5)  # log10 overestimated the exponent
-    e[low] -= 1
+    e -= low
     ok &= e >= -4
-    e = np.clip(e, -4, 9)
+    np.clip(e, -4, 9, out=e)
     y = ax * _POW10[9 - e]
     frac = y - np.floor(y)
     ok &= np.abs(frac - 0.5) > 1e-5
     digits_value = np.rint(y).astype(np.int64)
     high = ok & (digits_value >= 10_000_000_000)  # rounded up to the next power of ten
     digits_value[high] //= 10
-    e[high] += 1
+    e += high
     ok &= (e <= 9) & (digits_value >= 1_000_000_000) & (digits_value < 10_000_000_000)
-    neg = x < 0
+    neg = (x < 0).view(np.int8)
     # the ten digits as two five-digit halves, each looked up in a table of characters
-    whole = np.where(ok, digits_value, 1_000_000_000).astype(np.float64)  # exact
-    upper = np.floor(whole / 1e5)  # exact: a quotient by 1e5 never rounds across an integer
-    low_half = (whole - upper * 1e5).astype(np.int64)
-    high_half = upper.astype(np.int64)
+    digits_value[~ok] = 1_000_000_000
+    high_half = digits_value // 100_000
+    low_half = digits_value - high_half * 100_000
     chars, zeros_at_end = _five_digits()
     tz = zeros_at_end[low_half]
     tz = np.where(low_half == 0, 5 + zeros_at_end[high_half], tz)
     kept = 10 - tz
-    # characters to pick from: the ten digits, then '.', '0', '-'; one fixed layout per
-    # (exponent, sign) pair, cut to length by the trailing zeros dropped
-    ext = np.empty((n, 13), dtype=np.uint8)
-    ext[:, :5] = chars[high_half]
-    ext[:, 5:10] = chars[low_half]
-    ext[:, 10], ext[:, 11], ext[:, 12] = ord("."), ord("0"), ord("-")
-    code = np.where(ok, (e + 4) * 2 + neg, len(_LAYOUTS)).astype(np.int8)
-    present = np.bincount(code, minlength=len(_LAYOUTS) + 1)
-    for c in range(len(_LAYOUTS)):
-        if present[c] == 0:
-            continue
-        src = _LAYOUTS[c]
-        if present[c] == n:  # one layout for the whole block (common): no row selection
-            out[:, :len(src)] = ext[:, src]
-            break
-        rows = np.flatnonzero(code == c)
-        out[rows, :len(src)] = ext[rows][:, src]
+    rows = np.empty((n + 2, _ROW), dtype=np.uint8)  # a row to spare on each side
+    rows.view("<u4")[:, 0] = 0x30303030  # "0000"
+    halves = rows[1:-1].view("V1")[:, 4:14].reshape(n, 10).view("V5")
+    halves[:, 0] = chars[high_half]
+    halves[:, 1] = chars[low_half]
+    # the text after the sign: from "0000dddddddddd", at its digits (e >= 0) or e places
+    # before them, with a point after q characters (e + 1, or the 0 before the point)
+    window = np.ndarray((len(rows) * _ROW - _TEXT + 1,), dtype=f"V{_TEXT}", buffer=rows,
+                        strides=(1,))
     lead = e >= 0
-    int_len = np.where(lead, e + 1, 0)
-    frac_len = np.where(lead, np.maximum(kept - int_len, 0), kept)
-    length[:] = neg + np.where(lead, int_len + (frac_len > 0) + frac_len, 1 - e + kept)
+    start = np.arange(_ROW + 4, (n + 1) * _ROW, _ROW, dtype=np.int64)
+    start += np.minimum(e, 0)
+    start -= neg
+    q = np.maximum(e, 0) + 1
+    code = q + neg
+    code *= 2
+    code += neg  # (point position, sign)
+    before = window[start].view("<u8").reshape(n, 2)
+    after = window[start - 1].view("<u8").reshape(n, 2)
+    for j in range(2):
+        lane = _BEFORE[j].take(code)
+        lane &= before[:, j]
+        mask = _AFTER[j].take(code)
+        mask &= after[:, j]
+        lane |= mask
+        lane |= _MARKS[j].take(code)
+        words[:, j] = lane
+    length = neg + np.where(lead, q + (kept > q) + np.maximum(kept - q, 0), 1 - e + kept)
     zero = finite & (ax == 0)
     out[zero, 0] = np.where(np.signbit(x[zero]), ord("-"), ord("0"))
     out[zero, 1] = ord("0")
@@ -160,10 +189,10 @@ def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
     minus_99 = ok & (digits_value == 9_900_000_000) & (e == 1) & (neg == 1)
     special = ~ok | minus_99
     for i in np.flatnonzero(special).tolist():
-        text = fmt(ln_values[i:i + 1])[0].encode("ascii")
+        spelled = fmt(ln_values[i:i + 1])[0].encode("ascii")
         out[i, :] = 0
-        out[i, :len(text)] = np.frombuffer(text, dtype=np.uint8)
-        length[i] = len(text)
+        out[i, :len(spelled)] = np.frombuffer(spelled, dtype=np.uint8)
+        length[i] = len(spelled)
     return out, length
 
 

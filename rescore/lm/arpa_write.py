@@ -196,60 +196,79 @@ def format_numbers(ln_values: F64) -> tuple[npt.NDArray[np.uint8], I64]:
     return out, length
 
 
-def _vocab_matrix(words: tuple[str, ...]) -> tuple[npt.NDArray[np.uint8], I64] | None:
-    encoded = [w.encode("utf-8") for w in words]
-    width = max(1, max(len(w) for w in encoded))
-    if width > MAX_WORD_WIDTH:
-        return None
-    mat = np.frombuffer(b"".join(w.ljust(width, b"\0") for w in encoded),
-                        dtype=np.uint8).reshape(len(words), width)
-    return mat, np.array([len(w) for w in encoded], dtype=np.int64)
+class _Cells:
+    """Each word as a fixed-width cell: its bytes, then the separator that follows it
+    (space, tab or newline), then padding; and which bytes of the cell are kept."""
+
+    def __init__(self, encoded: list[bytes]) -> None:
+        self.width = max(len(w) for w in encoded) + 1
+        w = self.width
+        self.chars = {sep: np.frombuffer(b"".join((x + sep).ljust(w, b"\0") for x in encoded),
+                                         dtype=f"V{w}")
+                      for sep in (b" ", b"\t", b"\n")}
+        lengths = np.array([len(x) + 1 for x in encoded], dtype=np.int64)
+        self.keep = np.ascontiguousarray(np.arange(w)[None, :] < lengths[:, None]).view(
+            f"V{w}")[:, 0]
+
+    @staticmethod
+    def of(words: tuple[str, ...]) -> _Cells | None:
+        encoded = [x.encode("utf-8") for x in words]
+        if max(len(x) for x in encoded) > MAX_WORD_WIDTH:
+            return None
+        return _Cells(encoded)
 
 
-def _lines(ids: I64, probs: F64, bows: F64 | None, mat: npt.NDArray[np.uint8],
-           lens: I64) -> bytes:
+_KEEP: dict[int, npt.NDArray[np.void]] = {}
+
+
+def _keep_first(width: int) -> npt.NDArray[np.void]:
+    """By length (0 to NUMBER_WIDTH): a cell of ``width`` flags, the first ``length`` set."""
+    if width not in _KEEP:
+        flags = np.arange(width)[None, :] < np.arange(NUMBER_WIDTH + 1)[:, None]
+        _KEEP[width] = np.ascontiguousarray(flags).view(f"V{width}")[:, 0]
+    return _KEEP[width]
+
+
+def _lines(ids: npt.NDArray[Any], probs: F64, bows: F64 | None, cells: _Cells) -> bytes:
     """The ARPA lines of one block of n-grams: prob TAB w1 SPACE .. wk [TAB bow] NEWLINE,
     laid out in one fixed-width matrix whose padding a boolean mask then drops."""
     n, k = ids.shape
-    width = mat.shape[1]
+    width = cells.width
     numbers = [format_numbers(probs)] + ([format_numbers(bows)] if bows is not None else [])
     num_width = max(int(ln.max(initial=1)) for _, ln in numbers)
-    total = num_width + 1 + k * (width + 1) + (num_width + 1 if bows is not None else 0)
+    total = num_width + 1 + k * width + (num_width + 1 if bows is not None else 0)
     line = np.empty((n, total), dtype=np.uint8)
     keep = np.empty((n, total), dtype=bool)
+    keep_number = _keep_first(num_width)
     at = 0
 
-    def put(chars: npt.NDArray[np.uint8], length: I64) -> None:
+    def number(chars: npt.NDArray[np.uint8], length: I64, sep: int) -> None:
         nonlocal at
-        w = chars.shape[1]
-        line[:, at:at + w] = chars
-        np.less(np.arange(w)[None, :], length[:, None], out=keep[:, at:at + w])
-        at += w
-
-    def sep(byte: int) -> None:
-        nonlocal at
-        line[:, at] = byte
+        line[:, at:at + num_width] = chars[:, :num_width]
+        keep[:, at:at + num_width].view(f"V{num_width}")[:, 0] = keep_number[length]
+        at += num_width
+        line[:, at] = sep
         keep[:, at] = True
         at += 1
 
-    put(numbers[0][0][:, :num_width], numbers[0][1])
-    sep(9)
+    number(*numbers[0], 9)
     for j in range(k):
-        put(mat[ids[:, j]], lens[ids[:, j]])
-        sep(32 if j < k - 1 else (9 if bows is not None else 10))
+        sep = b" " if j < k - 1 else (b"\t" if bows is not None else b"\n")
+        word = ids[:, j]
+        line[:, at:at + width].view(f"V{width}")[:, 0] = cells.chars[sep][word]
+        keep[:, at:at + width].view(f"V{width}")[:, 0] = cells.keep[word]
+        at += width
     if bows is not None:
-        put(numbers[1][0][:, :num_width], numbers[1][1])
-        sep(10)
+        number(*numbers[1], 10)
     return bytes(line[keep].data)
 
 
 def write_fast(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = False) -> bool:
     """Write as :func:`write_lines` would, in vectorised blocks; False (nothing written) when
     a word is too long for the fixed-width layout."""
-    got = _vocab_matrix(tables.vocab.words)
-    if got is None:
+    cells = _Cells.of(tables.vocab.words)
+    if cells is None:
         return False
-    mat, lens = got
     order = tables.order
     unigram_rows = np.array([i for i in range(tables.vsize)
                              if not (closed_vocab and i == UNK_ID)], dtype=np.int64)
@@ -267,18 +286,19 @@ def write_fast(tables: BackoffTables, path: str | Path, *, closed_vocab: bool = 
                 words = np.empty((len(first), k), dtype=np.int32)
                 words[:, 0] = first
                 del first
-                words[:, 1:] = (np.arange(tables.vsize, dtype=np.int32)[:, None]
-                                if below is None else below)[suffix]
+                tails = (np.arange(tables.vsize, dtype=np.int32)[:, None]
+                         if below is None else below)
+                cell = f"V{4 * (k - 1)}"  # a row of the order below, gathered whole
+                words[:, 1:].view(cell)[:, 0] = tails.view(cell)[:, 0][suffix]
+                del tails
                 del suffix
                 below = words if k < order else None
-            rows = unigram_rows if k == 1 else None
             for at in range(0, counts[k - 1], ROWS_PER_BLOCK):
                 part = slice(at, at + ROWS_PER_BLOCK)
-                idx = rows[part] if rows is not None else np.arange(
-                    at, min(at + ROWS_PER_BLOCK, counts[k - 1]))
+                idx: Any = unigram_rows[part] if k == 1 else part
                 probs = tables.logp[k - 1][idx]
                 bows = tables.bow[k - 1][idx] if k < order else None
-                fh.write(_lines(words[part], probs, bows, mat, lens))
+                fh.write(_lines(words[part], probs, bows, cells))
             del words
         fh.write(b"\n\\end\\\n")
     return True

@@ -52,6 +52,11 @@ class _Buffer:
         self.words: U64 = np.ndarray((size - 7,), dtype="<u8", buffer=self.raw, strides=(1,))
         self.chunks = chunks(self.raw)
 
+    def release(self) -> None:
+        """Give the buffer's memory back (no block is read after)."""
+        del self.bytes, self.words, self.chunks
+        self.raw = bytearray()
+
     def blocks(self, fh: Any) -> Iterator[tuple[int, int]]:
         """Bounds in the buffer of blocks of whole lines (each ending in a newline), about
         BLOCK_BYTES each; a block is overwritten by the next."""
@@ -103,6 +108,7 @@ class _FastReader:
         self.state = "start"
         self.current: _Order | None = None
         self.vocab: Vocabulary | None = None
+        self.words: WordIds | None = None
         self.logp: list[F64] = []
         self.bow: list[F64] = []
         self.index: list[hashindex.BucketIndex | None] = [None]
@@ -123,10 +129,7 @@ class _FastReader:
         except UnicodeDecodeError:
             raise Slow from None
         if decoded == "\\end\\":
-            self.finish_section()
-            if len(self.declared) != len(self.logp) or not self.declared:
-                raise Slow
-            self.state = "end"
+            self.state = "end"  # the last order is finished once the buffer is given up
             return
         section = SECTION.match(decoded)
         if section:
@@ -339,6 +342,7 @@ class _FastReader:
         return rows
 
     def word_ids(self, start: I64, end: I64) -> npt.NDArray[np.int32]:
+        assert self.words is not None
         found = self.words.find(self.buf.words, self.buf.raw, start, end)
         if np.any(found < 0):
             raise Slow
@@ -393,7 +397,11 @@ class _FastReader:
         order.prob = np.zeros(0)
 
     def tables(self) -> BackoffTables:
-        if self.state != "end" or self.vocab is None:
+        if self.state != "end":
+            raise Slow
+        self.words = None  # not needed any more: the last order's peak comes next
+        self.finish_section()
+        if len(self.declared) != len(self.logp) or not self.declared or self.vocab is None:
             raise Slow
         return BackoffTables(self.vocab, self.logp, self.bow, [], [], self.index)
 
@@ -409,10 +417,10 @@ def _permuted(values: F64, perm: npt.NDArray[Any], out: F64) -> F64:
 
 
 def read_fast(fh: Any) -> tuple[BackoffTables, dict[str, Any]]:
-    buf = _Buffer()
-    reader = _FastReader(buf)
-    for lo, hi in buf.blocks(fh):
+    reader = _FastReader(_Buffer())
+    for lo, hi in reader.buf.blocks(fh):
         reader.block(lo, hi)
         if reader.state == "end":
             break
+    reader.buf.release()
     return reader.tables(), reader.meta

@@ -51,8 +51,8 @@ class _Table:
     """Words (as one or two integers each) to ids, by linear probing."""
 
     def __init__(self, x0: U64, x1: U64 | None, ids: I64) -> None:
-        # at most an eighth full: nearly every look-up ends at its home slot
-        self.bits = max(4, (16 * len(ids) - 1).bit_length())
+        # at most a quarter full: nearly every look-up ends at its home slot
+        self.bits = max(4, (4 * len(ids) - 1).bit_length())
         self.two = x1 is not None
         slots = slots_in_order(self.home(x0, x1), self.bits)
         filled = np.flatnonzero(slots >= 0)

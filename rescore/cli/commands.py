@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import io
-import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -15,7 +13,18 @@ from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.batch import DEFAULT_BATCH
 from rescore.cli import combine
-from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
+from rescore.cli._common import (
+    emit_json,
+    guarded,
+    info,
+    is_standard_output,
+    pct,
+    progress,
+    stages,
+    table,
+    take_stdout,
+    warn,
+)
 from rescore.cli.decoding import ChooseOpt, decoding_rows, rule_value, with_rule
 from rescore.cli.options import (
     BatchOpt,
@@ -136,13 +145,7 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
 def _readable_output(out: Path) -> bool:
     """Whether an output just written can be read back: a regular file that is not this
     process's standard output under another name (``/dev/stdout`` redirected to a file)."""
-    if str(out) == "-" or not out.is_file():
-        return False
-    try:
-        here, std = out.stat(), os.fstat(sys.stdout.fileno())
-    except (OSError, ValueError, io.UnsupportedOperation):
-        return True
-    return (here.st_dev, here.st_ino) != (std.st_dev, std.st_ino)
+    return str(out) != "-" and out.is_file() and not is_standard_output(out)
 
 
 def cv_gap_rate(text: str) -> float:
@@ -197,8 +200,7 @@ def apply(
     """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
     index; with references, print the WER before and after."""
     counting = counting_of(None, unit)
-    if as_json and str(out) == "-":
-        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
+    take_stdout([out, text], as_json=as_json)
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
@@ -313,6 +315,7 @@ def tune(
         if not models:
             raise UsageError("--oov-feature counts words outside an LM's vocabulary; give --lm")
         feature = list(dict.fromkeys([*(feature or []), *oov_features(list(models))]))
+    take_stdout([out, analysis], as_json=as_json)
     check_outputs([out, analysis], [nbest, refs, *(m.path for m in models.values())])
     with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(

@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 
 import numpy as np
+import numpy.typing as npt
 import pytest
 import scipy.stats
 
@@ -257,11 +258,16 @@ def test_bootstrap_refuses_no_utterances_and_no_words() -> None:
         paired_bootstrap([1], [0], [0])
 
 
+def _two_systems(seed: int, size: int, low: int, high: int, p_before: float, p_after: float
+                 ) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Invented per-utterance counts: reference words, and binomial errors of two systems."""
+    rng = np.random.default_rng(seed)
+    words = rng.integers(low, high, size=size)
+    return words, rng.binomial(words, p_before), rng.binomial(words, p_after)
+
+
 def test_bootstrap_interval_contains_point_and_is_reproducible() -> None:
-    rng = np.random.default_rng(5)
-    n_ref = rng.integers(3, 15, size=200)
-    before = rng.binomial(n_ref, 0.2)
-    after = rng.binomial(n_ref, 0.15)
+    n_ref, before, after = _two_systems(5, 200, 3, 15, 0.2, 0.15)
     a = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
     b = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
     c = paired_bootstrap(before, after, n_ref, resamples=2000, seed=10)
@@ -313,10 +319,7 @@ def test_bootstrap_coverage_near_nominal() -> None:
 
 def test_wer_intervals_are_the_paired_bootstraps_own_intervals() -> None:
     # the same draws by design: a command's table and the report give one interval
-    rng = np.random.default_rng(3)
-    words = rng.integers(1, 30, size=400)
-    before = rng.binomial(words, 0.2)
-    after = rng.binomial(words, 0.1)
+    words, before, after = _two_systems(3, 400, 1, 30, 0.2, 0.1)
     paired = paired_bootstrap(before, after, words, resamples=2000, seed=5)
     found = wer_intervals([before, after], words, resamples=2000, seed=5)
     assert found.intervals == (paired.before_ci, paired.after_ci)

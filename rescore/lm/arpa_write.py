@@ -4,8 +4,9 @@ Numbers are formatted as ``%.10g`` would, with numpy: ten significant digits fro
 exact scaling (a power of ten up to 1e13 is exact in float64), and the few values the
 scaling cannot settle (within 1e-5 of a rounding tie, or in exponent notation) by
 Python's own formatting; so the text is byte for byte what the line-by-line writer gave.
-Each line is laid out in a fixed-width byte matrix (number, words from a padded
-vocabulary matrix, number) and the padding is dropped by one boolean mask.
+Each line is laid out in a fixed-width byte matrix (number, each word as a cell of its
+bytes and the separator after it, number) and the padding is dropped by one boolean
+mask; blocks of ROWS_PER_BLOCK lines keep the temporaries in the processor's cache.
 """
 
 from __future__ import annotations

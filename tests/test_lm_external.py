@@ -25,12 +25,12 @@ from rescore.leftovers import TMP_PREFIX
 from rescore.lm import NGramModel, external, read_corpus, save_model
 from rescore.lm.counts import OrderCounts
 from rescore.lm.external import (
-    KeyCodec,
     count_external,
     merge_runs,
     parse_size,
     write_run,
 )
+from rescore.lm.keys import KeyCodec
 from rescore.lm.vocab import Vocabulary
 
 TINY = 64 << 10  # the least budget: chunks of 256 tokens, so a 20,000-word text makes ~90 runs

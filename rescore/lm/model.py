@@ -18,6 +18,7 @@ from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.external import CorpusCounts, count_external, default_memory
 from rescore.lm.fingerprint import BlockRecorder, Recorder
+from rescore.lm.ondisk import build_on_disk, streams
 from rescore.lm.quantize import quantize
 from rescore.lm.sharded import count_on_cluster
 from rescore.lm.smoothing import METHODS, make_smoother
@@ -113,6 +114,19 @@ class NGramModel:
         self._check_settings()
         if memory is not None:
             recorder = Recorder(sentences)
+            if streams(self.cutoffs, self.prune):  # the model's orders kept on disk
+                built = build_on_disk(
+                    recorder, self.order, self._choose_vocab, make_smoother(self.method, self.k),
+                    closed_vocab=self.closed_vocab, memory=memory, scratch=scratch,
+                    progress=progress)
+                self._set_fitted(built.tables, {
+                    **built.meta,
+                    "training_sentences": built.sentences,
+                    "training_words": built.words,
+                    "training_oov": built.oov,
+                })
+                self.sentence_hashes = recorder.result()
+                return self
             counted = count_external(recorder, self.order, self._choose_vocab,
                                      closed_vocab=self.closed_vocab, memory=memory,
                                      scratch=scratch, progress=progress)

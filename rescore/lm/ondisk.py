@@ -115,6 +115,13 @@ class Shelf:
             yield np.fromfile(self.path(name), dtype=dtype, count=min(step, n - lo),
                               offset=lo * dtype.itemsize)
 
+    def mapped(self, name: str) -> npt.NDArray[Any]:
+        """The array mapped read-only: its pages are read (and held) only where used."""
+        dtype, n = self._kind[name]
+        if not n:
+            return np.zeros(0, dtype=dtype)
+        return np.memmap(self.path(name), dtype=dtype, mode="r", shape=(n,))
+
     def entry(self, name: str) -> store.OnDisk:
         dtype, n = self._kind[name]
         return store.OnDisk(self.path(name), dtype, n)
@@ -274,82 +281,99 @@ def _estimate(shelf: Shelf, sizes: list[int], unigrams: I64, smoother: Smoother,
     n_pred = int(predictable.sum())
     meta: dict[str, Any] = {"discounts": {}, "fallbacks": {}}
     for k in range(1, order + 1):
-        n = sizes[k - 1]
-        raw = (unigrams if k == 1 else shelf.get(f"count{k}")).astype(np.float64)
-        first = np.arange(v) if k == 1 else None
-        if k == order or not smoother.continuation:
-            used = raw.copy() if k == 1 else raw
-        else:
-            cont = _continuation(shelf, k, n)
-            if first is None:
-                first = shelf.get(f"first{k}")
-            used = np.where(first == BOS_ID, raw, cont)
-            del cont
-        if k == 1:
-            used[BOS_ID] = 0.0
-            prefix: npt.NDArray[Any] = np.zeros(v, dtype=np.int32)
-            full = np.full(v, order == 1)
-        else:
-            prefix = shelf.get(_context_name(k))
-            if k == order:
-                full = np.ones(n, dtype=bool)
-            else:
-                if first is None:
-                    first = shelf.get(f"first{k}")
-                full = first == BOS_ID
-        del first
-        n_ctx = 1 if k == 1 else sizes[k - 2]
-        stats = OrderStats(k, used, prefix, n_ctx, full, n_pred)
-        del full
-        est = smoother.estimate(stats)
-        if est.discounts:
-            meta["discounts"][str(k)] = [round(d, 12) for d in est.discounts]
-        if est.fallback:
-            meta["fallbacks"][str(k)] = est.fallback
-        dropped = raw < 1
-        del raw
-        if dropped.any():
-            numer = np.where(dropped, 0.0, est.numer)
-            lost = stats.per_context(est.numer - numer)
-        else:  # the same values: nothing is dropped, no share is lost
-            numer, lost = est.numer, np.zeros(n_ctx)
-        del dropped
-        denom = stats.per_context(used) + est.extra
-        mass = est.extra + stats.per_context(used - est.numer) + lost
-        del used, lost, stats, est
-        safe = np.where(denom > 0, denom, 1.0)
-        gamma = np.where(denom > 0, mass / safe, 1.0)
-        del mass
-        if k == 1:
-            alpha = np.where(denom[prefix] > 0, numer / safe[prefix], 0.0)
-            p1 = alpha + float(gamma[0]) / n_pred
-            p1[~predictable] = 0.0
-            shelf.put("prob1", p1)
-        else:
-            shelf.put(f"gamma{k - 1}", gamma)
-            _probabilities(shelf, k, numer, prefix, denom, safe, gamma)
-        del numer, prefix, denom, safe, gamma
+        _smooth(shelf, sizes, k, unigrams, smoother, n_pred, predictable, meta)
         give_back_freed_memory()
         smoothing()
     meta["uniform_tokens"] = n_pred
     return meta
 
 
-def _probabilities(shelf: Shelf, k: int, numer: F64, prefix: npt.NDArray[Any], denom: F64,
-                   safe: F64, gamma: F64) -> None:
+def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smoother,
+            n_pred: int, predictable: npt.NDArray[np.bool_], meta: dict[str, Any]) -> None:
+    """Order ``k``: its back-off weights of order ``k - 1`` (``gamma{k-1}``) and its
+    probabilities (``prob{k}``). Only this order's counts, contexts and numerators are held
+    whole; the contexts are mapped, so a method that does not read them holds none."""
+    order, v, n = len(sizes), sizes[0], sizes[k - 1]
+    raw = (unigrams if k == 1 else shelf.get(f"count{k}")).astype(np.float64)
+    first = np.arange(v) if k == 1 else None
+    if k == order or not smoother.continuation:
+        used = raw.copy() if k == 1 else raw
+    else:
+        cont = _continuation(shelf, k, n)
+        if first is None:
+            first = shelf.get(f"first{k}")
+        used = np.where(first == BOS_ID, raw, cont)
+        del cont
+    prefix: npt.NDArray[Any]
+    full: npt.NDArray[np.bool_]
+    if k == 1:
+        used[BOS_ID] = 0.0
+        prefix = np.zeros(v, dtype=np.int32)
+        full = np.full(v, order == 1)
+    else:
+        prefix = shelf.mapped(_context_name(k))
+        if k == order:  # every context a whole history: one value, no array
+            full = np.broadcast_to(np.True_, (n,))
+        else:
+            if first is None:
+                first = shelf.get(f"first{k}")
+            full = first == BOS_ID
+    del first
+    n_ctx = 1 if k == 1 else sizes[k - 2]
+    stats = OrderStats(k, used, prefix, n_ctx, full, n_pred)
+    del full
+    est = smoother.estimate(stats)
+    give_back_freed_memory()  # the method's temporaries
+    if est.discounts:
+        meta["discounts"][str(k)] = [round(d, 12) for d in est.discounts]
+    if est.fallback:
+        meta["fallbacks"][str(k)] = est.fallback
+    dropped = raw < 1
+    del raw
+    if dropped.any():
+        numer = np.where(dropped, 0.0, est.numer)
+        lost = stats.per_context(est.numer - numer)
+    else:  # the same values: nothing is dropped, no share is lost
+        numer, lost = est.numer, np.zeros(n_ctx)
+    del dropped
+    denom = stats.per_context(used) + est.extra
+    np.subtract(used, est.numer, out=used)  # used - numer, in place (used is not needed again)
+    mass = est.extra + stats.per_context(used) + lost
+    del used, lost, stats, est
+    safe = np.where(denom > 0, denom, 1.0)
+    gamma = np.where(denom > 0, mass / safe, 1.0)
+    del mass
+    if k == 1:
+        alpha = np.where(denom[prefix] > 0, numer / safe[prefix], 0.0)
+        p1 = alpha + float(gamma[0]) / n_pred
+        p1[~predictable] = 0.0
+        shelf.put("prob1", p1)
+        return
+    shelf.put(f"gamma{k - 1}", gamma)
+    del gamma
+    with shelf.writer(f"alpha{k}", np.float64) as add:
+        at = 0
+        for ctx in shelf.blocks(_context_name(k)):
+            add(np.where(denom[ctx] > 0, numer[at:at + len(ctx)] / safe[ctx], 0.0))
+            at += len(ctx)
+    del numer, prefix, denom, safe
+    give_back_freed_memory()
+    _probabilities(shelf, k)
+
+
+def _probabilities(shelf: Shelf, k: int) -> None:
     """``prob{k}``: each n-gram's own share plus its context's weight times the
     probability of its suffix, a block at a time."""
-    below = shelf.get(f"prob{k - 1}")
+    gamma, below = shelf.get(f"gamma{k - 1}"), shelf.get(f"prob{k - 1}")
     with shelf.writer(f"prob{k}", np.float64) as prob:
-        at = 0
-        for suffix in shelf.blocks(f"suffix{k}"):
-            ctx = prefix[at:at + len(suffix)]
-            alpha = np.where(denom[ctx] > 0, numer[at:at + len(suffix)] / safe[ctx], 0.0)
+        for ctx, suffix, alpha in zip(shelf.blocks(_context_name(k)),
+                                      shelf.blocks(f"suffix{k}"), shelf.blocks(f"alpha{k}"),
+                                      strict=True):
             out = gamma[ctx]
             out *= below[suffix]
             out += alpha
             prob(out)
-            at += len(suffix)
+    shelf.drop(f"alpha{k}")
 
 
 # --- the native file ---------------------------------------------------------------------------

@@ -11,7 +11,10 @@ process, whose peak resident memory is read from the kernel (wait4) when it ends
    baseline: the overhead of the cluster, and the byte-identical file. A cluster pays off
    only when it has more cores than this machine; here it can only cost;
 3. with ``--large``: 10 and 60 million words with ``--memory 4G``: time and peak of each
-   and the ratio of the peaks (targets: 60 M under 5 GB and 15 minutes, ratio under 1.2).
+   and the ratio of the peaks (targets: 60 M under 5 GB and 15 minutes, ratio under 1.2);
+   for each size also the same build with the model estimated in memory once counted (the
+   estimation of before, in its own process: the same-run baseline of the estimation on
+   disk), with the ratios of time and peak and a check that the two files are identical.
    This takes a long time and about 1 GB of disk; it is off by default (``--large-only``:
    this part alone; ``--large-words 20000000`` for a shorter check of the ratio).
 
@@ -98,6 +101,33 @@ print(seen.get("before", hwm()), hwm(), c.runs, sum(len(t) for t in c.tables))
 """
 
 
+# The same build with the estimation of before (the whole model in memory once counted),
+# in its own process, as the same-run baseline of the on-disk estimation: the library with
+# the choice of the estimation turned off, then the file saved as lm build saves it
+IN_MEMORY = """
+import sys
+from rescore.lm import NGramModel, read_corpus, save_model
+from rescore.lm import model as model_module
+from rescore.process import avoid_huge_pages, keep_freed_memory
+avoid_huge_pages()
+keep_freed_memory()
+model_module.streams = lambda cutoffs, prune: False
+m = NGramModel(4).fit(read_corpus(sys.argv[1]), memory=int(sys.argv[2]), scratch=sys.argv[3])
+save_model(m, sys.argv[4])
+"""
+
+
+def in_memory_build(text: Path, memory: int, scratch: Path, out: Path) -> tuple[float, float]:
+    """Wall seconds and peak resident GB of the baseline build (see IN_MEMORY)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, "-c", IN_MEMORY, str(text), str(memory),
+                             str(scratch), str(out)])
+    _, status, usage = os.wait4(proc.pid, 0)
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise SystemExit("the baseline build (estimation in memory) failed")
+    return time.perf_counter() - t0, usage.ru_maxrss / 1e6
+
+
 def count_only(text: Path, memory: int, scratch: Path) -> tuple[float, float, float, int]:
     """Seconds, GB before the merge, GB at the end, and runs of counting alone."""
     t0 = time.perf_counter()
@@ -181,6 +211,13 @@ def main() -> None:
                 wall, peak = build(big, tmp / "large.lm", "--memory", "4G",
                                    "--scratch", str(scratch), must=False)
                 peaks[words] = peak
+                base_wall, base_peak = in_memory_build(big, 4 << 30, scratch, tmp / "base.lm")
+                same = (tmp / "base.lm").read_bytes() == (tmp / "large.lm").read_bytes()
+                print(f"{words / 1e6:g} M words, the same build estimated in memory (the "
+                      f"baseline): {base_wall / 60:.1f} min, peak {base_peak:.2f} GB; on disk "
+                      f"against it: time {wall / base_wall:.2f}x, peak {peak / base_peak:.2f}x; "
+                      f"model files {'byte-identical' if same else 'DIFFERENT'}", flush=True)
+                (tmp / "base.lm").unlink()
                 big.unlink()
                 line = (f"{words / 1e6:g} M words ({big_size / 1e9:.2f} GB of text), "
                         f"--memory 4G: {wall / 60:.1f} min, one run, peak {peak:.2f} GB")

@@ -52,7 +52,7 @@ from rescore.lm.hashindex import BucketIndex
 from rescore.lm.smoothing import OrderStats, Smoother
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
-from rescore.process import give_back_freed_memory
+from rescore.process import freed_memory_returned, give_back_freed_memory
 from rescore.progress import Report, Steps
 
 BLOCK = 1 << 22  # entries of an order read from disk at a time (16 to 32 MiB of ids)
@@ -160,16 +160,17 @@ def build_on_disk(sentences: Iterable[Sequence[str]], order: int,
         counted = count_chunks(sentences, order, choose, closed_vocab=closed_vocab,
                                memory=memory, folder=folder, progress=progress)
         shelf = Shelf(folder)
-        sizes = _shelve(counted, shelf, memory, progress)
-        vocab = counted.vocab
-        unigrams = counted.unigrams if counted.whole is None else counted.whole[0].count
-        stats = counted.sentences, counted.words, counted.oov
-        del counted
-        give_back_freed_memory()
-        meta = _estimate(shelf, sizes, unigrams, smoother, closed_vocab=closed_vocab,
-                         progress=progress)
-        tables = _write_model(shelf, sizes, vocab, meta, folder / "model.lm",
-                              Steps(progress, "indexing", order))
+        # from here on the peak is the point: freed temporaries go back to the system
+        with freed_memory_returned():
+            sizes = _shelve(counted, shelf, memory, progress)
+            vocab = counted.vocab
+            unigrams = counted.unigrams if counted.whole is None else counted.whole[0].count
+            stats = counted.sentences, counted.words, counted.oov
+            del counted
+            meta = _estimate(shelf, sizes, unigrams, smoother, closed_vocab=closed_vocab,
+                             progress=progress)
+            tables = _write_model(shelf, sizes, vocab, meta, folder / "model.lm",
+                                  Steps(progress, "indexing", order))
     give_back_freed_memory()
     return Built(tables, meta, *stats)
 

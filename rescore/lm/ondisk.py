@@ -181,18 +181,9 @@ def _shelve(counted: Chunked, shelf: Shelf, memory: int, progress: Report | None
             ) -> list[int]:
     """Each order's count table (from 2) on the shelf; the n-grams of each order."""
     v = len(counted.vocab)
-    sizes = [v]
     if counted.whole is not None:
-        whole = counted.whole
-        for k in range(2, len(whole) + 1):
-            table = whole[k - 1]
-            whole[k - 1] = OrderCounts(table.suffix[:0], table.first[:0], table.count[:0])
-            shelf.put(f"suffix{k}", table.suffix.astype(_ids(sizes[-1]), copy=False))
-            shelf.put(f"first{k}", table.first.astype(_ids(v), copy=False))
-            shelf.put(f"count{k}", table.count)
-            sizes.append(len(table))
-            del table
-        return sizes
+        return _shelve_tables(counted.whole, shelf, v)
+    sizes = [v]
     codec = counted.codec
     merging = Steps(progress, "merging sorted runs", len(counted.runs))
     for k, runs in enumerate(counted.runs, start=2):
@@ -217,6 +208,39 @@ def _shelve(counted: Chunked, shelf: Shelf, memory: int, progress: Report | None
         merging()
     shelf.drop(f"keys{codec.order}")
     return sizes
+
+
+def _shelve_tables(whole: list[OrderCounts], shelf: Shelf, v: int) -> list[int]:
+    """Count tables in memory on the shelf, each order let go once written (from 2)."""
+    sizes = [v]
+    for k in range(2, len(whole) + 1):
+        table = whole[k - 1]
+        whole[k - 1] = OrderCounts(table.suffix[:0], table.first[:0], table.count[:0])
+        shelf.put(f"suffix{k}", table.suffix.astype(_ids(sizes[-1]), copy=False))
+        shelf.put(f"first{k}", table.first.astype(_ids(v), copy=False))
+        shelf.put(f"count{k}", table.count)
+        sizes.append(len(table))
+        del table
+    return sizes
+
+
+def estimate_counted(tables: list[OrderCounts], vocab: Vocabulary, smoother: Smoother, *,
+                     closed_vocab: bool, scratch: str | Path | None = None,
+                     progress: Report | None = None) -> tuple[BackoffTables, dict[str, Any]]:
+    """The model of count tables already made (by a cluster), estimated on disk in a
+    folder under ``scratch``; ``tables`` is emptied as its orders go to disk."""
+    with scratch_folder(scratch, "lm-counts") as folder:
+        shelf = Shelf(folder)
+        with freed_memory_returned():
+            sizes = _shelve_tables(tables, shelf, len(vocab))
+            unigrams = tables[0].count
+            tables.clear()
+            meta = _estimate(shelf, sizes, unigrams, smoother, closed_vocab=closed_vocab,
+                             progress=progress)
+            built = _write_model(shelf, sizes, vocab, meta, folder / "model.lm",
+                                 Steps(progress, "indexing", len(sizes)))
+    give_back_freed_memory()
+    return built, meta
 
 
 def _context_name(k: int) -> str:

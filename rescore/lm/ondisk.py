@@ -384,6 +384,8 @@ def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smo
     del numer, prefix, denom, safe
     give_back_freed_memory()
     _probabilities(shelf, k)
+    # the disk of what no later step reads: the counts, and the contexts from order 3
+    shelf.drop(f"count{k}", *([f"prefix{k}"] if k > 2 else []))
 
 
 def _probabilities(shelf: Shelf, k: int) -> None:

@@ -15,13 +15,18 @@ process, whose peak resident memory is read from the kernel (wait4) when it ends
    for each size also the same build with the model estimated in memory once counted (the
    estimation of before, in its own process: the same-run baseline of the estimation on
    disk), with the ratios of time and peak and a check that the two files are identical.
-   This takes a long time and about 1 GB of disk; it is off by default (``--large-only``:
-   this part alone; ``--large-words 20000000`` for a shorter check of the ratio).
+   This takes a long time and about 5 GB of disk (the text, the scratch folder, the model
+   files) and, for the baseline, about 9 GB of memory; it is off by default
+   (``--large-only``: this part alone; ``--large-words 20000000`` for a shorter check of
+   the ratio);
+4. with ``--stages``: the peak and time of each step of a ``--memory`` build, in its own
+   process (the kernel's high-water mark reset as each step starts): counting, merging,
+   finding contexts, smoothing each order, the index and the file, saving.
 
 Times are medians of 3 runs (1 with ``--quick`` or ``--large``); peaks are the largest of
 the runs. ``--quick`` uses 1 million words.
 
-    PYTHONPATH=. python scripts/bench_corpus.py [--quick] [--large]
+    PYTHONPATH=. python scripts/bench_corpus.py [--quick] [--large] [--stages]
 """
 
 from __future__ import annotations
@@ -40,6 +45,7 @@ import numpy as np
 from bench_lm import SEED, VOCAB, target, zipf_corpus
 
 from rescore.lm import load_model
+from rescore.lm.external import parse_size
 
 CLI = [sys.executable, "-c", "from rescore.cli import main; main()", "-q", "lm", "build"]
 
@@ -117,6 +123,49 @@ save_model(m, sys.argv[4])
 """
 
 
+# The peak of each step of a build within a budget, in its own process: the kernel's
+# high-water mark (VmHWM) is reset (clear_refs) as each step starts and read as it ends, so
+# numpy's allocations are all seen; the process as the command line sets it up
+STAGES = """
+import sys, time
+from rescore.lm import NGramModel, ondisk, read_corpus, save_model, store
+from rescore.process import avoid_huge_pages, keep_freed_memory
+avoid_huge_pages()
+keep_freed_memory()
+def hwm():
+    with open("/proc/self/status") as fh:
+        return next(int(l.split()[1]) << 10 for l in fh if l.startswith("VmHWM:"))
+def reset():
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+def wrap(module, name, label):
+    real = getattr(module, name)
+    def step(*args, **kwargs):
+        reset()
+        t = time.perf_counter()
+        out = real(*args, **kwargs)
+        print(f"  {label.format(*args)}: peak {hwm() / 1e9:.2f} GB, "
+              f"{time.perf_counter() - t:.1f} s",
+              flush=True)
+        return out
+    setattr(module, name, step)
+wrap(ondisk, "count_chunks", "counting (the first pass and the chunks)")
+wrap(ondisk, "_shelve", "the count tables to the scratch folder (merging the runs)")
+wrap(ondisk, "_contexts", "finding the contexts")
+wrap(ondisk, "_smooth", "smoothing order {2}")
+wrap(ondisk, "_write_model", "the index, the values in its order, the file and its mapping")
+wrap(store, "save", "saving the model (lm build's save)")
+m = NGramModel(4).fit(read_corpus(sys.argv[1]), memory=int(sys.argv[2]), scratch=sys.argv[3])
+save_model(m, sys.argv[4])
+"""
+
+
+def stages(text: Path, memory: int, scratch: Path, out: Path) -> None:
+    """Print the peak and time of each step of one build (see STAGES)."""
+    subprocess.run([sys.executable, "-c", STAGES, str(text), str(memory), str(scratch),
+                    str(out)], check=True)
+
+
 def in_memory_build(text: Path, memory: int, scratch: Path, out: Path) -> tuple[float, float]:
     """Wall seconds and peak resident GB of the baseline build (see IN_MEMORY)."""
     t0 = time.perf_counter()
@@ -150,6 +199,9 @@ def main() -> None:
                     help="also 10 and 60 million words with --memory 4G (long)")
     ap.add_argument("--large-words", type=int, default=60_000_000, metavar="N",
                     help="with --large: the larger text's words (default 60 million)")
+    ap.add_argument("--stages", action="store_true",
+                    help="the peak of each step of a --memory build (1G on 10 million words;"
+                         " with --large also 4G on the larger text)")
     ap.add_argument("--large-only", action="store_true",
                     help="only the --large part (the peaks of the two sizes and their ratio)")
     args = ap.parse_args()
@@ -183,6 +235,10 @@ def main() -> None:
                   f"{runs_peak:.2f} GB; time ratio {runs_t / base_t:.2f}x, peak ratio "
                   f"{runs_peak / base_peak:.2f}x; model file byte-identical")
 
+            if args.stages:
+                print(f"--memory {small}, step by step (VmHWM reset as each step starts):")
+                stages(text, parse_size(small), scratch, tmp / "stages.lm")
+
             try:
                 import distributed  # noqa: F401
             except ImportError:
@@ -208,6 +264,9 @@ def main() -> None:
                       f"{c_t / 60:.1f} min, {c_runs} sorted runs (0: in memory), peak "
                       f"{c_before:.2f} GB before the merge, {c_end:.2f} GB with the merged "
                       "count tables", flush=True)
+                if args.stages:
+                    print(f"{words / 1e6:g} M words, --memory 4G, step by step:")
+                    stages(big, 4 << 30, scratch, tmp / "stages.lm")
                 wall, peak = build(big, tmp / "large.lm", "--memory", "4G",
                                    "--scratch", str(scratch), must=False)
                 peaks[words] = peak

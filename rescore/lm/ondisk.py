@@ -348,7 +348,16 @@ def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smo
     stats = OrderStats(k, used, prefix, n_ctx, full, n_pred)
     del full
     est = smoother.estimate(stats)
+    if k > 1:  # from here on the contexts are read a block at a time
+        del stats, prefix
     give_back_freed_memory()  # the method's temporaries
+
+    def per_context(values: F64) -> F64:
+        if k == 1:
+            return np.bincount(np.zeros(v, np.intp), weights=values, minlength=1
+                               ).astype(np.float64)
+        return _per_context(shelf, _context_name(k), values, n_ctx)
+
     if est.discounts:
         meta["discounts"][str(k)] = [round(d, 12) for d in est.discounts]
     if est.fallback:
@@ -357,19 +366,19 @@ def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smo
     del raw
     if dropped.any():
         numer = np.where(dropped, 0.0, est.numer)
-        lost = stats.per_context(est.numer - numer)
+        lost = per_context(est.numer - numer)
     else:  # the same values: nothing is dropped, no share is lost
         numer, lost = est.numer, np.zeros(n_ctx)
     del dropped
-    denom = stats.per_context(used) + est.extra
+    denom = per_context(used) + est.extra
     np.subtract(used, est.numer, out=used)  # used - numer, in place (used is not needed again)
-    mass = est.extra + stats.per_context(used) + lost
-    del used, lost, stats, est
+    mass = est.extra + per_context(used) + lost
+    del used, lost, est
     safe = np.where(denom > 0, denom, 1.0)
     gamma = np.where(denom > 0, mass / safe, 1.0)
     del mass
     if k == 1:
-        alpha = np.where(denom[prefix] > 0, numer / safe[prefix], 0.0)
+        alpha = np.where(denom[0] > 0, numer / safe[0], 0.0)  # one context: all of them
         p1 = alpha + float(gamma[0]) / n_pred
         p1[~predictable] = 0.0
         shelf.put("prob1", p1)
@@ -381,11 +390,23 @@ def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smo
         for ctx in shelf.blocks(_context_name(k)):
             add(np.where(denom[ctx] > 0, numer[at:at + len(ctx)] / safe[ctx], 0.0))
             at += len(ctx)
-    del numer, prefix, denom, safe
+    del numer, denom, safe
     give_back_freed_memory()
     _probabilities(shelf, k)
     # the disk of what no later step reads: the counts, and the contexts from order 3
     shelf.drop(f"count{k}", *([f"prefix{k}"] if k > 2 else []))
+
+
+def _per_context(shelf: Shelf, contexts: str, values: F64, n_ctx: int) -> F64:
+    """The sum of ``values`` over each context, the contexts read a block at a time: the
+    same additions in the same order as ``np.bincount(contexts, weights=values)`` (each
+    sum starts at 0 and adds its values in index order), so the same bits."""
+    sums = np.zeros(n_ctx, dtype=np.float64)
+    at = 0
+    for ctx in shelf.blocks(contexts):
+        np.add.at(sums, ctx, values[at:at + len(ctx)])
+        at += len(ctx)
+    return sums
 
 
 def _probabilities(shelf: Shelf, k: int) -> None:

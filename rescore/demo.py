@@ -23,9 +23,10 @@ from rescore.outputs import write_text_atomic
 from rescore.provenance import run_provenance
 from rescore.report import report_files
 from rescore.scoring import OOV, oov_features, oracle_rows
+from rescore.significance import with_interval
 from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
-from rescore.wer import corpus_wer
+from rescore.wer import WerResult, summarise, utterance_counts
 
 # shipped inside the package (the wheel carries it); fixtures/demo links here for the tests
 BUNDLED = Path(__file__).resolve().parent / "demo_data"
@@ -41,9 +42,9 @@ OOV_ROW = f"mixed + {OOV}"
 @dataclass(frozen=True)
 class DemoResult:
     summary: dict[str, Any]
-    before: dict[str, float | int]
-    after: dict[str, float | int]
-    oracle: dict[str, float | int]
+    before: WerResult  # each with its bootstrap interval
+    after: WerResult
+    oracle: WerResult
     perplexity: dict[str, Any]
     outputs: list[Path]
     comparison: list[dict[str, Any]] = field(default_factory=list)
@@ -93,16 +94,16 @@ def run_demo(out: Path, *, data_dir: Path | None = None, order: int = 3,
                        run_provenance(data=[data / "test.jsonl"], models=models),
                        model_path)
     summary = {
-        "wer_before": before["wer"], "wer_after": after["wer"], "oracle_wer": oracle["wer"],
+        "wer_before": before.wer, "wer_after": after.wer, "oracle_wer": oracle.wer,
         LM_WEIGHT: tuned[LM_WEIGHT], INSERTION_PENALTY: tuned[INSERTION_PENALTY],
-        "utterances": before["utterances"],
+        "utterances": before.utterances,
         "dev_perplexity": ppl["perplexity"],
     }
     comparison: list[dict[str, Any]] = []
     shared: SharedVocabulary | None = None
     if (data / "background.txt").is_file():
-        comparison, extra, shared = _compare(data, out, order, models, tuned, after,
-                                             ppl["perplexity"], progress)
+        comparison, extra, shared = _compare(data, out, order, models, tuned,
+                                             after.to_dict(), ppl["perplexity"], progress)
         outputs += extra
         # the choice rules with the same tuned weights (rescore.demo_rules)
         rule_rows, rule_files = demo_rules.rule_rows(data / "test.jsonl", out, models,
@@ -196,7 +197,7 @@ def _compare(data: Path, out: Path, order: int, in_models: dict[str, pipeline.Na
 
 
 def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel]
-               ) -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
+               ) -> tuple[WerResult, WerResult, WerResult]:
     refs, first, chosen = [], [], []
     for (_, orig), (_, new) in zip(iter_nbest(test, require_references=True),
                                    iter_nbest(rescored, require_references=True), strict=True):
@@ -206,8 +207,13 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
     # the oracle row of each list, from edit distances computed once in the matrix
     rows = oracle_rows(pipeline.load_matrix(test, models={}, features=[]))
     texts = [h["text"] for _, u in iter_nbest(test) for h in u["hypotheses"]]
-    oracle = corpus_wer(refs, [tokens(texts[r]) for r in rows])
-    return corpus_wer(refs, first).to_dict(), corpus_wer(refs, chosen).to_dict(), oracle.to_dict()
+    return (_with_interval(refs, first), _with_interval(refs, chosen),
+            _with_interval(refs, [tokens(texts[r]) for r in rows]))
+
+
+def _with_interval(refs: list[list[str]], hyps: list[list[str]]) -> WerResult:
+    counts = utterance_counts(refs, hyps)
+    return with_interval(summarise(counts), counts.errors, counts.reference_words)
 
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,

@@ -24,6 +24,7 @@ from rescore.nbest import iter_nbest
 from rescore.outputs import write_text_atomic
 from rescore.report import report_files
 from rescore.scoring import oracle_rows
+from rescore.significance import with_interval
 from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights
 from rescore.wer import WerResult, summarise, utterance_counts
 
@@ -95,5 +96,6 @@ def _oracle(test: Path) -> WerResult:
     rows = oracle_rows(pipeline.load_matrix(test, models={}, features=[], counting=CHARS))
     utts = [u for _, u in iter_nbest(test, require_references=True)]
     texts = [h["text"] for u in utts for h in u["hypotheses"]]
-    return summarise(utterance_counts([CHARS.score_tokens(u["reference"]) for u in utts],
-                                      [CHARS.score_tokens(texts[r]) for r in rows]))
+    counts = utterance_counts([CHARS.score_tokens(u["reference"]) for u in utts],
+                              [CHARS.score_tokens(texts[r]) for r in rows])
+    return with_interval(summarise(counts), counts.errors, counts.reference_words)

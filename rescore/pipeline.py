@@ -57,6 +57,7 @@ from rescore.scoring import (
     oracle_rows,
 )
 from rescore.shards import count_lines
+from rescore.significance import with_interval, with_intervals
 from rescore.weights import (
     ACOUSTIC,
     INSERTION_PENALTY,
@@ -341,9 +342,14 @@ def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH,
 def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
           refs: Mapping[str, str] | None = None, log_base: float | None = None,
           costs: bool | None = None, batch_size: int = DEFAULT_BATCH,
-          counting: Counting = PLAIN) -> list[WerResult]:
-    """Corpus WER of each way of taking a text from the records, in one pass."""
+          counting: Counting = PLAIN, intervals: bool = True) -> list[WerResult]:
+    """Corpus WER of each way of taking a text from the records, in one pass; with
+    ``intervals``, each with its bootstrap interval (two small integers per utterance
+    are kept for it)."""
     totals = np.zeros((len(texts), 4), dtype=np.int64)  # sub, del, ins, hits per way
+    # per utterance, for the intervals: each way's errors, and the reference words
+    errors: list[list[np.ndarray]] = [[] for _ in texts]
+    words: list[np.ndarray] = []
     n_utt = n_scored = 0
     for batch in batches(iter_nbest(path, refs=refs, log_base=log_base, costs=costs,
                                     require_references=True), batch_size):
@@ -352,6 +358,10 @@ def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
             counts = counting.counts(refs_text, [text(u) for _, u in batch])
             totals[k] += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
                                                  counts.insertions, counts.hits)]
+            if intervals:
+                errors[k].append(counts.errors.astype(np.int32))
+        if intervals:
+            words.append(counts.reference_words.astype(np.int32))
         n_utt += len(batch)
         n_scored += len(counts.substitutions)
     if n_utt == 0:
@@ -362,6 +372,8 @@ def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
         if s + d + h == 0:
             raise InputError(UNDEFINED_WER, path=path)
         out.append(wer_from_totals(s, d, i, h, utterances=n_utt))
+    if intervals:  # one bootstrap for every way
+        out = with_intervals(out, [np.concatenate(e) for e in errors], np.concatenate(words))
     return out
 
 
@@ -381,7 +393,8 @@ def wer_transcripts(refs_path: Path, hyps_path: Path, *,
     ids = list(refs)
     if not any(counting.score_tokens(refs[i]) for i in ids):
         raise InputError(UNDEFINED_WER, path=refs_path)
-    result = summarise(counting.counts([refs[i] for i in ids], [hyps[i] for i in ids]))
+    counts = counting.counts([refs[i] for i in ids], [hyps[i] for i in ids])
+    result = with_interval(summarise(counts), counts.errors, counts.reference_words)
     check_accounting(hyps_path, len(ids), result.utterances, "scored")
     return result
 

@@ -24,13 +24,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError
-from rescore.wer import UNDEFINED_WER, Alignment
+from rescore.wer import UNDEFINED_WER, Alignment, WerInterval, WerResult
 
 IntArray = npt.NDArray[np.int64]
 # elements of one resample index matrix; rows per chunk depend only on the corpus size, so
@@ -78,6 +78,30 @@ class BootstrapResult:
         return out
 
 
+def _resampled_sums(stacked: IntArray, resamples: int, seed: int,
+                    progress: Callable[[int], None] | None = None) -> IntArray:
+    """Rows of per-utterance counts summed over each resample of the utterances (``n``
+    indices drawn with replacement; one index matrix per chunk of resamples): an array of
+    shape (rows, resamples). The draws depend only on ``seed`` and the number of
+    utterances, so every row of one call sees the same resamples."""
+    n = stacked.shape[1]
+    rng = np.random.default_rng(seed)
+    rows = max(1, min(resamples, _CHUNK_ELEMENTS // n))
+    sums = np.empty((stacked.shape[0], resamples), dtype=np.int64)
+    values = stacked.T.astype(np.float64)
+    for start in range(0, resamples, rows):
+        m = min(rows, resamples - start)
+        idx = rng.integers(0, n, size=(m, n))
+        # how often each utterance was drawn in each resample, then one matrix product;
+        # the float sums are exact integers (far below 2**53) and are rounded back
+        offsets = (idx + (np.arange(m, dtype=np.int64) * n)[:, None]).ravel()
+        counts = np.bincount(offsets, minlength=m * n).reshape(m, n).astype(np.float64)
+        sums[:, start:start + m] = np.rint(counts @ values).T.astype(np.int64)
+        if progress is not None:
+            progress(m)
+    return sums
+
+
 def paired_bootstrap(
     before_errors: Sequence[int] | npt.ArrayLike,
     after_errors: Sequence[int] | npt.ArrayLike,
@@ -113,20 +137,7 @@ def paired_bootstrap(
     if not 0.0 < confidence < 1.0:
         raise InputError(f"confidence must lie strictly between 0 and 1, got {confidence}",
                          field="confidence")
-    rng = np.random.default_rng(seed)
-    rows = max(1, min(resamples, _CHUNK_ELEMENTS // n))
-    sums = np.empty((3, resamples), dtype=np.int64)
-    values = stacked.T.astype(np.float64)
-    for start in range(0, resamples, rows):
-        m = min(rows, resamples - start)
-        idx = rng.integers(0, n, size=(m, n))
-        # how often each utterance was drawn in each resample, then one matrix product;
-        # the float sums are exact integers (far below 2**53) and are rounded back
-        offsets = (idx + (np.arange(m, dtype=np.int64) * n)[:, None]).ravel()
-        counts = np.bincount(offsets, minlength=m * n).reshape(m, n).astype(np.float64)
-        sums[:, start:start + m] = np.rint(counts @ values).T.astype(np.int64)
-        if progress is not None:
-            progress(m)
+    sums = _resampled_sums(stacked, resamples, seed, progress)
     # a resample drawn only from empty references (vanishingly rare) is counted per one word
     # rather than divided by zero
     words = np.maximum(sums[2], 1).astype(np.float64)
@@ -154,6 +165,92 @@ def paired_bootstrap(
         difference_ci=interval(diff),
         probability_of_improvement=float(np.count_nonzero(diff < 0)) / resamples,
     )
+
+
+# at most this many utterance draws (resamples x utterances) for the intervals printed
+# beside a command's WER table: 10,000 resamples up to 20,000 utterances, fewer beyond
+# (never under 1,000), so a table of a million utterances costs seconds, not minutes
+TABLE_DRAWS = 200_000_000
+TABLE_RESAMPLES = 10_000
+MIN_TABLE_RESAMPLES = 1_000
+
+
+def table_resamples(utterances: int) -> int:
+    """Resamples for the WER intervals of a command's table of ``utterances``."""
+    return max(MIN_TABLE_RESAMPLES, min(TABLE_RESAMPLES, TABLE_DRAWS // max(utterances, 1)))
+
+
+@dataclass(frozen=True)
+class WerIntervals:
+    """Percentile intervals of several corpus WERs on the same utterances, from one
+    bootstrap (the same resamples for each); ``intervals[k]`` belongs to ``errors[k]``."""
+
+    resamples: int
+    seed: int
+    confidence: float
+    intervals: tuple[tuple[float, float], ...]
+
+
+def wer_intervals(
+    errors: Sequence[Sequence[int] | npt.ArrayLike],
+    reference_words: Sequence[int] | npt.ArrayLike,
+    *,
+    resamples: int | None = None,
+    seed: int = 0,
+    confidence: float = 0.95,
+) -> WerIntervals:
+    """Bootstrap intervals of the corpus WER of each row of per-utterance ``errors``.
+
+    The draws are those of :func:`paired_bootstrap` with the same seed and resamples, so
+    the interval of two systems here equals its ``before_ci`` and ``after_ci``. Without
+    ``resamples``, :func:`table_resamples` of the number of utterances."""
+    ref = _as_int_array(reference_words, "reference_words")
+    rows = [_as_int_array(e, f"errors[{k}]") for k, e in enumerate(errors)]
+    if not rows:
+        raise InputError("no error counts to resample", field="errors")
+    if any(len(r) != len(ref) for r in rows):
+        raise InputError("every row of errors needs one count per utterance", field="errors")
+    if len(ref) == 0:
+        raise InputError("no utterances to resample")
+    if int(ref.sum()) == 0:
+        raise InputError(UNDEFINED_WER)
+    b = table_resamples(len(ref)) if resamples is None else resamples
+    if b < 1:
+        raise InputError(f"resamples must be at least 1, got {b}", field="resamples")
+    if not 0.0 < confidence < 1.0:
+        raise InputError(f"confidence must lie strictly between 0 and 1, got {confidence}",
+                         field="confidence")
+    sums = _resampled_sums(np.stack([*rows, ref]), b, seed)
+    words = np.maximum(sums[-1], 1).astype(np.float64)  # as paired_bootstrap does
+    tail = (1.0 - confidence) / 2.0
+    found = []
+    for k in range(len(rows)):
+        lo, hi = np.quantile(sums[k] / words, [tail, 1.0 - tail])
+        found.append((float(lo), float(hi)))
+    return WerIntervals(resamples=b, seed=seed, confidence=confidence,
+                        intervals=tuple(found))
+
+
+def with_interval(result: WerResult, errors: Sequence[int] | npt.ArrayLike,
+                  reference_words: Sequence[int] | npt.ArrayLike) -> WerResult:
+    """``result`` with the bootstrap interval of its WER over the per-utterance counts it
+    sums: :func:`with_intervals` of one."""
+    return with_intervals([result], [errors], reference_words)[0]
+
+
+def with_intervals(results: Sequence[WerResult],
+                   errors: Sequence[Sequence[int] | npt.ArrayLike],
+                   reference_words: Sequence[int] | npt.ArrayLike) -> list[WerResult]:
+    """Each result with the bootstrap interval of its WER (seed 0, :func:`table_resamples`,
+    95 %), drawn once for all of them (the draws of :func:`paired_bootstrap`, so a report's
+    interval of the same WER with the same resamples is the same). Unchanged when the
+    references hold no words (the WER is undefined)."""
+    if int(np.asarray(reference_words).sum()) == 0:
+        return list(results)
+    found = wer_intervals(errors, reference_words)
+    return [replace(r, interval=WerInterval(low, high, found.confidence, found.resamples,
+                                            found.seed))
+            for r, (low, high) in zip(results, found.intervals, strict=True)]
 
 
 # --- matched-pairs sentence-segment word error test ----------------------------------------

@@ -7,7 +7,7 @@ errors over total reference words, never a mean of per-utterance rates.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from itertools import pairwise
 from typing import Any, Literal
 
@@ -21,8 +21,22 @@ UNDEFINED_WER = "the references hold no words; WER is undefined"
 
 
 @dataclass(frozen=True)
+class WerInterval:
+    """A bootstrap percentile interval of a corpus WER over utterances (see
+    :func:`rescore.significance.with_interval`)."""
+
+    low: float
+    high: float
+    confidence: float
+    resamples: int
+    seed: int
+
+
+@dataclass(frozen=True)
 class WerResult:
-    """Corpus error counts; ``wer`` is (S + D + I) / reference words."""
+    """Corpus error counts; ``wer`` is (S + D + I) / reference words. ``interval``, when
+    known, is printed beside the WER in tables; it is not one of the counts, so
+    :meth:`to_dict` (the keys of ``wer --json``) leaves it out."""
 
     wer: float
     substitutions: int
@@ -31,13 +45,16 @@ class WerResult:
     hits: int
     reference_words: int
     utterances: int
+    interval: WerInterval | None = field(default=None, compare=False)
 
     @property
     def errors(self) -> int:
         return self.substitutions + self.deletions + self.insertions
 
     def to_dict(self) -> dict[str, float | int]:
-        return asdict(self)
+        out = asdict(self)
+        del out["interval"]
+        return out
 
 
 @dataclass(frozen=True)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -35,7 +36,8 @@ def _strip_provenance(data: object) -> object:
 def test_demo_on_reduced_copy_lowers_wer(small_data: Path, tmp_path: Path) -> None:
     result = run(["demo", "--data", small_data, "--out", tmp_path / "out"])
     assert result.exit_code == 0, result.stderr
-    assert "before (recognizer 1-best)" in result.stdout and "after (rescored)" in result.stdout
+    for row in ("before", "after", "oracle"):  # each with its interval
+        assert re.search(rf"^{row}\s.*\[\d+\.\d\d%, \d+\.\d\d%\]", result.stdout, re.M), row
     summary = json.loads((tmp_path / "out" / "summary.json").read_text())
     assert set(summary) >= SUMMARY_KEYS
     assert summary["utterances"] == 60

@@ -141,3 +141,29 @@ def test_a_bad_record_on_a_pipe_is_named_by_the_stream(lm: Path, weights: Path,
     message = res.stderr.decode().strip()
     assert message.startswith("error: -:1:") and "Traceback" not in message
     assert not (tmp_path / "o.jsonl").exists()
+
+
+def test_tune_to_stdout_gives_the_weights_file_alone(lm: Path, tmp_path: Path) -> None:
+    # a pipe downstream reads data, not a table: the weights on stdout are the bytes of
+    # the file route, and the table goes to stderr (the Unix habit of stdout for data,
+    # stderr for people; common practice)
+    args = ["tune", DEMO / "dev.jsonl", "--lm", lm, "--grid-lm", "0:20:5",
+            "--grid-penalty", "0:10:3", "--folds", "0"]
+    _cli([*args, "-o", tmp_path / "w.json"])
+    res = subprocess.run([sys.executable, "-m", "rescore", *map(str, args), "-o", "-"],
+                         capture_output=True, timeout=300, cwd=ROOT,
+                         env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert res.returncode == 0, res.stderr.decode()
+    assert json.loads(res.stdout) == json.loads((tmp_path / "w.json").read_bytes())
+    assert b"LM weight" in res.stderr  # the table, for the person at the terminal
+
+
+def test_json_and_data_on_stdout_are_refused_alike(lm: Path, weights: Path) -> None:
+    for args in (["tune", DEMO / "dev.jsonl", "--lm", lm, "-o", "-", "--json"],
+                 ["lm", "build", DEMO / "train.txt", "-o", "-", "--json"],
+                 ["apply", DEMO / "test.jsonl", "--lm", lm, "--weights", weights,
+                  "-o", "-", "--json"]):
+        res = _cli(args, check=False)
+        assert res.returncode == 2 and res.stdout == b"", args
+        assert res.stderr.decode().strip().splitlines()[-1].startswith(
+            "error: --json and the output - would both write to standard output"), args

@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 
 import numpy as np
+import numpy.typing as npt
 import pytest
 import scipy.stats
 
@@ -17,9 +18,12 @@ from rescore.significance import (
     paired_bootstrap,
     segment_errors,
     sign_test,
+    table_resamples,
+    wer_intervals,
     wilcoxon_signed_rank,
+    with_interval,
 )
-from rescore.wer import align
+from rescore.wer import align, wer_from_totals
 
 
 def w(text: str) -> list[str]:
@@ -254,11 +258,16 @@ def test_bootstrap_refuses_no_utterances_and_no_words() -> None:
         paired_bootstrap([1], [0], [0])
 
 
+def _two_systems(seed: int, size: int, low: int, high: int, p_before: float, p_after: float
+                 ) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Invented per-utterance counts: reference words, and binomial errors of two systems."""
+    rng = np.random.default_rng(seed)
+    words = rng.integers(low, high, size=size)
+    return words, rng.binomial(words, p_before), rng.binomial(words, p_after)
+
+
 def test_bootstrap_interval_contains_point_and_is_reproducible() -> None:
-    rng = np.random.default_rng(5)
-    n_ref = rng.integers(3, 15, size=200)
-    before = rng.binomial(n_ref, 0.2)
-    after = rng.binomial(n_ref, 0.15)
+    n_ref, before, after = _two_systems(5, 200, 3, 15, 0.2, 0.15)
     a = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
     b = paired_bootstrap(before, after, n_ref, resamples=2000, seed=9)
     c = paired_bootstrap(before, after, n_ref, resamples=2000, seed=10)
@@ -304,3 +313,52 @@ def test_bootstrap_coverage_near_nominal() -> None:
         covered_diff += r.difference_ci[0] <= -0.03 <= r.difference_ci[1]
     assert 0.90 <= covered_wer / experiments <= 0.99
     assert 0.90 <= covered_diff / experiments <= 0.99
+
+
+# --- the intervals printed beside a command's WER table ----------------------------------
+
+def test_wer_intervals_are_the_paired_bootstraps_own_intervals() -> None:
+    # the same draws by design: a command's table and the report give one interval
+    words, before, after = _two_systems(3, 400, 1, 30, 0.2, 0.1)
+    paired = paired_bootstrap(before, after, words, resamples=2000, seed=5)
+    found = wer_intervals([before, after], words, resamples=2000, seed=5)
+    assert found.intervals == (paired.before_ci, paired.after_ci)
+    alone = wer_intervals([after], words, resamples=2000, seed=5)  # rows do not interact
+    assert alone.intervals == (paired.after_ci,)
+
+
+def test_wer_interval_agrees_with_scipy_percentile_bootstrap() -> None:
+    # source: scipy.stats.bootstrap(method="percentile", paired=True) resampling utterances
+    # (the pairs of errors and reference words) for the ratio of sums. Different random
+    # draws, so they agree to Monte Carlo error: with 10,000 resamples the 2.5 % quantile of
+    # a WER whose spread is about 0.01 moves by about 0.0003 (binomial error of a quantile;
+    # from memory), and 0.002 is well outside that. Errors cluster by utterance here, so a
+    # bootstrap over words instead of utterances would be well under half as wide and fail.
+    rng = np.random.default_rng(11)
+    words = rng.integers(2, 25, size=500)
+    bad = rng.random(500) < 0.15  # a few utterances carry most errors
+    errors = np.where(bad, rng.binomial(words, 0.7), rng.binomial(words, 0.05))
+    ours = wer_intervals([errors], words, resamples=10_000, seed=0).intervals[0]
+    theirs = scipy.stats.bootstrap(
+        (errors, words), lambda e, w, axis=-1: e.sum(axis=axis) / w.sum(axis=axis),
+        paired=True, vectorized=True, method="percentile", n_resamples=10_000,
+        confidence_level=0.95, random_state=np.random.default_rng(1)).confidence_interval
+    assert ours[0] == pytest.approx(theirs.low, abs=0.002)
+    assert ours[1] == pytest.approx(theirs.high, abs=0.002)
+    assert ours[1] - ours[0] > 0.02  # a real width, not a degenerate one
+
+
+def test_table_resamples_fall_with_size_but_not_below_a_thousand() -> None:
+    assert table_resamples(500) == 10_000
+    assert table_resamples(1_000_000) == 1_000
+    assert 1_000 <= table_resamples(50_000) < 10_000
+
+
+def test_with_interval_leaves_an_undefined_wer_alone_and_to_dict_unchanged() -> None:
+    empty = wer_from_totals(0, 0, 0, 0, utterances=2)
+    assert with_interval(empty, [0, 0], [0, 0]).interval is None
+    r = with_interval(wer_from_totals(1, 0, 0, 3, utterances=2), [1, 0], [2, 2])
+    assert r.interval is not None and r.interval.low <= r.wer <= r.interval.high
+    # the keys of `wer --json` (the contract) carry no interval
+    assert set(r.to_dict()) == {"wer", "substitutions", "deletions", "insertions", "hits",
+                                "reference_words", "utterances"}

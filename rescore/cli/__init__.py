@@ -80,6 +80,7 @@ def _root(
                                  help="Print the version and exit."),
 ) -> None:
     state.debug, state.quiet, state.verbose = debug, quiet, verbose
+    state.stdout_taken = False
     if verbose or debug:
         logging.basicConfig(level=logging.DEBUG if debug else logging.INFO,
                             format="%(asctime)s %(name)s: %(message)s", stream=sys.stderr,

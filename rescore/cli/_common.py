@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import io
 import json
 import os
 import signal
@@ -33,8 +34,8 @@ from rich.table import Table
 from rich.text import Text
 
 from rescore.cli.flags import in_flags
-from rescore.errors import RescoreError
-from rescore.outputs import DISK_FULL, disk_full_error
+from rescore.errors import RescoreError, UsageError
+from rescore.outputs import DISK_FULL, STDOUT_NAME, disk_full_error
 from rescore.progress import Report
 
 P = ParamSpec("P")
@@ -50,6 +51,8 @@ class _State:
     debug = False
     quiet = False
     verbose = False
+    # the command writes its data to standard output (-o -): its tables go to stderr
+    stdout_taken = False
 
 
 state = _State()
@@ -210,12 +213,38 @@ def warn(message: str, label: str = "warning") -> None:
 
 
 def table(title: str | None, columns: Sequence[str], rows: Sequence[Sequence[object]]) -> None:
+    """A table for a person: on stdout, or on stderr when the command's data goes to
+    stdout (see :func:`take_stdout`)."""
     t = Table(title=title, title_justify="left", show_edge=False, pad_edge=False)
     for i, name in enumerate(columns):
         t.add_column(name, justify="left" if i == 0 else "right")
     for row in rows:
         t.add_row(*(fmt(v) for v in row))
-    stdout.print(t)
+    (stderr if state.stdout_taken else stdout).print(t)
+
+
+def is_standard_output(path: object) -> bool:
+    """Whether an output path is this process's standard output: ``-``, or a name of the
+    same file (``/dev/stdout``, ``/proc/self/fd/1``, or the file stdout is redirected to)."""
+    if path is None:
+        return False
+    if str(path) == STDOUT_NAME:
+        return True
+    try:
+        here, std = os.stat(str(path)), os.fstat(sys.stdout.fileno())
+    except (OSError, ValueError, io.UnsupportedOperation):
+        return False
+    return (here.st_dev, here.st_ino) == (std.st_dev, std.st_ino)
+
+
+def take_stdout(outputs: Sequence[object], *, as_json: bool) -> None:
+    """Keep standard output for data alone: when one of ``outputs`` is written there,
+    ``--json`` is refused (the two would mix) and tables go to stderr."""
+    taken = [o for o in outputs if is_standard_output(o)]
+    state.stdout_taken = bool(taken)
+    if taken and as_json:
+        raise UsageError(f"--json and the output {taken[0]} would both write to standard "
+                         "output: give a file")
 
 
 def fmt(value: object) -> str:

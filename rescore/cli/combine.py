@@ -8,7 +8,7 @@ from typing import Annotated
 
 import typer
 
-from rescore.cli._common import emit_json, guarded, info
+from rescore.cli._common import emit_json, guarded, info, take_stdout
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, NbestOutOpt
 from rescore.decode.combine import combine_lists
 from rescore.errors import UsageError
@@ -50,8 +50,7 @@ def combine(
     if len(set(names)) != len(names):
         raise UsageError(f"two files share a system name ({', '.join(names)}); "
                          "give them as NAME=FILE")
-    if as_json and str(out) == "-":
-        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
+    take_stdout([out], as_json=as_json)
     check_outputs([out], [p for _, p in named])
     read: list[tuple[str, list[Utterance]]] = [
         (name, [utt for _, utt in iter_nbest(path, log_base=log_base, costs=costs)])

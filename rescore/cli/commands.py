@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import io
-import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -15,7 +13,18 @@ from rescore import demo as demo_lib
 from rescore import pipeline
 from rescore.batch import DEFAULT_BATCH
 from rescore.cli import combine
-from rescore.cli._common import emit_json, guarded, info, pct, progress, stages, table, warn
+from rescore.cli._common import (
+    emit_json,
+    guarded,
+    info,
+    is_standard_output,
+    pct,
+    progress,
+    stages,
+    table,
+    take_stdout,
+    warn,
+)
 from rescore.cli.decoding import ChooseOpt, decoding_rows, rule_value, with_rule
 from rescore.cli.options import (
     BatchOpt,
@@ -41,6 +50,7 @@ from rescore.report.load import reference_sentences
 from rescore.scoring import oov_features
 from rescore.shards import count_lines
 from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights, read_weights_provenance
+from rescore.wer import WerResult
 
 
 def _refs(path: Path | None) -> dict[str, str] | None:
@@ -48,20 +58,31 @@ def _refs(path: Path | None) -> dict[str, str] | None:
     return None if path is None else read_refs(path)
 
 
-def _wer_rows(label_results: list[tuple[str, dict[str, float | int] | None]]) -> list[list[object]]:
-    rows: list[list[object]] = []
-    for label, r in label_results:
-        if r is None:
-            continue
-        errors = int(r["substitutions"]) + int(r["deletions"]) + int(r["insertions"])
-        rows.append([label, r["reference_words"], errors, pct(float(r["wer"])),
-                     r["substitutions"], r["deletions"], r["insertions"]])
-    return rows
+def _wer_table(title: str | None, unit: str, rows: list[tuple[str, WerResult]]) -> None:
+    """The summary table: reference words, errors, the rate and its bootstrap interval,
+    then the substitutions, deletions and insertions the errors are made of; a line on
+    stderr says how the interval was drawn."""
+    table(title, _columns(unit), [
+        [label, r.reference_words, r.errors, pct(r.wer),
+         "-" if r.interval is None else f"[{pct(r.interval.low)}, {pct(r.interval.high)}]",
+         r.substitutions, r.deletions, r.insertions] for label, r in rows])
+    legend = [f"{label}: {ROW_MEANINGS[label]}" for label, _ in rows if label in ROW_MEANINGS]
+    if legend:
+        info("; ".join(legend))
+    drawn = next((r.interval for _, r in rows if r.interval is not None), None)
+    if drawn is not None:
+        info(f"interval: {100 * drawn.confidence:g}% bootstrap over utterances "
+             f"({drawn.resamples:,} resamples, seed {drawn.seed})")
 
 
-# reference words, errors and WER first; then what the errors are made of (errors = sub +
-# del + ins)
-WER_COLUMNS = ["", "ref words", "errors", "WER", "sub", "del", "ins"]
+# short row labels keep the table within 80 columns; the line under it says what they are
+ROW_MEANINGS = {"before": "the recognizer's 1-best", "after": "rescored",
+                "oracle": "the fewest-error hypothesis of each list"}
+
+
+# reference words, errors, WER and its interval first; then what the errors are made of
+# (errors = sub + del + ins)
+WER_COLUMNS = ["", "ref words", "errors", "WER", "95% interval", "sub", "del", "ins"]
 
 
 def _columns(unit: str) -> list[str]:
@@ -124,13 +145,7 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
 def _readable_output(out: Path) -> bool:
     """Whether an output just written can be read back: a regular file that is not this
     process's standard output under another name (``/dev/stdout`` redirected to a file)."""
-    if str(out) == "-" or not out.is_file():
-        return False
-    try:
-        here, std = out.stat(), os.fstat(sys.stdout.fileno())
-    except (OSError, ValueError, io.UnsupportedOperation):
-        return True
-    return (here.st_dev, here.st_ino) != (std.st_dev, std.st_ino)
+    return str(out) != "-" and out.is_file() and not is_standard_output(out)
 
 
 def cv_gap_rate(text: str) -> float:
@@ -185,8 +200,7 @@ def apply(
     """Rescore an N-best file: add lm, word_count and total to each hypothesis and the best
     index; with references, print the WER before and after."""
     counting = counting_of(None, unit)
-    if as_json and str(out) == "-":
-        raise UsageError("--json and -o - would both write to standard output: give -o FILE")
+    take_stdout([out, text], as_json=as_json)
     models = pipeline.load_lms(lm or [])
     check_outputs([out, text], [nbest, weights, refs, *(m.path for m in models.values())])
     w = with_rule(read_weights(weights), choose)
@@ -213,9 +227,8 @@ def apply(
                    "before": None if wers is None else wers[0].to_dict(),
                    "after": None if wers is None else wers[1].to_dict()})
     elif wers is not None:
-        table(f"{out}: {unit_name(counting.unit)} before and after", _columns(counting.unit),
-              _wer_rows([("before (recognizer 1-best)", wers[0].to_dict()),
-                         ("after (rescored)", wers[1].to_dict())]))
+        _wer_table(f"{out}: {unit_name(counting.unit)} before and after", counting.unit,
+                   [("before", wers[0]), ("after", wers[1])])
     shards = f" in {result.shards} shards" if result.shards > 1 else ""
     info(f"rescored {result.utterances} utterances{shards} ({result.changed} changed 1-best, "
          f"{result.empty} chose an empty hypothesis) -> {out}")
@@ -250,7 +263,7 @@ def wer(
         emit_json(result.to_dict() | counting.provenance())
         return
     label = "transcripts" if hyps is not None else "1-best"
-    table(None, _columns(counting.unit), _wer_rows([(label, result.to_dict())]))
+    _wer_table(None, counting.unit, [(label, result)])
 
 
 @guarded
@@ -302,6 +315,7 @@ def tune(
         if not models:
             raise UsageError("--oov-feature counts words outside an LM's vocabulary; give --lm")
         feature = list(dict.fromkeys([*(feature or []), *oov_features(list(models))]))
+    take_stdout([out, analysis], as_json=as_json)
     check_outputs([out, analysis], [nbest, refs, *(m.path for m in models.values())])
     with stages(f"tune {nbest.name}") as report:
         outcome = pipeline.tune_file(
@@ -367,10 +381,9 @@ def demo(
         return
     s = result.summary
     heading = "Larkspur Growhouse" if data is None else str(data)
-    table(f"{heading} test set: before and after rescoring", WER_COLUMNS,
-          _wer_rows([("before (recognizer 1-best)", result.before),
-                     ("after (rescored)", result.after),
-                     ("oracle (best in list)", result.oracle)]))
+    _wer_table(f"{heading} test set: before and after rescoring", "word",
+               [("before", result.before), ("after", result.after),
+                ("oracle", result.oracle)])
     info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
          f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
     if result.comparison:
@@ -398,11 +411,9 @@ def _kana_demo(out: Path, data: Path | None, as_json: bool) -> None:
         return
     s = result.summary
     heading = "Midoridani mushroom cellar" if data is None else str(data)
-    table(f"{heading} test set: before and after rescoring, in characters",
-          _columns("char"),
-          _wer_rows([("before (recognizer 1-best)", result.before.to_dict()),
-                     ("after (rescored)", result.after.to_dict()),
-                     ("oracle (best in list)", result.oracle.to_dict())]))
+    _wer_table(f"{heading} test set: before and after rescoring, in characters", "char",
+               [("before", result.before), ("after", result.after),
+                ("oracle", result.oracle)])
     info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
          f"CER {pct(s['cer_before'])} -> {pct(s['cer_after'])} on {s['utterances']} "
          "utterances")

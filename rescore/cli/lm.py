@@ -7,7 +7,16 @@ from typing import Annotated, Any
 
 import typer
 
-from rescore.cli._common import bars_shown, emit_json, guarded, info, pct, stages, table
+from rescore.cli._common import (
+    bars_shown,
+    emit_json,
+    guarded,
+    info,
+    pct,
+    stages,
+    table,
+    take_stdout,
+)
 from rescore.cli.options import UnitOpt
 from rescore.counting import Counting, characters, parse_unit
 from rescore.errors import UsageError
@@ -142,6 +151,7 @@ def build(
         raise UsageError("--cluster counts words; build a character model without it",
                          field="--unit")
     _check_bits(quantize)
+    take_stdout([output], as_json=as_json)
     check_outputs([output], [*text, vocab])
     budget = default_memory() if memory is None else _memory_size(memory)
     model = NGramModel(
@@ -241,8 +251,7 @@ def convert(
         raise UsageError("give the model to write once: as OUT or with -o/--out")
     written = target if target is not None else out
     assert written is not None
-    if as_json and str(written) == "-":
-        raise UsageError("--json and ARPA text on standard output would mix: give a file")
+    take_stdout([written], as_json=as_json)
     _check_bits(quantize)
     check_outputs([written], [source])
     model = load_model(source, verify=verify)
@@ -311,6 +320,7 @@ def mix(
     """Interpolate language models; weights by EM on in-domain text; write one merged model."""
     if len(models) < 2:
         raise UsageError("lm mix needs at least two models")
+    take_stdout([output], as_json=as_json)
     check_outputs([output], [*models, tune_on])
     if tune_on is None and weights is None:
         raise UsageError("give --tune-on TEXT (to estimate weights) or --weights",

@@ -108,8 +108,10 @@ class NGramModel:
         order by order. With ``memory`` (bytes), counting keeps within about that much
         memory whatever the size of the text, spilling sorted runs to a private folder
         under ``scratch`` (default: the system's temporary folder) and merging them; the
-        model is the same, byte for byte. The finished count tables and the estimation
-        still need memory in proportion to the number of distinct n-grams.
+        model is the same, byte for byte. The model is then estimated one order at a time
+        with its orders on disk in that folder and its native file written there and
+        memory-mapped (see :mod:`rescore.lm.ondisk`), except with count cutoffs above 1 or
+        entropy pruning, which estimate in memory.
         """
         self._check_settings()
         if memory is not None:

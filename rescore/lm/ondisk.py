@@ -167,6 +167,7 @@ def build_on_disk(sentences: Iterable[Sequence[str]], order: int,
             unigrams = counted.unigrams if counted.whole is None else counted.whole[0].count
             stats = counted.sentences, counted.words, counted.oov
             del counted
+            give_back_freed_memory()  # the count tables of a text counted in one piece
             meta = _estimate(shelf, sizes, unigrams, smoother, closed_vocab=closed_vocab,
                              progress=progress)
             tables = _write_model(shelf, sizes, vocab, meta, folder / "model.lm",

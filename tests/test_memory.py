@@ -8,6 +8,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+
 from tests.bulk import write_bulk, write_weights
 
 
@@ -83,8 +85,6 @@ save_model(m, sys.argv[3])
 
 
 def test_lm_build_within_a_budget_holds_less_than_the_model_in_memory(tmp_path: Path) -> None:
-    import numpy as np
-
     # a Zipfian text of 1.5 million words over 20,000 (word frequencies fall as a power of
     # their rank: Zipf's law, common practice for synthetic text)
     rng = np.random.default_rng(3)

@@ -9,18 +9,20 @@ to the folder:
 
 - the context of each n-gram of order ``k`` needs the hash table of order ``k - 1`` and
   that order's contexts; order ``k`` is read a block at a time;
-- smoothing order ``k`` needs its own counts and contexts whole (and the suffixes of order
-  ``k + 1``, a block at a time, for continuation counts); its probabilities then need the
-  probabilities and back-off weights of order ``k - 1`` and its own suffixes in blocks;
+- smoothing order ``k`` holds its own counts and numerators whole; its contexts are mapped
+  while the method runs and then read a block at a time, as are the suffixes of order
+  ``k + 1`` for continuation counts; its probabilities then need the probabilities and
+  back-off weights of order ``k - 1`` whole and its own arrays in blocks;
 - the native file's index of order ``k`` needs the new ids of order ``k - 1``, then its
   probabilities and weights are put in the index's order, one array at a time.
 
 The model file is written from those arrays in one pass (:func:`rescore.lm.store.save_arrays`,
 the same bytes as an in-memory build) into the scratch folder and memory-mapped; the folder
 is removed when the build ends, also on an error or an interruption. Every value is
-computed by the same numpy operations, on the same operands, as the in-memory estimation,
-so the file is byte-identical. Count cutoffs and entropy pruning are not done here (the
-caller uses the in-memory estimation for them).
+computed by the same numpy operations, on the same operands, as the in-memory estimation
+(a sum over contexts a block at a time with ``np.add.at``, which adds in the same order as
+``np.bincount``), so the file is byte-identical. Count cutoffs and entropy pruning are
+not done here (the caller uses the in-memory estimation for them).
 """
 
 from __future__ import annotations
@@ -317,8 +319,9 @@ def _estimate(shelf: Shelf, sizes: list[int], unigrams: I64, smoother: Smoother,
 def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smoother,
             n_pred: int, predictable: npt.NDArray[np.bool_], meta: dict[str, Any]) -> None:
     """Order ``k``: its back-off weights of order ``k - 1`` (``gamma{k-1}``) and its
-    probabilities (``prob{k}``). Only this order's counts, contexts and numerators are held
-    whole; the contexts are mapped, so a method that does not read them holds none."""
+    probabilities (``prob{k}``). Only this order's counts and numerators are held whole;
+    the contexts are mapped while the method runs (one that does not read them holds none
+    of them), then read a block at a time."""
     order, v, n = len(sizes), sizes[0], sizes[k - 1]
     raw = (unigrams if k == 1 else shelf.get(f"count{k}")).astype(np.float64)
     first = np.arange(v) if k == 1 else None

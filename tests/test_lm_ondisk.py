@@ -18,7 +18,7 @@ from test_lm_external import SENTS, TINY, _zipf_sentences
 
 from rescore.errors import InputError
 from rescore.leftovers import TMP_PREFIX
-from rescore.lm import METHODS, NGramModel, ondisk, save_model, store
+from rescore.lm import METHODS, NGramModel, load_model, ondisk, save_model, store
 
 NORM_TOL = 1e-9  # our tolerance for reference matches (as tests/test_lm_model.py)
 
@@ -118,3 +118,17 @@ def test_the_fitted_model_is_the_mapped_file(tmp_path: Path) -> None:
     loaded = store.load_file(tmp_path / "m.lm", verify=True)
     assert loaded.tables.n_ngrams() == model.n_ngrams_
     assert [p.name for p in tmp_path.iterdir()] == ["m.lm"]
+
+
+def test_arpa_of_a_build_within_a_budget_is_that_of_its_native_file(tmp_path: Path) -> None:
+    # the ARPA format lists each order's n-grams in no fixed order (from memory): a build
+    # within a budget writes them in its native file's order, the same bytes as converting
+    # that file; the lines are those of the in-memory build
+    disk = NGramModel(3).fit(SENTS, memory=TINY, scratch=tmp_path)
+    save_model(disk, tmp_path / "disk.arpa")
+    save_model(disk, tmp_path / "disk.lm")
+    save_model(load_model(tmp_path / "disk.lm"), tmp_path / "converted.arpa")
+    assert (tmp_path / "disk.arpa").read_bytes() == (tmp_path / "converted.arpa").read_bytes()
+    save_model(NGramModel(3).fit(SENTS), tmp_path / "plain.arpa")
+    lines = sorted((tmp_path / "disk.arpa").read_text().splitlines())
+    assert lines == sorted((tmp_path / "plain.arpa").read_text().splitlines())

@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
 import os
 import sys
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
@@ -38,6 +40,8 @@ def avoid_huge_pages() -> bool:
 # glibc's mallopt parameters (malloc.h)
 _M_TRIM_THRESHOLD = -1
 _M_MMAP_MAX = -4
+_GLIBC_MMAP_MAX = 65536  # glibc's default: large blocks get their own mapping
+_kept: list[Any] = []  # the C library, once keep_freed_memory has applied its settings
 _MALLOC_ENV = ("MALLOC_MMAP_MAX_", "MALLOC_TRIM_THRESHOLD_", "MALLOC_MMAP_THRESHOLD_",
                "GLIBC_TUNABLES")
 KEEP_FREED_BYTES = 1 << 30
@@ -65,8 +69,30 @@ def keep_freed_memory() -> bool:
     # gnu_get_libc_version exists only in glibc, whose mallopt parameters these are
     if not hasattr(libc, "gnu_get_libc_version") or not hasattr(libc, "mallopt"):
         return False
-    return bool(libc.mallopt(_M_MMAP_MAX, 0)) and bool(
+    applied = bool(libc.mallopt(_M_MMAP_MAX, 0)) and bool(
         libc.mallopt(_M_TRIM_THRESHOLD, KEEP_FREED_BYTES))
+    if applied and not _kept:
+        _kept.append(libc)
+    return applied
+
+
+@contextlib.contextmanager
+def freed_memory_returned() -> Iterator[None]:
+    """Inside the block, glibc's default again: each large block its own mapping, returned
+    to the system when freed (where :func:`keep_freed_memory` was applied; else nothing
+    changes). For steps whose peak matters more than their speed: the heap kept for reuse
+    holds freed temporaries that no later array fits, and they count in the peak (the
+    estimation of a 4-gram of 60 million words on disk: 2.54 GB instead of 3.18)."""
+    if not _kept:
+        yield
+        return
+    libc = _kept[0]
+    libc.malloc_trim(0)
+    libc.mallopt(_M_MMAP_MAX, _GLIBC_MMAP_MAX)
+    try:
+        yield
+    finally:
+        libc.mallopt(_M_MMAP_MAX, 0)
 
 
 def give_back_freed_memory() -> bool:

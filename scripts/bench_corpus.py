@@ -11,14 +11,22 @@ process, whose peak resident memory is read from the kernel (wait4) when it ends
    baseline: the overhead of the cluster, and the byte-identical file. A cluster pays off
    only when it has more cores than this machine; here it can only cost;
 3. with ``--large``: 10 and 60 million words with ``--memory 4G``: time and peak of each
-   and the ratio of the peaks (targets: 60 M under 5 GB and 15 minutes, ratio under 1.2).
-   This takes a long time and about 1 GB of disk; it is off by default (``--large-only``:
-   this part alone; ``--large-words 20000000`` for a shorter check of the ratio).
+   and the ratio of the peaks (targets: 60 M under 5 GB and 15 minutes, ratio under 1.2);
+   for each size also the same build with the model estimated in memory once counted (the
+   estimation of before, in its own process: the same-run baseline of the estimation on
+   disk), with the ratios of time and peak and a check that the two files are identical.
+   This takes a long time and about 5 GB of disk (the text, the scratch folder, the model
+   files) and, for the baseline, about 9 GB of memory; it is off by default
+   (``--large-only``: this part alone; ``--large-words 20000000`` for a shorter check of
+   the ratio);
+4. with ``--stages``: the peak and time of each step of a ``--memory`` build, in its own
+   process (the kernel's high-water mark reset as each step starts): counting, merging,
+   finding contexts, smoothing each order, the index and the file, saving.
 
 Times are medians of 3 runs (1 with ``--quick`` or ``--large``); peaks are the largest of
 the runs. ``--quick`` uses 1 million words.
 
-    PYTHONPATH=. python scripts/bench_corpus.py [--quick] [--large]
+    PYTHONPATH=. python scripts/bench_corpus.py [--quick] [--large] [--stages]
 """
 
 from __future__ import annotations
@@ -37,6 +45,7 @@ import numpy as np
 from bench_lm import SEED, VOCAB, target, zipf_corpus
 
 from rescore.lm import load_model
+from rescore.lm.external import parse_size
 
 CLI = [sys.executable, "-c", "from rescore.cli import main; main()", "-q", "lm", "build"]
 
@@ -98,6 +107,76 @@ print(seen.get("before", hwm()), hwm(), c.runs, sum(len(t) for t in c.tables))
 """
 
 
+# The same build with the estimation of before (the whole model in memory once counted),
+# in its own process, as the same-run baseline of the on-disk estimation: the library with
+# the choice of the estimation turned off, then the file saved as lm build saves it
+IN_MEMORY = """
+import sys
+from rescore.lm import NGramModel, read_corpus, save_model
+from rescore.lm import model as model_module
+from rescore.process import avoid_huge_pages, keep_freed_memory
+avoid_huge_pages()
+keep_freed_memory()
+model_module.streams = lambda cutoffs, prune: False
+m = NGramModel(4).fit(read_corpus(sys.argv[1]), memory=int(sys.argv[2]), scratch=sys.argv[3])
+save_model(m, sys.argv[4])
+"""
+
+
+# The peak of each step of a build within a budget, in its own process: the kernel's
+# high-water mark (VmHWM) is reset (clear_refs) as each step starts and read as it ends, so
+# numpy's allocations are all seen; the process as the command line sets it up
+STAGES = """
+import sys, time
+from rescore.lm import NGramModel, ondisk, read_corpus, save_model, store
+from rescore.process import avoid_huge_pages, keep_freed_memory
+avoid_huge_pages()
+keep_freed_memory()
+def hwm():
+    with open("/proc/self/status") as fh:
+        return next(int(l.split()[1]) << 10 for l in fh if l.startswith("VmHWM:"))
+def reset():
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+def wrap(module, name, label):
+    real = getattr(module, name)
+    def step(*args, **kwargs):
+        reset()
+        t = time.perf_counter()
+        out = real(*args, **kwargs)
+        print(f"  {label.format(*args)}: peak {hwm() / 1e9:.2f} GB, "
+              f"{time.perf_counter() - t:.1f} s",
+              flush=True)
+        return out
+    setattr(module, name, step)
+wrap(ondisk, "count_chunks", "counting (the first pass and the chunks)")
+wrap(ondisk, "_shelve", "the count tables to the scratch folder (merging the runs)")
+wrap(ondisk, "_contexts", "finding the contexts")
+wrap(ondisk, "_smooth", "smoothing order {2}")
+wrap(ondisk, "_write_model", "the index, the values in its order, the file and its mapping")
+wrap(store, "save", "saving the model (lm build's save)")
+m = NGramModel(4).fit(read_corpus(sys.argv[1]), memory=int(sys.argv[2]), scratch=sys.argv[3])
+save_model(m, sys.argv[4])
+"""
+
+
+def stages(text: Path, memory: int, scratch: Path, out: Path) -> None:
+    """Print the peak and time of each step of one build (see STAGES)."""
+    subprocess.run([sys.executable, "-c", STAGES, str(text), str(memory), str(scratch),
+                    str(out)], check=True)
+
+
+def in_memory_build(text: Path, memory: int, scratch: Path, out: Path) -> tuple[float, float]:
+    """Wall seconds and peak resident GB of the baseline build (see IN_MEMORY)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, "-c", IN_MEMORY, str(text), str(memory),
+                             str(scratch), str(out)])
+    _, status, usage = os.wait4(proc.pid, 0)
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise SystemExit("the baseline build (estimation in memory) failed")
+    return time.perf_counter() - t0, usage.ru_maxrss / 1e6
+
+
 def count_only(text: Path, memory: int, scratch: Path) -> tuple[float, float, float, int]:
     """Seconds, GB before the merge, GB at the end, and runs of counting alone."""
     t0 = time.perf_counter()
@@ -120,6 +199,9 @@ def main() -> None:
                     help="also 10 and 60 million words with --memory 4G (long)")
     ap.add_argument("--large-words", type=int, default=60_000_000, metavar="N",
                     help="with --large: the larger text's words (default 60 million)")
+    ap.add_argument("--stages", action="store_true",
+                    help="the peak of each step of a --memory build (1G on 10 million words;"
+                         " with --large also 4G on the larger text)")
     ap.add_argument("--large-only", action="store_true",
                     help="only the --large part (the peaks of the two sizes and their ratio)")
     args = ap.parse_args()
@@ -153,6 +235,10 @@ def main() -> None:
                   f"{runs_peak:.2f} GB; time ratio {runs_t / base_t:.2f}x, peak ratio "
                   f"{runs_peak / base_peak:.2f}x; model file byte-identical")
 
+            if args.stages:
+                print(f"--memory {small}, step by step (VmHWM reset as each step starts):")
+                stages(text, parse_size(small), scratch, tmp / "stages.lm")
+
             try:
                 import distributed  # noqa: F401
             except ImportError:
@@ -178,10 +264,13 @@ def main() -> None:
                       f"{c_t / 60:.1f} min, {c_runs} sorted runs (0: in memory), peak "
                       f"{c_before:.2f} GB before the merge, {c_end:.2f} GB with the merged "
                       "count tables", flush=True)
+                if args.stages:
+                    print(f"{words / 1e6:g} M words, --memory 4G, step by step:")
+                    stages(big, 4 << 30, scratch, tmp / "stages.lm")
                 wall, peak = build(big, tmp / "large.lm", "--memory", "4G",
                                    "--scratch", str(scratch), must=False)
                 peaks[words] = peak
-                big.unlink()
+                base_wall, base_peak = in_memory_build(big, 4 << 30, scratch, tmp / "base.lm")
                 line = (f"{words / 1e6:g} M words ({big_size / 1e9:.2f} GB of text), "
                         f"--memory 4G: {wall / 60:.1f} min, one run, peak {peak:.2f} GB")
                 if words == large:
@@ -192,6 +281,15 @@ def main() -> None:
                     line += (f"; {grams / 1e6:.1f} M n-grams, {peak * 1e9 / grams:.0f} bytes "
                              "of peak per n-gram")
                 print(line, flush=True)
+                same = wall == wall and (tmp / "base.lm").read_bytes() == (
+                    tmp / "large.lm").read_bytes()
+                print(f"  the same build with the model estimated in memory once counted (the "
+                      f"baseline): {base_wall / 60:.1f} min, peak {base_peak:.2f} GB; the "
+                      f"estimation on disk against it: time {wall / base_wall:.2f}x, peak "
+                      f"{peak / base_peak:.2f}x; model files "
+                      f"{'byte-identical' if same else 'DIFFERENT'}", flush=True)
+                (tmp / "base.lm").unlink()
+                big.unlink()
             ratio = peaks[large] / peaks[10_000_000]
             print(f"whole build, peak {large / 1e6:g} M / peak 10 M: {ratio:.2f} "
                   f"{target(ratio, '<', 1.2)}")

@@ -4,6 +4,7 @@ left in the scratch folder, one-line errors."""
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import signal
@@ -25,12 +26,12 @@ from rescore.leftovers import TMP_PREFIX
 from rescore.lm import NGramModel, external, read_corpus, save_model
 from rescore.lm.counts import OrderCounts
 from rescore.lm.external import (
-    KeyCodec,
     count_external,
     merge_runs,
     parse_size,
     write_run,
 )
+from rescore.lm.keys import KeyCodec
 from rescore.lm.vocab import Vocabulary
 
 TINY = 64 << 10  # the least budget: chunks of 256 tokens, so a 20,000-word text makes ~90 runs
@@ -260,9 +261,23 @@ def test_library_full_disk_names_the_folder(tmp_path: Path,
     assert list(tmp_path.iterdir()) == []
 
 
+def _scratch_names(scratch: Path) -> list[str]:
+    """The files in the build's folders under ``scratch`` (which come and go meanwhile)."""
+    names = []
+    for folder in scratch.iterdir():
+        with contextlib.suppress(FileNotFoundError, NotADirectoryError):
+            names += [p.name for p in folder.iterdir()]
+    return names
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
-def test_interrupted_build_leaves_no_scratch_files(tmp_path: Path, sig: signal.Signals) -> None:
+@pytest.mark.parametrize(("stage", "memory"), [("run", "64K"), ("prob", "1G")],
+                         ids=["counting", "estimating"])
+def test_interrupted_build_leaves_no_scratch_files(tmp_path: Path, sig: signal.Signals,
+                                                   stage: str, memory: str) -> None:
+    # interrupted while counting (sorted runs on disk) or while estimating (each order's
+    # probabilities on disk): the folder goes either way
     text = tmp_path / "big.txt"
     sents = _zipf_sentences(600_000, 20_000, 11)
     text.write_text("".join(" ".join(s) + "\n" for s in sents))
@@ -270,14 +285,14 @@ def test_interrupted_build_leaves_no_scratch_files(tmp_path: Path, sig: signal.S
     scratch.mkdir()
     out = tmp_path / "m.lm"
     proc = subprocess.Popen([sys.executable, "-m", "rescore", "lm", "build", str(text),
-                             "-n", "4", "-o", str(out), "--memory", "64K", "--scratch",
+                             "-n", "4", "-o", str(out), "--memory", memory, "--scratch",
                              str(scratch)], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 120
     seen = False
     while time.monotonic() < deadline and proc.poll() is None and not seen:
-        seen = any(p.name.startswith("run") for d in scratch.iterdir() for p in d.iterdir())
-        time.sleep(0.05)
-    assert seen, "the build finished or stalled before writing runs; enlarge the text"
+        seen = any(name.startswith(stage) for name in _scratch_names(scratch))
+        time.sleep(0.01)
+    assert seen, f"the build finished or stalled before writing {stage} files; enlarge the text"
     proc.send_signal(sig)
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 128 + sig  # the shell convention: 130 for SIGINT, 143 for SIGTERM

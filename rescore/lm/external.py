@@ -38,12 +38,12 @@ import numpy.typing as npt
 from rescore.errors import InputError, UsageError
 from rescore.leftovers import TMP_PREFIX, remove_stale_temporaries
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
+from rescore.lm.keys import KeyCodec, Keys
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary, remap, stream_from_lengths
 from rescore.progress import Report, Steps
 
 I32 = npt.NDArray[np.int32]
 I64 = npt.NDArray[np.int64]
-Keys = npt.NDArray[Any]  # uint64 or fixed-width bytes
 
 # Peak bytes of memory per token of a chunk while count_ngrams counts a 4-gram (the padded
 # stream, its sentence index and floors, the window keys and their runs), measured on the
@@ -150,102 +150,6 @@ def scratch_folder(parent: str | Path | None, purpose: str) -> Iterator[Path]:
         shutil.rmtree(folder, ignore_errors=True)
 
 
-# --- keys of n-grams ------------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class KeyCodec:
-    """Keys of the n-grams of every order of one model (see the module's docstring)."""
-
-    order: int
-    vocab_size: int
-
-    @property
-    def bits(self) -> int:
-        return max(int(self.vocab_size).bit_length(), 1)
-
-    @property
-    def packed(self) -> bool:
-        return self.order * self.bits <= 64
-
-    def dtype(self, k: int) -> np.dtype[Any]:
-        return np.dtype(np.uint64) if self.packed else np.dtype(f"S{4 * k}")
-
-    def unigrams(self) -> Keys:
-        ids = np.arange(self.vocab_size, dtype=np.int64)
-        return ids.astype(np.uint64) if self.packed else _be32(ids).view("S4").ravel()
-
-    def extend(self, suffix_keys: Keys, first: I64) -> Keys:
-        """Keys of the n-grams ``first + suffix`` (``suffix_keys`` one order lower)."""
-        if self.packed:
-            return (suffix_keys << np.uint64(self.bits)) | first.astype(np.uint64)
-        n, width = len(first), suffix_keys.dtype.itemsize
-        out = np.empty((n, width + 4), dtype=np.uint8)
-        out[:, :width] = suffix_keys.view(np.uint8).reshape(n, width)
-        out[:, width:] = _be32(first)
-        return out.view(f"S{width + 4}").ravel()
-
-    def split(self, keys: Keys) -> tuple[Keys, I64]:
-        """The inverse of :meth:`extend`: the suffixes' keys and the first words."""
-        if self.packed:
-            return keys >> np.uint64(self.bits), (keys & np.uint64((1 << self.bits) - 1)
-                                                  ).view(np.int64)
-        n, width = len(keys), keys.dtype.itemsize
-        raw = keys.view(np.uint8).reshape(n, width)
-        first = np.ascontiguousarray(raw[:, width - 4:]).view(">u4").ravel().astype(np.int64)
-        return np.ascontiguousarray(raw[:, :width - 4]).view(f"S{width - 4}").ravel(), first
-
-    def from_words(self, words: I32) -> Keys:
-        """Keys of n-grams given as rows of word ids ``w1 .. wk``."""
-        n, k = words.shape
-        if self.packed:
-            keys = np.zeros(n, dtype=np.uint64)
-            for j in range(k):
-                keys |= words[:, j].astype(np.uint64) << np.uint64(self.bits * j)
-            return keys
-        return np.ascontiguousarray(words[:, ::-1]).astype(">u4").view(f"S{4 * k}").ravel()
-
-    def keys_of(self, tables: Sequence[OrderCounts]) -> list[Keys]:
-        """Each order's keys of count tables (sorted, as the tables are)."""
-        keys = [self.unigrams()]
-        for k in range(2, len(tables) + 1):
-            t = tables[k - 1]
-            keys.append(self.extend(keys[k - 2][t.suffix], t.first))
-        return keys
-
-    def tables_of(self, unigram_counts: I64, keys: list[Keys], counts: list[I64]
-                  ) -> list[OrderCounts]:
-        """Count tables from each order's merged keys and counts (index 0: orders >= 2).
-
-        ``keys`` and ``counts`` are emptied as they are used (an order's keys are let go
-        once the order above has found its suffixes among them), and the tables' ids are
-        32-bit integers where they fit: the peak of a build comes soon after."""
-        v = self.vocab_size
-        tables = [OrderCounts(np.zeros(v, np.int64), np.arange(v, dtype=np.int64),
-                              unigram_counts)]
-        below = self.unigrams()
-        for i in range(len(keys)):
-            k_keys, k_counts = keys[i], counts[i]
-            keys[i], counts[i] = k_keys[:0], k_counts[:0]
-            suffix_keys, first = self.split(k_keys)
-            suffix = _narrow_ids(np.searchsorted(below, suffix_keys))
-            del suffix_keys
-            tables.append(OrderCounts(suffix, _narrow_ids(first), k_counts))
-            del first, suffix
-            below = k_keys
-        return tables
-
-
-def _narrow_ids(ids: I64) -> I64:
-    """``ids`` as 32-bit integers when they fit (the same values)."""
-    if len(ids) < (1 << 31) and (not len(ids) or int(ids.max()) < (1 << 31)):
-        return ids.astype(np.int32)
-    return ids
-
-
-def _be32(ids: npt.NDArray[np.integer[Any]]) -> npt.NDArray[np.uint8]:
-    return ids.astype(">u4").view(np.uint8).reshape(len(ids), 4)
-
-
 def sum_duplicates(keys: Keys, counts: I64) -> tuple[Keys, I64]:
     """Sorted distinct keys and the sum of the counts of each."""
     if not len(keys):
@@ -339,7 +243,12 @@ def merge_runs(runs: Sequence[Run], block: int, spill: Path | None = None
     out_counts: list[I64] = []
     dtype = runs[0].dtype if runs else np.dtype(np.uint64)
     if spill is not None:
-        return _merge_to_disk(readers, spill, dtype)
+        keys_path, counts_path, _ = merge_to_files(runs, block, spill)
+        try:
+            return np.fromfile(keys_path, dtype=dtype), np.fromfile(counts_path, dtype=np.int64)
+        finally:
+            keys_path.unlink()
+            counts_path.unlink()
     for keys, counts in _merge_steps(readers):
         out_keys.append(keys)
         out_counts.append(counts)
@@ -363,19 +272,17 @@ def _merge_steps(readers: list[_Reader]) -> Iterator[tuple[Keys, I64]]:
                              np.concatenate([p[1] for p in pieces]))
 
 
-def _merge_to_disk(readers: list[_Reader], spill: Path, dtype: np.dtype[Any]
-                   ) -> tuple[Keys, I64]:
+def merge_to_files(runs: Sequence[Run], block: int, spill: Path) -> tuple[Path, Path, int]:
+    """As :func:`merge_runs` with ``spill``, left on disk: the files of the merged keys
+    and counts (int64), and their length."""
     keys_path, counts_path = spill.with_suffix(".keys"), spill.with_suffix(".counts")
+    n = 0
     with _create(keys_path) as fk, _create(counts_path) as fc:
-        for keys, counts in _merge_steps(readers):
+        for keys, counts in _merge_steps([_Reader(r, block) for r in runs]):
             _write(fk, keys)
             _write(fc, counts)
-    try:
-        return (np.fromfile(keys_path, dtype=dtype),
-                np.fromfile(counts_path, dtype=np.int64))
-    finally:
-        keys_path.unlink()
-        counts_path.unlink()
+            n += len(keys)
+    return keys_path, counts_path, n
 
 
 def merge_block(memory: int, runs: int) -> int:
@@ -439,53 +346,83 @@ def count_external(
     counts (as ``NGramModel.fit`` does). When the whole stream fits in one chunk, it is
     counted in memory and no run is written.
     """
+    check_memory(memory)
+    with scratch_folder(scratch, "lm-counts") as folder:
+        c = count_chunks(sentences, order, choose, closed_vocab=closed_vocab, memory=memory,
+                         folder=folder, progress=progress)
+        whole = c.whole if c.whole is not None else merge_all(c.codec, c.unigrams, c.runs,
+                                                               memory, progress)
+    return CorpusCounts(c.vocab, whole, c.sentences, c.words, c.oov, c.chunks)
+
+
+def check_memory(memory: int) -> None:
     if memory < MIN_MEMORY:
         raise UsageError(f"the memory budget must be at least {MIN_MEMORY >> 10} KiB, "
                          f"got {memory} bytes")
-    with scratch_folder(scratch, "lm-counts") as folder:
-        first = _first_pass_to_disk(sentences, folder)
-        vocab = choose(first.words, first.counts)
-        table = remap(first.words, vocab)
-        oov = int(first.counts[table == UNK_ID].sum())
-        v = len(vocab)
-        padded = first.lengths + 2
-        ends = np.cumsum(padded)
-        limit = chunk_tokens(memory)
-        # chunk j holds the sentences before cuts[j + 1]; each at least one sentence
-        cuts = [0] if len(ends) else [0, 0]
-        while cuts[-1] < len(ends):
-            start = 0 if cuts[-1] == 0 else int(ends[cuts[-1] - 1])
-            nxt = int(np.searchsorted(ends, start + limit, "right"))
-            cuts.append(max(nxt, cuts[-1] + 1))
-        n_chunks = len(cuts) - 1
-        counting = Steps(progress, "counting n-grams", n_chunks * order)
-        codec = KeyCodec(order, v)
-        unigrams = np.zeros(v, dtype=np.int64)
-        runs: list[list[Run]] = [[] for _ in range(order - 1)]
-        body_at = np.concatenate([[0], np.cumsum(first.lengths)])
-        whole: list[OrderCounts] | None = None
-        for j in range(n_chunks):
-            a, b = cuts[j], cuts[j + 1]
-            ids = np.fromfile(first.ids, dtype=np.int32, count=int(body_at[b] - body_at[a]),
-                              offset=int(body_at[a]) * 4)
-            stream = stream_from_lengths(table[ids], first.lengths[a:b])
-            del ids
-            floor = window_floor(stream, closed_vocab)
-            tables = count_ngrams(stream.tokens, floor, order, v, progress=counting)
-            del stream, floor
-            if n_chunks == 1:
-                whole = tables
-                break
-            unigrams += tables[0].count
-            for k, keys in enumerate(codec.keys_of(tables)[1:], start=2):
-                runs[k - 2].append(write_run(folder, f"run{j:05d}.{k}", keys,
-                                             tables[k - 1].count))
-            del tables
-        counting.finish()
-        if whole is None:
-            whole = merge_all(codec, unigrams, runs, memory, progress)
-    return CorpusCounts(vocab, whole, len(first.lengths), first.tokens, oov,
-                        0 if n_chunks == 1 else n_chunks)
+
+
+@dataclass(frozen=True)
+class Chunked:
+    """A text counted in chunks: the whole tables (one chunk), or each order's sorted runs
+    in the scratch folder and the unigram counts (``chunks``: 0 for one chunk)."""
+
+    vocab: Vocabulary
+    codec: KeyCodec
+    unigrams: I64
+    runs: list[list[Run]]
+    whole: list[OrderCounts] | None
+    sentences: int
+    words: int
+    oov: int
+    chunks: int
+
+
+def count_chunks(sentences: Iterable[Sequence[str]], order: int,
+                 choose: Callable[[Sequence[str], I64], Vocabulary], *, closed_vocab: bool,
+                 memory: int, folder: Path, progress: Report | None) -> Chunked:
+    """The counting of :func:`count_external` in ``folder``, before any merge."""
+    first = _first_pass_to_disk(sentences, folder)
+    vocab = choose(first.words, first.counts)
+    table = remap(first.words, vocab)
+    oov = int(first.counts[table == UNK_ID].sum())
+    v = len(vocab)
+    padded = first.lengths + 2
+    ends = np.cumsum(padded)
+    limit = chunk_tokens(memory)
+    # chunk j holds the sentences before cuts[j + 1]; each at least one sentence
+    cuts = [0] if len(ends) else [0, 0]
+    while cuts[-1] < len(ends):
+        start = 0 if cuts[-1] == 0 else int(ends[cuts[-1] - 1])
+        nxt = int(np.searchsorted(ends, start + limit, "right"))
+        cuts.append(max(nxt, cuts[-1] + 1))
+    n_chunks = len(cuts) - 1
+    counting = Steps(progress, "counting n-grams", n_chunks * order)
+    codec = KeyCodec(order, v)
+    unigrams = np.zeros(v, dtype=np.int64)
+    runs: list[list[Run]] = [[] for _ in range(order - 1)]
+    body_at = np.concatenate([[0], np.cumsum(first.lengths)])
+    whole: list[OrderCounts] | None = None
+    for j in range(n_chunks):
+        a, b = cuts[j], cuts[j + 1]
+        ids = np.fromfile(first.ids, dtype=np.int32, count=int(body_at[b] - body_at[a]),
+                          offset=int(body_at[a]) * 4)
+        stream = stream_from_lengths(table[ids], first.lengths[a:b])
+        del ids
+        floor = window_floor(stream, closed_vocab)
+        tables = count_ngrams(stream.tokens, floor, order, v, progress=counting)
+        del stream, floor
+        if n_chunks == 1:
+            whole = tables
+            break
+        unigrams += tables[0].count
+        for k, keys in enumerate(codec.keys_of(tables)[1:], start=2):
+            runs[k - 2].append(write_run(folder, f"run{j:05d}.{k}", keys,
+                                         tables[k - 1].count))
+        del tables
+    counting.finish()
+    first.ids.unlink()  # counted: the disk is freed
+    return Chunked(vocab, codec, unigrams, runs, whole, len(first.lengths), first.tokens, oov,
+                   0 if n_chunks == 1 else n_chunks)
 
 
 def merge_all(codec: KeyCodec, unigrams: I64, runs: list[list[Run]], memory: int,

@@ -18,6 +18,7 @@ from rescore.lm.corpus import Corpus
 from rescore.lm.counts import count_ngrams, window_floor
 from rescore.lm.external import CorpusCounts, count_external, default_memory
 from rescore.lm.fingerprint import BlockRecorder, Recorder
+from rescore.lm.ondisk import build_on_disk, estimate_counted, streams
 from rescore.lm.quantize import quantize
 from rescore.lm.sharded import count_on_cluster
 from rescore.lm.smoothing import METHODS, make_smoother
@@ -107,12 +108,21 @@ class NGramModel:
         order by order. With ``memory`` (bytes), counting keeps within about that much
         memory whatever the size of the text, spilling sorted runs to a private folder
         under ``scratch`` (default: the system's temporary folder) and merging them; the
-        model is the same, byte for byte. The finished count tables and the estimation
-        still need memory in proportion to the number of distinct n-grams.
+        model is the same, byte for byte. The model is then estimated one order at a time
+        with its orders on disk in that folder and its native file written there and
+        memory-mapped (see :mod:`rescore.lm.ondisk`), except with count cutoffs above 1 or
+        entropy pruning, which estimate in memory.
         """
         self._check_settings()
         if memory is not None:
             recorder = Recorder(sentences)
+            if streams(self.cutoffs, self.prune):  # the model's orders kept on disk
+                built = build_on_disk(
+                    recorder, self.order, self._choose_vocab, make_smoother(self.method, self.k),
+                    closed_vocab=self.closed_vocab, memory=memory, scratch=scratch,
+                    progress=progress)
+                return self._set_built(built.tables, built.meta, built.sentences, built.words,
+                                       built.oov, recorder.result())
             counted = count_external(recorder, self.order, self._choose_vocab,
                                      closed_vocab=self.closed_vocab, memory=memory,
                                      scratch=scratch, progress=progress)
@@ -158,7 +168,20 @@ class NGramModel:
             paths, self.order, self._choose_vocab, closed_vocab=self.closed_vocab,
             cluster=cluster, memory=default_memory() if memory is None else memory,
             scratch=scratch, workers=workers, progress=progress)
+        if streams(self.cutoffs, self.prune):  # the model's orders kept on disk
+            tables, meta = estimate_counted(
+                counted.tables, counted.vocab, make_smoother(self.method, self.k),
+                closed_vocab=self.closed_vocab, scratch=scratch, progress=progress)
+            return self._set_built(tables, meta, counted.sentences, counted.words,
+                                   counted.oov, counted.sentence_hashes)
         return self._fit_counted(counted, progress, consume=True)
+
+    def _set_built(self, tables: BackoffTables, meta: dict[str, Any], sentences: int,
+                   words: int, oov: int, hashes: npt.NDArray[np.uint64] | None) -> NGramModel:
+        self._set_fitted(tables, {**meta, "training_sentences": sentences,
+                                  "training_words": words, "training_oov": oov})
+        self.sentence_hashes = hashes
+        return self
 
     def _choose_vocab(self, words: Sequence[str], counts: npt.NDArray[np.int64]) -> Vocabulary:
         return Vocabulary.from_words(

@@ -30,8 +30,6 @@ from rescore.lm import fingerprint
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
 from rescore.lm.external import (
     CorpusCounts,
-    KeyCodec,
-    Keys,
     Run,
     merge_all,
     scratch_folder,
@@ -39,6 +37,7 @@ from rescore.lm.external import (
     write_run,
 )
 from rescore.lm.fingerprint import Recorder
+from rescore.lm.keys import KeyCodec, Keys
 from rescore.lm.vocab import (
     EOS_ID,
     SPECIALS,

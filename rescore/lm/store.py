@@ -127,7 +127,31 @@ def _pad(n: int) -> int:
     return (-n) % ALIGN
 
 
-def _parts(arrays: list[tuple[str, np.ndarray[Any, Any]]], header_fields: dict[str, Any],
+class OnDisk:
+    """A raw little-endian array in a file, copied into a model file a block at a time
+    (never read whole)."""
+
+    __slots__ = ("dtype", "path", "shape")
+
+    def __init__(self, path: Path, dtype: np.dtype[Any], length: int) -> None:
+        self.path, self.dtype, self.shape = path, dtype.newbyteorder("<"), (length,)
+
+    @property
+    def nbytes(self) -> int:
+        return self.shape[0] * self.dtype.itemsize
+
+    def blocks(self, size: int = 16 << 20) -> Iterator[bytes]:
+        with open(self.path, "rb") as fh:
+            left = self.nbytes
+            while left:
+                block = fh.read(min(size, left))
+                if not block:
+                    raise OSError(f"{self.path}: shorter than its {self.nbytes} bytes")
+                left -= len(block)
+                yield block
+
+
+def _parts(arrays: list[tuple[str, Any]], header_fields: dict[str, Any],
            version: int) -> Iterator[bytes | memoryview]:
     directory = []
     offset = 0
@@ -142,7 +166,10 @@ def _parts(arrays: list[tuple[str, np.ndarray[Any, Any]]], header_fields: dict[s
     yield header
     yield b"\0" * _pad(len(preamble) + len(header))
     for _, arr in arrays:
-        yield arr.reshape(-1).view(np.uint8).data
+        if isinstance(arr, OnDisk):
+            yield from arr.blocks()
+        else:
+            yield arr.reshape(-1).view(np.uint8).data
         yield b"\0" * _pad(arr.nbytes)
 
 
@@ -174,6 +201,16 @@ def save(tables: BackoffTables, metadata: dict[str, Any], path: str | Path,
     """Write the model (format 3) atomically; return its sha256. ``extras`` are named
     arrays stored beside it (read back by :func:`load_file`)."""
     return _write(content_parts(tables, metadata, extras), path)
+
+
+def save_arrays(arrays: list[tuple[str, Any]], index: list[dict[str, int]],
+                metadata: dict[str, Any], path: str | Path) -> str:
+    """Write a model (format 3) from its arrays in file order (each an array, or
+    :class:`OnDisk`, little-endian) and each order's index parameters; return the sha256.
+    The same bytes as :func:`save` of the tables those arrays describe."""
+    order = len(index) + 1
+    return _write(_parts(arrays, {"order": order, "metadata": metadata, "index": index},
+                         FORMAT_VERSION), path)
 
 
 def save_legacy(tables: BackoffTables, metadata: dict[str, Any], path: str | Path,

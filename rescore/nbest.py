@@ -191,6 +191,12 @@ class RecordParser:
         return utt
 
 
+# ids admitted one at a time wait as Python ints (about 100 bytes an utterance) until this
+# many are moved into numpy: a few hundred KB at most (65,536 held 6.5 MB, which showed as
+# growth in the peak of apply from 10,000 to 100,000 utterances)
+_LEDGER_RUN = 4096
+
+
 @dataclass
 class IdLedger:
     """The whole-file rules: unique ids, references on all or none, refs file covered.
@@ -213,7 +219,7 @@ class IdLedger:
         self._digests.append(id_digest(key))
         self._lines.append(number)
         self.count += 1
-        if len(self._digests) >= 65536:
+        if len(self._digests) >= _LEDGER_RUN:
             self._flush()
         if self.has_refs is None:
             self.has_refs = has_reference

@@ -34,8 +34,12 @@ from rescore.wer import UNDEFINED_WER, Alignment, WerInterval, WerResult
 
 IntArray = npt.NDArray[np.int64]
 # elements of one resample index matrix; rows per chunk depend only on the corpus size, so
-# the same seed gives the same numbers on every machine
-_CHUNK_ELEMENTS = 1 << 22
+# the same seed gives the same numbers on every machine. The draws do not depend on the
+# chunk at all (numpy draws 64-bit bounded integers one after another, with no buffer
+# carried between calls; tests/test_significance.py checks three chunk sizes): 2**18
+# elements keep the temporaries near 10 MB, and in cache (1.5 to 1.7 x faster than 2**22
+# on 20,000 to 200,000 utterances, measured; 2**22 held about 170 MB)
+_CHUNK_ELEMENTS = 1 << 18
 
 
 def _normal_two_sided(z: float) -> float:

@@ -362,3 +362,16 @@ def test_with_interval_leaves_an_undefined_wer_alone_and_to_dict_unchanged() -> 
     # the keys of `wer --json` (the contract) carry no interval
     assert set(r.to_dict()) == {"wer", "substitutions", "deletions", "insertions", "hits",
                                 "reference_words", "utterances"}
+
+
+def test_bootstrap_draws_do_not_depend_on_the_chunk_size(monkeypatch: pytest.MonkeyPatch) -> None:
+    # a report's figures must not move when the resamples are drawn in other chunks:
+    # numpy's Generator.integers for int64 consumes its bit stream value by value
+    # (numpy's random documentation: no buffered bits kept between calls for 64-bit draws)
+    import rescore.significance as sg
+    words, before, after = _two_systems(8, 3000, 1, 20, 0.2, 0.1)
+    found = []
+    for elements in (1 << 22, 1 << 18, 1 << 12):
+        monkeypatch.setattr(sg, "_CHUNK_ELEMENTS", elements)
+        found.append(paired_bootstrap(before, after, words, resamples=3000, seed=4))
+    assert found[0] == found[1] == found[2]

@@ -9,7 +9,7 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from rescore.cli import aliases, commands, helptext, lm, report
+from rescore.cli import aliases, helptext, lm
 from rescore.cli._common import install_signal_handlers, state, warn
 from rescore.process import avoid_huge_pages, keep_freed_memory
 from rescore.version import __version__
@@ -47,7 +47,7 @@ def _leave_access_to_readers(command: Any) -> None:
         _leave_access_to_readers(sub)
 
 
-app = typer.Typer(
+_app = typer.Typer(
     name="rescore",
     cls=_Commands,
     help="Rescore recognizer N-best lists with n-gram language models, tune weights, report WER.",
@@ -60,9 +60,9 @@ class _LmCommands(TyperGroup):
         return helptext.ordered(list(super().list_commands(ctx)), helptext.LM_ORDER)
 
 
-lm_app = typer.Typer(help="Build, evaluate, mix and convert n-gram language models.",
+_lm_app = typer.Typer(help="Build, evaluate, mix and convert n-gram language models.",
                      no_args_is_help=True, cls=_LmCommands)
-app.add_typer(lm_app, name="lm")
+_app.add_typer(_lm_app, name="lm")
 
 
 def _version(value: bool) -> None:
@@ -71,7 +71,7 @@ def _version(value: bool) -> None:
         raise typer.Exit()
 
 
-@app.callback()
+@_app.callback()
 def _root(
     debug: bool = typer.Option(False, "--debug", help="Show full tracebacks for errors."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress or summary lines."),
@@ -87,19 +87,45 @@ def _root(
                             force=True)
 
 
-def _register() -> None:
-    # Each module adds its commands to the app it is given; the composition is this one
-    # function. (Importing them lazily would save nothing: ``rescore --help`` lists every
-    # command, so all three are imported on every run.)
-    commands.register(app, lm_app)
-    lm.register(app, lm_app)
-    report.register(app, lm_app)
+def _register(*, only_lm: bool = False) -> None:
+    """Each module adds its commands to the app it is given; the composition is this one
+    function. ``rescore lm ...`` needs the language-model commands alone, and skips loading
+    the rest of the package (see tests/test_architecture.py for the time this saves);
+    anything else (``rescore --help`` lists every command) registers all of them."""
+    global _registered
+    if _registered == "all" or (only_lm and _registered == "lm"):
+        return
+    if _registered is None:
+        lm.register(_app, _lm_app)
+        _registered = "lm"
+    if not only_lm:
+        import rescore.cli.commands
+        import rescore.cli.report
+        rescore.cli.commands.register(_app, _lm_app)
+        rescore.cli.report.register(_app, _lm_app)
+        _registered = "all"
 
-_register()
+
+_registered: str | None = None
+
+
+def _command(args: list[str]) -> str | None:
+    """The first word of ``args`` that is not an option: the command asked for."""
+    return next((a for a in args if not a.startswith("-")), None)
+
+
+def __getattr__(name: str) -> Any:
+    # ``app`` and ``lm_app`` for a test runner or a caller in Python (PEP 562): every
+    # command registered first
+    if name in ("app", "lm_app"):
+        _register()
+        return _app if name == "app" else _lm_app
+    raise AttributeError(f"module 'rescore.cli' has no attribute {name!r}")
 
 
 def main() -> None:
+    _register(only_lm=_command(aliases.rewrite(sys.argv[1:])[0]) == "lm")
     avoid_huge_pages()
     keep_freed_memory()
     install_signal_handlers()
-    app()
+    _app()

@@ -273,14 +273,15 @@ class BucketIndex:
         want = (h & np.uint64((1 << self.shift) - 1)).astype(self.rest.dtype)
         h >>= np.uint64(self.shift)
         bucket = h.view(np.int64)  # each query's bucket, in place
-        at = self.starts.take(bucket).astype(np.intp)
+        # positions in the starts' own type (take accepts them; no widened copies)
+        at = self.starts.take(bucket)
         bucket += 1
-        end = self.starts.take(bucket).astype(np.intp)
+        end = self.starts.take(bucket)
         del h, bucket
         rest = self.rest
         got = rest.take(at, mode="clip")  # an empty last bucket points one past the end
         live = at < end
-        result = np.where((got == want) & live, at, EMPTY)
+        result = np.where((got == want) & live, at.astype(np.int64), EMPTY)
         live &= got < want
         pending = np.flatnonzero(live)
         at = at[pending]

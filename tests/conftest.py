@@ -60,3 +60,17 @@ def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
     for item in items:
         if item.path.stem in SLOW_MODULES:
             item.add_marker(pytest.mark.slow)
+
+
+def full_disk_for(monkeypatch: pytest.MonkeyPatch, module: object, prefix: str) -> None:
+    """Send the scratch files that ``module._create`` opens under names beginning with
+    ``prefix`` to /dev/full, the kernel's always-full device (every write fails with
+    ENOSPC, as on a full disk); skip where it does not exist."""
+    if not os.path.exists("/dev/full"):
+        pytest.skip("no /dev/full here")
+    real = getattr(module, "_create")  # noqa: B009
+
+    def create(path: Path) -> object:
+        return open("/dev/full", "wb") if path.name.startswith(prefix) else real(path)
+
+    monkeypatch.setattr(module, "_create", create)

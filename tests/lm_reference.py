@@ -15,6 +15,9 @@ from __future__ import annotations
 
 from collections import Counter, defaultdict
 from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
 
 BOS, EOS, UNK = "<s>", "</s>", "<unk>"
 
@@ -158,3 +161,13 @@ class ReferenceModel:
             out.update(g[:-1] for g in self.raw[m])
         out.add(("never-seen",) * (self.n - 1))
         return out
+
+
+def assert_matches_reference(model: Any, ref: ReferenceModel, tol: float) -> None:
+    """Every word's probability after every history of ``ref`` (an unseen word included),
+    from ``model``, within ``tol`` of the reference's formula."""
+    words = [w for w in model.vocab_.words if w != "<s>"] + ["zzz-unseen"]
+    for h in sorted(ref.histories()):
+        got = model.logprob_ngrams([[*h, w] for w in words])
+        want = [ref.prob(w, h) for w in words]
+        np.testing.assert_allclose(np.exp(got), want, rtol=0, atol=tol)

@@ -33,6 +33,7 @@ from rescore.lm.external import (
 )
 from rescore.lm.keys import KeyCodec
 from rescore.lm.vocab import Vocabulary
+from tests.conftest import full_disk_for
 
 TINY = 64 << 10  # the least budget: chunks of 256 tokens, so a 20,000-word text makes ~90 runs
 
@@ -229,16 +230,8 @@ def test_cli_missing_scratch_folder(corpus: Path, tmp_path: Path) -> None:
 
 def test_full_scratch_disk_is_one_line(corpus: Path, tmp_path: Path,
                                        monkeypatch: pytest.MonkeyPatch) -> None:
-    # /dev/full is the kernel's always-full device: every write to it fails with ENOSPC,
-    # as on a full disk; the runs are sent there once the first pass is on disk
-    if not os.path.exists("/dev/full"):
-        pytest.skip("no /dev/full here")
-    real = external._create
-
-    def create(path: Path) -> object:
-        return open("/dev/full", "wb") if path.name.startswith("run") else real(path)
-
-    monkeypatch.setattr(external, "_create", create)
+    # the runs meet a full disk once the first pass is on disk
+    full_disk_for(monkeypatch, external, "run")
     scratch = tmp_path / "scratch"
     scratch.mkdir()
     result = runner.invoke(app, ["lm", "build", str(corpus), "-o", str(tmp_path / "m.lm"),

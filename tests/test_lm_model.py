@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from lm_reference import ReferenceModel
+from lm_reference import ReferenceModel, assert_matches_reference
 
 from rescore.errors import UsageError
 from rescore.lm import METHODS, NGramModel
@@ -53,11 +53,7 @@ def test_matches_dict_reference(method: str, sents: list[list[str]], order: int,
     # the plain reference in tests/lm_reference.py writes each formula out directly
     model = NGramModel(order, method, k=k).fit(sents)
     ref = ReferenceModel(sents, order, method, k=k)
-    words = [w for w in model.vocab_.words if w != "<s>"] + ["zzz-unseen"]
-    for h in sorted(ref.histories()):
-        got = model.logprob_ngrams([[*h, w] for w in words])
-        want = [ref.prob(w, h) for w in words]
-        np.testing.assert_allclose(np.exp(got), want, rtol=0, atol=NORM_TOL)
+    assert_matches_reference(model, ref, NORM_TOL)
     probe = [*sents, ["a", "zzz-unseen", "b"], []]
     want_s = [ref.sentence_logprob(s) for s in probe]
     np.testing.assert_allclose(model.logprob(probe), want_s, rtol=1e-9, atol=NORM_TOL)

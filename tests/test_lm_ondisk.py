@@ -6,19 +6,18 @@ own probabilities the same reference checks (tests/test_lm_model.py)."""
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
-import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from lm_reference import ReferenceModel
+from lm_reference import ReferenceModel, assert_matches_reference
 from test_lm_external import SENTS, TINY, _zipf_sentences
 
 from rescore.errors import InputError
 from rescore.leftovers import TMP_PREFIX
 from rescore.lm import METHODS, NGramModel, load_model, ondisk, save_model, store
+from tests.conftest import full_disk_for
 
 NORM_TOL = 1e-9  # our tolerance for reference matches (as tests/test_lm_model.py)
 
@@ -42,11 +41,7 @@ def test_on_disk_matches_dict_reference_and_memory_build(
     model = NGramModel(order, method, closed_vocab=closed).fit(sents, memory=TINY,
                                                                scratch=tmp_path)
     ref = ReferenceModel(sents, order, method, closed=closed)
-    words = [w for w in model.vocab_.words if w != "<s>"] + ["zzz-unseen"]
-    for h in sorted(ref.histories()):
-        got = model.logprob_ngrams([[*h, w] for w in words])
-        want = [ref.prob(w, h) for w in words]
-        np.testing.assert_allclose(np.exp(got), want, rtol=0, atol=NORM_TOL)
+    assert_matches_reference(model, ref, NORM_TOL)
     plain = NGramModel(order, method, closed_vocab=closed).fit(sents)
     assert _bytes(model, tmp_path, "disk.lm") == _bytes(plain, tmp_path, "plain.lm")
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(TMP_PREFIX)] == []
@@ -93,15 +88,7 @@ def test_cutoffs_and_pruning_keep_the_in_memory_estimation(
 
 def test_full_disk_while_estimating_is_one_error(tmp_path: Path,
                                                  monkeypatch: pytest.MonkeyPatch) -> None:
-    # /dev/full is the kernel's always-full device: every write fails with ENOSPC
-    if not os.path.exists("/dev/full"):
-        pytest.skip("no /dev/full here")
-    real = ondisk._create
-
-    def create(path: Path) -> object:
-        return open("/dev/full", "wb") if path.name.startswith("prob") else real(path)
-
-    monkeypatch.setattr(ondisk, "_create", create)
+    full_disk_for(monkeypatch, ondisk, "prob")  # the probabilities' files meet a full disk
     with pytest.raises(InputError, match="no space left on device") as info:
         NGramModel(3).fit(SENTS, memory=TINY, scratch=tmp_path)
     assert info.value.path == str(tmp_path)

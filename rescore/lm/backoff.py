@@ -23,9 +23,9 @@ import numpy.typing as npt
 from rescore.arrays import F64, I64, B
 from rescore.lm import hashindex
 from rescore.lm.counts import OrderCounts
-from rescore.lm.smoothing import OrderStats, Smoother
+from rescore.lm.smoothing import OrderStats, Smoother, predictable_tokens
 from rescore.lm.tables import BackoffTables
-from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
+from rescore.lm.vocab import BOS_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 from rescore.progress import Report, Steps
 
@@ -133,11 +133,7 @@ def estimate(
     if consume:
         counts.clear()
     smoothing()  # the context of every n-gram found
-    predictable = np.ones(v, dtype=bool)
-    predictable[BOS_ID] = False
-    if closed_vocab:
-        predictable[UNK_ID] = False
-    n_pred = int(predictable.sum())
+    predictable, n_pred = predictable_tokens(v, closed_vocab)
     cut = [1, *(cutoffs or [1] * (order - 1))]
     meta: dict[str, Any] = {"discounts": {}, "fallbacks": {}}
     alphas: list[F64] = []

@@ -51,9 +51,9 @@ from rescore.lm.external import (
     scratch_folder,
 )
 from rescore.lm.hashindex import BucketIndex
-from rescore.lm.smoothing import OrderStats, Smoother
+from rescore.lm.smoothing import OrderStats, Smoother, predictable_tokens
 from rescore.lm.tables import BackoffTables
-from rescore.lm.vocab import BOS_ID, UNK_ID, Vocabulary
+from rescore.lm.vocab import BOS_ID, Vocabulary
 from rescore.process import freed_memory_returned, give_back_freed_memory
 from rescore.progress import Report, Steps
 
@@ -302,11 +302,7 @@ def _estimate(shelf: Shelf, sizes: list[int], unigrams: I64, smoother: Smoother,
     smoothing = Steps(progress, "smoothing", order + 1)
     _contexts(shelf, sizes, v)
     smoothing()  # the context of every n-gram found
-    predictable = np.ones(v, dtype=bool)
-    predictable[BOS_ID] = False
-    if closed_vocab:
-        predictable[UNK_ID] = False
-    n_pred = int(predictable.sum())
+    predictable, n_pred = predictable_tokens(v, closed_vocab)
     meta: dict[str, Any] = {"discounts": {}, "fallbacks": {}}
     for k in range(1, order + 1):
         _smooth(shelf, sizes, k, unigrams, smoother, n_pred, predictable, meta)

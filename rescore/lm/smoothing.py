@@ -23,6 +23,17 @@ import numpy as np
 
 from rescore.arrays import F64, I64, B
 from rescore.errors import UsageError
+from rescore.lm.vocab import BOS_ID, UNK_ID
+
+
+def predictable_tokens(v: int, closed_vocab: bool) -> tuple[B, int]:
+    """Which of ``v`` token ids a model predicts (every one but ``<s>``, and but ``<unk>``
+    in a closed vocabulary), and how many: the support of the uniform base distribution."""
+    predictable = np.ones(v, dtype=bool)
+    predictable[BOS_ID] = False
+    if closed_vocab:
+        predictable[UNK_ID] = False
+    return predictable, int(predictable.sum())
 
 
 @dataclass(frozen=True)

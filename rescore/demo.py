@@ -26,7 +26,7 @@ from rescore.scoring import OOV, oov_features, oracle_rows
 from rescore.significance import with_interval
 from rescore.text import tokens
 from rescore.weights import INSERTION_PENALTY, LM, LM_WEIGHT, read_weights
-from rescore.wer import WerResult, summarise, utterance_counts
+from rescore.wer import WerResult, utterance_counts
 
 # shipped inside the package (the wheel carries it); fixtures/demo links here for the tests
 BUNDLED = Path(__file__).resolve().parent / "demo_data"
@@ -207,13 +207,9 @@ def _test_wers(test: Path, rescored: Path, models: dict[str, pipeline.NamedModel
     # the oracle row of each list, from edit distances computed once in the matrix
     rows = oracle_rows(pipeline.load_matrix(test, models={}, features=[]))
     texts = [h["text"] for _, u in iter_nbest(test) for h in u["hypotheses"]]
-    return (_with_interval(refs, first), _with_interval(refs, chosen),
-            _with_interval(refs, [tokens(texts[r]) for r in rows]))
-
-
-def _with_interval(refs: list[list[str]], hyps: list[list[str]]) -> WerResult:
-    counts = utterance_counts(refs, hyps)
-    return with_interval(summarise(counts), counts.errors, counts.reference_words)
+    return (with_interval(utterance_counts(refs, first)),
+            with_interval(utterance_counts(refs, chosen)),
+            with_interval(utterance_counts(refs, [tokens(texts[r]) for r in rows])))
 
 
 def _report(before: Path, after: Path, folder: Path, tuning: Path, weights: Path,

@@ -71,7 +71,6 @@ from rescore.weights import (
 from rescore.wer import (
     UNDEFINED_WER,
     WerResult,
-    summarise,
     wer_from_totals,
 )
 
@@ -342,10 +341,9 @@ def before_after_wer(path: Path, *, batch_size: int = DEFAULT_BATCH,
 def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
           refs: Mapping[str, str] | None = None, log_base: float | None = None,
           costs: bool | None = None, batch_size: int = DEFAULT_BATCH,
-          counting: Counting = PLAIN, intervals: bool = True) -> list[WerResult]:
-    """Corpus WER of each way of taking a text from the records, in one pass; with
-    ``intervals``, each with its bootstrap interval (two small integers per utterance
-    are kept for it)."""
+          counting: Counting = PLAIN) -> list[WerResult]:
+    """Corpus WER of each way of taking a text from the records, in one pass, each with
+    its bootstrap interval (small integers per utterance are kept for it)."""
     totals = np.zeros((len(texts), 4), dtype=np.int64)  # sub, del, ins, hits per way
     # per utterance, for the intervals: each way's errors, and the reference words
     errors: list[list[np.ndarray]] = [[] for _ in texts]
@@ -358,10 +356,8 @@ def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
             counts = counting.counts(refs_text, [text(u) for _, u in batch])
             totals[k] += [int(a.sum()) for a in (counts.substitutions, counts.deletions,
                                                  counts.insertions, counts.hits)]
-            if intervals:
-                errors[k].append(counts.errors.astype(np.int32))
-        if intervals:
-            words.append(counts.reference_words.astype(np.int32))
+            errors[k].append(counts.errors.astype(np.int32))
+        words.append(counts.reference_words.astype(np.int32))
         n_utt += len(batch)
         n_scored += len(counts.substitutions)
     if n_utt == 0:
@@ -372,9 +368,8 @@ def _wers(path: Path, texts: Sequence[Callable[[Utterance], str]], *,
         if s + d + h == 0:
             raise InputError(UNDEFINED_WER, path=path)
         out.append(wer_from_totals(s, d, i, h, utterances=n_utt))
-    if intervals:  # one bootstrap for every way
-        out = with_intervals(out, [np.concatenate(e) for e in errors], np.concatenate(words))
-    return out
+    # one bootstrap for every way
+    return with_intervals(out, [np.concatenate(e) for e in errors], np.concatenate(words))
 
 
 def wer_transcripts(refs_path: Path, hyps_path: Path, *,
@@ -394,7 +389,7 @@ def wer_transcripts(refs_path: Path, hyps_path: Path, *,
     if not any(counting.score_tokens(refs[i]) for i in ids):
         raise InputError(UNDEFINED_WER, path=refs_path)
     counts = counting.counts([refs[i] for i in ids], [hyps[i] for i in ids])
-    result = with_interval(summarise(counts), counts.errors, counts.reference_words)
+    result = with_interval(counts)
     check_accounting(hyps_path, len(ids), result.utterances, "scored")
     return result
 

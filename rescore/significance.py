@@ -30,7 +30,14 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.errors import InputError
-from rescore.wer import UNDEFINED_WER, Alignment, WerInterval, WerResult
+from rescore.wer import (
+    UNDEFINED_WER,
+    Alignment,
+    UtteranceCounts,
+    WerInterval,
+    WerResult,
+    summarise,
+)
 
 IntArray = npt.NDArray[np.int64]
 # elements of one resample index matrix; rows per chunk depend only on the corpus size, so
@@ -80,6 +87,14 @@ class BootstrapResult:
         for key in ("before_ci", "after_ci", "difference_ci"):
             out[key] = list(out[key])
         return out
+
+
+def _check_resampling(resamples: int, confidence: float) -> None:
+    if resamples < 1:
+        raise InputError(f"resamples must be at least 1, got {resamples}", field="resamples")
+    if not 0.0 < confidence < 1.0:
+        raise InputError(f"confidence must lie strictly between 0 and 1, got {confidence}",
+                         field="confidence")
 
 
 def _resampled_sums(stacked: IntArray, resamples: int, seed: int,
@@ -136,11 +151,7 @@ def paired_bootstrap(
     total_ref = int(stacked[2].sum())
     if total_ref == 0:
         raise InputError(UNDEFINED_WER)
-    if resamples < 1:
-        raise InputError(f"resamples must be at least 1, got {resamples}", field="resamples")
-    if not 0.0 < confidence < 1.0:
-        raise InputError(f"confidence must lie strictly between 0 and 1, got {confidence}",
-                         field="confidence")
+    _check_resampling(resamples, confidence)
     sums = _resampled_sums(stacked, resamples, seed, progress)
     # a resample drawn only from empty references (vanishingly rare) is counted per one word
     # rather than divided by zero
@@ -219,27 +230,19 @@ def wer_intervals(
     if int(ref.sum()) == 0:
         raise InputError(UNDEFINED_WER)
     b = table_resamples(len(ref)) if resamples is None else resamples
-    if b < 1:
-        raise InputError(f"resamples must be at least 1, got {b}", field="resamples")
-    if not 0.0 < confidence < 1.0:
-        raise InputError(f"confidence must lie strictly between 0 and 1, got {confidence}",
-                         field="confidence")
+    _check_resampling(b, confidence)
     sums = _resampled_sums(np.stack([*rows, ref]), b, seed)
     words = np.maximum(sums[-1], 1).astype(np.float64)  # as paired_bootstrap does
     tail = (1.0 - confidence) / 2.0
-    found = []
-    for k in range(len(rows)):
-        lo, hi = np.quantile(sums[k] / words, [tail, 1.0 - tail])
-        found.append((float(lo), float(hi)))
+    lo, hi = np.quantile(sums[:-1] / words, [tail, 1.0 - tail], axis=1)
     return WerIntervals(resamples=b, seed=seed, confidence=confidence,
-                        intervals=tuple(found))
+                        intervals=tuple(zip(lo.tolist(), hi.tolist(), strict=True)))
 
 
-def with_interval(result: WerResult, errors: Sequence[int] | npt.ArrayLike,
-                  reference_words: Sequence[int] | npt.ArrayLike) -> WerResult:
-    """``result`` with the bootstrap interval of its WER over the per-utterance counts it
-    sums: :func:`with_intervals` of one."""
-    return with_intervals([result], [errors], reference_words)[0]
+def with_interval(counts: UtteranceCounts) -> WerResult:
+    """The corpus WER of per-utterance ``counts`` with its bootstrap interval:
+    :func:`with_intervals` of one."""
+    return with_intervals([summarise(counts)], [counts.errors], counts.reference_words)[0]
 
 
 def with_intervals(results: Sequence[WerResult],

@@ -23,7 +23,7 @@ from rescore.significance import (
     wilcoxon_signed_rank,
     with_interval,
 )
-from rescore.wer import align, wer_from_totals
+from rescore.wer import UtteranceCounts, align, wer_from_totals
 
 
 def w(text: str) -> list[str]:
@@ -355,9 +355,12 @@ def test_table_resamples_fall_with_size_but_not_below_a_thousand() -> None:
 
 
 def test_with_interval_leaves_an_undefined_wer_alone_and_to_dict_unchanged() -> None:
-    empty = wer_from_totals(0, 0, 0, 0, utterances=2)
-    assert with_interval(empty, [0, 0], [0, 0]).interval is None
-    r = with_interval(wer_from_totals(1, 0, 0, 3, utterances=2), [1, 0], [2, 2])
+    none = np.zeros(2, dtype=np.int64)
+    empty = UtteranceCounts(none, none, none, none)  # two utterances, no words
+    assert with_interval(empty).interval is None
+    # one substitution in the first of two 2-word references: 1 error in 4 words
+    r = with_interval(UtteranceCounts(np.array([1, 0]), none, none, np.array([1, 2])))
+    assert r.wer == wer_from_totals(1, 0, 0, 3, utterances=2).wer
     assert r.interval is not None and r.interval.low <= r.wer <= r.interval.high
     # the keys of `wer --json` (the contract) carry no interval
     assert set(r.to_dict()) == {"wer", "substitutions", "deletions", "insertions", "hits",

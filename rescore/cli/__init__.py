@@ -92,21 +92,18 @@ def _register(*, only_lm: bool = False) -> None:
     function. ``rescore lm ...`` needs the language-model commands alone, and skips loading
     the rest of the package (see tests/test_architecture.py for the time this saves);
     anything else (``rescore --help`` lists every command) registers all of them."""
-    global _registered
-    if _registered == "all" or (only_lm and _registered == "lm"):
-        return
-    if _registered is None:
+    if "lm" not in _registered:
         lm.register(_app, _lm_app)
-        _registered = "lm"
-    if not only_lm:
+        _registered.add("lm")
+    if not only_lm and "rest" not in _registered:
         import rescore.cli.commands
         import rescore.cli.report
         rescore.cli.commands.register(_app, _lm_app)
         rescore.cli.report.register(_app, _lm_app)
-        _registered = "all"
+        _registered.add("rest")
 
 
-_registered: str | None = None
+_registered: set[str] = set()  # which of the two parts are registered
 
 
 def _command(args: list[str]) -> str | None:

@@ -40,7 +40,7 @@ from rescore.cli.options import (
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
 from rescore.counting import characters, counting_of, in_unit, unit_name
-from rescore.demo_kana import run_kana_demo
+from rescore.demo_kana import KanaDemoResult, run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
 from rescore.lm.overlap import overlap_summary
@@ -145,7 +145,7 @@ def check(nbest: NbestArg, refs: RefsOpt = None, log_base: LogBaseOpt = None,
 def _readable_output(out: Path) -> bool:
     """Whether an output just written can be read back: a regular file that is not this
     process's standard output under another name (``/dev/stdout`` redirected to a file)."""
-    return str(out) != "-" and out.is_file() and not is_standard_output(out)
+    return out.is_file() and not is_standard_output(out)
 
 
 def cv_gap_rate(text: str) -> float:
@@ -379,13 +379,8 @@ def demo(
     if as_json:
         emit_json(result.summary)
         return
-    s = result.summary
     heading = "Larkspur Growhouse" if data is None else str(data)
-    _wer_table(f"{heading} test set: before and after rescoring", "word",
-               [("before", result.before), ("after", result.after),
-                ("oracle", result.oracle)])
-    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
-         f"WER {pct(s['wer_before'])} -> {pct(s['wer_after'])} on {s['utterances']} utterances")
+    _demo_figures(f"{heading} test set: before and after rescoring", "word", result)
     if result.comparison:
         table("language models compared (perplexity on dev.txt, WER on the test set)",
               ["system", "dev ppl, shared", "dev ppl, own",
@@ -404,19 +399,26 @@ def demo(
     info(f"outputs in {out}/ (summary.json, models, weights, rescored files, report)")
 
 
+def _demo_figures(title: str, unit: str, result: demo_lib.DemoResult | KanaDemoResult
+                  ) -> None:
+    """A demo's summary table and its tuned weights, in the rate of ``unit``."""
+    _wer_table(title, unit, [("before", result.before), ("after", result.after),
+                             ("oracle", result.oracle)])
+    s = result.summary
+    rate = unit_name(unit)
+    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
+         f"{rate} {pct(result.before.wer)} -> {pct(result.after.wer)} on {s['utterances']} "
+         "utterances")
+
+
 def _kana_demo(out: Path, data: Path | None, as_json: bool) -> None:
     result = run_kana_demo(out, data_dir=data, progress=info)
     if as_json:
         emit_json(result.summary)
         return
-    s = result.summary
     heading = "Midoridani mushroom cellar" if data is None else str(data)
-    _wer_table(f"{heading} test set: before and after rescoring, in characters", "char",
-               [("before", result.before), ("after", result.after),
-                ("oracle", result.oracle)])
-    info(f"LM weight {s['lm_weight']:.3f}, insertion penalty {s['insertion_penalty']:.3f}; "
-         f"CER {pct(s['cer_before'])} -> {pct(s['cer_after'])} on {s['utterances']} "
-         "utterances")
+    _demo_figures(f"{heading} test set: before and after rescoring, in characters", "char",
+                  result)
     info(f"outputs in {out}/ (summary.json, character model, weights, rescored file, report)")
 
 

@@ -23,6 +23,7 @@ import numpy.typing as npt
 from rescore.arrays import F64, I64, B
 from rescore.lm import hashindex
 from rescore.lm.counts import OrderCounts
+from rescore.lm.keys import table_keys
 from rescore.lm.smoothing import OrderStats, Smoother, predictable_tokens
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, Vocabulary
@@ -58,16 +59,12 @@ def _narrow(ids: I64) -> I64:
     return ids
 
 
-def _keys(suffix: I64, first: I64, v: int) -> npt.NDArray[np.uint64]:
-    return suffix.astype(np.uint64) * np.uint64(v) + first.astype(np.uint64)
-
-
 def _prefixes(counts: list[OrderCounts], v: int
               ) -> tuple[list[I64], dict[int, npt.NDArray[np.int32]]]:
     """For each n-gram the id of its context (its first k-1 words) among the (k-1)-grams,
     and the hash slots built on the way (orders 2 to N-1: the contexts of the next order)."""
     order = len(counts)
-    keys = {k: _keys(counts[k - 1].suffix, counts[k - 1].first, v) for k in range(2, order)}
+    keys = {k: table_keys(counts[k - 1].suffix, counts[k - 1].first, v) for k in range(2, order)}
     # the tables of the context orders are independent: built on two threads
     with ThreadPoolExecutor(max_workers=2) as pool:
         slots = dict(zip(keys, pool.map(hashindex.build_slots, keys.values()), strict=True))
@@ -78,7 +75,7 @@ def _prefixes(counts: list[OrderCounts], v: int
             prefix.append(c.first.copy())
             continue
         # the context of w1..wk is w1 + (context of its suffix w2..wk)
-        q = _keys(prefix[k - 2][c.suffix], c.first, v)
+        q = table_keys(prefix[k - 2][c.suffix], c.first, v)
         prefix.append(hashindex.lookup(slots[k - 1], keys[k - 1], q))
     return prefix, slots
 
@@ -300,7 +297,7 @@ def _compact(work: _Work, vocab: Vocabulary, tick: Steps) -> BackoffTables:
         if not keep.all():
             suffix, first = suffix[keep], first[keep]
         below = new_ids[k - 2]
-        kk = _keys(suffix if below is None else below[suffix], first, v)
+        kk = table_keys(suffix if below is None else below[suffix], first, v)
         # no order up to k lost an n-gram: ids and keys are those of the counts
         built = work.slots.get(k) if whole[k - 1] else None
         return kk, built if built is not None else hashindex.build_slots(kk)

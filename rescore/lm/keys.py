@@ -22,6 +22,12 @@ I64 = npt.NDArray[np.int64]
 Keys = npt.NDArray[Any]  # uint64 or fixed-width bytes
 
 
+def table_keys(suffix: npt.NDArray[Any], first: npt.NDArray[Any], v: int
+                ) -> npt.NDArray[np.uint64]:
+    """The key of each n-gram in the tables: ``suffix id * V + first word``."""
+    return suffix.astype(np.uint64) * np.uint64(v) + first.astype(np.uint64)
+
+
 @dataclass(frozen=True)
 class KeyCodec:
     """Keys of the n-grams of every order of one model (see the module's docstring)."""

@@ -51,6 +51,7 @@ from rescore.lm.external import (
     scratch_folder,
 )
 from rescore.lm.hashindex import BucketIndex
+from rescore.lm.keys import table_keys
 from rescore.lm.smoothing import OrderStats, Smoother, predictable_tokens
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, Vocabulary
@@ -251,10 +252,6 @@ def _context_name(k: int) -> str:
     return "first2" if k == 2 else f"prefix{k}"
 
 
-def _keys(suffix: npt.NDArray[Any], first: npt.NDArray[Any], v: int) -> npt.NDArray[np.uint64]:
-    return suffix.astype(np.uint64) * np.uint64(v) + first.astype(np.uint64)
-
-
 def _order_keys(shelf: Shelf, k: int, v: int,
                 new_id: npt.NDArray[Any] | None = None) -> npt.NDArray[np.uint64]:
     """``suffix * V + first`` of every order-``k`` n-gram (suffixes through ``new_id``)."""
@@ -264,7 +261,7 @@ def _order_keys(shelf: Shelf, k: int, v: int,
                              strict=True):
         if new_id is not None:
             suffix = new_id[suffix]
-        out[at:at + len(first)] = _keys(suffix, first, v)
+        out[at:at + len(first)] = table_keys(suffix, first, v)
         at += len(first)
     return out
 
@@ -279,7 +276,7 @@ def _contexts(shelf: Shelf, sizes: list[int], v: int) -> None:
         with shelf.writer(f"prefix{k}", _ids(sizes[k - 2])) as prefix:
             for suffix, first in zip(shelf.blocks(f"suffix{k}"), shelf.blocks(f"first{k}"),
                                      strict=True):
-                prefix(hashindex.lookup(slots, keys, _keys(below[suffix], first, v)))
+                prefix(hashindex.lookup(slots, keys, table_keys(below[suffix], first, v)))
         del keys, slots, below
 
 

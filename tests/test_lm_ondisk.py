@@ -7,6 +7,7 @@ own probabilities the same reference checks (tests/test_lm_model.py)."""
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -16,7 +17,7 @@ from test_lm_external import SENTS, TINY, _zipf_sentences
 
 from rescore.errors import InputError
 from rescore.leftovers import TMP_PREFIX
-from rescore.lm import METHODS, NGramModel, load_model, ondisk, save_model, store
+from rescore.lm import METHODS, NGramModel, load_model, ondisk, rawfiles, save_model, store
 from tests.conftest import full_disk_for
 
 NORM_TOL = 1e-9  # our tolerance for reference matches (as tests/test_lm_model.py)
@@ -58,6 +59,28 @@ def test_every_method_byte_identical_over_many_runs(tmp_path: Path, method: str)
     assert disk.checksum == plain.checksum
 
 
+@pytest.mark.parametrize("method", list(METHODS))
+def test_orders_smoothed_a_few_ngrams_at_a_time_are_byte_identical(
+        tmp_path: Path, method: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    # blocks of 7 n-grams split every context across blocks; the in-memory build (checked
+    # against the dict reference in tests/test_lm_model.py) is the reference. Every method
+    # but add-k (whose share needs the context) takes the blockwise path from bigrams up.
+    monkeypatch.setattr(rawfiles, "BLOCK", 7)
+    taken: list[bool] = []
+    real = ondisk._smooth_blocks
+
+    def spy(*args: Any) -> bool:
+        taken.append(real(*args))
+        return taken[-1]
+
+    monkeypatch.setattr(ondisk, "_smooth_blocks", spy)
+    plain = NGramModel(4, method).fit(SENTS)
+    disk = NGramModel(4, method).fit(SENTS, memory=TINY, scratch=tmp_path)
+    assert _bytes(disk, tmp_path, "disk.lm") == _bytes(plain, tmp_path, "plain.lm")
+    assert disk.metadata_ == plain.metadata_
+    assert taken == ([] if method == "addk" else [True, True, True])
+
+
 def test_six_gram_byte_keys_byte_identical(tmp_path: Path) -> None:
     # 6 orders of 12-bit ids do not fit in 64 bits: the merge's byte-string keys (the
     # in-memory build is the reference)
@@ -88,7 +111,7 @@ def test_cutoffs_and_pruning_keep_the_in_memory_estimation(
 
 def test_full_disk_while_estimating_is_one_error(tmp_path: Path,
                                                  monkeypatch: pytest.MonkeyPatch) -> None:
-    full_disk_for(monkeypatch, ondisk, "prob")  # the probabilities' files meet a full disk
+    full_disk_for(monkeypatch, rawfiles, "prob")  # the probabilities' files meet a full disk
     with pytest.raises(InputError, match="no space left on device") as info:
         NGramModel(3).fit(SENTS, memory=TINY, scratch=tmp_path)
     assert info.value.path == str(tmp_path)

@@ -27,9 +27,9 @@ not done here (the caller uses the in-memory estimation for them).
 
 from __future__ import annotations
 
+import itertools
 import sys
 from collections.abc import Callable, Iterable, Iterator, Sequence
-from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -38,12 +38,10 @@ import numpy as np
 import numpy.typing as npt
 
 from rescore.arrays import F64, I64
-from rescore.lm import hashindex, store
+from rescore.lm import hashindex, rawfiles, store
 from rescore.lm.counts import OrderCounts
 from rescore.lm.external import (
     Chunked,
-    _create,
-    _write,
     check_memory,
     count_chunks,
     merge_block,
@@ -52,13 +50,19 @@ from rescore.lm.external import (
 )
 from rescore.lm.hashindex import BucketIndex
 from rescore.lm.keys import table_keys
-from rescore.lm.smoothing import OrderStats, Smoother, predictable_tokens
+from rescore.lm.rawfiles import Shelf, id_type
+from rescore.lm.smoothing import (
+    ByCount,
+    OrderStats,
+    Smoother,
+    count_histogram,
+    of_histogram,
+    predictable_tokens,
+)
 from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, Vocabulary
 from rescore.process import freed_memory_returned, give_back_freed_memory
 from rescore.progress import Report, Steps
-
-BLOCK = 1 << 22  # entries of an order read from disk at a time (16 to 32 MiB of ids)
 
 
 def streams(cutoffs: Sequence[int] | None, prune: float | None) -> bool:
@@ -66,78 +70,6 @@ def streams(cutoffs: Sequence[int] | None, prune: float | None) -> bool:
     1, no entropy pruning, and a little-endian machine (the raw files are the file's bytes)."""
     return (sys.byteorder == "little" and not (prune is not None and prune > 0)
             and all(c == 1 for c in cutoffs or []))
-
-
-class Shelf:
-    """Raw arrays in a scratch folder by name: written whole or a block at a time, read
-    back whole or a block at a time (explicit reads, so nothing stays mapped)."""
-
-    def __init__(self, folder: Path) -> None:
-        self.folder = folder
-        self._kind: dict[str, tuple[np.dtype[Any], int]] = {}
-
-    def path(self, name: str) -> Path:
-        return self.folder / f"{name}.raw"
-
-    def __len__(self) -> int:
-        return len(self._kind)
-
-    def length(self, name: str) -> int:
-        return self._kind[name][1]
-
-    def put(self, name: str, array: npt.NDArray[Any]) -> None:
-        with _create(self.path(name)) as fh:
-            _write(fh, array)
-        self._kind[name] = (array.dtype, len(array))
-
-    @contextmanager
-    def writer(self, name: str, dtype: Any) -> Iterator[Callable[[npt.NDArray[Any]], None]]:
-        """A function that appends a block to the array ``name`` (of ``dtype``)."""
-        kind = np.dtype(dtype)
-        n = 0
-        with _create(self.path(name)) as fh:
-            def add(block: npt.NDArray[Any]) -> None:
-                nonlocal n
-                _write(fh, block.astype(kind, copy=False))
-                n += len(block)
-            yield add
-        self._kind[name] = (kind, n)
-
-    def adopt(self, name: str, path: Path, dtype: Any, length: int) -> None:
-        """An array already written raw at ``path`` (moved into the shelf)."""
-        path.rename(self.path(name))
-        self._kind[name] = (np.dtype(dtype), length)
-
-    def get(self, name: str) -> npt.NDArray[Any]:
-        dtype, n = self._kind[name]
-        return np.fromfile(self.path(name), dtype=dtype, count=n)
-
-    def blocks(self, name: str, step: int = BLOCK) -> Iterator[npt.NDArray[Any]]:
-        dtype, n = self._kind[name]
-        for lo in range(0, n, step):
-            yield np.fromfile(self.path(name), dtype=dtype, count=min(step, n - lo),
-                              offset=lo * dtype.itemsize)
-
-    def mapped(self, name: str) -> npt.NDArray[Any]:
-        """The array mapped read-only: its pages are read (and held) only where used."""
-        dtype, n = self._kind[name]
-        if not n:
-            return np.zeros(0, dtype=dtype)
-        return np.memmap(self.path(name), dtype=dtype, mode="r", shape=(n,))
-
-    def entry(self, name: str) -> store.OnDisk:
-        dtype, n = self._kind[name]
-        return store.OnDisk(self.path(name), dtype, n)
-
-    def drop(self, *names: str) -> None:
-        for name in names:
-            if self._kind.pop(name, None) is not None:
-                self.path(name).unlink()
-
-
-def _ids(n: int) -> type[np.signedinteger[Any]]:
-    """The integer type of ids below ``n`` (32 bits when they fit)."""
-    return np.int32 if n < (1 << 31) else np.int64
 
 
 @dataclass(frozen=True)
@@ -200,8 +132,8 @@ def _shelve(counted: Chunked, shelf: Shelf, memory: int, progress: Report | None
         shelf.adopt(f"keys{k}", keys, codec.dtype(k), n)
         below = codec.unigrams() if k == 2 else shelf.get(f"keys{k - 1}")
         # each n-gram's suffix found among the keys of the order below (as tables_of does)
-        with shelf.writer(f"suffix{k}", _ids(sizes[-1])) as suffix, \
-                shelf.writer(f"first{k}", _ids(v)) as first:
+        with shelf.writer(f"suffix{k}", id_type(sizes[-1])) as suffix, \
+                shelf.writer(f"first{k}", id_type(v)) as first:
             for block in shelf.blocks(f"keys{k}"):
                 suffix_keys, words = codec.split(block)
                 suffix(np.searchsorted(below, suffix_keys))
@@ -220,8 +152,8 @@ def _shelve_tables(whole: list[OrderCounts], shelf: Shelf, v: int) -> list[int]:
     for k in range(2, len(whole) + 1):
         table = whole[k - 1]
         whole[k - 1] = OrderCounts(table.suffix[:0], table.first[:0], table.count[:0])
-        shelf.put(f"suffix{k}", table.suffix.astype(_ids(sizes[-1]), copy=False))
-        shelf.put(f"first{k}", table.first.astype(_ids(v), copy=False))
+        shelf.put(f"suffix{k}", table.suffix.astype(id_type(sizes[-1]), copy=False))
+        shelf.put(f"first{k}", table.first.astype(id_type(v), copy=False))
         shelf.put(f"count{k}", table.count)
         sizes.append(len(table))
         del table
@@ -273,7 +205,7 @@ def _contexts(shelf: Shelf, sizes: list[int], v: int) -> None:
         keys = _order_keys(shelf, k - 1, v)
         slots = hashindex.build_slots(keys)
         below = shelf.get(_context_name(k - 1))
-        with shelf.writer(f"prefix{k}", _ids(sizes[k - 2])) as prefix:
+        with shelf.writer(f"prefix{k}", id_type(sizes[k - 2])) as prefix:
             for suffix, first in zip(shelf.blocks(f"suffix{k}"), shelf.blocks(f"first{k}"),
                                      strict=True):
                 prefix(hashindex.lookup(slots, keys, table_keys(below[suffix], first, v)))
@@ -285,7 +217,7 @@ def _contexts(shelf: Shelf, sizes: list[int], v: int) -> None:
 def _continuation(shelf: Shelf, k: int, n: int) -> F64:
     """Continuation counts of order ``k``: how many order-``k + 1`` n-grams extend each."""
     cont = np.zeros(n, dtype=np.int64)
-    for suffix in shelf.blocks(f"suffix{k + 1}", 4 * BLOCK):
+    for suffix in shelf.blocks(f"suffix{k + 1}", 4 * rawfiles.BLOCK):
         cont += np.bincount(suffix, minlength=n)
     return cont.astype(np.float64)
 
@@ -312,9 +244,93 @@ def _estimate(shelf: Shelf, sizes: list[int], unigrams: I64, smoother: Smoother,
 def _smooth(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smoother,
             n_pred: int, predictable: npt.NDArray[np.bool_], meta: dict[str, Any]) -> None:
     """Order ``k``: its back-off weights of order ``k - 1`` (``gamma{k-1}``) and its
-    probabilities (``prob{k}``). Only this order's counts and numerators are held whole;
-    the contexts are mapped while the method runs (one that does not read them holds none
-    of them), then read a block at a time."""
+    probabilities (``prob{k}``), a block of n-grams at a time for a method that allows it
+    (:class:`rescore.lm.smoothing.ByCount`), else whole."""
+    if not (k > 1 and isinstance(smoother, ByCount)
+            and _smooth_blocks(shelf, sizes, k, smoother, meta)):
+        _smooth_whole(shelf, sizes, k, unigrams, smoother, n_pred, predictable, meta)
+
+
+def _smooth_blocks(shelf: Shelf, sizes: list[int], k: int, smoother: ByCount,
+                   meta: dict[str, Any]) -> bool:
+    """Order ``k`` (from 2) a block at a time, holding only arrays of its contexts (the
+    n-grams of order ``k - 1``) and, below the top order of a continuation method, its
+    continuation counts. Three passes over the order's counts: their histogram (the
+    method's discounts), the sums per context, then the probabilities. Every value is the
+    one :func:`_smooth_whole` computes, by the same operations in the same order. False
+    (nothing done) for counts under 1, which counting never gives and which drop their
+    n-grams' shares: :func:`_smooth_whole` handles them."""
+    order, n_ctx = len(sizes), sizes[k - 2]
+    cont = (_continuation(shelf, k, sizes[k - 1])
+            if k < order and smoother.continuation else None)
+
+    def counts() -> Iterator[tuple[F64, F64]]:
+        """(raw counts, counts the order uses) a block at a time."""
+        firsts = (shelf.blocks(f"first{k}") if cont is not None
+                  else itertools.repeat(None))
+        at = 0
+        for raw_counts, first in zip(shelf.blocks(f"count{k}"), firsts, strict=False):
+            raw = raw_counts.astype(np.float64)
+            used = raw if cont is None else np.where(first == BOS_ID, raw,
+                                                     cont[at:at + len(raw)])
+            at += len(raw)
+            yield raw, used
+
+    hist: npt.NDArray[np.int64] = np.zeros(6, dtype=np.int64)
+    for raw, used in counts():
+        hist += count_histogram(used)
+        if (raw < 1).any():
+            return False
+    form = smoother.per_ngram(of_histogram(hist))
+    if form.discounts:
+        meta["discounts"][str(k)] = [round(d, 12) for d in form.discounts]
+    if form.fallback:
+        meta["fallbacks"][str(k)] = form.fallback
+
+    denom = np.zeros(n_ctx)  # sum of the used counts, then the denominator
+    mass = np.zeros(n_ctx)  # sum of used - numerator, then the back-off weight
+    extra = None if form.extra_term is None else np.zeros(n_ctx)
+    for (_, used), ctx in zip(counts(), shelf.blocks(_context_name(k)), strict=True):
+        numer = form.numer(used)
+        np.add.at(denom, ctx, used)
+        if extra is not None and form.extra_term is not None:
+            np.add.at(extra, ctx, form.extra_term(used))
+        np.subtract(used, numer, out=numer)
+        np.add.at(mass, ctx, numer)
+    # as _smooth_whole: denom + extra, extra + mass + lost (nothing is lost here); with no
+    # extra the scalar 0.0 added gives the bits that adding an array of zeros gives
+    denom += 0.0 if extra is None else extra
+    np.add(0.0 if extra is None else extra, mass, out=mass)
+    mass += 0.0
+    del extra
+    positive = denom > 0
+    safe = denom
+    safe[~positive] = 1.0
+    gamma = np.divide(mass, safe, out=mass)
+    gamma[~positive] = 1.0
+    shelf.put(f"gamma{k - 1}", gamma)
+    below = shelf.get(f"prob{k - 1}")
+    with shelf.writer(f"prob{k}", np.float64) as prob:
+        for (_, used), ctx, suffix in zip(counts(), shelf.blocks(_context_name(k)),
+                                          shelf.blocks(f"suffix{k}"), strict=True):
+            numer = form.numer(used)
+            alpha = np.where(positive[ctx], numer / safe[ctx], 0.0)
+            out = gamma[ctx]
+            out *= below[suffix]
+            out += alpha
+            prob(out)
+    del gamma, below, safe, positive
+    give_back_freed_memory()
+    shelf.drop(f"count{k}", *([f"prefix{k}"] if k > 2 else []))
+    return True
+
+
+def _smooth_whole(shelf: Shelf, sizes: list[int], k: int, unigrams: I64, smoother: Smoother,
+                  n_pred: int, predictable: npt.NDArray[np.bool_], meta: dict[str, Any]
+                  ) -> None:
+    """Order ``k`` with its counts and numerators held whole; the contexts are mapped
+    while the method runs (one that does not read them holds none of them), then read a
+    block at a time."""
     order, v, n = len(sizes), sizes[0], sizes[k - 1]
     raw = (unigrams if k == 1 else shelf.get(f"count{k}")).astype(np.float64)
     first = np.arange(v) if k == 1 else None
@@ -434,14 +450,17 @@ def _write_model(shelf: Shelf, sizes: list[int], vocab: Vocabulary, meta: dict[s
     index: list[dict[str, int]] = []
 
     def log_of(name: str, perm: npt.NDArray[Any] | None) -> None:
+        """The natural log of the array ``name`` in the index's order (``perm``), written
+        a block at a time: the values are held whole, the result a block of it."""
         values = shelf.get(name)
-        if perm is not None:
-            values = values[perm]
-        with np.errstate(divide="ignore"):
-            np.log(values, out=values)
         out = name.replace("prob", "logp").replace("gamma", "bow")
+        with shelf.writer(out, np.float64) as add, np.errstate(divide="ignore"):
+            for lo in range(0, len(values), rawfiles.BLOCK):
+                block = (values[lo:lo + rawfiles.BLOCK].copy() if perm is None
+                         else values[perm[lo:lo + rawfiles.BLOCK]])
+                add(np.log(block, out=block))
+        del values
         shelf.drop(name)
-        shelf.put(out, values)
         arrays.append((out, shelf.entry(out)))
 
     log_of("prob1", None)
@@ -464,7 +483,7 @@ def _write_model(shelf: Shelf, sizes: list[int], vocab: Vocabulary, meta: dict[s
         log_of(f"prob{k}", perm)
         if k < order:
             log_of(f"gamma{k}", perm)
-            new_id = np.empty(n, dtype=_ids(n))
+            new_id = np.empty(n, dtype=id_type(n))
             new_id[perm] = np.arange(n, dtype=new_id.dtype)
         else:
             new_id = None

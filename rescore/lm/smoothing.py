@@ -16,6 +16,7 @@ zero for maximum likelihood and never negative.
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -60,11 +61,21 @@ class Estimate:
     fallback: str | None = None
 
 
+def count_histogram(counts: F64, upto: int = 4) -> I64:
+    """How many n-grams occur 0 (not counted), 1, ..., ``upto`` and more than ``upto``
+    times: the sum of the histograms of the parts of an order is that of the whole."""
+    c = counts[counts > 0].astype(np.int64)
+    return np.bincount(np.minimum(c, upto + 1), minlength=upto + 2)
+
+
 def counts_of_counts(counts: F64, upto: int = 4) -> list[int]:
     """n_1 .. n_upto: how many n-grams occur exactly r times."""
-    c = counts[counts > 0].astype(np.int64)
-    hist = np.bincount(np.minimum(c, upto + 1), minlength=upto + 2)
-    return [int(hist[r]) for r in range(1, upto + 1)]
+    return of_histogram(count_histogram(counts, upto))
+
+
+def of_histogram(hist: I64) -> list[int]:
+    """n_1 .. n_upto of a :func:`count_histogram`."""
+    return [int(hist[r]) for r in range(1, len(hist) - 1)]
 
 
 def single_discount(n: list[int]) -> tuple[float, str | None]:
@@ -91,6 +102,19 @@ def modified_discounts(n: list[int]) -> tuple[tuple[float, float, float], str | 
     return (one, one, one), reason
 
 
+@dataclass(frozen=True)
+class PerNgram:
+    """A method whose numerator is a function of each n-gram's count alone, once the
+    order's counts of counts are known, and whose extra mass per context is the sum over
+    the context of another such function (or nothing): it can be applied to an order a
+    block of n-grams at a time, with the same values as applied whole."""
+
+    numer: Callable[[F64], F64]
+    extra_term: Callable[[F64], F64] | None = None
+    discounts: tuple[float, ...] = ()
+    fallback: str | None = None
+
+
 class Smoother(ABC):
     """One smoothing method; ``estimate`` is called once per order, lowest first."""
 
@@ -103,14 +127,42 @@ class Smoother(ABC):
     @abstractmethod
     def estimate(self, stats: OrderStats) -> Estimate: ...
 
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram | None:
+        """The method in per-n-gram form for an order with these counts of counts
+        (``n_1 .. n_4``), or None when it needs more than each count (e.g. the context)."""
+        return None
 
-class MaximumLikelihood(Smoother):
+
+class ByCount(Smoother):
+    """A method that is :class:`PerNgram`: its whole-order estimate is that form applied
+    to every n-gram at once (so the two ways give the same bits)."""
+
+    def estimate(self, stats: OrderStats) -> Estimate:
+        form = self.per_ngram(counts_of_counts(stats.counts))
+        assert form is not None
+        extra = (np.zeros(stats.n_contexts) if form.extra_term is None
+                 else stats.per_context(form.extra_term(stats.counts)))
+        return Estimate(form.numer(stats.counts), extra, form.discounts, form.fallback)
+
+    @abstractmethod
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram: ...
+
+
+def _copy(counts: F64) -> F64:
+    return counts.copy()
+
+
+def _seen(counts: F64) -> F64:
+    return (counts > 0).astype(np.float64)
+
+
+class MaximumLikelihood(ByCount):
     """Relative frequencies; an unseen context falls back to the next shorter one."""
 
     name = "mle"
 
-    def estimate(self, stats: OrderStats) -> Estimate:
-        return Estimate(stats.counts.copy(), np.zeros(stats.n_contexts))
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram:
+        return PerNgram(_copy)
 
 
 class AddK(Smoother):
@@ -134,17 +186,16 @@ class AddK(Smoother):
         return Estimate(numer, extra)
 
 
-class WittenBell(Smoother):
+class WittenBell(ByCount):
     """Interpolated Witten-Bell: the lower order gets weight T(h) / (c(h) + T(h))."""
 
     name = "wb"
 
-    def estimate(self, stats: OrderStats) -> Estimate:
-        types = stats.per_context((stats.counts > 0).astype(np.float64))
-        return Estimate(stats.counts.copy(), types)
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram:
+        return PerNgram(_copy, _seen)  # T(h): the distinct words seen after h
 
 
-class AbsoluteDiscount(Smoother):
+class AbsoluteDiscount(ByCount):
     """Interpolated absolute discounting, one discount per order from raw counts.
 
     ``discount`` fixes D for every order instead of estimating it from the counts.
@@ -158,13 +209,15 @@ class AbsoluteDiscount(Smoother):
         super().__init__(k)
         self.discount = discount
 
-    def estimate(self, stats: OrderStats) -> Estimate:
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram:
         if self.discount is not None:
             d, why = self.discount, None
         else:
-            d, why = single_discount(counts_of_counts(stats.counts))
-        numer = np.maximum(stats.counts - d, 0.0)
-        return Estimate(numer, np.zeros(stats.n_contexts), (d,), why)
+            d, why = single_discount(counts_of_counts)
+
+        def numer(counts: F64) -> F64:
+            return np.maximum(counts - d, 0.0)
+        return PerNgram(numer, None, (d,), why)
 
 
 class KneserNey(AbsoluteDiscount):
@@ -174,17 +227,20 @@ class KneserNey(AbsoluteDiscount):
     continuation = True
 
 
-class ModifiedKneserNey(Smoother):
+class ModifiedKneserNey(ByCount):
     """Interpolated modified Kneser-Ney (Chen and Goodman 1998): three discounts per order."""
 
     name = "mkn"
     continuation = True
 
-    def estimate(self, stats: OrderStats) -> Estimate:
-        (d1, d2, d3), why = modified_discounts(counts_of_counts(stats.counts))
-        c = stats.counts
-        disc = np.select([c <= 0, c < 1.5, c < 2.5], [0.0, d1, d2], d3)
-        return Estimate(np.maximum(c - disc, 0.0), np.zeros(stats.n_contexts), (d1, d2, d3), why)
+    def per_ngram(self, counts_of_counts: list[int]) -> PerNgram:
+        (d1, d2, d3), why = modified_discounts(counts_of_counts)
+
+        def numer(c: F64) -> F64:
+            disc = np.select([c <= 0, c < 1.5, c < 2.5], [0.0, d1, d2], d3)
+            out: F64 = np.maximum(c - disc, 0.0)
+            return out
+        return PerNgram(numer, None, (d1, d2, d3), why)
 
 
 METHODS: dict[str, type[Smoother]] = {

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import re
 import struct
 import zipfile
 import zlib
@@ -251,3 +252,37 @@ def test_formats_1_and_2_still_read_the_same(saved: tuple[NGramModel, Path],
     old1.write_bytes(bytes(damaged))
     with pytest.raises(ModelFileError, match="checksum mismatch"):
         store.load(old1)
+
+
+def _resident_kib(path: Path) -> int:
+    """Kibibytes of this process's memory held by its mappings of ``path`` (proc(5): the
+    ``Rss:`` line under each mapping of /proc/self/smaps)."""
+    total, inside = 0, False
+    for line in Path("/proc/self/smaps").read_text().splitlines():
+        if re.match(r"[0-9a-f]+-[0-9a-f]+ ", line):
+            inside = line.endswith(str(path.resolve()))
+        elif inside and line.startswith("Rss:"):
+            total += int(line.split()[1])
+    return total
+
+
+def test_checking_and_copying_a_mapped_model_do_not_hold_its_pages(tmp_path: Path) -> None:
+    # madvise(2): MADV_DONTNEED on a shared file mapping drops the pages from the process
+    # (its Rss, proc(5)) while the page cache keeps them. Loading reads every byte for the
+    # checksum and saving a loaded model reads every array; neither may keep them all.
+    if not Path("/proc/self/smaps").exists():
+        pytest.skip("no /proc/self/smaps on this system")
+    from test_lm_external import _zipf_sentences
+
+    path = tmp_path / "big.lm"
+    save_model(NGramModel(3).fit(_zipf_sentences(300_000, 5_000, 3)), path)
+    size_kib = path.stat().st_size >> 10
+    assert size_kib > 4096  # a file of many pages (the kernel maps 64 KiB around a fault)
+    model = load_model(path)
+    assert _resident_kib(path) < size_kib / 4
+    save_model(model, tmp_path / "copy.lm")
+    assert _resident_kib(path) < size_kib / 4
+    assert (tmp_path / "copy.lm").read_bytes() == path.read_bytes()
+    # the arrays still read as before: the kernel maps the cached pages again
+    assert load_model(tmp_path / "copy.lm").checksum == model.checksum
+    assert np.array_equal(model.tables_.logp[0], load_model(path).tables_.logp[0])

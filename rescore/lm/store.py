@@ -42,6 +42,7 @@ import numpy as np
 import xxhash
 
 from rescore.errors import ModelFileError, open_failure
+from rescore.lm import pages
 from rescore.lm.hashindex import BucketIndex
 from rescore.lm.tables import BackoffTables, Coded
 from rescore.lm.vocab import SPECIALS, Vocabulary
@@ -169,7 +170,7 @@ def _parts(arrays: list[tuple[str, Any]], header_fields: dict[str, Any],
         if isinstance(arr, OnDisk):
             yield from arr.blocks()
         else:
-            yield arr.reshape(-1).view(np.uint8).data
+            yield from pages.array_bytes(arr)
         yield b"\0" * _pad(arr.nbytes)
 
 
@@ -477,7 +478,10 @@ def _intact(version: int, data: mmap.mmap, checked: memoryview) -> bool:
         (crc,) = struct.unpack_from("<I", data, len(data) - 16)
         return zlib.crc32(checked) == crc and data[-12:-8] == b"\0" * 4
     (check,) = struct.unpack_from("<Q", data, len(data) - 16)
-    return bool(xxhash.xxh3_64_intdigest(checked) == check)
+    digest = xxhash.xxh3_64()
+    for piece in pages.read_through(data, 0, checked):
+        digest.update(piece)
+    return bool(digest.intdigest() == check)
 
 
 def _tables(order: int, arrays: dict[str, np.ndarray[Any, Any]]) -> BackoffTables:

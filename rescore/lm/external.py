@@ -20,6 +20,7 @@ first, which numpy sorts and searches byte by byte.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import errno
 import os
 import re
@@ -40,7 +41,7 @@ from rescore.leftovers import TMP_PREFIX, remove_stale_temporaries
 from rescore.lm.counts import OrderCounts, count_ngrams, window_floor
 from rescore.lm.keys import KeyCodec, Keys
 from rescore.lm.vocab import SPECIALS, UNK_ID, Vocabulary, remap, stream_from_lengths
-from rescore.process import freed_memory_returned
+from rescore.process import freed_memory_returned, give_back_freed_memory
 from rescore.progress import Report, Steps
 
 I32 = npt.NDArray[np.int32]
@@ -403,6 +404,19 @@ def count_chunks(sentences: Iterable[Sequence[str]], order: int,
     # with the text)
     body_at = [0 if c == 0 else int(ends[c - 1]) - 2 * c for c in cuts]
     del ends
+    n_sentences = len(first.lengths)
+    lengths_of: Callable[[int, int], I64]
+    if n_chunks > 1:  # the sentences' lengths wait on disk too, read a chunk's at a time
+        with _create(folder / "lengths") as fh:
+            _write(fh, first.lengths)
+
+        def lengths_of(a: int, b: int) -> I64:
+            return np.fromfile(folder / "lengths", dtype=np.int64, count=b - a,
+                               offset=a * 8)
+        first = dataclasses.replace(first, lengths=first.lengths[:0])
+    else:
+        def lengths_of(a: int, b: int) -> I64:
+            return first.lengths[a:b]
     counting = Steps(progress, "counting n-grams", n_chunks * order)
     codec = KeyCodec(order, v)
     unigrams = np.zeros(v, dtype=np.int64)
@@ -417,7 +431,7 @@ def count_chunks(sentences: Iterable[Sequence[str]], order: int,
             a, b = cuts[j], cuts[j + 1]
             ids = np.fromfile(first.ids, dtype=np.int32, count=body_at[j + 1] - body_at[j],
                               offset=body_at[j] * 4)
-            stream = stream_from_lengths(table[ids], first.lengths[a:b])
+            stream = stream_from_lengths(table[ids], lengths_of(a, b))
             del ids
             floor = window_floor(stream, closed_vocab)
             tables = count_ngrams(stream.tokens, floor, order, v, progress=counting)
@@ -430,9 +444,11 @@ def count_chunks(sentences: Iterable[Sequence[str]], order: int,
                 runs[k - 2].append(write_run(folder, f"run{j:05d}.{k}", keys,
                                              tables[k - 1].count))
             del tables
+            give_back_freed_memory()  # the heap's free pages, before the next chunk
     counting.finish()
     first.ids.unlink()  # counted: the disk is freed
-    return Chunked(vocab, codec, unigrams, runs, whole, len(first.lengths), first.tokens, oov,
+    (folder / "lengths").unlink(missing_ok=True)
+    return Chunked(vocab, codec, unigrams, runs, whole, n_sentences, first.tokens, oov,
                    0 if n_chunks == 1 else n_chunks)
 
 

@@ -31,7 +31,6 @@ from rescore.units import (
     UNIT_KEY,
     WORD,
     Unit,
-    characters,
     check_model_unit,
     parse_unit,
     plural,
@@ -39,6 +38,7 @@ from rescore.units import (
 )
 
 # the unit's wording, also named from here by the reports and commands that count
+from rescore.units import characters as characters
 from rescore.units import in_unit as in_unit
 from rescore.units import unit_name as unit_name
 from rescore.wer import (

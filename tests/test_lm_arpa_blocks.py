@@ -121,29 +121,10 @@ def test_blocks_of_any_size_read_alike(tmp_path: Path, monkeypatch: pytest.Monke
         assert _native_bytes(*arpa_fast.read_fast(fh), tmp_path / "b.lm") == whole
 
 
-@pytest.mark.parametrize("processors", [1, 2])
-def test_keys_found_by_a_thread_or_not_read_alike(tmp_path: Path,
-                                                  monkeypatch: pytest.MonkeyPatch,
-                                                  processors: int) -> None:
-    # the exact line reader is the reference: with the keys found by a thread of their own
-    # (two processors) or in line (one), blocks of 64 bytes (many owed at once) give its
-    # native file byte for byte
-    rng = np.random.default_rng(5)
-    corpus = [[f"w{j}" for j in rng.integers(0, 40, rng.integers(1, 10))] for _ in range(300)]
-    path = _save_arpa(NGramModel(5, "mkn").fit(corpus), tmp_path / "m.arpa")
-    monkeypatch.setattr(arpa_fast, "_processors", lambda: processors)
-    monkeypatch.setattr(arpa_fast, "BLOCK_BYTES", 64)
-    with open(path, "rb") as fh:
-        fast, meta = arpa_fast.read_fast(fh)
-    exact, exact_meta = arpa.read_exact(path)
-    assert (_native_bytes(fast, meta, tmp_path / "a.lm")
-            == _native_bytes(exact.compact(), exact_meta, tmp_path / "b.lm"))
-
-
 def test_a_suffix_missing_from_the_file_is_left_to_the_exact_reader(tmp_path: Path) -> None:
     # ARPA convention (common practice): every n-gram's suffix is listed one order down;
-    # a 3-gram whose 2-gram suffix was removed makes the keys' thread give up, and the
-    # exact reader (which adds the suffix) reads the file
+    # a 3-gram whose 2-gram suffix was removed makes the fast reader give up (its key
+    # cannot be made), and the exact reader (which adds the suffix) reads the file
     corpus = [["a", "b", "c", "d"], ["b", "c", "a"], ["c", "a", "b", "d"]] * 5
     path = _save_arpa(NGramModel(3, "mkn").fit(corpus), tmp_path / "m.arpa")
     lines = path.read_text().splitlines()

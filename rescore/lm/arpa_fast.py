@@ -15,11 +15,8 @@ exact reader, which reads any valid file and names the line of any error.
 from __future__ import annotations
 
 import math
-import os
 import zlib
-from collections import deque
 from collections.abc import Iterator
-from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -35,7 +32,6 @@ from rescore.lm.vocab import BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 
 BLOCK_BYTES = 1 << 20
-IN_FLIGHT = 2  # blocks whose keys the worker thread may still owe
 U64 = npt.NDArray[np.uint64]
 
 
@@ -106,13 +102,8 @@ class _Order:
 
 
 class _FastReader:
-    def __init__(self, buf: _Buffer, pool: ThreadPoolExecutor | None = None) -> None:
+    def __init__(self, buf: _Buffer) -> None:
         self.buf = buf
-        # the keys of a block are found (its suffixes looked up, memory-bound) by the
-        # pool's one thread while this one parses the next block (numpy lets the GIL go
-        # in both); each order's keys are all in before its index is built
-        self.pool = pool
-        self.owed: deque[Future[None]] = deque()
         self.declared: list[int] = []
         self.state = "start"
         self.current: _Order | None = None
@@ -260,36 +251,10 @@ class _FastReader:
             tok_end[:, :-1] = gaps
             tok_end[:, -1] = w_end
             del gaps
+            assert order.keys is not None
             words = self.word_ids(tok_start.reshape(-1), tok_end.reshape(-1)).reshape(n, k)
-            self.fill_keys(order, at_fill, words)
+            order.keys[at_fill:at_fill + n] = self.key_of(words)
         order.filled += n
-
-    def fill_keys(self, order: _Order, at: int, words: npt.NDArray[np.int32]) -> None:
-        """``order.keys[at:]`` from ``words`` (:meth:`key_of`), by the worker thread when
-        there is one (its errors raised here, or by :meth:`settle`)."""
-        keys = order.keys
-        assert keys is not None
-        if self.pool is None:
-            keys[at:at + len(words)] = self.key_of(words)
-            return
-        self.owed.append(self.pool.submit(self._fill, keys, at, words))
-        while len(self.owed) > IN_FLIGHT:
-            self.owed.popleft().result()
-
-    def _fill(self, keys: npt.NDArray[np.uint64], at: int,
-              words: npt.NDArray[np.int32]) -> None:
-        keys[at:at + len(words)] = self.key_of(words)
-
-    def settle(self) -> None:
-        """Wait for every key owed by the worker thread."""
-        while self.owed:
-            self.owed.popleft().result()
-
-    def cancel(self) -> None:
-        """Drop the keys not yet found (the file goes to the exact reader)."""
-        for owed in self.owed:
-            owed.cancel()
-        self.owed.clear()
 
     def fill_numbers(self, order: _Order, at: int, starts: I64, prob_point: I64, t1: I64,
                      has_bow: npt.NDArray[np.bool_], n_bows: int, w_end: I64,
@@ -389,7 +354,6 @@ class _FastReader:
         order = self.current
         if order is None:
             return
-        self.settle()
         if order.filled != order.count:
             raise Slow
         if order.k == 1:
@@ -453,32 +417,10 @@ def _permuted(values: F64, perm: npt.NDArray[Any], out: F64) -> F64:
 
 
 def read_fast(fh: Any) -> tuple[BackoffTables, dict[str, Any]]:
-    """Tables and provenance of the ARPA text ``fh`` (binary), or :class:`Slow`.
-
-    With a second processor, the keys are found by a thread of their own: 2.55 s instead
-    of 1.95 s to read the 6.5 M n-grams of scripts/bench_lm_files.py (this project's
-    2-core machine, the other core free; the same within 0.05 s when another process
-    holds it)."""
-    if _processors() < 2:
-        return _read(fh, None)
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="rescore-arpa") as pool:
-        return _read(fh, pool)
-
-
-def _processors() -> int:
-    """Processors this process may run on."""
-    affinity = getattr(os, "sched_getaffinity", None)
-    return len(affinity(0)) if affinity is not None else os.cpu_count() or 1
-
-
-def _read(fh: Any, pool: ThreadPoolExecutor | None) -> tuple[BackoffTables, dict[str, Any]]:
-    reader = _FastReader(_Buffer(), pool)
-    try:
-        for lo, hi in reader.buf.blocks(fh):
-            reader.block(lo, hi)
-            if reader.state == "end":
-                break
-        reader.buf.release()
-        return reader.tables(), reader.meta
-    finally:
-        reader.cancel()
+    reader = _FastReader(_Buffer())
+    for lo, hi in reader.buf.blocks(fh):
+        reader.block(lo, hi)
+        if reader.state == "end":
+            break
+    reader.buf.release()
+    return reader.tables(), reader.meta

@@ -11,6 +11,9 @@ dropped: ``"ポンプ 三"`` gives ``["ポ", "ン", "プ", "三"]``. The same to
 character n-gram model), the insertion penalty (a character count) and the error count,
 so the error rate is the character error rate of the texts with their spaces removed,
 ``jiwer.cer("".join(ref_words), "".join(hyp_words))``.
+
+The unit alone lives in :mod:`rescore.units` (what the language-model commands need,
+without the rules' pydantic models and the aligner).
 """
 
 from __future__ import annotations
@@ -18,12 +21,26 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
 from rescore.align import CompiledRules, align_with_rules
 from rescore.errors import InputError, ParameterError
 from rescore.rules import RulesFile, load_rules
 from rescore.text import tokens, tokens_many
+from rescore.units import (
+    UNIT_KEY,
+    WORD,
+    Unit,
+    check_model_unit,
+    parse_unit,
+    plural,
+    unit_provenance,
+)
+
+# the unit's wording, also named from here by the reports and commands that count
+from rescore.units import characters as characters
+from rescore.units import in_unit as in_unit
+from rescore.units import unit_name as unit_name
 from rescore.wer import (
     Alignment,
     UtteranceCounts,
@@ -33,49 +50,8 @@ from rescore.wer import (
     word_errors,
 )
 
-Unit = Literal["word", "char"]
-UNITS: tuple[Unit, ...] = ("word", "char")
-WORD: Unit = "word"
-# provenance keys (present only when not the default: no rules file, unit word)
+# provenance key of the rules (present only when not the default: no rules file)
 RULES_KEY = "rules"
-UNIT_KEY = "unit"
-
-
-def parse_unit(value: str) -> Unit:
-    """``word`` or ``char``; anything else is a :class:`ParameterError` naming both."""
-    if value not in UNITS:
-        raise ParameterError(f"unknown unit {value!r}; expected word or char", field="unit")
-    return "char" if value == "char" else WORD
-
-
-def characters(words: Sequence[str]) -> list[str]:
-    """The characters of ``words``, the spaces between them dropped."""
-    return [c for w in words for c in w]
-
-
-# under --unit char a report and a table say CER wherever they would say WER
-_CHAR_WORDING = (("WER", "CER"), ("reference words", "reference characters"),
-                 ("ref words", "ref chars"), ("words both systems", "characters both systems"))
-
-
-def in_unit(text: str, unit: str) -> str:
-    """``text`` worded for ``unit``: unchanged for words; for ``char``, CER for WER and
-    characters for reference words."""
-    if unit != "char":
-        return text
-    for word, char in _CHAR_WORDING:
-        text = text.replace(word, char)
-    return text
-
-
-def plural(unit: str) -> str:
-    """``words`` or ``characters``, as messages name a unit."""
-    return "characters" if unit == "char" else f"{unit}s"
-
-
-def unit_name(unit: str) -> str:
-    """How the report names the error rate of a unit: WER or CER."""
-    return "CER" if unit == "char" else "WER"
 
 
 @dataclass(frozen=True)
@@ -145,9 +121,7 @@ class Counting:
 
     def provenance(self) -> dict[str, Any]:
         """``{"unit": ..., "rules": {name, sha256, path}}``, each only when not the default."""
-        out: dict[str, Any] = {}
-        if self.unit != WORD:
-            out[UNIT_KEY] = self.unit
+        out = unit_provenance(self.unit)
         if self.rules is not None:
             out[RULES_KEY] = self.rules.provenance()
         return out
@@ -172,15 +146,9 @@ class Counting:
                              "--rules file", path=path, field=RULES_KEY)
 
     def check_model(self, model: object, *, path: str | Path) -> None:
-        """Refuse a model trained on another token unit than this run's (a character
-        model under word scoring, or the reverse); a model that does not say (one read
-        from ARPA text) is taken as it is."""
-        unit = getattr(model, "unit", None)
-        if unit is not None and unit != self.unit:
-            raise InputError(f"the model was built on {plural(unit)} (lm build --unit "
-                             f"{unit}) but this run counts {plural(self.unit)}; give --unit "
-                             f"{unit}, or a model built with --unit {self.unit}", path=path,
-                             field=UNIT_KEY)
+        """Refuse a model trained on another token unit than this run's
+        (:func:`rescore.units.check_model_unit`)."""
+        check_model_unit(model, self.unit, path=path)
 
     def check_choice(self, choose: str | None) -> None:
         """Refuse a choice rule that works on space-separated words (``min-risk``,

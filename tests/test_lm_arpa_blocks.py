@@ -121,6 +121,26 @@ def test_blocks_of_any_size_read_alike(tmp_path: Path, monkeypatch: pytest.Monke
         assert _native_bytes(*arpa_fast.read_fast(fh), tmp_path / "b.lm") == whole
 
 
+def test_a_suffix_missing_from_the_file_is_left_to_the_exact_reader(tmp_path: Path) -> None:
+    # ARPA convention (common practice): every n-gram's suffix is listed one order down;
+    # a 3-gram whose 2-gram suffix was removed makes the fast reader give up (its key
+    # cannot be made), and the exact reader (which adds the suffix) reads the file
+    corpus = [["a", "b", "c", "d"], ["b", "c", "a"], ["c", "a", "b", "d"]] * 5
+    path = _save_arpa(NGramModel(3, "mkn").fit(corpus), tmp_path / "m.arpa")
+    lines = path.read_text().splitlines()
+    section = lines.index("\\2-grams:")
+    gone = next(i for i in range(section + 1, len(lines)) if lines[i].endswith("\tc a")
+                or "\tc a\t" in lines[i])
+    del lines[gone]
+    count = next(i for i, line in enumerate(lines) if line.startswith("ngram 2="))
+    lines[count] = f"ngram 2={int(lines[count].split('=')[1]) - 1}"
+    path.write_text("\n".join(lines) + "\n")
+    with open(path, "rb") as fh, pytest.raises(arpa_fast.Slow):
+        arpa_fast.read_fast(fh)
+    tables, _ = arpa.read(path)
+    assert tables.order == 3
+
+
 def test_numbers_of_other_forms_read_as_the_exact_reader(tmp_path: Path) -> None:
     # the exact line reader (float() on each field) is the reference: numbers with
     # exponents or 17 significant digits leave the integer path for numpy's parse, still

@@ -32,7 +32,7 @@ from rescore.lm import (
     save_model,
     store,
 )
-from rescore.lm.hashindex import BucketIndex
+from rescore.lm.hashindex import WINDOW, BucketIndex, _multiplier, bucket_bits
 
 LN10 = math.log(10)
 
@@ -69,6 +69,32 @@ def test_bucket_index_finds_exactly_the_keys(keys: list[int], others: list[int])
     assert index.find(queries).tolist() == want
     assert index.keys().tolist() == arr[perm].tolist()
     assert index.check() is None and index.check_unique()
+
+
+@pytest.mark.parametrize("crowded", [0, 63])
+def test_bucket_index_finds_keys_of_crowded_buckets(crowded: int) -> None:
+    # 40 keys in one bucket (the first or the last: more than the WINDOW of rests read at
+    # once), 160 spread; compared with a Python dict (the reference), as is the same index
+    # with 64-bit bucket starts (read one rest per round)
+    bits, rng = 24, np.random.default_rng(crowded)
+    shift = bits - bucket_bits(200)  # 64 buckets of 200 keys
+    mult = _multiplier(bits)
+    low = rng.choice(1 << shift, 60, replace=False)
+    hashes = (crowded << shift) + low[:40]
+    spread = rng.choice(1 << bits, 400, replace=False)
+    spread = spread[(spread >> shift) != crowded][:160]
+    keys = [int(h) * pow(mult, -1, 1 << bits) % (1 << bits)
+            for h in [*hashes.tolist(), *spread.tolist()]]
+    absent = [int(h) * pow(mult, -1, 1 << bits) % (1 << bits)
+              for h in ((crowded << shift) + low[40:]).tolist()]
+    index, perm = BucketIndex.build(np.array(keys, dtype=np.uint64), 1 << bits)
+    assert int(np.diff(index.starts.astype(np.int64)).max()) == 40 > WINDOW
+    position = {k: i for i, k in enumerate(np.array(keys)[perm].tolist())}
+    queries = np.array(keys + absent, dtype=np.uint64)
+    want = [position.get(q, -1) for q in queries.tolist()]
+    assert index.find(queries).tolist() == want
+    wide = BucketIndex(index.bits, index.shift, index.starts.astype(np.uint64), index.rest)
+    assert wide.find(queries).tolist() == want
 
 
 def test_bucket_index_flags_a_key_given_twice() -> None:

@@ -18,7 +18,6 @@ from rescore.cli._common import (
     take_stdout,
 )
 from rescore.cli.options import UnitOpt
-from rescore.counting import Counting, characters, parse_unit
 from rescore.errors import UsageError
 from rescore.lm import (
     NGramModel,
@@ -38,6 +37,7 @@ from rescore.progress import Steps
 from rescore.readers import iter_text_lines
 from rescore.shards import count_lines
 from rescore.text import tokens
+from rescore.units import characters, check_model_unit, parse_unit, unit_provenance
 
 
 def _cutoffs(text: str | None) -> list[int] | None:
@@ -211,7 +211,7 @@ def perplexity_cmd(
     --unit char)."""
     token_unit = parse_unit(unit)
     model = load_model(model_path)
-    Counting(token_unit).check_model(model, path=model_path)
+    check_model_unit(model, token_unit, path=model_path)
     if scores_out is None:
         corpus = read_corpus(text)
         result = perplexity(model, corpus if token_unit == "word" else char_sentences(corpus))
@@ -219,7 +219,7 @@ def perplexity_cmd(
         result = write_sentence_scores(model, text, scores_out, unit=token_unit)
         info(f"wrote {scores_out}: {result.sentences} sentences")
     if as_json:
-        emit_json(result.to_dict() | Counting(token_unit).provenance())
+        emit_json(result.to_dict() | unit_provenance(token_unit))
         return
     table(None, ["measure", "value"], [
         ("perplexity", result.perplexity),
@@ -327,7 +327,7 @@ def mix(
                          field="--tune-on")
     loaded = [load_model(p) for p in models]
     for path, model in zip(models, loaded, strict=True):
-        Counting().check_model(model, path=path)  # the mixture's text is read as words
+        check_model_unit(model, "word", path=path)  # the mixture's text is read as words
     text = None if tune_on is None else list(read_corpus(tune_on))
     _, merged, result = mix_models(loaded, text, weights=_weights(weights))
     save_model(merged, output)

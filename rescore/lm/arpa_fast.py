@@ -31,7 +31,7 @@ from rescore.lm.tables import BackoffTables
 from rescore.lm.vocab import BOS_ID, SPECIALS, UNK_ID, Vocabulary
 from rescore.process import give_back_freed_memory
 
-BLOCK_BYTES = 1 << 19
+BLOCK_BYTES = 1 << 20
 U64 = npt.NDArray[np.uint64]
 
 

@@ -157,6 +157,29 @@ def bucket_bits(n_keys: int) -> int:
     return max(0, max(n_keys, 1).bit_length() - 2)
 
 
+def _sorted_starts(buckets: U64, b: int, count_type: type[np.unsignedinteger[Any]],
+                   step: int) -> npt.NDArray[Any]:
+    """The first position of each of ``2**b`` buckets (and the end) in ``buckets``, which
+    is sorted: the keys of each bucket counted a slice at a time (a slice's buckets are a
+    short run of numbers, so its counts are short too), then added up in place."""
+    starts = np.zeros((1 << b) + 1, dtype=count_type)
+    for at in range(0, len(buckets), step):
+        part = buckets[at:at + step]
+        first = int(part[0])
+        counts = np.bincount((part - np.uint64(first)).view(np.int64))
+        starts[first + 1:first + 1 + len(counts)] += counts.astype(count_type)
+    np.cumsum(starts, dtype=count_type, out=starts)
+    return starts
+
+
+WINDOW = 8  # rests read at once from a bucket's start (most buckets hold 1 to 5)
+# _BYTES[i]: the low i bytes set to 1 (the first i rests of a window, one byte each)
+_BYTES = np.array([((1 << (8 * i)) - 1) & 0x0101010101010101 for i in range(WINDOW + 1)],
+                  dtype=np.uint64)
+_BYTE_SUM = np.uint64(0x0101010101010101)  # times it, the top byte is the sum of all bytes
+_LE32 = np.dtype("<u4")
+
+
 class BucketIndex:
     """Unique keys below ``2**bits``, held as their hashes in sorted order.
 
@@ -229,10 +252,7 @@ class BucketIndex:
                 part = h[max(at - 1, 0):at + step]
                 duplicates = duplicates or bool(np.any(part[1:] == part[:-1]))
             h >>= np.uint64(shift)  # each key's bucket, in increasing order
-            starts = np.empty((1 << b) + 1, dtype=count_type)
-            for at in range(0, len(starts), step):  # the first key of each bucket
-                starts[at:at + step] = np.searchsorted(
-                    h, np.arange(at, min(at + step, len(starts)), dtype=np.uint64))
+            starts = _sorted_starts(h, b, count_type, step)
         else:
             perm = np.argsort(h)  # introsort: no buffer beside the result
             # the rests in sorted order, a slice at a time (no sorted copy of every hash)
@@ -263,10 +283,71 @@ class BucketIndex:
         """Position of each query among the keys, or -1 (queries must be below
         ``2**bits``; the key of a listed context and a word always is).
 
-        The rests of a bucket are in increasing order, so a query's scan stops at the first
-        rest that is not smaller than its own; the first round runs over the whole batch,
-        later rounds over the queries still scanning.
+        The rests of a bucket are in increasing order, so a query's position is its
+        bucket's start plus the number of the bucket's rests below its own. One read of
+        ``WINDOW`` rests from the bucket's start (and one of the start and the next,
+        together) counts them for all but the queries whose bucket is longer, which scan on
+        from there (:meth:`_scan`).
         """
+        rest, starts = self.rest, self.starts
+        n = len(rest)
+        if n < WINDOW or starts.dtype != _LE32 or not (rest.flags.c_contiguous
+                                                       and starts.flags.c_contiguous):
+            return self._find_by_scan(queries)  # a tiny index, or one past 2**32 keys
+        h = self._hash(queries)
+        want = (h & np.uint64((1 << self.shift) - 1)).astype(rest.dtype)
+        h >>= np.uint64(self.shift)
+        # each bucket's start and the next one's, as one little-endian 64-bit word
+        pairs = np.ndarray((len(starts) - 1,), dtype="<u8", buffer=starts, strides=(4,))
+        pair = pairs.take(h.view(np.int64))
+        del h
+        at = (pair & np.uint64(0xFFFFFFFF)).view(np.int64)
+        pair >>= np.uint64(32)
+        end = pair.view(np.int64)
+        # WINDOW rests from the bucket's start (from n - WINDOW for the last few buckets)
+        first = np.minimum(at, n - WINDOW)
+        windows = np.ndarray((n - WINDOW + 1,), dtype=f"V{WINDOW * rest.itemsize}",
+                             buffer=rest, strides=(rest.itemsize,))
+        below = (windows[first].view(rest.dtype).reshape(-1, WINDOW) < want[:, None])
+        # one byte (0 or 1) per rest: those of the bucket kept, added up by a multiply
+        count = below.view(np.uint64).reshape(-1)
+        del below
+        last = end - first
+        np.minimum(last, WINDOW, out=last)
+        count &= _BYTES[last]
+        del last
+        count >>= ((at - first) << 3).view(np.uint64)
+        with np.errstate(over="ignore"):
+            count *= _BYTE_SUM
+        count >>= np.uint64(56)
+        pos = count.view(np.int64)
+        pos += at
+        hit = rest.take(pos, mode="clip") == want  # pos may be one past the end
+        hit &= pos < end
+        result = np.where(hit, pos, EMPTY)
+        first += WINDOW
+        longer = np.flatnonzero((pos == first) & (end > first))
+        if longer.size:
+            self._scan(result, longer, first[longer], end[longer], want[longer])
+        return result
+
+    def _scan(self, result: I64, pending: I64, at: I64, end: I64,
+              want: npt.NDArray[Any]) -> None:
+        """Queries ``pending`` (their rests ``want``) looked for from ``at`` to ``end``, a
+        position per round, stopping at the first rest not below theirs: found ones set in
+        ``result``."""
+        rest = self.rest
+        while pending.size:
+            got = rest.take(at)
+            hit = got == want
+            if hit.any():
+                result[pending[hit]] = at[hit]
+            at += 1
+            more = (got < want) & (at < end)
+            pending, at, end, want = pending[more], at[more], end[more], want[more]
+
+    def _find_by_scan(self, queries: U64) -> I64:
+        """As :meth:`find`, reading one rest per round from each bucket's start."""
         if not len(self.rest):
             return np.full(len(queries), EMPTY, dtype=np.int64)
         h = self._hash(queries)
@@ -278,25 +359,10 @@ class BucketIndex:
         bucket += 1
         end = self.starts.take(bucket)
         del h, bucket
-        rest = self.rest
-        got = rest.take(at, mode="clip")  # an empty last bucket points one past the end
-        live = at < end
-        result = np.where((got == want) & live, at.astype(np.int64), EMPTY)
-        live &= got < want
-        pending = np.flatnonzero(live)
-        at = at[pending]
-        at += 1
-        end, want = end[pending], want[pending]
-        more = at < end
-        pending, at, end, want = pending[more], at[more], end[more], want[more]
-        while pending.size:
-            got = rest.take(at)
-            hit = got == want
-            if hit.any():
-                result[pending[hit]] = at[hit]
-            at += 1
-            more = (got < want) & (at < end)
-            pending, at, end, want = pending[more], at[more], end[more], want[more]
+        result = np.full(len(queries), EMPTY, dtype=np.int64)
+        live = np.flatnonzero(at < end)  # an empty bucket holds no key
+        self._scan(result, live, at[live].astype(np.int64), end[live].astype(np.int64),
+                   want[live])
         return result
 
     def _counts(self) -> I64:

@@ -31,16 +31,12 @@ from rescore.units import (
     UNIT_KEY,
     WORD,
     Unit,
+    characters,
     check_model_unit,
     parse_unit,
     plural,
     unit_provenance,
 )
-
-# the unit's wording, also named from here by the reports and commands that count
-from rescore.units import characters as characters
-from rescore.units import in_unit as in_unit
-from rescore.units import unit_name as unit_name
 from rescore.wer import (
     Alignment,
     UtteranceCounts,

@@ -14,12 +14,13 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from rescore import word_error_rate
-from rescore.counting import PLAIN, Counting, characters, counting_of, parse_unit
+from rescore.counting import PLAIN, Counting, counting_of
 from rescore.errors import InputError, ParameterError
 from rescore.lm import NGramModel, load_model, save_model
 from rescore.lm.corpus import char_sentences
 from rescore.rules import parse_rules
 from rescore.text import tokens
+from rescore.units import characters, parse_unit
 from rescore.wer import counts_from_alignments, summarise, utterance_counts
 from tests.conftest import run
 

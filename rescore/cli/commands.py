@@ -39,7 +39,7 @@ from rescore.cli.options import (
     WeightsOutOpt,
 )
 from rescore.cli.report import WarnOverlapOpt, gate_rate
-from rescore.counting import characters, counting_of, in_unit, unit_name
+from rescore.counting import counting_of
 from rescore.demo_kana import KanaDemoResult, run_kana_demo
 from rescore.errors import UsageError
 from rescore.lm import load_model
@@ -49,6 +49,7 @@ from rescore.outputs import check_outputs
 from rescore.report.load import reference_sentences
 from rescore.scoring import oov_features
 from rescore.shards import count_lines
+from rescore.units import characters, in_unit, unit_name
 from rescore.weights import INSERTION_PENALTY, LM_WEIGHT, read_weights, read_weights_provenance
 from rescore.wer import WerResult
 

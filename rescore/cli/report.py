@@ -11,11 +11,12 @@ import typer
 from rescore import pipeline
 from rescore.cli._common import emit_json, guarded, info, pct, stages, table, warn
 from rescore.cli.options import CostsOpt, JsonOpt, LogBaseOpt, RefsOpt, RulesOpt, UnitOpt
-from rescore.counting import counting_of, unit_name
+from rescore.counting import counting_of
 from rescore.errors import GateError, UsageError
 from rescore.outputs import check_not_inputs
 from rescore.report import FILES, report_files
 from rescore.report.wording import CAUTION, interval, p_value, points, share_of_resamples
+from rescore.units import unit_name
 
 SystemOpt = Annotated[Path, typer.Option(
     help="N-best file (its 1-best) or 'id<TAB>text' transcript file.", show_default=False)]

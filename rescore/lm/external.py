@@ -405,18 +405,10 @@ def count_chunks(sentences: Iterable[Sequence[str]], order: int,
     body_at = [0 if c == 0 else int(ends[c - 1]) - 2 * c for c in cuts]
     del ends
     n_sentences = len(first.lengths)
-    lengths_of: Callable[[int, int], I64]
     if n_chunks > 1:  # the sentences' lengths wait on disk too, read a chunk's at a time
         with _create(folder / "lengths") as fh:
             _write(fh, first.lengths)
-
-        def lengths_of(a: int, b: int) -> I64:
-            return np.fromfile(folder / "lengths", dtype=np.int64, count=b - a,
-                               offset=a * 8)
         first = dataclasses.replace(first, lengths=first.lengths[:0])
-    else:
-        def lengths_of(a: int, b: int) -> I64:
-            return first.lengths[a:b]
     counting = Steps(progress, "counting n-grams", n_chunks * order)
     codec = KeyCodec(order, v)
     unigrams = np.zeros(v, dtype=np.int64)
@@ -431,7 +423,10 @@ def count_chunks(sentences: Iterable[Sequence[str]], order: int,
             a, b = cuts[j], cuts[j + 1]
             ids = np.fromfile(first.ids, dtype=np.int32, count=body_at[j + 1] - body_at[j],
                               offset=body_at[j] * 4)
-            stream = stream_from_lengths(table[ids], lengths_of(a, b))
+            lengths = first.lengths[a:b] if n_chunks == 1 else np.fromfile(
+                folder / "lengths", dtype=np.int64, count=b - a, offset=a * 8)
+            stream = stream_from_lengths(table[ids], lengths)
+            del lengths
             del ids
             floor = window_floor(stream, closed_vocab)
             tables = count_ngrams(stream.tokens, floor, order, v, progress=counting)

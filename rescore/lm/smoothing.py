@@ -139,7 +139,6 @@ class ByCount(Smoother):
 
     def estimate(self, stats: OrderStats) -> Estimate:
         form = self.per_ngram(counts_of_counts(stats.counts))
-        assert form is not None
         extra = (np.zeros(stats.n_contexts) if form.extra_term is None
                  else stats.per_context(form.extra_term(stats.counts)))
         return Estimate(form.numer(stats.counts), extra, form.discounts, form.fallback)

@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from rescore.counting import PLAIN, Counting, in_unit
+from rescore.counting import PLAIN, Counting
 from rescore.errors import InputError
 from rescore.lm.overlap import OverlapSummary
 from rescore.progress import Report as ProgressReport
@@ -33,6 +33,7 @@ from rescore.significance import (
     wilcoxon_signed_rank,
 )
 from rescore.tune.results import TuningRecord
+from rescore.units import in_unit
 from rescore.wer import (
     CerResult,
     WerResult,

@@ -6,10 +6,10 @@ import json
 import math
 from typing import Any
 
-from rescore.counting import in_unit
 from rescore.report.breakdown import MIN_GROUP_UTTERANCES, GroupRow
 from rescore.report.build import CAUTION as CAUTION  # the writers' footer text
 from rescore.report.build import Report
+from rescore.units import in_unit
 from rescore.weights import ACOUSTIC_SCALE, INSERTION_PENALTY, LM_WEIGHT
 
 TITLE = "Release report: WER before and after rescoring"
